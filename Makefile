@@ -1,0 +1,32 @@
+# Every target creates .venv on first use and installs crankbeat into it.
+PYTHON ?= python3
+VENV   := .venv
+BIN    := $(VENV)/bin
+STAMP  := $(VENV)/.installed
+
+.PHONY: demo test bench fixtures lint clean
+
+$(STAMP): pyproject.toml
+	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e '.[test]'
+	touch $(STAMP)
+
+demo: $(STAMP)
+	$(BIN)/python scripts/demo.py
+
+test: $(STAMP)
+	$(BIN)/python -m pytest -q
+
+bench: $(STAMP)
+	$(BIN)/python scripts/bench.py
+
+fixtures: $(STAMP)
+	$(BIN)/python scripts/make_fixtures.py
+
+lint: $(STAMP)
+	$(BIN)/python -m pip install --quiet ruff
+	$(BIN)/ruff check logger dsp tests scripts
+
+clean:
+	rm -rf $(VENV) build *.egg-info demo-out

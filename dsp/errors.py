@@ -1,0 +1,83 @@
+"""The one exception hierarchy of crankbeat.
+
+It lives at the bottom layer (``dsp``) so that both packages can raise and catch the same
+classes without ``dsp`` depending on ``logger``. Every error carries a message that is already
+one readable line: the CLI prints ``error: <message>`` and exits with ``exit_code``.
+
+Errors that have a natural built-in twin inherit it too (a bad argument is also a
+``ValueError``, a source timeout also a ``TimeoutError``), so callers may catch either.
+Numerically doubtful results are warnings, not errors.
+"""
+
+from __future__ import annotations
+
+
+class CrankbeatError(Exception):
+    """Root of every error crankbeat raises on purpose."""
+
+    exit_code = 1
+
+
+class InputError(CrankbeatError, ValueError):
+    """An argument to a dsp function is out of its domain (shape, unit, range)."""
+
+    exit_code = 2
+
+
+class RigError(CrankbeatError, ValueError):
+    """A rig file or preset is missing, unreadable or inconsistent.
+
+    The message names the file, the key and what was expected.
+    """
+
+    exit_code = 3
+
+
+class SourceError(CrankbeatError):
+    """A CAN or serial source (live or recorded) cannot be opened or read."""
+
+    exit_code = 4
+
+
+class SourceTimeoutError(SourceError, TimeoutError):
+    """A live source delivered nothing within its timeout."""
+
+
+class FormatError(SourceError, ValueError):
+    """A recording is not in the format it claims (names file and byte offset or line)."""
+
+
+class StoreError(CrankbeatError):
+    """The SQLite store cannot be opened, migrated or queried as asked."""
+
+    exit_code = 5
+
+
+class RunNotFoundError(StoreError, LookupError):
+    """A run id or label names no run in the store."""
+
+
+class DuplicateRunError(StoreError):
+    """The same source files were analysed before (matched by hash)."""
+
+
+class UsageError(CrankbeatError, ValueError):
+    """A command-line request that cannot be carried out as given."""
+
+    exit_code = 2
+
+
+class CrankbeatWarning(UserWarning):
+    """Root of crankbeat's warnings: results that are computed but doubtful."""
+
+
+class SyncWarning(CrankbeatWarning):
+    """Crank synchronisation was lost or could not be established."""
+
+
+class LayoutMismatchWarning(CrankbeatWarning):
+    """The measured firing pattern fits another layout better than the rig file's."""
+
+
+class PhaseUnknownWarning(CrankbeatWarning):
+    """The 720° phase cannot be known (no cam and an even-firing layout)."""

@@ -1,0 +1,43 @@
+"""The per-firing-event record that the dsp pipeline emits and the store keeps.
+
+One row per firing event the crank reconstruction saw, fired or not. Arrays of
+:data:`EVENT_DTYPE` are the currency between the misfire stage, the store and the reports.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+#: Verdict codes of a firing event.
+FIRED = 0  # combustion seen
+MISFIRE = 1  # no (or too little) combustion
+MASKED = 2  # rough road or another disturbance: neither counted as fired nor as misfire
+UNUSABLE = 3  # crank angle not trustworthy (sync lost, lost frames, saturated periods)
+
+VERDICT_NAMES = {FIRED: "fired", MISFIRE: "misfire", MASKED: "masked", UNUSABLE: "unusable"}
+
+EVENT_DTYPE = np.dtype(
+    [
+        ("t", "f8"),  # s, time of this cylinder's firing TDC on the CAN log's time base
+        ("cycle", "i8"),  # working-cycle index since the start of the run
+        ("cylinder", "i2"),  # 1-based
+        ("rpm", "f8"),  # mean crank speed over the event's window, rpm
+        ("throttle", "f8"),  # % (NaN when the rig has no throttle signal)
+        ("metric", "f8"),  # normalised speed-fluctuation metric; larger = weaker combustion
+        ("threshold", "f8"),  # decision threshold applied to ``metric``
+        ("verdict", "i1"),  # FIRED, MISFIRE, MASKED or UNUSABLE
+        ("confidence", "f4"),  # 0..1, how clear the verdict is
+        ("interval_deg", "f8"),  # observed crank angle since the previous firing event (NaN if none)
+        ("expected_interval_deg", "f8"),  # what the layout promises for that interval
+        ("contribution", "f8"),  # relative speed rise over the expansion window (1.0 = cylinder mean)
+    ]
+)
+
+
+def empty_events(n: int = 0) -> np.ndarray:
+    """An event array of length ``n`` with NaN floats and FIRED verdicts."""
+    out = np.zeros(n, dtype=EVENT_DTYPE)
+    for name in EVENT_DTYPE.names or ():
+        if EVENT_DTYPE[name].kind == "f":
+            out[name] = np.nan
+    return out
