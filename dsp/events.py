@@ -13,8 +13,15 @@ FIRED = 0  # combustion seen
 MISFIRE = 1  # no (or too little) combustion
 MASKED = 2  # rough road or another disturbance: neither counted as fired nor as misfire
 UNUSABLE = 3  # crank angle not trustworthy (sync lost, lost frames, saturated periods)
+FUEL_CUT = 4  # overrun with the throttle closed: no combustion expected, not a misfire
 
-VERDICT_NAMES = {FIRED: "fired", MISFIRE: "misfire", MASKED: "masked", UNUSABLE: "unusable"}
+VERDICT_NAMES = {
+    FIRED: "fired",
+    MISFIRE: "misfire",
+    MASKED: "masked",
+    UNUSABLE: "unusable",
+    FUEL_CUT: "fuel_cut",
+}
 
 EVENT_DTYPE = np.dtype(
     [
@@ -25,7 +32,7 @@ EVENT_DTYPE = np.dtype(
         ("throttle", "f8"),  # % (NaN when the rig has no throttle signal)
         ("metric", "f8"),  # normalised speed-fluctuation metric; larger = weaker combustion
         ("threshold", "f8"),  # decision threshold applied to ``metric``
-        ("verdict", "i1"),  # FIRED, MISFIRE, MASKED or UNUSABLE
+        ("verdict", "i1"),  # FIRED, MISFIRE, MASKED, UNUSABLE or FUEL_CUT
         ("confidence", "f4"),  # 0..1, how clear the verdict is
         ("interval_deg", "f8"),  # observed crank angle since the previous firing event (NaN if none)
         ("expected_interval_deg", "f8"),  # what the layout promises for that interval
