@@ -1,0 +1,1 @@
+"""CAN acquisition: bit layouts, frame decoding and the sources (log files, live buses)."""
