@@ -1,0 +1,111 @@
+"""Capture file round trips and damage handling, with the byte layout checked by struct."""
+
+from __future__ import annotations
+
+import io
+import struct
+
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from dsp.errors import FormatError, SourceError
+from logger.serial.capture import MAGIC, CaptureReader, CaptureWriter
+
+RECORDS = [(1000.25, b"\xa5\x5a\x01"), (1000.5, b""), (1001.0, bytes(range(256)) * 3)]
+
+
+def _write(path, records):
+    with CaptureWriter(path) as w:
+        for t, data in records:
+            w.write(t, data)
+
+
+def test_layout_is_magic_then_float64_uint32_bytes(tmp_path):
+    # RIG.md: magic "ACCRAW1\n", then per record float64 LE time, uint32 LE n, n bytes.
+    path = tmp_path / "a.accraw"
+    _write(path, RECORDS)
+    want = MAGIC + b"".join(struct.pack("<dI", t, len(d)) + d for t, d in RECORDS)
+    assert path.read_bytes() == want
+
+
+def test_writer_takes_open_file_and_leaves_it_open():
+    buf = io.BytesIO()
+    with CaptureWriter(buf) as w:
+        w.write(1.5, b"xy")
+        w.flush()
+    assert not buf.closed
+    assert buf.getvalue() == MAGIC + struct.pack("<dI", 1.5, 2) + b"xy"
+
+
+@settings(max_examples=30, deadline=None)
+@given(st.lists(st.tuples(st.floats(allow_nan=False, allow_infinity=False), st.binary(max_size=300)),
+                max_size=20))
+def test_round_trip(tmp_path_factory, records):
+    path = tmp_path_factory.mktemp("cap") / "r.accraw"
+    _write(path, records)
+    with CaptureReader(path) as r:
+        got = list(r)
+    assert got == records
+
+
+def test_batches(tmp_path):
+    path = tmp_path / "b.accraw"
+    recs = [(float(i), bytes([i]) * i) for i in range(10)]
+    _write(path, recs)
+    with CaptureReader(path) as r:
+        assert r.read(4) == recs[:4]
+        assert r.read(4) == recs[4:8]
+        assert r.read() == recs[8:]
+        assert r.read() == []
+        assert r.notes == []
+
+
+@pytest.mark.parametrize("cut", range(1, 16))
+def test_cut_mid_record_keeps_whole_records(tmp_path, cut):
+    path = tmp_path / "c.accraw"
+    recs = [(1.0, b"abcd"), (2.0, b"efgh"), (3.0, b"ijkl")]
+    _write(path, recs)
+    whole = path.read_bytes()
+    path.write_bytes(whole[: len(whole) - cut])  # cut inside the last record (16 bytes long)
+    with CaptureReader(path) as r:
+        got = list(r)
+    assert got == recs[:2]
+    last_start = len(MAGIC) + 2 * 16
+    assert len(r.notes) == 1 and f"offset {last_start}" in r.notes[0]
+
+
+def test_bad_magic_names_file_and_offset(tmp_path):
+    path = tmp_path / "x.accraw"
+    path.write_bytes(b"NOTACAPTUREFILE")
+    with pytest.raises(FormatError) as err:
+        CaptureReader(path)
+    assert str(err.value) == f"{path}: offset 0: expected magic b'ACCRAW1\\n', found b'NOTACAPT'"
+
+
+def test_missing_file_is_source_error(tmp_path):
+    with pytest.raises(SourceError, match="cannot open"):
+        CaptureReader(tmp_path / "none.accraw")
+
+
+def test_implausible_length_stops_with_note(tmp_path):
+    path = tmp_path / "l.accraw"
+    good = struct.pack("<dI", 1.0, 3) + b"abc"
+    huge = struct.pack("<dI", 2.0, 17 * 1024 * 1024) + b"x" * 100
+    path.write_bytes(MAGIC + good + huge + good)
+    with CaptureReader(path) as r:
+        assert list(r) == [(1.0, b"abc")]
+    assert "offset 23" in r.notes[0] and "claims" in r.notes[0]
+    beyond = struct.pack("<dI", 2.0, 1000) + b"x" * 10
+    path.write_bytes(MAGIC + good + beyond)
+    with CaptureReader(path) as r:
+        assert list(r) == [(1.0, b"abc")]
+    assert "offset 23" in r.notes[0] and "10 of 1000" in r.notes[0]
+
+
+def test_time_backwards_is_noted_with_index(tmp_path):
+    path = tmp_path / "t.accraw"
+    _write(path, [(5.0, b"a"), (4.0, b"b"), (6.0, b"c")])
+    with CaptureReader(path) as r:
+        assert [t for t, _ in r] == [5.0, 4.0, 6.0]
+    assert r.backwards == 1 and "record 1" in r.notes[0] and "backwards" in r.notes[0]
