@@ -1,8 +1,98 @@
-"""Entry point of the ``crankbeat`` command (filled in by the CLI module)."""
+"""Entry point of the ``crankbeat`` command.
 
+Each command lives in ``logger/cli/cmd_<name>.py`` with ``NAME``, ``HELP`` (one line),
+``add_arguments(parser)`` (which also sets ``parser.epilog`` to an example) and
+``run(args) -> int``. :data:`COMMANDS` lists them explicitly, in the order ``--help`` shows.
+Project errors (:class:`dsp.errors.CrankbeatError`) become one ``error: <message>`` line on
+stderr and the error's exit code (0 ok, 1 generic, 2 usage, 3 rig, 4 source, 5 store);
+Ctrl-C gives 130.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
 import sys
+from types import ModuleType
+
+from dsp.errors import CrankbeatError
+
+#: Command modules, in help order. ``cmd_synth`` comes from the simulator; main works without it.
+COMMANDS: tuple[str, ...] = (
+    "logger.cli.cmd_ride",
+    "logger.cli.cmd_replay",
+    "logger.cli.cmd_runs",
+    "logger.cli.cmd_show",
+    "logger.cli.cmd_events",
+    "logger.cli.cmd_trend",
+    "logger.cli.cmd_compare",
+    "logger.cli.cmd_report",
+    "logger.cli.cmd_synth",
+)
+
+#: Modules that may be absent without breaking the other commands.
+OPTIONAL = frozenset({"logger.cli.cmd_synth"})
+
+
+def command_modules() -> list[ModuleType]:
+    """The importable command modules of :data:`COMMANDS`."""
+    out = []
+    for name in COMMANDS:
+        try:
+            out.append(importlib.import_module(name))
+        except ModuleNotFoundError as exc:
+            if name in OPTIONAL and exc.name == name:
+                continue
+            raise
+    return out
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="crankbeat",
+        description="Ride-test analysis: misfire per cylinder, firing intervals, rider vibration.",
+        epilog="example: crankbeat replay --rig m1 --can ride.log --accel ride.bar_left.acraw",
+    )
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", title="commands")
+    for mod in command_modules():
+        p = sub.add_parser(
+            mod.NAME,
+            help=mod.HELP,
+            description=mod.HELP,
+            formatter_class=argparse.RawDescriptionHelpFormatter,
+        )
+        mod.add_arguments(p)
+        p.set_defaults(_run=mod.run)
+    return parser
 
 
 def main(argv: list[str] | None = None) -> int:
-    print("crankbeat: commands are being built", file=sys.stderr)
-    return 1
+    """Run one command; return its exit code (argv without the program name)."""
+    try:
+        parser = build_parser()
+        try:
+            args = parser.parse_args(argv)
+        except SystemExit as exc:  # --help or a usage error: argparse has printed already
+            return int(exc.code or 0)
+        if not getattr(args, "_run", None):
+            parser.print_help(sys.stderr)
+            return 2
+        return int(args._run(args) or 0)
+    except CrankbeatError as exc:
+        print(_error_text(exc), file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("interrupted", file=sys.stderr)
+        return 130
+    except BrokenPipeError:  # e.g. `crankbeat events 3 | head`
+        return 0
+
+
+def _error_text(exc: BaseException) -> str:
+    """``error: <message>``; a message listing several problems keeps one per indented line."""
+    lines = (str(exc).strip() or type(exc).__name__).splitlines()
+    return "\n".join([f"error: {lines[0]}"] + [f"  {line}" for line in lines[1:]])
+
+
+if __name__ == "__main__":
+    sys.exit(main())

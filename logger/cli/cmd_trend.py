@@ -1,0 +1,58 @@
+"""``crankbeat trend``: one metric across the run history."""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+
+from logger.cli.common import add_store_argument, fmt, open_store, print_json, table
+from logger.store import METRICS
+
+NAME = "trend"
+HELP = "follow a metric across runs (misfire rate, interval error, bar vibration, contribution)"
+
+
+def add_arguments(parser: argparse.ArgumentParser) -> None:
+    add_store_argument(parser)
+    parser.add_argument("metric", metavar="METRIC", choices=sorted(METRICS),
+                        help="one of: " + ", ".join(METRICS))
+    parser.add_argument("--rig", help="only runs of this rig")
+    parser.add_argument("--cylinder", type=int, metavar="N", help="only cylinder N (from 1)")
+    parser.add_argument("--rpm", metavar="LO-HI", help="only this rpm band, e.g. 5000-6000")
+    parser.add_argument("--by", choices=("date", "odometer"), default="date",
+                        help="order runs by start date (default) or odometer reading")
+    parser.add_argument("--last", type=int, metavar="N", help="only the last N runs")
+    parser.add_argument("--json", action="store_true", help="print one JSON array")
+    parser.add_argument("--plot", metavar="PNG", help="also draw the trend into this PNG file")
+    parser.epilog = ("example: crankbeat trend bar_vibration --rpm 5000-6000 --by odometer "
+                     "--plot bar.png\n"
+                     + "\n".join(f"  {k}: {v[1]} [{v[0] or 'ratio'}]" for k, v in METRICS.items()))
+
+
+def run(args: argparse.Namespace) -> int:
+    with open_store(args) as store:
+        points = store.trend(args.metric, rig=args.rig, cylinder=args.cylinder,
+                             rpm_band=args.rpm, by=args.by, last=args.last)
+        if args.plot:
+            from logger.report.trend import plot_trend
+
+            plot_trend(points, Path(args.plot), metric=args.metric, by=args.by,
+                       rpm_band=args.rpm)
+    if args.json:
+        print_json([p.__dict__ for p in points])
+        return 0
+    if not points:
+        print(f"no runs with {args.metric} data")
+        return 0
+    unit = METRICS[args.metric][0]
+    x_head = "km" if args.by == "odometer" else "started"
+    print(table(
+        ["run", "label", x_head, "series", f"{args.metric}{f' [{unit}]' if unit else ''}", "n"],
+        [[p.run_id, p.label or "-",
+          fmt(p.odometer_km, ".0f") if args.by == "odometer" else p.started_at,
+          p.series, fmt(p.value, ".3f"), p.n] for p in points],
+        indent="",
+    ))
+    if args.plot:
+        print(f"plot: {args.plot}")
+    return 0

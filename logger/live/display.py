@@ -1,0 +1,200 @@
+"""The roadside screen: big engine speed, one row per cylinder, the checks and stream health.
+
+The pipeline builds a :class:`LiveState` (plain data, no rich types) a few times a second and
+calls :meth:`LiveDisplay.update`. :meth:`LiveDisplay.render` returns the rich renderable, so a
+test can print it into a recording console and read the text.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+from rich.console import Console, Group, RenderableType
+from rich.live import Live
+from rich.panel import Panel
+from rich.table import Table
+from rich.text import Text
+
+#: Shown before every live ride, on the terminal and at the top of the display.
+CAUTION_LINES = (
+    "Ride only on a closed course, or on roads where this testing is legal.",
+    "Never operate the laptop while riding: read this screen only when stopped.",
+    "Secure the laptop, sensors and cables clear of the controls, chain and hot parts.",
+    "Sustained misfire can overheat the catalyst and start a fire: on the alert, stop safely.",
+    "Follow your local rules and your organisation's qualified test practice.",
+)
+
+
+def caution_text() -> str:
+    return "\n".join(f"CAUTION: {line}" for line in CAUTION_LINES)
+
+
+@dataclass
+class CylinderState:
+    """Counts of one cylinder since the start of the ride, and its latest 200-rev window."""
+
+    cylinder: int
+    events: int = 0
+    misfires: int = 0
+    rate200_pct: float | None = None  # misfire rate of the latest 200-revolution window, %
+    contribution: float | None = None
+
+
+@dataclass
+class IntervalState:
+    """A firing interval: expected by the layout and observed (mean over the recent events)."""
+
+    from_cyl: int
+    to_cyl: int
+    expected_deg: float
+    observed_deg: float | None = None
+
+
+@dataclass
+class LiveState:
+    """Everything the live display shows. Plain values; None where not known yet."""
+
+    elapsed_s: float = 0.0
+    rpm: float | None = None
+    throttle_pct: float | None = None
+    cylinders: list[CylinderState] = field(default_factory=list)
+    intervals: list[IntervalState] = field(default_factory=list)
+    interval_tolerance_deg: float = 3.0
+    vibration: dict[str, float] = field(default_factory=dict)  # sensor -> weighted rms, m/s²
+    can_frames: int = 0
+    can_lost: int = 0
+    serial_crc_errors: int = 0
+    serial_reconnects: int = 0
+    synced: bool = True
+    recording: str | None = None  # folder being recorded into
+    notes: list[str] = field(default_factory=list)
+
+
+# Our own palette: amber for attention, deep red for the alert, teal for good.
+_OK, _WARN, _ALERT, _DIM = "bold #2bb3a3", "bold #e8a33d", "bold white on #9b1c1c", "#7f8a93"
+
+
+class LiveDisplay:
+    """The live screen.
+
+    Parameters
+    ----------
+    console : rich Console, optional
+        Where to draw (default: a new Console on stdout).
+    alert_pct : float
+        Misfire-rate alert level, % (the rig's ``limits.misfire_alert_pct``).
+    live : bool
+        True redraws in place (rich Live, for a terminal); False prints each update below the
+        last (for logs and tests).
+    """
+
+    def __init__(self, console: Console | None = None, *, alert_pct: float = 2.0,
+                 live: bool = True) -> None:
+        self.console = console or Console()
+        self.alert_pct = float(alert_pct)
+        self._live_mode = live
+        self._live: Live | None = None
+
+    def __enter__(self) -> LiveDisplay:
+        self.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.stop()
+
+    def start(self) -> None:
+        self.console.print(Text(caution_text(), style=_WARN))
+        if self._live_mode and self._live is None:
+            self._live = Live(console=self.console, refresh_per_second=4, transient=False)
+            self._live.start()
+
+    def stop(self) -> None:
+        if self._live is not None:
+            self._live.stop()
+            self._live = None
+
+    def update(self, state: LiveState) -> None:
+        view = self.render(state)
+        if self._live is not None:
+            self._live.update(view)
+        else:
+            self.console.print(view)
+
+    def alerts(self, state: LiveState) -> list[str]:
+        """One line per reason to stop and look (misfire over the limit, interval off, lost sync)."""
+        out = []
+        for c in state.cylinders:
+            if c.rate200_pct is not None and c.rate200_pct > self.alert_pct:
+                out.append(f"MISFIRE ALERT cyl {c.cylinder}: {c.rate200_pct:.1f} % over 200 revs "
+                           f"(limit {self.alert_pct:g} %)")
+        for i in state.intervals:
+            if i.observed_deg is not None and abs(i.observed_deg - i.expected_deg) > \
+                    state.interval_tolerance_deg:
+                out.append(f"INTERVAL {i.from_cyl}>{i.to_cyl} {i.observed_deg:.1f} deg, expected "
+                           f"{i.expected_deg:.0f} +- {state.interval_tolerance_deg:g}")
+        if not state.synced:
+            out.append("NO CRANK SYNC: events are not being judged")
+        return out
+
+    def render(self, state: LiveState) -> RenderableType:
+        parts: list[RenderableType] = [self._headline(state)]
+        alerts = self.alerts(state)
+        if alerts:
+            parts.append(Panel(Text("\n".join(alerts), style=_ALERT), border_style="#9b1c1c"))
+        parts.append(self._cylinders(state))
+        if state.intervals:
+            parts.append(self._intervals(state))
+        parts.append(self._health(state))
+        for note in state.notes[-3:]:
+            parts.append(Text(f"note: {note}", style=_DIM))
+        return Panel(Group(*parts), title="crankbeat ride", border_style="#2bb3a3")
+
+    def _headline(self, s: LiveState) -> Text:
+        rpm = "----" if s.rpm is None or not math.isfinite(s.rpm) else f"{s.rpm:5.0f}"
+        t = Text()
+        t.append(f"{rpm} rpm", style="bold white")
+        if s.throttle_pct is not None and math.isfinite(s.throttle_pct):
+            t.append(f"   throttle {s.throttle_pct:3.0f} %", style="white")
+        minutes, seconds = divmod(int(s.elapsed_s), 60)
+        t.append(f"   ride {minutes:d}:{seconds:02d}", style=_DIM)
+        if s.recording:
+            t.append(f"   REC {s.recording}", style=_WARN)
+        for sensor, rms in s.vibration.items():
+            t.append(f"\nvibration {sensor}: {rms:.2f} m/s² weighted", style="white")
+        return t
+
+    def _cylinders(self, s: LiveState) -> Table:
+        tab = Table(title="misfire per cylinder", title_justify="left", expand=False)
+        for col in ("cyl", "events", "misfires", "200-rev rate", "contribution"):
+            tab.add_column(col, justify="right")
+        for c in s.cylinders:
+            rate = "-" if c.rate200_pct is None else f"{c.rate200_pct:.1f} %"
+            over = c.rate200_pct is not None and c.rate200_pct > self.alert_pct
+            style = _ALERT if over else (_OK if c.rate200_pct is not None else _DIM)
+            contrib = "-" if c.contribution is None else f"{c.contribution:.2f}"
+            tab.add_row(str(c.cylinder), str(c.events), str(c.misfires), Text(rate, style=style),
+                        contrib)
+        return tab
+
+    def _intervals(self, s: LiveState) -> Table:
+        tab = Table(title="firing intervals (deg)", title_justify="left")
+        for col in ("pair", "expected", "observed", "check"):
+            tab.add_column(col, justify="right")
+        for i in s.intervals:
+            if i.observed_deg is None:
+                obs, check = "-", Text("waiting", style=_DIM)
+            else:
+                obs = f"{i.observed_deg:.1f}"
+                off = abs(i.observed_deg - i.expected_deg) > s.interval_tolerance_deg
+                check = Text("OFF", style=_WARN) if off else Text("ok", style=_OK)
+            tab.add_row(f"{i.from_cyl}>{i.to_cyl}", f"{i.expected_deg:.0f}", obs, check)
+        return tab
+
+    def _health(self, s: LiveState) -> Text:
+        bad = s.can_lost or s.serial_crc_errors or s.serial_reconnects
+        return Text(
+            f"streams: CAN frames {s.can_frames}, lost {s.can_lost}; serial CRC errors "
+            f"{s.serial_crc_errors}, reconnects {s.serial_reconnects}",
+            style=_WARN if bad else _DIM,
+        )

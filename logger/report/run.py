@@ -1,0 +1,127 @@
+"""One run's report: the PNG figures and a single HTML page that embeds them."""
+
+from __future__ import annotations
+
+import base64
+import html
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from dsp.errors import CrankbeatError
+from logger.report import run_plots
+from logger.report.trend import plot_trend
+from logger.store import Store
+
+
+@dataclass
+class RunReport:
+    """What :func:`make_run_report` wrote."""
+
+    run_id: int
+    html: Path
+    figures: list[Path] = field(default_factory=list)
+
+
+def _alert_pct(rig_toml: str) -> float | None:
+    try:
+        return float(tomllib.loads(rig_toml).get("limits", {}).get("misfire_alert_pct", 2.0))
+    except (tomllib.TOMLDecodeError, TypeError, ValueError):
+        return None
+
+
+def make_run_report(store: Store, run_id: int, out_dir: str | Path) -> RunReport:
+    """Write ``run<ID>_*.png`` and ``run<ID>.html`` into ``out_dir`` (created if needed)."""
+    out = Path(out_dir)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise CrankbeatError(f"cannot create report folder '{out}': {exc.strerror}") from None
+    info = store.run(run_id)
+    ev = store.events(run_id)
+    stem = f"run{run_id}"
+    figures: list[tuple[str, Path | None]] = [
+        ("Per-event metric", run_plots.plot_metric(ev, out / f"{stem}_metric.png")),
+        ("Misfire rate per 1000 revolutions", run_plots.plot_windows(
+            store, run_id, ev, out / f"{stem}_windows.png",
+            alert_pct=_alert_pct(store.rig_toml(run_id)))),
+        ("Firing intervals", run_plots.plot_intervals(ev, out / f"{stem}_intervals.png")),
+        ("Contribution per cylinder",
+         run_plots.plot_contribution(ev, out / f"{stem}_contribution.png")),
+        ("Order map", run_plots.plot_order_map(store, run_id, out / f"{stem}_orders.png")),
+        ("Vibration against rpm",
+         run_plots.plot_vibration(store, run_id, out / f"{stem}_vibration.png")),
+    ]
+    points = store.trend("misfire_rate", rig=info["rig"], last=30)
+    if len({p.run_id for p in points}) > 1:
+        figures.append(("Misfire rate across the runs of this rig", plot_trend(
+            points, out / f"{stem}_trend_misfire.png", metric="misfire_rate")))
+    page = out / f"{stem}.html"
+    drawn = [(title, p) for title, p in figures if p is not None]
+    page.write_text(_page(store, run_id, info, drawn, [t for t, p in figures if p is None]),
+                    encoding="utf-8")
+    return RunReport(run_id, page, [p for _, p in drawn])
+
+
+_CSS = """
+body { font-family: system-ui, sans-serif; margin: 1.5em auto; max-width: 1050px; color: #1d2327; }
+h1 { font-size: 1.4em; border-bottom: 3px solid #2bb3a3; padding-bottom: .2em; }
+h2 { font-size: 1.1em; margin-top: 1.6em; color: #1f6f8b; }
+table { border-collapse: collapse; margin: .5em 0; font-size: .9em; }
+td, th { border: 1px solid #d4d9dd; padding: .25em .6em; text-align: right; }
+th { background: #eef3f5; } td.l, th.l { text-align: left; }
+.off { color: #c0262d; font-weight: bold; } .muted { color: #7f8a93; }
+img { max-width: 100%; border: 1px solid #e3e6e8; }
+"""
+
+
+def _e(v: object) -> str:
+    if v is None:
+        return "-"
+    if isinstance(v, float):
+        return f"{v:.3f}"
+    return html.escape(str(v))
+
+
+def _table(headers: list[str], rows: list[list[object]]) -> str:
+    head = "".join(f"<th>{html.escape(h)}</th>" for h in headers)
+    body = "".join("<tr>" + "".join(f"<td>{_e(c)}</td>" for c in r) + "</tr>" for r in rows)
+    return f"<table><tr>{head}</tr>{body}</table>"
+
+
+def _page(store: Store, run_id: int, info: dict, figures: list[tuple[str, Path]],
+          missing: list[str]) -> str:
+    cyl = store.cylinder_stats(run_id)
+    parts = [
+        "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
+        f"<title>crankbeat run {run_id}</title><style>{_CSS}</style></head><body>",
+        f"<h1>crankbeat run {run_id}: {_e(info['label'] or info['started_at'])}</h1>",
+        _table(["rig", "started (UTC)", "status", "odometer km", "notes"],
+               [[info["rig"], info["started_at"], info["status"], info["odometer_km"],
+                 info["notes"]]]),
+        "<h2>Sources</h2>",
+        _table(["kind", "path", "bytes", "sha256"],
+               [[s["kind"], s["path"], s["bytes"], s["sha256"][:16] + "…"]
+                for s in info["sources"]]),
+        "<h2>Per cylinder</h2>",
+        _table(["cyl", "events", "fired", "misfires", "rate %", "masked", "unusable",
+                "fuel cut", "contribution", "interval error deg"],
+               [[c["cylinder"], c["events"], c["fired"], c["misfires"], c["rate_pct"],
+                 c["masked"], c["unusable"], c["fuel_cut"], c["contribution"],
+                 c["interval_error_deg"]] for c in cyl]),
+    ]
+    intervals = store.intervals(run_id)
+    if intervals:
+        parts += ["<h2>Firing intervals</h2>", _table(
+            ["from", "to", "expected deg", "observed deg", "± deg", "n", "check"],
+            [[i["from_cyl"], i["to_cyl"], i["expected_deg"], i["observed_deg"],
+              i["stderr_deg"], i["n"], "OFF" if i["flagged"] else "ok"] for i in intervals])]
+    for title, path in figures:
+        data = base64.b64encode(path.read_bytes()).decode("ascii")
+        parts.append(f"<h2>{html.escape(title)}</h2>"
+                     f"<img alt='{html.escape(title)}' src='data:image/png;base64,{data}'>")
+    if missing:
+        parts.append("<p class='muted'>Not drawn (no data in the store): "
+                     + html.escape(", ".join(missing)) + "</p>")
+    parts.append("<p class='muted'>Made by crankbeat from the store alone.</p></body></html>")
+    return "\n".join(parts)

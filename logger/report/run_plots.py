@@ -1,0 +1,205 @@
+"""The figures of one run, each drawn from the store's rows only."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from dsp.events import FIRED, MISFIRE
+from logger.report.style import (
+    MISFIRE_COLOUR, MUTED_COLOUR, THRESHOLD_COLOUR, cyl_colour, new_figure, save,
+)
+from logger.store import Store
+
+# Above this many fired events per cylinder the dots are thinned (every misfire is kept).
+_MAX_DOTS = 40_000
+
+
+def plot_metric(ev: np.ndarray, path: Path) -> Path | None:
+    """Per-event metric over time, one panel per cylinder, threshold and misfires marked."""
+    cyls = sorted(set(ev["cylinder"].tolist()))
+    if not cyls:
+        return None
+    fig, axes = new_figure(9.0, 1.9 * len(cyls) + 0.8, nrows=len(cyls), sharex=True,
+                           squeeze=False)
+    for ax, c in zip(axes[:, 0], cyls, strict=True):
+        e = ev[ev["cylinder"] == c]
+        fired = e[e["verdict"] == FIRED]
+        if len(fired) > _MAX_DOTS:
+            fired = fired[:: int(np.ceil(len(fired) / _MAX_DOTS))]
+        other = e[(e["verdict"] != FIRED) & (e["verdict"] != MISFIRE)]
+        mis = e[e["verdict"] == MISFIRE]
+        ax.plot(fired["t"], fired["metric"], ".", ms=2, color=cyl_colour(c), label="fired",
+                rasterized=True)
+        if len(other):
+            ax.plot(other["t"], other["metric"], ".", ms=2, color=MUTED_COLOUR,
+                    label="masked / unusable / fuel cut", rasterized=True)
+        if len(mis):
+            ax.plot(mis["t"], mis["metric"], "x", ms=5, mew=1.2, color=MISFIRE_COLOUR,
+                    label=f"misfire ({len(mis)})")
+        ax.plot(e["t"], e["threshold"], "-", lw=1.0, color=THRESHOLD_COLOUR, label="threshold")
+        ax.set_ylabel(f"cyl {c}\nmetric [-]")
+        ax.legend(loc="upper right", ncol=4, markerscale=2)
+    axes[-1, 0].set_xlabel("time on the CAN log [s]")
+    axes[0, 0].set_title("Speed-fluctuation metric per firing event (larger = weaker combustion)")
+    save(fig, path)
+    return path
+
+
+def windows_from_events(ev: np.ndarray, *, revolutions: int = 1000) -> list[dict]:
+    """Misfire rate per cylinder over revolution windows, from the events alone.
+
+    Used when the pipeline stored no windows of that size. The crank revolutions per working
+    cycle follow from the expected intervals: one cycle is n_cyl times their mean.
+    """
+    if not len(ev):
+        return []
+    n_cyl = len(set(ev["cylinder"].tolist()))
+    expected = ev["expected_interval_deg"]
+    cycle_deg = n_cyl * float(np.nanmean(expected)) if np.isfinite(expected).any() else 720.0
+    rev = (ev["cycle"] - ev["cycle"].min()) * (cycle_deg / 360.0)
+    win = np.floor(rev / revolutions).astype(int)
+    out = []
+    for c in sorted(set(ev["cylinder"].tolist())):
+        for k in np.unique(win):
+            sel = (win == k) & (ev["cylinder"] == c)
+            mis = int(np.sum(ev["verdict"][sel] == MISFIRE))
+            counted = int(np.sum(np.isin(ev["verdict"][sel], (FIRED, MISFIRE))))
+            out.append({"idx": int(k), "cylinder": int(c), "events": counted, "misfires": mis,
+                        "rate": 100.0 * mis / counted if counted else None,
+                        "t_start": float(ev["t"][sel].min()) if sel.any() else None})
+    return out
+
+
+def plot_windows(store: Store, run_id: int, ev: np.ndarray, path: Path,
+                 *, alert_pct: float | None = None) -> Path | None:
+    """Misfire rate per 1000-revolution window and cylinder."""
+    rows = [w for w in store.windows(run_id, kind="rev1000") if w["cylinder"]]
+    source = "stored windows"
+    if not rows:
+        rows, source = windows_from_events(ev, revolutions=1000), "computed from the events"
+    if not rows:
+        return None
+    fig, ax = new_figure(9.0, 3.4)
+    cyls = sorted({w["cylinder"] for w in rows})
+    width = 0.8 / len(cyls)
+    for j, c in enumerate(cyls):
+        w = [r for r in rows if r["cylinder"] == c]
+        x = np.array([r["idx"] for r in w], dtype=float) + (j - (len(cyls) - 1) / 2) * width
+        y = [np.nan if r["rate"] is None else r["rate"] for r in w]
+        ax.bar(x, y, width=width, color=cyl_colour(c), label=f"cyl {c}")
+    if alert_pct is not None:
+        ax.axhline(alert_pct, color=MISFIRE_COLOUR, lw=1, ls="--",
+                   label=f"live alert level {alert_pct:g} %")
+    ax.set_xlabel("1000-revolution window number")
+    ax.set_ylabel("misfire rate [%]")
+    ax.set_title(f"Misfire rate per 1000-revolution window ({source})")
+    ax.legend(loc="upper right")
+    ax.set_ylim(bottom=0)
+    save(fig, path)
+    return path
+
+
+def plot_intervals(ev: np.ndarray, path: Path) -> Path | None:
+    """Histogram of observed firing intervals of fired events, one panel per expected value."""
+    ok = (ev["verdict"] == FIRED) & np.isfinite(ev["interval_deg"]) & \
+        np.isfinite(ev["expected_interval_deg"])
+    e = ev[ok]
+    if not len(e):
+        return None
+    groups = sorted({round(float(v), 1) for v in e["expected_interval_deg"]})
+    fig, axes = new_figure(4.2 * len(groups) + 0.6, 3.4, ncols=len(groups), squeeze=False)
+    for ax, g in zip(axes[0], groups, strict=True):
+        sel = e[np.isclose(e["expected_interval_deg"], g, atol=0.05)]
+        obs = sel["interval_deg"]
+        span = max(6.0, float(np.nanpercentile(np.abs(obs - g), 99.5)) * 1.2)
+        bins = np.linspace(g - span, g + span, 61)
+        for c in sorted(set(sel["cylinder"].tolist())):
+            ax.hist(np.clip(obs[sel["cylinder"] == c], bins[0], bins[-1]), bins=bins,
+                    histtype="step", lw=1.3, color=cyl_colour(c), label=f"ending at cyl {c}")
+        ax.axvline(g, color=THRESHOLD_COLOUR, lw=1.2, ls="--", label=f"expected {g:g}°")
+        ax.set_xlabel("observed firing interval [crank deg]")
+        ax.set_ylabel("events")
+        ax.set_title(f"interval expected {g:g}°, mean {np.mean(obs):.2f}°")
+        ax.legend(loc="upper left")
+    save(fig, path)
+    return path
+
+
+def plot_contribution(ev: np.ndarray, path: Path) -> Path | None:
+    """Mean contribution per cylinder (fired events) with its spread."""
+    e = ev[(ev["verdict"] == FIRED) & np.isfinite(ev["contribution"])]
+    if not len(e):
+        return None
+    cyls = sorted(set(e["cylinder"].tolist()))
+    means = [float(np.mean(e["contribution"][e["cylinder"] == c])) for c in cyls]
+    sds = [float(np.std(e["contribution"][e["cylinder"] == c])) for c in cyls]
+    fig, ax = new_figure(1.3 * len(cyls) + 3.0, 3.4)
+    ax.bar([str(c) for c in cyls], means, yerr=sds, capsize=4,
+           color=[cyl_colour(c) for c in cyls])
+    ax.axhline(1.0, color=THRESHOLD_COLOUR, lw=1, ls="--", label="cylinder mean = 1")
+    for i, m in enumerate(means):
+        ax.annotate(f"{m:.3f}", (i, m), textcoords="offset points", xytext=(8, 3), fontsize=8)
+    ax.set_xlabel("cylinder")
+    ax.set_ylabel("relative contribution [-]")
+    ax.set_title("Contribution per cylinder (fired events; bars = ±1 s.d.)")
+    ax.legend(loc="lower right")
+    save(fig, path)
+    return path
+
+
+def plot_order_map(store: Store, run_id: int, path: Path) -> Path | None:
+    """rpm-vs-order map per sensor (colour = amplitude)."""
+    rows = store.order_map(run_id)
+    if not rows:
+        return None
+    sensors = sorted({(r["sensor"], r["axis"]) for r in rows})
+    fig, axes = new_figure(5.0 * len(sensors) + 1.0, 4.0, ncols=len(sensors), squeeze=False)
+    for ax, (sensor, axis) in zip(axes[0], sensors, strict=True):
+        sel = [r for r in rows if r["sensor"] == sensor and r["axis"] == axis]
+        bands = sorted({(r["rpm_lo"], r["rpm_hi"]) for r in sel})
+        orders = sorted({r["order"] for r in sel})
+        grid = np.full((len(bands), len(orders)), np.nan)
+        bi = {b: i for i, b in enumerate(bands)}
+        oi = {o: i for i, o in enumerate(orders)}
+        for r in sel:
+            grid[bi[(r["rpm_lo"], r["rpm_hi"])], oi[r["order"]]] = (
+                np.nan if r["amplitude"] is None else r["amplitude"])
+        o = np.asarray(orders)
+        do = np.diff(o).min() if len(o) > 1 else 0.5
+        o_edges = np.concatenate([o - do / 2, [o[-1] + do / 2]])
+        r_edges = np.array([b[0] for b in bands] + [bands[-1][1]])
+        mesh = ax.pcolormesh(o_edges, r_edges, grid, shading="flat", cmap="magma")
+        fig.colorbar(mesh, ax=ax, label="amplitude [m/s²]")
+        ax.set_xlabel("engine order [per crank revolution]")
+        ax.set_ylabel("engine speed [rpm]")
+        ax.set_title(f"order map, {sensor} ({axis})")
+        ax.grid(False)
+    save(fig, path)
+    return path
+
+
+def plot_vibration(store: Store, run_id: int, path: Path) -> Path | None:
+    """Weighted (and unweighted) vibration r.m.s. against rpm, per sensor."""
+    rows = store.vibration(run_id)
+    if not rows:
+        return None
+    fig, ax = new_figure(8.0, 3.6)
+    keys = sorted({(r["sensor"], r["weighting"], r["axis"]) for r in rows})
+    shown = [k for k in keys if k[2] == "sum"] or keys
+    for j, (sensor, weighting, axis) in enumerate(shown):
+        sel = sorted((r for r in rows if (r["sensor"], r["weighting"], r["axis"]) ==
+                      (sensor, weighting, axis)), key=lambda r: r["rpm_lo"])
+        x = [(r["rpm_lo"] + r["rpm_hi"]) / 2 for r in sel]
+        y = [np.nan if r["rms"] is None else r["rms"] for r in sel]
+        style = "--" if weighting == "none" else "-"
+        label = f"{sensor} {axis}, " + ("unweighted" if weighting == "none" else weighting)
+        ax.plot(x, y, style, marker="o", ms=3, color=cyl_colour(j + 1), label=label)
+    ax.set_xlabel("engine speed, band centre [rpm]")
+    ax.set_ylabel("r.m.s. acceleration [m/s²]")
+    ax.set_title("Vibration against engine speed (Wh = ISO 5349-1 hand-arm weighting)")
+    ax.legend(loc="upper left")
+    ax.set_ylim(bottom=0)
+    save(fig, path)
+    return path

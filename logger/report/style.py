@@ -1,0 +1,34 @@
+"""One look for every crankbeat figure (Agg backend, our own palette)."""
+
+from __future__ import annotations
+
+import matplotlib
+
+matplotlib.use("Agg")
+
+import matplotlib.pyplot as plt  # noqa: E402
+
+#: Colours per cylinder, then the verdict marks.
+CYLINDER_COLOURS = ("#1f6f8b", "#d17a22", "#4f8f3a", "#8e4a9e", "#b8a200", "#5c6f7f")
+MISFIRE_COLOUR = "#c0262d"
+MUTED_COLOUR = "#9aa3ab"
+THRESHOLD_COLOUR = "#333333"
+
+
+def cyl_colour(cylinder: int) -> str:
+    return CYLINDER_COLOURS[(int(cylinder) - 1) % len(CYLINDER_COLOURS)]
+
+
+def new_figure(width: float = 9.0, height: float = 4.0, **kw):
+    plt.rcParams.update({
+        "font.size": 9, "axes.titlesize": 10, "axes.labelsize": 9, "legend.fontsize": 8,
+        "axes.grid": True, "grid.alpha": 0.3, "axes.spines.top": False,
+        "axes.spines.right": False,
+    })
+    return plt.subplots(figsize=(width, height), **kw)
+
+
+def save(fig, path) -> None:
+    fig.tight_layout()
+    fig.savefig(path, dpi=110)
+    plt.close(fig)

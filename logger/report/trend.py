@@ -1,0 +1,57 @@
+"""The trend figure: one metric across runs, a line per cylinder or sensor."""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from datetime import datetime
+from pathlib import Path
+
+from logger.report.style import CYLINDER_COLOURS, new_figure, save
+from logger.store import METRICS, TrendPoint
+
+_LABELS = {
+    "misfire_rate": "misfire rate [%]",
+    "interval_error": "interval error, observed − expected [deg]",
+    "bar_vibration": "bar vibration, Wh-weighted r.m.s. [m/s²]",
+    "contribution": "contribution (1 = cylinder mean)",
+}
+
+
+def _x(p: TrendPoint, by: str):
+    if by == "odometer":
+        return p.odometer_km
+    try:
+        return datetime.fromisoformat(p.started_at)
+    except ValueError:
+        return None
+
+
+def plot_trend(points: Sequence[TrendPoint], path: Path, *, metric: str, by: str = "date",
+               rpm_band: str | None = None) -> Path:
+    """Draw ``points`` (from :func:`logger.store.trend`) into the PNG at ``path``."""
+    fig, ax = new_figure(8.0, 3.8)
+    series = sorted({p.series for p in points})
+    for k, name in enumerate(series):
+        pts = [(p, _x(p, by)) for p in points if p.series == name and p.value is not None]
+        pts = [(p, x) for p, x in pts if x is not None]
+        if not pts:
+            continue
+        ax.plot([x for _, x in pts], [p.value for p, _ in pts], marker="o", ms=4, lw=1.2,
+                color=CYLINDER_COLOURS[k % len(CYLINDER_COLOURS)], label=name)
+        for p, x in pts[-12:]:
+            ax.annotate(f"#{p.run_id}", (x, p.value), textcoords="offset points", xytext=(3, 4),
+                        fontsize=7, color="#555555")
+    ax.set_xlabel("odometer [km]" if by == "odometer" else "run start (UTC)")
+    ax.set_ylabel(_LABELS.get(metric, f"{metric} [{METRICS.get(metric, ('',))[0]}]"))
+    title = f"{metric} across runs"
+    if rpm_band:
+        title += f", {rpm_band} rpm"
+    ax.set_title(title)
+    if series:
+        ax.legend(loc="best")
+    else:
+        ax.text(0.5, 0.5, "no runs with data", transform=ax.transAxes, ha="center")
+    if by != "odometer":
+        fig.autofmt_xdate()
+    save(fig, path)
+    return path

@@ -1,0 +1,592 @@
+"""The :class:`Store`: one SQLite file per test programme (see the package docstring)."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import os
+import sqlite3
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import asdict, is_dataclass
+from datetime import datetime, timezone
+from importlib import resources
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import sqlite_utils
+
+from dsp.errors import RunNotFoundError, StoreError, UsageError
+from dsp.events import EVENT_DTYPE, VERDICT_NAMES
+from logger.store.schema import EVENT_COLUMNS, SCHEMA_VERSION, current_version, migrate, source_key
+
+_VERDICT_CODES = {name: code for code, name in VERDICT_NAMES.items()}
+
+_WINDOW_COLS = ("kind", "idx", "band", "cylinder", "t_start", "t_end", "events", "misfires", "rate")
+_INTERVAL_COLS = (
+    "from_cyl", "to_cyl", "expected_deg", "observed_deg", "stderr_deg", "n", "flagged",
+)
+_VIBRATION_COLS = ("sensor", "rpm_lo", "rpm_hi", "axis", "weighting", "rms", "n")
+# Input names that are SQL keywords are stored under a short column name.
+_ALIASES = {"index": "idx", "order": "ord"}
+
+
+def sha256_file(path: str | os.PathLike, *, block: int = 1 << 20) -> str:
+    """Hex SHA-256 of a file's bytes (the identity of a source file in the store)."""
+    h = hashlib.sha256()
+    try:
+        with open(path, "rb") as f:
+            while chunk := f.read(block):
+                h.update(chunk)
+    except OSError as exc:
+        raise StoreError(f"cannot read source file '{path}' to hash it: {exc.strerror}") from None
+    return h.hexdigest()
+
+
+def utc_iso(when: datetime | float | str | None = None) -> str:
+    """A time as ISO 8601 UTC text to the second (now when ``when`` is None; floats are epoch s)."""
+    if when is None:
+        when = datetime.now(timezone.utc)
+    elif isinstance(when, str):
+        return when
+    elif isinstance(when, int | float):
+        when = datetime.fromtimestamp(float(when), timezone.utc)
+    if when.tzinfo is None:
+        when = when.replace(tzinfo=timezone.utc)
+    return when.astimezone(timezone.utc).isoformat(timespec="seconds")
+
+
+def jsonable(obj: Any) -> Any:
+    """``obj`` with numpy scalars/arrays, tuples and dataclasses made plain; NaN/inf become None."""
+    if is_dataclass(obj) and not isinstance(obj, type):
+        obj = asdict(obj)
+    if isinstance(obj, Mapping):
+        return {str(k): jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, np.ndarray):
+        return jsonable(obj.tolist())
+    if isinstance(obj, list | tuple | set):
+        return [jsonable(v) for v in obj]
+    if isinstance(obj, np.generic):
+        obj = obj.item()
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    if isinstance(obj, Path):
+        return str(obj)
+    return obj
+
+
+def _rig_text(rig: Any) -> str:
+    """The rig file's text, so that a run can be understood later without the file."""
+    src = str(getattr(rig, "source", "") or "")
+    try:
+        if src.startswith("preset:"):
+            name = src.split(":", 1)[1]
+            return (resources.files("logger.presets") / f"{name}.toml").read_text("utf-8")
+        if src and Path(src).is_file():
+            return Path(src).read_text("utf-8")
+    except (OSError, UnicodeDecodeError):
+        pass
+    return f"# rig source '{src}' was not readable when the run was stored\n"
+
+
+def _records(rows: Any, columns: Sequence[str], what: str) -> list[tuple]:
+    """Rows in any of the shapes the analysers produce, as tuples in ``columns`` order.
+
+    Accepted: a numpy structured array, a mapping of column -> sequence, or an iterable of
+    mappings / dataclass instances. Absent columns are NULL; unknown ones are an error, so a
+    misspelt field does not vanish silently.
+    """
+    if isinstance(rows, np.ndarray) and rows.dtype.names:
+        cols = {_ALIASES.get(n, n): rows[n].tolist() for n in rows.dtype.names}
+        return _from_columns(cols, columns, what, len(rows))
+    if isinstance(rows, Mapping):
+        cols = {_ALIASES.get(k, k): list(np.asarray(v).tolist()) for k, v in rows.items()}
+        lengths = {len(v) for v in cols.values()}
+        if len(lengths) > 1:
+            raise StoreError(f"{what}: columns have different lengths {sorted(lengths)}")
+        return _from_columns(cols, columns, what, lengths.pop() if lengths else 0)
+    out = []
+    for i, row in enumerate(rows):
+        if is_dataclass(row) and not isinstance(row, type):
+            row = asdict(row)
+        if not isinstance(row, Mapping):
+            raise StoreError(f"{what}: row {i} is a {type(row).__name__}, expected a mapping")
+        row = {_ALIASES.get(k, k): v for k, v in row.items()}
+        unknown = set(row) - set(columns)
+        if unknown:
+            raise StoreError(
+                f"{what}: row {i} has unknown field(s) {sorted(unknown)}, expected {list(columns)}"
+            )
+        out.append(tuple(jsonable(row.get(c)) for c in columns))
+    return out
+
+
+def _from_columns(cols: dict, columns: Sequence[str], what: str, n: int) -> list[tuple]:
+    unknown = set(cols) - set(columns)
+    if unknown:
+        raise StoreError(f"{what}: unknown field(s) {sorted(unknown)}, expected {list(columns)}")
+    series = [cols.get(c, [None] * n) for c in columns]
+    return [tuple(jsonable(v) for v in row) for row in zip(*series, strict=True)]
+
+
+class Store:
+    """A crankbeat SQLite store. Use :meth:`open`; close it (or use it as a context manager).
+
+    Writes go into one open transaction until :meth:`commit` (the pipeline commits at least
+    once a second live, and at the end of a replay); whatever was committed survives a kill.
+    """
+
+    def __init__(self, path: Path, conn: sqlite3.Connection) -> None:
+        self.path = path
+        self.db = sqlite_utils.Database(conn)
+        self._seq: dict[int, int] = {}
+
+    # -- opening -------------------------------------------------------------------------
+    @classmethod
+    def open(cls, path: str | os.PathLike, *, create: bool = True) -> Store:
+        """Open (and create or migrate) the store file at ``path``.
+
+        ``create=False`` is for queries: a missing file is then a :class:`StoreError` instead of
+        a new empty store.
+        """
+        path = Path(path)
+        if not path.exists():
+            if not create:
+                raise StoreError(
+                    f"no store file '{path}' (give --store, set CRANKBEAT_STORE, "
+                    "or make one with 'crankbeat replay')"
+                )
+            if not path.parent.exists():
+                raise StoreError(f"cannot create store '{path}': folder '{path.parent}' is missing")
+        try:
+            # check_same_thread=False: the live pipeline may write from its worker thread.
+            conn = sqlite3.connect(str(path), check_same_thread=False, timeout=10.0)
+        except sqlite3.Error as exc:
+            raise StoreError(f"cannot open store '{path}': {exc}") from None
+        store = cls(path, conn)
+        try:
+            store._prepare()
+        except sqlite3.DatabaseError as exc:
+            conn.close()
+            raise StoreError(f"'{path}' is not a crankbeat store ({exc})") from None
+        except BaseException:
+            conn.close()
+            raise
+        return store
+
+    def _prepare(self) -> None:
+        conn = self.db.conn
+        conn.execute("PRAGMA journal_mode=WAL")
+        conn.execute("PRAGMA foreign_keys=ON")
+        names = self.db.table_names()
+        if names and "schema_version" not in names:
+            raise StoreError(
+                f"'{self.path}' is an SQLite file but not a crankbeat store "
+                f"(tables: {', '.join(names[:5])})"
+            )
+        have = current_version(self.db)
+        if have > SCHEMA_VERSION:
+            raise StoreError(
+                f"store '{self.path}' has schema version {have}; this crankbeat knows up to "
+                f"{SCHEMA_VERSION} (update crankbeat)"
+            )
+        migrate(self.db)
+
+    @property
+    def schema_version(self) -> int:
+        return current_version(self.db)
+
+    def close(self) -> None:
+        """Commit what is pending and close the file."""
+        conn = self.db.conn
+        try:
+            conn.commit()
+        finally:
+            conn.close()
+
+    def __enter__(self) -> Store:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def commit(self) -> None:
+        """Make everything written so far durable."""
+        self.db.conn.commit()
+
+    # -- writing a run -------------------------------------------------------------------
+    def _rig_id(self, rig: Any) -> int:
+        text = _rig_text(rig)
+        digest = hashlib.sha256(text.encode("utf-8")).hexdigest()
+        name = str(getattr(rig, "name", rig))
+        row = self.db.execute(
+            "SELECT id FROM rigs WHERE name = ? AND file_hash = ?", (name, digest)
+        ).fetchone()
+        if row:
+            return int(row[0])
+        cur = self.db.execute(
+            "INSERT INTO rigs (name, file_hash, toml, created) VALUES (?, ?, ?, ?)",
+            (name, digest, text, utc_iso()),
+        )
+        return int(cur.lastrowid)
+
+    def begin_run(
+        self,
+        rig: Any,
+        *,
+        label: str | None = None,
+        notes: str | None = None,
+        odometer_km: float | None = None,
+        sources: Iterable[tuple] = (),
+        started_at: datetime | float | str | None = None,
+    ) -> int:
+        """Start a run (status "incomplete") and return its id.
+
+        ``sources`` holds ``(path, sha256)`` or ``(path, sha256, kind)`` per input file; kind is
+        e.g. "can" or "accel:bar_left" (default: "can" for the first, "accel" for the others).
+        The run, its rig and sources are committed at once so that even a ride killed in its
+        first second leaves a visible run.
+        """
+        if odometer_km is not None and not (
+            isinstance(odometer_km, int | float) and math.isfinite(odometer_km) and odometer_km >= 0
+        ):
+            raise StoreError(f"odometer_km must be a number >= 0, got {odometer_km!r}")
+        rig_id = self._rig_id(rig)
+        src = []
+        for i, item in enumerate(sources):
+            path, sha = str(item[0]), str(item[1])
+            kind = str(item[2]) if len(item) > 2 else ("can" if i == 0 else "accel")
+            size = os.path.getsize(path) if os.path.isfile(path) else None
+            src.append((path, sha, kind, size))
+        key = source_key([s[1] for s in src]) if src else None
+        cur = self.db.execute(
+            "INSERT INTO runs (rig_id, started_at, label, notes, odometer_km, status, created,"
+            " source_key) VALUES (?, ?, ?, ?, ?, 'incomplete', ?, ?)",
+            (rig_id, utc_iso(started_at), label, notes, odometer_km, utc_iso(), key),
+        )
+        run_id = int(cur.lastrowid)
+        self.db.conn.executemany(
+            "INSERT INTO sources (run, path, sha256, kind, bytes) VALUES (?, ?, ?, ?, ?)",
+            [(run_id, *s) for s in src],
+        )
+        self._seq[run_id] = 0
+        self.commit()
+        return run_id
+
+    def find_run_by_sources(self, hashes: Iterable[str]) -> int | None:
+        """The newest run analysed from exactly this set of source files, or None."""
+        hashes = list(hashes)
+        if not hashes:
+            return None
+        row = self.db.execute(
+            "SELECT id FROM runs WHERE source_key = ? ORDER BY id DESC LIMIT 1",
+            (source_key(hashes),),
+        ).fetchone()
+        return int(row[0]) if row else None
+
+    def _check_run(self, run_id: int) -> None:
+        if self.db.execute("SELECT 1 FROM runs WHERE id = ?", (run_id,)).fetchone() is None:
+            raise RunNotFoundError(f"no run {run_id} in store '{self.path}'")
+
+    def add_events(self, run_id: int, events: np.ndarray) -> int:
+        """Append firing events (an array of :data:`dsp.events.EVENT_DTYPE`); return the count.
+
+        One ``executemany`` in the open transaction; call :meth:`commit` to make it durable.
+        """
+        events = np.asarray(events)
+        if events.dtype != EVENT_DTYPE:
+            missing = set(EVENT_DTYPE.names or ()) - set(events.dtype.names or ())
+            if missing:
+                raise StoreError(
+                    f"add_events: array lacks field(s) {sorted(missing)} of dsp.events.EVENT_DTYPE"
+                )
+            events = events.astype(EVENT_DTYPE)
+        if run_id not in self._seq:
+            self._check_run(run_id)
+            row = self.db.execute("SELECT MAX(seq) FROM events WHERE run = ?", (run_id,)).fetchone()
+            self._seq[run_id] = -1 if row[0] is None else int(row[0])
+            self._seq[run_id] += 1
+        start = self._seq[run_id]
+        rows = events[list(EVENT_COLUMNS)].tolist()
+        placeholders = ", ".join("?" * (len(EVENT_COLUMNS) + 2))
+        self.db.conn.executemany(
+            f"INSERT INTO events (run, seq, {', '.join(EVENT_COLUMNS)}) VALUES ({placeholders})",
+            [(run_id, start + i, *r) for i, r in enumerate(rows)],
+        )
+        self._seq[run_id] = start + len(rows)
+        return len(rows)
+
+    def add_windows(self, run_id: int, rows: Any, *, kind: str | None = None) -> int:
+        """Append misfire-rate windows.
+
+        Fields: ``kind`` ("rev200", "rev1000" or "rpm-band"; or give ``kind=`` for all rows),
+        ``index`` (window number) or ``band`` ("LO-HI" rpm), ``cylinder`` (0 = all),
+        ``t_start``, ``t_end`` (s), ``events`` (counted events), ``misfires``, ``rate`` (%).
+        """
+        recs = _records(rows, _WINDOW_COLS, "add_windows")
+        if kind is not None:
+            recs = [(kind, *r[1:]) for r in recs]
+        bad = {r[0] for r in recs} - {"rev200", "rev1000", "rpm-band"}
+        if bad:
+            raise StoreError(f"add_windows: unknown kind(s) {sorted(map(str, bad))}, "
+                             "expected rev200, rev1000 or rpm-band")
+        return self._insert("windows", _WINDOW_COLS, run_id, recs)
+
+    def add_intervals(self, run_id: int, rows: Any) -> int:
+        """Append firing-interval checks: ``from_cyl``, ``to_cyl`` (1-based), ``expected_deg``,
+        ``observed_deg``, ``stderr_deg``, ``n`` (intervals averaged), ``flagged`` (0/1)."""
+        return self._insert(
+            "intervals", _INTERVAL_COLS, run_id, _records(rows, _INTERVAL_COLS, "add_intervals")
+        )
+
+    def add_vibration(self, run_id: int, rows: Any) -> int:
+        """Append vibration levels: ``sensor``, ``rpm_lo``, ``rpm_hi`` (rpm), ``axis`` ("x", "y",
+        "z" or "sum" for the vector sum), ``weighting`` ("Wh", "Wk", "Wd" or "none"), ``rms``
+        (m/s²), ``n`` (samples)."""
+        return self._insert(
+            "vibration", _VIBRATION_COLS, run_id, _records(rows, _VIBRATION_COLS, "add_vibration")
+        )
+
+    def add_order_map(
+        self,
+        run_id: int,
+        *,
+        sensor: str,
+        rpm_lo: Sequence[float],
+        rpm_hi: Sequence[float],
+        orders: Sequence[float],
+        amplitude: np.ndarray,
+        axis: str = "sum",
+    ) -> int:
+        """Append an rpm-vs-order map: ``amplitude[b, k]`` at band b, order ``orders[k]``.
+
+        Amplitudes in the analyser's unit (m/s²); all-NaN bands (never visited) are skipped.
+        """
+        amp = np.asarray(amplitude, dtype=float)
+        lo, hi, orders = (np.asarray(a, dtype=float) for a in (rpm_lo, rpm_hi, orders))
+        if amp.shape != (len(lo), len(orders)) or len(hi) != len(lo):
+            raise StoreError(
+                f"add_order_map: amplitude shape {amp.shape} does not match "
+                f"{len(lo)} bands x {len(orders)} orders"
+            )
+        recs = [
+            (sensor, axis, float(lo[b]), float(hi[b]), float(orders[k]), jsonable(float(amp[b, k])))
+            for b in range(len(lo))
+            if not np.all(np.isnan(amp[b]))
+            for k in range(len(orders))
+        ]
+        cols = ("sensor", "axis", "rpm_lo", "rpm_hi", "ord", "amplitude")
+        return self._insert("order_map", cols, run_id, recs)
+
+    def _insert(self, table: str, cols: Sequence[str], run_id: int, recs: list[tuple]) -> int:
+        self._check_run(run_id)
+        marks = ", ".join("?" * (len(cols) + 1))
+        self.db.conn.executemany(
+            f"INSERT INTO {table} (run, {', '.join(cols)}) VALUES ({marks})",
+            [(run_id, *r) for r in recs],
+        )
+        return len(recs)
+
+    def finish_run(self, run_id: int, summary: Mapping | None, status: str = "complete") -> None:
+        """Store the run's summary (JSON), set its status and commit."""
+        self._check_run(run_id)
+        text = json.dumps(jsonable(summary or {}), allow_nan=False, sort_keys=True)
+        self.db.execute(
+            "UPDATE runs SET summary = ?, status = ? WHERE id = ?", (text, status, run_id)
+        )
+        self.commit()
+
+    def save_tooth_errors(
+        self,
+        rig_name: str,
+        wheel_key: str,
+        errors: Sequence[float],
+        *,
+        run_id: int | None = None,
+        n_revs: int = 0,
+        learnt_at: datetime | float | str | None = None,
+    ) -> None:
+        """Keep a learnt set of tooth spacing errors (degrees per tooth position) and commit."""
+        err = np.asarray(errors, dtype=float)
+        rms = float(np.sqrt(np.nanmean(err**2))) if err.size and np.isfinite(err).any() else None
+        self.db.execute(
+            "INSERT INTO tooth_errors (rig, wheel_key, learnt_at, run, errors, rms, n_revs)"
+            " VALUES (?, ?, ?, ?, ?, ?, ?)",
+            (rig_name, wheel_key, utc_iso(learnt_at), run_id, json.dumps(jsonable(err)), rms,
+             int(n_revs)),
+        )
+        self.commit()
+
+    def load_tooth_errors(self, rig_name: str, wheel_key: str) -> np.ndarray | None:
+        """The most recently learnt tooth errors for this rig and wheel (None if never learnt)."""
+        row = self.db.execute(
+            "SELECT errors FROM tooth_errors WHERE rig = ? AND wheel_key = ?"
+            " ORDER BY learnt_at DESC, id DESC LIMIT 1",
+            (rig_name, wheel_key),
+        ).fetchone()
+        if row is None:
+            return None
+        return np.array([np.nan if v is None else v for v in json.loads(row[0])], dtype=float)
+
+    # -- reading -------------------------------------------------------------------------
+    def resolve_run(self, spec: int | str) -> int:
+        """Run id from an id, a label or "last" (the newest run)."""
+        text = str(spec).strip()
+        if text == "last":
+            row = self.db.execute("SELECT MAX(id) FROM runs").fetchone()
+            if row[0] is None:
+                raise RunNotFoundError(f"store '{self.path}' holds no runs yet")
+            return int(row[0])
+        if text.isdigit():
+            run_id = int(text)
+            self._check_run(run_id)
+            return run_id
+        ids = [r[0] for r in self.db.execute("SELECT id FROM runs WHERE label = ?", (text,))]
+        if not ids:
+            raise RunNotFoundError(
+                f"no run with id or label '{text}' in store '{self.path}' (see 'crankbeat runs')"
+            )
+        if len(ids) > 1:
+            raise RunNotFoundError(
+                f"label '{text}' names runs {', '.join(map(str, ids))}: give the run id"
+            )
+        return int(ids[0])
+
+    def run(self, run_id: int) -> dict:
+        """One run as a dict: id, rig, started_at, label, notes, odometer_km, status, summary,
+        created, sources (list of dicts)."""
+        rows = self._run_rows("WHERE runs.id = ?", (run_id,))
+        if not rows:
+            raise RunNotFoundError(f"no run {run_id} in store '{self.path}'")
+        info = rows[0]
+        info["sources"] = list(
+            self.db.query(
+                "SELECT path, sha256, kind, bytes FROM sources WHERE run = ? ORDER BY id", [run_id]
+            )
+        )
+        return info
+
+    def runs(self, *, rig: str | None = None) -> list[dict]:
+        """Every run (oldest first), optionally of one rig, with its event and misfire counts."""
+        where, params = ("WHERE rigs.name = ?", (rig,)) if rig else ("", ())
+        return self._run_rows(where, params)
+
+    def _run_rows(self, where: str, params: tuple) -> list[dict]:
+        sql = (
+            "SELECT runs.id, rigs.name AS rig, runs.started_at, runs.label, runs.notes,"
+            " runs.odometer_km, runs.status, runs.summary, runs.created,"
+            " (SELECT COUNT(*) FROM events e WHERE e.run = runs.id) AS n_events,"
+            f" (SELECT COUNT(*) FROM events e WHERE e.run = runs.id AND e.verdict = "
+            f"{_VERDICT_CODES['misfire']}) AS n_misfires"
+            f" FROM runs JOIN rigs ON rigs.id = runs.rig_id {where} ORDER BY runs.id"
+        )
+        out = []
+        for row in self.db.query(sql, list(params)):
+            row["summary"] = json.loads(row["summary"]) if row["summary"] else None
+            out.append(row)
+        return out
+
+    def rig_toml(self, run_id: int) -> str:
+        """The rig file text the run was analysed with."""
+        row = self.db.execute(
+            "SELECT rigs.toml FROM runs JOIN rigs ON rigs.id = runs.rig_id WHERE runs.id = ?",
+            (run_id,),
+        ).fetchone()
+        if row is None:
+            raise RunNotFoundError(f"no run {run_id} in store '{self.path}'")
+        return row[0]
+
+    def events(
+        self,
+        run_id: int,
+        *,
+        cylinder: int | None = None,
+        verdict: str | int | None = None,
+    ) -> np.ndarray:
+        """The run's events as an :data:`EVENT_DTYPE` array in the order they were stored."""
+        self._check_run(run_id)
+        where, params = ["run = ?"], [run_id]
+        if cylinder is not None:
+            where.append("cylinder = ?")
+            params.append(int(cylinder))
+        if verdict is not None:
+            where.append("verdict = ?")
+            params.append(verdict_code(verdict))
+        rows = self.db.execute(
+            f"SELECT {', '.join(EVENT_COLUMNS)} FROM events WHERE {' AND '.join(where)}"
+            " ORDER BY seq",
+            params,
+        ).fetchall()
+        out = np.zeros(len(rows), dtype=EVENT_DTYPE)
+        if rows:
+            for name, col in zip(EVENT_COLUMNS, zip(*rows, strict=True), strict=True):
+                # SQLite keeps NaN as NULL; numpy turns None back into NaN for float columns.
+                out[name] = np.array(col, dtype=float if EVENT_DTYPE[name].kind == "f" else None)
+        return out
+
+    def windows(self, run_id: int, *, kind: str | None = None) -> list[dict]:
+        where, params = ("run = ?", [run_id]) if kind is None else ("run = ? AND kind = ?",
+                                                                    [run_id, kind])
+        return list(self.db.query(
+            f"SELECT {', '.join(_WINDOW_COLS)} FROM windows WHERE {where}"
+            " ORDER BY kind, cylinder, idx, band", params))
+
+    def intervals(self, run_id: int) -> list[dict]:
+        return list(self.db.query(
+            f"SELECT {', '.join(_INTERVAL_COLS)} FROM intervals WHERE run = ? ORDER BY rowid",
+            [run_id]))
+
+    def vibration(self, run_id: int) -> list[dict]:
+        return list(self.db.query(
+            f"SELECT {', '.join(_VIBRATION_COLS)} FROM vibration WHERE run = ?"
+            " ORDER BY sensor, weighting, axis, rpm_lo", [run_id]))
+
+    def order_map(self, run_id: int, *, sensor: str | None = None) -> list[dict]:
+        where, params = ("run = ?", [run_id]) if sensor is None else ("run = ? AND sensor = ?",
+                                                                      [run_id, sensor])
+        return list(self.db.query(
+            "SELECT sensor, axis, rpm_lo, rpm_hi, ord AS [order], amplitude FROM order_map"
+            f" WHERE {where} ORDER BY sensor, axis, rpm_lo, ord", params))
+
+    def cylinder_stats(self, run_id: int) -> list[dict]:
+        """Per cylinder, from the events alone: counts per verdict, misfire rate (% of fired +
+        misfire), mean contribution of fired events, mean interval error (deg)."""
+        self._check_run(run_id)
+        c = _VERDICT_CODES
+        sql = (
+            "SELECT cylinder, COUNT(*) AS events,"
+            f" SUM(verdict = {c['fired']}) AS fired, SUM(verdict = {c['misfire']}) AS misfires,"
+            f" SUM(verdict = {c['masked']}) AS masked, SUM(verdict = {c['unusable']}) AS unusable,"
+            f" SUM(verdict = {c['fuel_cut']}) AS fuel_cut,"
+            f" AVG(CASE WHEN verdict = {c['fired']} THEN contribution END) AS contribution,"
+            f" AVG(CASE WHEN verdict IN ({c['fired']}, {c['misfire']})"
+            "  THEN interval_deg - expected_interval_deg END) AS interval_error_deg"
+            " FROM events WHERE run = ? GROUP BY cylinder ORDER BY cylinder"
+        )
+        out = []
+        for row in self.db.query(sql, [run_id]):
+            counted = row["fired"] + row["misfires"]
+            row["rate_pct"] = 100.0 * row["misfires"] / counted if counted else None
+            out.append(row)
+        return out
+
+    def trend(self, metric: str, **options: Any) -> list:
+        """:func:`logger.store.trend.trend` on this store (same keyword options)."""
+        from logger.store.trend import trend
+
+        return trend(self, metric, **options)  # type: ignore[arg-type]
+
+
+def verdict_code(verdict: str | int) -> int:
+    """Verdict code from its name ("misfire") or number."""
+    if isinstance(verdict, int | np.integer) and int(verdict) in VERDICT_NAMES:
+        return int(verdict)
+    text = str(verdict).strip().lower()
+    if text.isdigit() and int(text) in VERDICT_NAMES:
+        return int(text)
+    if text in _VERDICT_CODES:
+        return _VERDICT_CODES[text]
+    raise UsageError(
+        f"unknown verdict {verdict!r}, expected one of {', '.join(_VERDICT_CODES)}"
+    )
