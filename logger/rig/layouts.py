@@ -251,7 +251,8 @@ def read_rig_engine(sec: Section, *, rig_name: str, base_dir: Path | None) -> En
     geometry = {**defaults, **read_geometry(sec)}
     for key, field, _ in GEOMETRY:
         if field not in geometry and not sec.has(key):
-            sec.problem(key, "missing", "a value > 0 (the layout gives no default)")
+            why = "the layout gives no default" if layout else "an inline crank has no default"
+            sec.problem(key, "missing", f"a value > 0 ({why})")
     sec.finish()
     if len(sec.problems) > before or crank is None:
         return None

@@ -99,21 +99,23 @@ class Section:
     signal or sensor it is about: ``can.message[0].signal[2] (tooth_period)``.
     """
 
-    def __init__(self, data: dict[str, Any], path: str, problems: Problems) -> None:
+    def __init__(self, data: dict[str, Any], path: str, problems: Problems,
+                 parent_name: str | None = None) -> None:
         self.data = data
         self.path = path
         self.problems = problems
         self.seen: set[str] = set()
-        name = data.get("name")
-        self.label = f"{path} ({name})" if isinstance(name, str) and "[" in path else path
+        own = data.get("name")
+        # a nameless sub-table (a checksum) is reported under its owner's name
+        self.name = own if isinstance(own, str) and "[" in path else parent_name
+        self.label = self._with_name(path)
+
+    def _with_name(self, path: str) -> str:
+        return f"{path} ({self.name})" if self.name else path
 
     def key(self, key: str) -> str:
-        """Key path of one key of this table, for messages."""
-        name = self.data.get("name")
-        full = f"{self.path}.{key}" if self.path else key
-        if isinstance(name, str) and "[" in self.path and key != "name":
-            return f"{full} ({name})"
-        return full
+        """Key path of one key of this table, for messages: ``path.key (name)``."""
+        return self._with_name(f"{self.path}.{key}" if self.path else key)
 
     def problem(self, key: str | None, what: str, expected: str | None = None) -> None:
         self.problems.add(self.label if key is None else self.key(key), what, expected)
@@ -164,7 +166,8 @@ class Section:
 
     def table(self, key: str, *, required: bool = False) -> Section | None:
         data = self.get(key, "table", required=required)
-        return None if data is None else Section(data, self.key(key), self.problems)
+        path = f"{self.path}.{key}" if self.path else key
+        return None if data is None else Section(data, path, self.problems, self.name)
 
     def tables(self, key: str, *, required: bool = False) -> list[Section]:
         items = self.get(key, "tables", required=required, default=[])

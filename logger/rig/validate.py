@@ -45,8 +45,14 @@ def _span(bits: frozenset[int] | set[int]) -> str:
     return f"bits {min(bits)}..{max(bits)}"
 
 
-def _sig_path(mi: int, si: int, sig: CanSignal) -> str:
-    return f"can.message[{mi}].signal[{si}] ({sig.name})"
+class _At:
+    """Key paths of one named table: ``base.key (name)``, or ``base (name)`` for the table."""
+
+    def __init__(self, base: str, name: str) -> None:
+        self.base, self.name = base, name
+
+    def __call__(self, key: str | None = None) -> str:
+        return f"{self.base}{'.' + key if key else ''} ({self.name})"
 
 
 def check_messages(msgs: list[tuple[int, CanMessage]], problems: Problems, *, fd: bool) -> None:
@@ -58,26 +64,26 @@ def check_messages(msgs: list[tuple[int, CanMessage]], problems: Problems, *, fd
     seen_names: dict[str, int] = {}
     role_at: dict[str, str] = {}
     for mi, msg in msgs:
-        path = f"can.message[{mi}] ({msg.name})"
+        path = _At(f"can.message[{mi}]", msg.name)
         limit = 0x1FFFFFFF if msg.extended else 0x7FF
         if not 0 <= msg.can_id <= limit:
             problems.add(
-                f"{path}.id", f"0x{msg.can_id:X} does not fit in "
+                path("id"), f"0x{msg.can_id:X} does not fit in "
                 f"{29 if msg.extended else 11} bits", f"0x0..0x{limit:X}"
                 + ("" if msg.extended else " (or extended = true for a 29-bit id)"),
             )
         key = (msg.can_id, msg.extended)
         if key in seen_ids:
-            problems.add(f"{path}.id", f"0x{msg.can_id:X} is also the id of can.message"
+            problems.add(path("id"), f"0x{msg.can_id:X} is also the id of can.message"
                          f"[{seen_ids[key]}]", "each CAN id once")
         seen_ids.setdefault(key, mi)
         if msg.name in seen_names:
-            problems.add(f"{path}.name", f"{msg.name!r} is also the name of can.message"
+            problems.add(path("name"), f"{msg.name!r} is also the name of can.message"
                          f"[{seen_names[msg.name]}]", "unique message names")
         seen_names.setdefault(msg.name, mi)
         lengths = FD_LENGTHS if fd else tuple(range(9))
         if msg.length not in lengths:
-            problems.add(f"{path}.length", f"{msg.length} data bytes",
+            problems.add(path("length"), f"{msg.length} data bytes",
                          "one of " + ", ".join(map(str, lengths))
                          + ("" if fd else " (classic CAN; set can.fd = true for CAN FD)"))
             continue
@@ -90,40 +96,40 @@ def _check_signals(mi: int, msg: CanMessage, problems: Problems, role_at: dict[s
     names: set[str] = set()
     counter: str | None = None
     for si, sig in enumerate(msg.signals):
-        path = _sig_path(mi, si, sig)
+        path = _At(f"can.message[{mi}].signal[{si}]", sig.name)
         if sig.name in names:
-            problems.add(f"{path}.name", f"{sig.name!r} is used twice in this message",
+            problems.add(path("name"), f"{sig.name!r} is used twice in this message",
                          "unique signal names within a message")
         names.add(sig.name)
         elements = element_bits(sig)
         beyond = [i for i, el in enumerate(elements) if max(el) >= nbits]
         if beyond and sig.count > 1:
             problems.add(
-                path, f"element {beyond[0]} of {sig.count} ({_span(set(elements[beyond[0]]))}) "
-                f"lies beyond the {msg.length}-byte frame",
+                path(), f"element {beyond[0]} of {sig.count} "
+                f"({_span(set(elements[beyond[0]]))}) lies beyond the {msg.length}-byte frame",
                 f"count * length to fit in bits 0..{nbits - 1}",
             )
             continue
         if beyond:
-            problems.add(path, f"{_span(set(elements[0]))} lie beyond the {msg.length}-byte frame",
-                         f"all bits within 0..{nbits - 1}")
+            problems.add(path(), f"{_span(set(elements[0]))} lie beyond the "
+                         f"{msg.length}-byte frame", f"all bits within 0..{nbits - 1}")
             continue
         bits = frozenset(b for el in elements for b in el)
         for other, obits in placed:
             shared = bits & obits
             if shared:
                 problems.add(
-                    path, f"{_span(bits)} overlap signal {other.name!r} {_span(obits)} "
+                    path(), f"{_span(bits)} overlap signal {other.name!r} {_span(obits)} "
                     f"(shared {_span(shared)})", "signals on separate bits",
                 )
         placed.append((sig, bits))
         if sig.role == "counter":
             if counter is not None:
-                problems.add(f"{path}.role", f"a second counter in this message (first: "
+                problems.add(path("role"), f"a second counter in this message (first: "
                              f"{counter!r})", "at most one counter per message")
             counter = counter or sig.name
         elif sig.role in role_at:
-            problems.add(f"{path}.role", f"role {sig.role!r} is already fed by "
+            problems.add(path("role"), f"role {sig.role!r} is already fed by "
                          f"{role_at[sig.role]}", "each of these roles at most once per rig: "
                          + ", ".join(RIG_UNIQUE_ROLES))
         elif sig.role is not None:
@@ -132,55 +138,56 @@ def _check_signals(mi: int, msg: CanMessage, problems: Problems, role_at: dict[s
 
 def check_sensor(idx: int, sensor: SerialSensor, problems: Problems) -> None:
     """Serial frame layout: fields, sync and checksum inside the frame and apart; roles."""
-    path = f"serial[{idx}] ({sensor.name})"
+    path = _At(f"serial[{idx}]", sensor.name)
     n = sensor.frame_length
     used: list[tuple[str, range]] = []
     if len(sensor.sync) > n:
-        problems.add(f"{path}.sync", f"{len(sensor.sync)} sync bytes in a {n}-byte frame",
+        problems.add(path("sync"), f"{len(sensor.sync)} sync bytes in a {n}-byte frame",
                      "sync shorter than frame_length")
     else:
         used.append(("the sync", range(0, len(sensor.sync))))
     cs = sensor.checksum
     if cs.kind != "none":
-        if not 0 <= cs.start < cs.end <= n:
-            problems.add(f"{path}.checksum", f"covers bytes {cs.start}..{cs.end - 1} "
+        range_ok = 0 <= cs.start < cs.end <= n
+        if not range_ok:
+            problems.add(path("checksum"), f"covers bytes {cs.start}..{cs.end - 1} "
                          f"(start = {cs.start}, end = {cs.end})",
                          f"0 <= start < end <= frame_length = {n}")
         stored = range(cs.at, cs.at + cs.size)
-        if not 0 <= cs.at or cs.at + cs.size > n:
-            problems.add(f"{path}.checksum.at", f"{cs.size} checksum bytes at offset {cs.at} "
-                         f"run past the {n}-byte frame", f"at <= {n - cs.size}")
-        elif cs.start < cs.at + cs.size and cs.at < cs.end:
-            problems.add(f"{path}.checksum.at", f"the stored checksum (bytes {stored.start}.."
+        if cs.at < 0 or cs.at + cs.size > n:
+            problems.add(path("checksum.at"), f"the {cs.size}-byte checksum at offset {cs.at} "
+                         f"runs past the {n}-byte frame", f"0 <= at <= {n - cs.size}")
+        elif range_ok and cs.start < cs.at + cs.size and cs.at < cs.end:
+            problems.add(path("checksum.at"), f"the stored checksum (bytes {stored.start}.."
                          f"{stored.stop - 1}) lies inside the bytes it covers",
                          "the checksum outside start..end")
         else:
             used.append(("the checksum", stored))
     roles: dict[str, str] = {}
     for fi, f in enumerate(sensor.fields):
-        fpath = f"{path}.field[{fi}] ({f.name})"
+        fpath = _At(f"serial[{idx}].field[{fi}]", f.name)
         span = range(f.offset, f.offset + f.size)
+        if f.role is not None:
+            if f.role in roles:
+                problems.add(fpath("role"), f"role {f.role!r} is already fed by field "
+                             f"{roles[f.role]!r}", "each role once per sensor")
+            roles.setdefault(f.role, f.name)
         if span.stop > n:
-            problems.add(fpath, f"bytes {span.start}..{span.stop - 1} run past the {n}-byte "
+            problems.add(fpath(), f"bytes {span.start}..{span.stop - 1} run past the {n}-byte "
                          "frame", f"offset <= {n - f.size} for {f.dtype}")
             continue
         for what, other in used:
             if span.start < other.stop and other.start < span.stop:
-                problems.add(fpath, f"bytes {span.start}..{span.stop - 1} overlap {what} "
+                problems.add(fpath(), f"bytes {span.start}..{span.stop - 1} overlap {what} "
                              f"(bytes {other.start}..{other.stop - 1})", "fields on free bytes")
         used.append((f"field {f.name!r}", span))
-        if f.role is not None:
-            if f.role in roles:
-                problems.add(f"{fpath}.role", f"role {f.role!r} is already fed by field "
-                             f"{roles[f.role]!r}", "each role once per sensor")
-            roles.setdefault(f.role, f.name)
     missing = [r for r in ("accel_x", "accel_y", "accel_z") if r not in roles]
     if missing:
-        problems.add(f"{path}.field", f"no field with role {', '.join(missing)}",
+        problems.add(path("field"), f"no field with role {', '.join(missing)}",
                      "one field each for accel_x, accel_y and accel_z")
     for role, attr in (("sequence", "sequence_modulo"), ("device_time", "device_time_modulo")):
         f = sensor.field_for(role)
         mod = getattr(sensor, attr)
         if f is not None and mod > 2 ** (8 * f.size):
-            problems.add(f"{path}.{attr}", f"{mod} exceeds what the {f.dtype} field "
+            problems.add(path(attr), f"{mod} exceeds what the {f.dtype} field "
                          f"{f.name!r} can hold", f"at most {2 ** (8 * f.size)}")
