@@ -43,6 +43,11 @@ from dsp.errors import InputError
 from dsp.kinematics import equivalent_inertia
 from dsp.layout import firing_sequence
 
+#: Span around each TDC over which the centre of the gas work is taken, degrees. It is centred
+#: near where combustion work is usually centred, so that slow torques of the other cylinders
+#: (pumping, early compression), which add work evenly over the span, hardly move the centre.
+RISE_SPAN = (-30.0, 90.0)
+
 _BLOCK = 4096  # events computed per vectorised step (bounds the temporary arrays)
 
 #: Raw per-event record of this stage (before any decision).
@@ -314,8 +319,11 @@ class FluctuationStage:
         sum_x = s_win - 2 * h * n * slope * L
         frac = L / C
         work = x + frac / (1.0 - n * frac) * sum_x / (2 * h)
-        # centre of the energy rise inside the window, from the detrended per-sample changes
-        rise, energy_mean, clean_win = self._rise(mid, e, good, pa, pb, slope)
+        # centre of the gas work inside the window: per-sample energy changes plus the loss
+        # loss torque (friction, load), J/deg: the cycle's gas work minus the trend
+        loss = sum_x / (2 * h) / (1.0 - n * frac) / C - slope
+        rise, _, _ = self._rise(mid, e, good, theta + RISE_SPAN[0], theta + RISE_SPAN[1], -loss)
+        _, energy_mean, clean_win = self._rise(mid, e, good, pa, pb, -loss)
         usable = np.isfinite(work) & clean_win
         out["work"] = np.where(usable, work, np.nan)
         out["energy"] = energy_mean
