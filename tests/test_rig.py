@@ -430,3 +430,31 @@ def test_serial_port_nowhere_given(tmp_path: Path) -> None:
     rig = load_rig(edited(tmp_path, 'port = "/dev/ttyUSB0"\n', ""))
     with pytest.raises(RigError, match="CRANKBEAT_SERIAL_BAR_LEFT"):
         resolve_serial_port(rig.sensors[0], env={})
+
+
+# --- any bad value is a RigError, never a traceback -------------------------------------------
+
+VALUE_LINE = r"^(\s*)([A-Za-z_]+) = (.+?)(\s+#.*)?$"
+
+
+@pytest.mark.parametrize("base_name", ["m1", "example-four"])
+def test_every_key_with_a_wrong_value_gives_a_rig_error(tmp_path: Path, base_name: str) -> None:
+    import re
+
+    from logger.rig import parse_rig
+
+    base = M1 if base_name == "m1" else Q4
+    lines = base.splitlines()
+    tried = 0
+    for i, line in enumerate(lines):
+        m = re.match(VALUE_LINE, line)
+        if not m:
+            continue
+        for bad in ('"x"', "true", "-1", "0"):
+            text = "\n".join(lines[:i] + [f"{m.group(1)}{m.group(2)} = {bad}"] + lines[i + 1:])
+            tried += 1
+            try:
+                parse_rig(text, label="f.toml", source="test")
+            except RigError as exc:
+                assert all(ln.startswith("f.toml: ") for ln in str(exc).splitlines())
+    assert tried > 200  # the loop really walked the file

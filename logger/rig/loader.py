@@ -3,6 +3,26 @@
 Every problem found is one line ``<file>: <key path>: <what was wrong>, expected <what>``; all
 of them are collected and raised together as one :class:`~dsp.errors.RigError` (first line the
 count when there are several).
+
+The file (see ``logger/presets/m1.toml`` for a complete one)::
+
+    [rig]      name, description
+    [engine]   layout = "<preset>" | stroke_cycle, firing_order, [[engine.cylinder]]
+               (pin_deg, bank_deg, position_mm, firing_deg); bore_mm, stroke_mm, conrod_mm,
+               recip_mass_kg, inertia_kgm2 (override the layout's); firing_deg = [...]
+    [limits]   idle_rpm, rev_limit_rpm, misfire_alert_pct, interval_tolerance_deg,
+               misfire_threshold (all optional)
+    [wheel]    teeth, missing, tdc_offset_deg, cam = "window" | "none", cam_active_level
+    [can]      interface, channel, bitrate, fd; [[can.message]] name, id, extended, length,
+               rate_hz; [[can.message.signal]] name, start_bit, length, byte_order, signed,
+               scale, offset, unit, count, role, saturated_raw, modulo
+    [[serial]] name, location, mount, axes, port, baud, sample_rate_hz, frame_length, sync,
+               sequence_modulo, device_time_modulo, device_time_unit_s,
+               checksum = { kind, start, end, at, byte_order }; [[serial.field]] name, offset,
+               dtype, byte_order, scale, unit, role
+
+Unknown keys are errors (a typo must not silently fall back to a default). Counter ``modulo``
+defaults to 2**length; a sensor's sequence/device-time modulo to the size of its field.
 """
 
 from __future__ import annotations

@@ -95,8 +95,9 @@ def _type_ok(value: Any, kind: Kind) -> bool:
 class Section:
     """One TOML table being read, with its key path for messages.
 
-    ``label`` (usually the table's ``name``) is shown after the path so a message says which
-    signal or sensor it is about: ``can.message[0].signal[2] (tooth_period)``.
+    The ``name`` of an array-of-tables entry is shown after the path so a message says which
+    signal or sensor it is about: ``can.message[0].signal[2].length (tooth_period)``; a nameless
+    sub-table (a sensor's ``checksum``) borrows its owner's name.
     """
 
     def __init__(self, data: dict[str, Any], path: str, problems: Problems,
