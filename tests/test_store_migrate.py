@@ -1,0 +1,124 @@
+"""Migrating a schema-v1 file (as crankbeat's first schema wrote it) to the current version."""
+
+from __future__ import annotations
+
+import sqlite3
+
+import numpy as np
+
+from dsp.events import EVENT_DTYPE
+from logger.store import SCHEMA_VERSION, Store
+from logger.store.schema import source_key
+
+# Frozen copy of the v1 layout (logger/store/schema.py `_v1` as first shipped). It stays as it
+# is when the schema moves on: that is the point of the test.
+V1_DDL = """
+CREATE TABLE "schema_version" ("version" INTEGER PRIMARY KEY);
+CREATE TABLE "rigs" ("id" INTEGER PRIMARY KEY, "name" TEXT NOT NULL, "file_hash" TEXT NOT NULL,
+  "toml" TEXT, "created" TEXT);
+CREATE UNIQUE INDEX "idx_rigs_name_file_hash" ON "rigs" ("name", "file_hash");
+CREATE TABLE "runs" ("id" INTEGER PRIMARY KEY, "rig_id" INTEGER REFERENCES "rigs"("id"),
+  "started_at" TEXT, "label" TEXT, "notes" TEXT, "odometer_km" REAL,
+  "status" TEXT DEFAULT 'incomplete', "summary" TEXT, "created" TEXT);
+CREATE INDEX "idx_runs_rig_id_started_at" ON "runs" ("rig_id", "started_at");
+CREATE INDEX "idx_runs_label" ON "runs" ("label");
+CREATE INDEX "idx_runs_odometer_km" ON "runs" ("odometer_km");
+CREATE TABLE "sources" ("id" INTEGER PRIMARY KEY, "run" INTEGER REFERENCES "runs"("id"),
+  "path" TEXT, "sha256" TEXT, "kind" TEXT, "bytes" INTEGER);
+CREATE INDEX "idx_sources_run" ON "sources" ("run");
+CREATE INDEX "idx_sources_sha256" ON "sources" ("sha256");
+CREATE TABLE "events" ("run" INTEGER REFERENCES "runs"("id"), "seq" INTEGER, "t" REAL,
+  "cycle" INTEGER, "cylinder" INTEGER, "rpm" REAL, "throttle" REAL, "metric" REAL,
+  "threshold" REAL, "verdict" INTEGER, "confidence" REAL, "interval_deg" REAL,
+  "expected_interval_deg" REAL, "contribution" REAL, PRIMARY KEY ("run", "seq"));
+CREATE INDEX "idx_events_run_cylinder_t" ON "events" ("run", "cylinder", "t");
+CREATE INDEX "idx_events_run_verdict" ON "events" ("run", "verdict");
+CREATE TABLE "windows" ("run" INTEGER REFERENCES "runs"("id"), "kind" TEXT, "idx" INTEGER,
+  "band" TEXT, "cylinder" INTEGER, "t_start" REAL, "t_end" REAL, "events" INTEGER,
+  "misfires" INTEGER, "rate" REAL);
+CREATE TABLE "intervals" ("run" INTEGER REFERENCES "runs"("id"), "from_cyl" INTEGER,
+  "to_cyl" INTEGER, "expected_deg" REAL, "observed_deg" REAL, "stderr_deg" REAL, "n" INTEGER,
+  "flagged" INTEGER);
+CREATE TABLE "vibration" ("run" INTEGER REFERENCES "runs"("id"), "sensor" TEXT, "rpm_lo" REAL,
+  "rpm_hi" REAL, "axis" TEXT, "weighting" TEXT, "rms" REAL, "n" INTEGER);
+CREATE TABLE "tooth_errors" ("id" INTEGER PRIMARY KEY, "rig" TEXT, "wheel_key" TEXT,
+  "learnt_at" TEXT, "run" INTEGER, "errors" TEXT, "rms" REAL, "n_revs" INTEGER);
+INSERT INTO schema_version VALUES (1);
+INSERT INTO rigs VALUES (1, 'm1', 'f00d', '[rig]\nname = "m1"\n', '2026-01-01T00:00:00+00:00');
+INSERT INTO runs VALUES (1, 1, '2026-01-02T08:00:00+00:00', 'old-ride', 'dry', 1200.0,
+  'complete', '{"x": 1}', '2026-01-02T09:00:00+00:00');
+INSERT INTO sources VALUES (1, 1, 'old.log', 'aaaa', 'can', 10);
+INSERT INTO sources VALUES (2, 1, 'old.bar_left.acraw', 'bbbb', 'accel:bar_left', 20);
+INSERT INTO events VALUES (1, 0, 0.5, 0, 1, 3000.0, 20.0, 0.1, 1.0, 0, 0.9, NULL, 450.0, 1.0);
+INSERT INTO events VALUES (1, 1, 0.52, 0, 2, 3000.0, 20.0, 2.5, 1.0, 1, 0.8, 270.5, 270.0, 0.1);
+"""
+
+
+def _v1_file(path):
+    conn = sqlite3.connect(path)
+    conn.executescript(V1_DDL)
+    conn.commit()
+    conn.close()
+
+
+def test_v1_file_migrates_and_keeps_its_data(tmp_path):
+    path = tmp_path / "old.db"
+    _v1_file(path)
+    with Store.open(path) as st:
+        assert st.schema_version == SCHEMA_VERSION
+        assert "order_map" in st.db.table_names()
+        assert "source_key" in st.db["runs"].columns_dict
+        # The replay-once key was derived from the v1 sources table.
+        assert st.find_run_by_sources(["bbbb", "aaaa"]) == 1
+        run = st.run(1)
+        ev = st.events(1)
+    assert run["label"] == "old-ride" and run["summary"] == {"x": 1}
+    assert run["odometer_km"] == 1200.0
+    assert ev.dtype == EVENT_DTYPE and len(ev) == 2
+    assert np.isnan(ev["interval_deg"][0]) and ev["verdict"][1] == 1
+
+
+def test_migrated_file_takes_new_runs_and_reopens_unchanged(tmp_path):
+    path = tmp_path / "old.db"
+    _v1_file(path)
+    Store.open(path).close()
+    conn = sqlite3.connect(path)
+    ddl_before = sorted(r[0] for r in conn.execute("SELECT sql FROM sqlite_master") if r[0])
+    conn.close()
+    with Store.open(path) as st:  # second open: nothing left to migrate
+        from test_store_fill import m1_like_rig, make_events
+
+        run = st.begin_run(m1_like_rig(), sources=[("n.log", "cccc")])
+        st.add_events(run, make_events(20))
+        st.add_order_map(run, sensor="bar_left", rpm_lo=[3000], rpm_hi=[3500], orders=[1.0],
+                         amplitude=[[0.4]])
+        st.commit()
+        assert st.db.execute("SELECT source_key FROM runs WHERE id = ?",
+                             (run,)).fetchone()[0] == source_key(["cccc"])
+        assert len(st.events(run)) == 40
+    conn = sqlite3.connect(path)
+    ddl_after = sorted(r[0] for r in conn.execute("SELECT sql FROM sqlite_master") if r[0])
+    version = conn.execute("SELECT version FROM schema_version").fetchall()
+    conn.close()
+    assert ddl_after == ddl_before
+    assert version == [(SCHEMA_VERSION,)]
+
+
+def test_v1_ddl_is_what_the_first_migration_builds(tmp_path):
+    """Guards the frozen copy: migration 1 alone must build exactly these tables and columns."""
+    import sqlite_utils
+
+    from logger.store.schema import migrate
+
+    fresh = sqlite_utils.Database(tmp_path / "fresh.db")
+    migrate(fresh, target=1)
+    frozen = tmp_path / "frozen.db"
+    _v1_file(frozen)
+    ref = sqlite_utils.Database(frozen)
+    try:
+        assert set(fresh.table_names()) == set(ref.table_names())
+        for name in ref.table_names():
+            assert fresh[name].columns_dict == ref[name].columns_dict, name
+    finally:
+        fresh.close()
+        ref.close()
