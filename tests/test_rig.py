@@ -219,6 +219,29 @@ CASES = {
         'layout = "twin-270"', 'layout = "twin-270"\nstroke_cycle = 4', M1,
         "engine.stroke_cycle", ["given together with layout = 'twin-270'", "not both"],
     ),
+    "counter modulo beyond its bits": (
+        "modulo = 16", "modulo = 32", Q4, "can.message[1].signal[5].modulo (alive)",
+        ["32 exceeds what 4 bits can count", "expected at most 16"],
+    ),
+    "saturated raw value beyond its bits": (
+        "saturated_raw = 0xFFFF", "saturated_raw = 0x1FFFF", M1,
+        "can.message[0].signal[2].saturated_raw (tooth_period)",
+        ["131071 does not fit in 16 bits", "expected a raw value in 0..65535"],
+    ),
+    "classic frame longer than 8 bytes": (
+        'length = 8\n\n  [[can.message.signal]]\n  name = "frame_counter"',
+        'length = 12\n\n  [[can.message.signal]]\n  name = "frame_counter"', M1,
+        "can.message[0].length (crank_teeth)",
+        ["12 data bytes", "expected one of 0, 1, 2, 3, 4, 5, 6, 7, 8 (classic CAN"],
+    ),
+    "checksum stored inside the bytes it covers": (
+        "at = 14,", "at = 12,", M1, "serial[0].checksum.at (bar_left)",
+        ["the stored checksum (bytes 12..13) lies inside the bytes it covers"],
+    ),
+    "sensor name unusable in an environment variable": (
+        'name = "bar_left"', 'name = "bar-left"', M1, "serial[0].name (bar-left)",
+        ["got 'bar-left' (string)", "expected letters, digits and _"],
+    ),
     "firing_deg off the TDCs": (
         'layout = "twin-270"', 'layout = "twin-270"\nfiring_deg = [0.0, 300.0]', M1,
         "engine.firing_deg",
@@ -372,6 +395,11 @@ def cantools_accepts(signals: list[CanSignal], length: int = 8) -> bool:
 @pytest.mark.parametrize("a,b", list(itertools.combinations(LAYOUTS[:8], 2)))
 def test_overlap_verdict_matches_cantools(a: CanSignal, b: CanSignal) -> None:
     assert (our_verdict([a, b]) == []) == cantools_accepts([a, b])
+
+
+def test_pair_cases_hold_both_verdicts() -> None:
+    verdicts = {cantools_accepts([a, b]) for a, b in itertools.combinations(LAYOUTS[:8], 2)}
+    assert verdicts == {True, False}  # the pairs above include overlapping and clean layouts
 
 
 @settings(max_examples=150, deadline=None)
