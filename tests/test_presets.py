@@ -1,4 +1,4 @@
-"""Shipped presets: every rig and layout loads, m1 is RIG.md's bike, layouts fire as in the trade."""
+"""Shipped presets: all rigs and layouts load, m1 is RIG.md's bike, layouts fire as in the trade."""
 
 from __future__ import annotations
 
