@@ -10,6 +10,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
+from rich import box
 from rich.console import Console, Group, RenderableType
 from rich.live import Live
 from rich.panel import Panel
@@ -142,9 +143,13 @@ class LiveDisplay:
         alerts = self.alerts(state)
         if alerts:
             parts.append(Panel(Text("\n".join(alerts), style=_ALERT), border_style="#9b1c1c"))
-        parts.append(self._cylinders(state))
+        # Cylinders and intervals side by side: the whole screen fits a small laptop window.
+        row = Table.grid(padding=(0, 3))
         if state.intervals:
-            parts.append(self._intervals(state))
+            row.add_row(self._cylinders(state), self._intervals(state))
+        else:
+            row.add_row(self._cylinders(state))
+        parts.append(row)
         parts.append(self._health(state))
         for note in state.notes[-3:]:
             parts.append(Text(f"note: {note}", style=_DIM))
@@ -165,8 +170,8 @@ class LiveDisplay:
         return t
 
     def _cylinders(self, s: LiveState) -> Table:
-        tab = Table(title="misfire per cylinder", title_justify="left", expand=False)
-        for col in ("cyl", "events", "misfires", "200-rev rate", "contribution"):
+        tab = Table(title="misfires per cylinder", title_justify="left", box=box.SIMPLE_HEAD)
+        for col in ("cyl", "events", "misfires", "rate 200r", "contrib"):
             tab.add_column(col, justify="right")
         for c in s.cylinders:
             rate = "-" if c.rate200_pct is None else f"{c.rate200_pct:.1f} %"
@@ -178,7 +183,7 @@ class LiveDisplay:
         return tab
 
     def _intervals(self, s: LiveState) -> Table:
-        tab = Table(title="firing intervals (deg)", title_justify="left")
+        tab = Table(title="firing intervals, deg", title_justify="left", box=box.SIMPLE_HEAD)
         for col in ("pair", "expected", "observed", "check"):
             tab.add_column(col, justify="right")
         for i in s.intervals:

@@ -1,0 +1,87 @@
+"""The live display rendered into a recording console (rich), read back as text."""
+
+from __future__ import annotations
+
+from rich.console import Console
+
+from logger.live import CAUTION_LINES, CylinderState, LiveDisplay, LiveState
+from logger.live.display import IntervalState
+
+
+def _text(display: LiveDisplay, state: LiveState) -> str:
+    display.update(state)
+    return display.console.export_text()
+
+
+def _display(alert_pct=2.0) -> LiveDisplay:
+    return LiveDisplay(Console(record=True, width=100, color_system=None), alert_pct=alert_pct,
+                       live=False)
+
+
+def _state(**kw) -> LiveState:
+    base = dict(
+        elapsed_s=754.0, rpm=6120.0, throttle_pct=42.0,
+        cylinders=[CylinderState(1, events=9000, misfires=3, rate200_pct=0.5, contribution=1.01),
+                   CylinderState(2, events=9000, misfires=41, rate200_pct=1.5,
+                                 contribution=0.97)],
+        # RIG.md: the M1's 270° crank fires at 270 then 450 degrees
+        intervals=[IntervalState(1, 2, 270.0, 270.8), IntervalState(2, 1, 450.0, 449.2)],
+        vibration={"bar_left": 8.31}, can_frames=123456, can_lost=2, serial_crc_errors=5,
+        serial_reconnects=1, recording="rides/",
+    )
+    base.update(kw)
+    return LiveState(**base)
+
+
+def test_everything_a_rider_needs_is_on_screen():
+    text = _text(_display(), _state())
+    assert "6120 rpm" in text and "throttle  42 %" in text and "ride 12:34" in text
+    lines = text.splitlines()
+    cyl2 = next(line for line in lines if "│ " in line and " 41 " in line)
+    assert "9000" in cyl2 and "1.5 %" in cyl2
+    assert "1>2" in text and "270.8" in text and "ok" in text
+    assert "bar_left: 8.31 m/s²" in text
+    assert "CAN frames 123456, lost 2" in text
+    assert "CRC errors 5, reconnects 1" in text
+    assert "REC rides/" in text
+    assert "ALERT" not in text
+    assert max(len(line) for line in lines) <= 100
+
+
+def test_misfire_alert_when_the_200_rev_rate_passes_the_rig_limit():
+    state = _state(cylinders=[CylinderState(1, 500, 0, 0.0), CylinderState(2, 500, 12, 2.5)])
+    text = _text(_display(alert_pct=2.0), state)
+    assert "MISFIRE ALERT cyl 2: 2.5 % over 200 revs (limit 2 %)" in text
+    # exactly at the limit is not over it
+    at = _state(cylinders=[CylinderState(1, 500, 4, 2.0)])
+    assert "MISFIRE ALERT" not in _text(_display(alert_pct=2.0), at)
+
+
+def test_interval_off_and_lost_sync_are_called_out():
+    state = _state(intervals=[IntervalState(1, 2, 270.0, 264.0), IntervalState(2, 1, 450.0)],
+                   interval_tolerance_deg=3.0, synced=False)
+    text = _text(_display(), state)
+    assert "INTERVAL 1>2 264.0 deg, expected 270 +- 3" in text
+    assert "OFF" in text and "waiting" in text
+    assert "NO CRANK SYNC" in text
+
+
+def test_unknown_values_show_as_dashes():
+    text = _text(_display(), LiveState(cylinders=[CylinderState(1)]))
+    assert "---- rpm" in text
+    assert "ALERT" not in text
+
+
+def test_caution_lines_come_first():
+    d = _display()
+    d.start()
+    d.update(_state())
+    d.stop()
+    text = d.console.export_text()
+    first = text.index(CAUTION_LINES[0])
+    assert first < text.index("6120 rpm")
+    for line in CAUTION_LINES:
+        assert line in " ".join(text.split())
+    joined = " ".join(CAUTION_LINES).lower()
+    for must in ("closed course", "never operate the laptop", "secure", "catalyst", "local rules"):
+        assert must in joined
