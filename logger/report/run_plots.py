@@ -21,7 +21,7 @@ def plot_metric(ev: np.ndarray, path: Path) -> Path | None:
     cyls = sorted(set(ev["cylinder"].tolist()))
     if not cyls:
         return None
-    fig, axes = new_figure(9.0, 1.9 * len(cyls) + 0.8, nrows=len(cyls), sharex=True,
+    fig, axes = new_figure(10.0, 2.0 * len(cyls) + 0.9, nrows=len(cyls), sharex=True,
                            squeeze=False)
     for ax, c in zip(axes[:, 0], cyls, strict=True):
         e = ev[ev["cylinder"] == c]
@@ -33,16 +33,18 @@ def plot_metric(ev: np.ndarray, path: Path) -> Path | None:
         ax.plot(fired["t"], fired["metric"], ".", ms=2, color=cyl_colour(c), label="fired",
                 rasterized=True)
         if len(other):
-            ax.plot(other["t"], other["metric"], ".", ms=2, color=MUTED_COLOUR,
-                    label="masked / unusable / fuel cut", rasterized=True)
-        if len(mis):
-            ax.plot(mis["t"], mis["metric"], "x", ms=5, mew=1.2, color=MISFIRE_COLOUR,
-                    label=f"misfire ({len(mis)})")
+            ax.plot(other["t"], other["metric"], ".", ms=3, color=MUTED_COLOUR,
+                    label=f"not judged ({len(other)})", rasterized=True)
+        ax.plot(mis["t"], mis["metric"], "x", ms=5, mew=1.2, color=MISFIRE_COLOUR,
+                label=f"misfire ({len(mis)})")
         ax.plot(e["t"], e["threshold"], "-", lw=1.0, color=THRESHOLD_COLOUR, label="threshold")
-        ax.set_ylabel(f"cyl {c}\nmetric [-]")
-        ax.legend(loc="upper right", ncol=4, markerscale=2)
+        ax.set_title(f"cylinder {c}", loc="left", fontsize=9)
+        ax.set_ylabel("metric [-]")
+        # Outside the axes, so that no marker is hidden behind the legend.
+        ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), markerscale=2, frameon=False)
     axes[-1, 0].set_xlabel("time on the CAN log [s]")
-    axes[0, 0].set_title("Speed-fluctuation metric per firing event (larger = weaker combustion)")
+    fig.suptitle("Speed-fluctuation metric per firing event (larger = weaker combustion); "
+                 "not judged = masked, unusable or fuel cut", fontsize=9)
     save(fig, path)
     return path
 
@@ -81,7 +83,7 @@ def plot_windows(store: Store, run_id: int, ev: np.ndarray, path: Path,
         rows, source = windows_from_events(ev, revolutions=1000), "computed from the events"
     if not rows:
         return None
-    fig, ax = new_figure(9.0, 3.4)
+    fig, ax = new_figure(10.0, 3.4)
     cyls = sorted({w["cylinder"] for w in rows})
     width = 0.8 / len(cyls)
     for j, c in enumerate(cyls):
@@ -95,7 +97,7 @@ def plot_windows(store: Store, run_id: int, ev: np.ndarray, path: Path,
     ax.set_xlabel("1000-revolution window number")
     ax.set_ylabel("misfire rate [%]")
     ax.set_title(f"Misfire rate per 1000-revolution window ({source})")
-    ax.legend(loc="upper right")
+    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
     ax.set_ylim(bottom=0)
     save(fig, path)
     return path
@@ -135,15 +137,24 @@ def plot_contribution(ev: np.ndarray, path: Path) -> Path | None:
     cyls = sorted(set(e["cylinder"].tolist()))
     means = [float(np.mean(e["contribution"][e["cylinder"] == c])) for c in cyls]
     sds = [float(np.std(e["contribution"][e["cylinder"] == c])) for c in cyls]
-    fig, ax = new_figure(1.3 * len(cyls) + 3.0, 3.4)
-    ax.bar([str(c) for c in cyls], means, yerr=sds, capsize=4,
-           color=[cyl_colour(c) for c in cyls])
+    fig, ax = new_figure(1.2 * len(cyls) + 3.5, 3.4)
+    x = np.arange(len(cyls))
+    # Dots with spread rather than bars from zero: a few per cent between cylinders must show.
+    ax.errorbar(x, means, yerr=sds, fmt="none", ecolor="#555555", capsize=5, lw=1)
+    ax.scatter(x, means, s=60, c=[cyl_colour(c) for c in cyls], zorder=3)
     ax.axhline(1.0, color=THRESHOLD_COLOUR, lw=1, ls="--", label="cylinder mean = 1")
     for i, m in enumerate(means):
-        ax.annotate(f"{m:.3f}", (i, m), textcoords="offset points", xytext=(8, 3), fontsize=8)
+        ax.annotate(f"{m:.3f}", (x[i], m), textcoords="offset points", xytext=(9, -3),
+                    fontsize=8)
+    ax.set_xticks(x, [str(c) for c in cyls])
+    ax.set_xlim(-0.6, len(cyls) - 0.4)
+    lo = min(m - s for m, s in zip(means, sds, strict=True))
+    hi = max(m + s for m, s in zip(means, sds, strict=True))
+    pad = max(0.02, 0.15 * (hi - lo))
+    ax.set_ylim(min(lo, 1.0) - pad, max(hi, 1.0) + pad)
     ax.set_xlabel("cylinder")
     ax.set_ylabel("relative contribution [-]")
-    ax.set_title("Contribution per cylinder (fired events; bars = ±1 s.d.)")
+    ax.set_title("Contribution per cylinder (fired events, mean ± 1 s.d.)")
     ax.legend(loc="lower right")
     save(fig, path)
     return path

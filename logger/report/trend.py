@@ -6,6 +6,8 @@ from collections.abc import Sequence
 from datetime import datetime
 from pathlib import Path
 
+import matplotlib.dates as mdates
+
 from logger.report.style import CYLINDER_COLOURS, new_figure, save
 from logger.store import METRICS, TrendPoint
 
@@ -43,7 +45,7 @@ def plot_trend(points: Sequence[TrendPoint], path: Path, *, metric: str, by: str
                         fontsize=7, color="#555555")
     ax.set_xlabel("odometer [km]" if by == "odometer" else "run start (UTC)")
     ax.set_ylabel(_LABELS.get(metric, f"{metric} [{METRICS.get(metric, ('',))[0]}]"))
-    title = f"{metric} across runs"
+    title = f"{_LABELS.get(metric, metric).split(' [')[0].capitalize()} across runs"
     if rpm_band:
         title += f", {rpm_band} rpm"
     ax.set_title(title)
@@ -52,6 +54,8 @@ def plot_trend(points: Sequence[TrendPoint], path: Path, *, metric: str, by: str
     else:
         ax.text(0.5, 0.5, "no runs with data", transform=ax.transAxes, ha="center")
     if by != "odometer":
-        fig.autofmt_xdate()
+        locator = mdates.AutoDateLocator(minticks=3, maxticks=8)
+        ax.xaxis.set_major_locator(locator)
+        ax.xaxis.set_major_formatter(mdates.ConciseDateFormatter(locator))
     save(fig, path)
     return path
