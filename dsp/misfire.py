@@ -1,0 +1,389 @@
+"""Misfire decision per firing event, with thresholds learnt from the run itself.
+
+Metric
+------
+``metric_k = 1 − W_k / ref_k``: 0 for a typical fired event, near 1 for a complete misfire
+(the window keeps only the compression work that comes back, a small fraction). ``W_k`` is the
+indicated-work estimate of :mod:`dsp.fluctuation`. ``ref_k`` is what this cylinder should have
+delivered *now*: the mean of the upper half of the ``2n`` events around it (``n`` before, ``n``
+after, ``n`` cylinders), each divided by its cylinder's factor, times this cylinder's factor.
+Taking the neighbours tracks load and rpm changes at once (a throttle snap changes every
+cylinder together), and taking their upper half keeps a neighbouring misfire, or a burst on one
+cylinder, out of the reference. A disturbance that hits all cylinders (a road bump through the
+driveline) lowers the reference with the event and does not make a misfire; a misfire is low
+against both its neighbours (the second-difference idea of the classic monitors).
+
+Decision
+--------
+``MISFIRE`` when ``metric > threshold``. The threshold is learnt per cylinder and per cell of
+rpm and load (load from the reference work itself, in bar of the swept volume, so it needs no
+throttle signal): the fired events' median plus ``spread_k`` robust standard deviations (MAD),
+clipped to ``[threshold_min, threshold_max]``, ``default_threshold`` until a cell has
+``min_cell_events``. Statistics are updated per block of ``block`` events (counted from the run's
+first event), and every event uses the statistics of the blocks before its own: the decision is
+causal with a look-ahead of ``n`` events, and it does not depend on how the stream was chunked.
+After a misfire the driveline rings for a few events; during ``holdoff_events`` events after one
+a further misfire needs ``metric > holdoff_threshold`` (a real burst clears it, the ring-down
+does not).
+
+``FUEL_CUT`` when the throttle is closed (or unknown), the rpm is at least ``fuel_cut_min_rpm``
+and the work around the event says that no cylinder fires. ``UNUSABLE`` when the crank data did
+not allow a metric.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from dsp.engine import Engine
+from dsp.errors import InputError
+from dsp.events import EVENT_DTYPE, FIRED, FUEL_CUT, MISFIRE, UNUSABLE, empty_events
+from dsp.fluctuation import RAW_EVENT_DTYPE
+from dsp.layout import firing_sequence
+
+
+@dataclass(frozen=True)
+class MisfireSettings:
+    """Options of the misfire decision (the rig file may override any of them).
+
+    Attributes
+    ----------
+    threshold : float or None
+        A fixed threshold on the metric; None = learn it from the run.
+    default_threshold : float
+        Threshold used before a cell has ``min_cell_events`` fired events.
+    threshold_min, threshold_max : float
+        Bounds of a learnt threshold.
+    spread_k : float
+        Robust standard deviations of the fired metric above its median.
+    min_cell_events, history : int
+        Fired events a cell needs before its own threshold is used; events it keeps.
+    rpm_bin : float
+        Width of the rpm cells, rpm.
+    load_edges_bar : tuple of float
+        Cell edges of the load, as the reference window work over the swept volume, bar.
+    closed_throttle_pct, fuel_cut_min_rpm, fuel_cut_work_bar : float
+        Fuel-cut recognition: throttle at or below, rpm at or above, and mean window work of the
+        events around below this (bar of swept volume).
+    holdoff_events : int or None
+        Events after a misfire during which ``holdoff_threshold`` applies (None = 2 cycles).
+    holdoff_threshold : float
+    block : int
+        Events per statistics update.
+    """
+
+    threshold: float | None = None
+    default_threshold: float = 0.5
+    threshold_min: float = 0.35
+    threshold_max: float = 0.65
+    spread_k: float = 6.0
+    min_cell_events: int = 24
+    history: int = 96
+    rpm_bin: float = 1000.0
+    load_edges_bar: tuple[float, ...] = (1.5, 3.0, 5.0, 8.0)
+    closed_throttle_pct: float = 2.0
+    fuel_cut_min_rpm: float = 1600.0
+    fuel_cut_work_bar: float = 1.0
+    holdoff_events: int | None = None
+    holdoff_threshold: float = 0.75
+    block: int = 128
+
+    def __post_init__(self) -> None:
+        if self.threshold is not None and not 0 < self.threshold < 2:
+            raise InputError(f"misfire threshold must be in (0, 2), got {self.threshold!r}")
+        if not 0 < self.threshold_min <= self.default_threshold <= self.threshold_max:
+            raise InputError(
+                "need 0 < threshold_min <= default_threshold <= threshold_max, got "
+                f"{self.threshold_min!r}, {self.default_threshold!r}, {self.threshold_max!r}"
+            )
+        for name in ("min_cell_events", "history", "block"):
+            if int(getattr(self, name)) < 1:
+                raise InputError(f"{name} must be >= 1, got {getattr(self, name)!r}")
+        if self.rpm_bin <= 0:
+            raise InputError(f"rpm_bin must be > 0, got {self.rpm_bin!r}")
+
+
+class _Cells:
+    """Per (cylinder, rpm cell, load cell) history of fired events: metric and work ratio."""
+
+    def __init__(self, n_cyl: int, settings: MisfireSettings):
+        self.s = settings
+        self.n_load = len(settings.load_edges_bar) + 1
+        self.n_rpm = 24
+        shape = (n_cyl, self.n_rpm, self.n_load)
+        self.metric = np.full(shape + (settings.history,), np.nan)
+        self.ratio = np.full(shape + (settings.history,), np.nan)
+        self.fill = np.zeros(shape, dtype=np.int64)  # values ever written
+        self.thr = np.full(shape, settings.default_threshold)
+        self.sigma = np.full(shape, 0.1)
+        self.factor = np.ones(shape)
+        # per-cylinder factor over all cells, for cells with too little data
+        self.cyl_ratio = np.full((n_cyl, settings.history), np.nan)
+        self.cyl_fill = np.zeros(n_cyl, dtype=np.int64)
+        self.cyl_factor = np.ones(n_cyl)
+
+    def cell(self, rpm: np.ndarray, load_bar: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        r = np.clip(np.nan_to_num(rpm / self.s.rpm_bin), 0, self.n_rpm - 1).astype(np.int64)
+        ld = np.searchsorted(np.asarray(self.s.load_edges_bar), np.nan_to_num(load_bar))
+        return r, ld.astype(np.int64)
+
+    def update(self, cyl0, rc, lc, metric, ratio) -> None:
+        h = self.s.history
+        for c in np.unique(cyl0):
+            sel = cyl0 == c
+            vals = ratio[sel]
+            k = self.cyl_fill[c]
+            pos = (k + np.arange(vals.size)) % h
+            self.cyl_ratio[c, pos[-h:]] = vals[-h:]
+            self.cyl_fill[c] = k + vals.size
+            self.cyl_factor[c] = float(np.nanmedian(self.cyl_ratio[c]))
+        key = (cyl0 * self.n_rpm + rc) * self.n_load + lc
+        for u in np.unique(key):
+            sel = key == u
+            c, rest = divmod(int(u), self.n_rpm * self.n_load)
+            r, ld = divmod(rest, self.n_load)
+            k = self.fill[c, r, ld]
+            m = metric[sel][-h:]
+            q = ratio[sel][-h:]
+            pos = (k + np.arange(m.size)) % h
+            self.metric[c, r, ld, pos] = m
+            self.ratio[c, r, ld, pos] = q
+            self.fill[c, r, ld] = k + int(sel.sum())
+            if self.fill[c, r, ld] >= self.s.min_cell_events:
+                hist = self.metric[c, r, ld]
+                med = float(np.nanmedian(hist))
+                sig = 1.4826 * float(np.nanmedian(np.abs(hist - med)))
+                self.sigma[c, r, ld] = max(sig, 0.01)
+                thr = med + self.s.spread_k * sig
+                self.thr[c, r, ld] = float(np.clip(thr, self.s.threshold_min, self.s.threshold_max))
+                self.factor[c, r, ld] = float(np.nanmedian(self.ratio[c, r, ld]))
+
+
+class MisfireDetector:
+    """Streaming misfire decision over the raw events of :class:`dsp.fluctuation.FluctuationStage`.
+
+    Parameters
+    ----------
+    engine : Engine
+    settings : MisfireSettings, keyword-only
+
+    Notes
+    -----
+    ``push(raw, throttle)`` takes raw events in order (``throttle`` in %, one per event, NaN when
+    unknown) and returns the events that are final, as :data:`dsp.events.EVENT_DTYPE`: each raw
+    event comes out exactly once, at most ``n_cyl`` events later. ``finish()`` flushes the rest.
+    """
+
+    def __init__(self, engine: Engine, *, settings: MisfireSettings | None = None):
+        self.engine = engine
+        self.s = settings or MisfireSettings()
+        self.n = engine.n_cylinders
+        self._cells = _Cells(self.n, self.s)
+        self._vd = np.pi / 4 * engine.bore_m**2 * engine.stroke_m  # m³, swept volume per cylinder
+        cyls, angles = firing_sequence(engine)
+        iv = np.diff(np.concatenate((angles, [angles[0] + engine.cycle_deg])))
+        # expected interval *before* each position of the firing sequence
+        self._expected_before = np.roll(iv, 1)
+        self._holdoff = self.s.holdoff_events if self.s.holdoff_events is not None else 2 * self.n
+        self._raw = np.zeros(0, dtype=RAW_EVENT_DTYPE)
+        self._thr_in = np.zeros(0)
+        self._done_upto: int | None = None  # global index of the next event to decide
+        self._last_misfire = -(10**18)
+        self._prev: np.ndarray | None = None  # the last decided event (for intervals)
+        self._prev_index = -1
+        self._block_acc: list[np.ndarray] = []
+        self._block_id: int | None = None
+
+    # -- streaming ------------------------------------------------------------------------------
+    def push(self, raw: np.ndarray, throttle: np.ndarray | None = None) -> np.ndarray:
+        raw = np.asarray(raw)
+        if raw.dtype != RAW_EVENT_DTYPE:
+            raise InputError(f"raw events must have RAW_EVENT_DTYPE, got dtype {raw.dtype}")
+        thr = np.full(raw.size, np.nan) if throttle is None else np.asarray(throttle, float)
+        if thr.shape != raw.shape:
+            raise InputError(f"throttle has shape {thr.shape}, expected {raw.shape} (one per event)")
+        if raw.size and self._raw.size and raw["index"][0] != self._raw["index"][-1] + 1:
+            raise InputError(
+                f"raw event {raw['index'][0]} does not follow event {self._raw['index'][-1]}"
+            )
+        self._raw = np.concatenate((self._raw, raw))
+        self._thr_in = np.concatenate((self._thr_in, thr))
+        if self._done_upto is None and self._raw.size:
+            self._done_upto = int(self._raw["index"][0])
+        return self._decide(final=False)
+
+    def finish(self) -> np.ndarray:
+        return self._decide(final=True)
+
+    def _decide(self, *, final: bool) -> np.ndarray:
+        if self._done_upto is None or not self._raw.size:
+            return empty_events(0)
+        first = int(self._raw["index"][0])
+        last = int(self._raw["index"][-1])
+        ready_hi = last + 1 if final else last + 1 - self.n  # events < ready_hi are decidable
+        outs = []
+        b = self.s.block
+        while self._done_upto < ready_hi:
+            blk = self._done_upto // b
+            seg_hi = min(ready_hi, (blk + 1) * b)
+            outs.append(self._segment(self._done_upto - first, seg_hi - first))
+            self._done_upto = seg_hi
+            if seg_hi == (blk + 1) * b:
+                self._close_block()
+        # keep n events of history before the next undecided one
+        keep_from = max(self._done_upto - first - self.n, 0)
+        self._raw = self._raw[keep_from:]
+        self._thr_in = self._thr_in[keep_from:]
+        if final and self._block_acc:
+            self._close_block()
+        return np.concatenate(outs) if outs else empty_events(0)
+
+    def _close_block(self) -> None:
+        if not self._block_acc:
+            return
+        acc = np.concatenate(self._block_acc)
+        self._block_acc = []
+        if acc.size:
+            cyl0, rc, lc, metric, ratio = (acc[name] for name in acc.dtype.names or ())
+            self._cells.update(cyl0.astype(np.int64), rc, lc, metric, ratio)
+
+    # -- one vectorised segment (inside one statistics block) -----------------------------------
+    def _segment(self, i0: int, i1: int) -> np.ndarray:
+        n, s, cells = self.n, self.s, self._cells
+        raw = self._raw
+        idx = np.arange(i0, i1)
+        ev = raw[i0:i1]
+        out = empty_events(idx.size)
+        out["t"] = ev["t"]
+        out["cycle"] = ev["cycle"]
+        out["cylinder"] = ev["cylinder"]
+        out["rpm"] = ev["rpm"]
+        out["throttle"] = self._thr_in[i0:i1]
+        cyl0 = ev["cylinder"].astype(np.int64) - 1
+        work = np.where(ev["usable"], ev["work"], np.nan)
+        # neighbours k-n..k+n without k (missing ones at the edges of the buffer are NaN)
+        offs = np.concatenate((np.arange(-n, 0), np.arange(1, n + 1)))
+        j = idx[:, None] + offs[None, :]
+        inb = (j >= 0) & (j < raw.size)
+        jc = np.clip(j, 0, raw.size - 1)
+        w_all = np.where(raw["usable"], raw["work"], np.nan)
+        nb_cyl = raw["cylinder"].astype(np.int64)[jc] - 1
+        nb = np.where(inb, w_all[jc], np.nan) / cells.cyl_factor[nb_cyl]
+        # upper half of the neighbours (NaN sorts last: count the finite ones)
+        nb_sorted = np.sort(np.where(np.isfinite(nb), nb, -np.inf), axis=1)[:, ::-1]
+        cnt = np.isfinite(nb).sum(axis=1)
+        half = np.maximum(cnt // 2, 1)
+        take = np.arange(2 * n)[None, :] < half[:, None]
+        base = np.where(take & np.isfinite(nb_sorted), nb_sorted, 0.0).sum(axis=1) / half
+        base = np.where(cnt >= max(2, n), base, np.nan)
+        load_bar = base / self._vd / 1e5
+        rc, lc = cells.cell(ev["rpm"], load_bar)
+        factor = np.where(
+            cells.fill[cyl0, rc, lc] >= s.min_cell_events,
+            cells.factor[cyl0, rc, lc],
+            cells.cyl_factor[cyl0],
+        )
+        ref = base * factor
+        with np.errstate(invalid="ignore", divide="ignore"):
+            metric = np.where(ref > 0, 1.0 - work / ref, np.nan)
+            contribution = work / base
+        if s.threshold is not None:
+            thr = np.full(idx.size, float(s.threshold))
+        else:
+            thr = cells.thr[cyl0, rc, lc]
+        sigma = cells.sigma[cyl0, rc, lc]
+        ok = np.isfinite(metric)
+        verdict = np.where(ok, FIRED, UNUSABLE).astype(np.int8)
+        # fuel cut: closed (or unknown) throttle, rpm above the overrun limit, nothing fires
+        tp = out["throttle"]
+        closed = ~(tp > s.closed_throttle_pct)
+        gi = idx[:, None] + np.arange(-n + 1, n)[None, :]
+        gin = (gi >= 0) & (gi < raw.size)
+        around = np.where(gin, w_all[np.clip(gi, 0, raw.size - 1)], np.nan)
+        n_around = np.isfinite(around).sum(axis=1)
+        around_mean = np.where(np.isfinite(around), around, 0.0).sum(axis=1) / np.maximum(n_around, 1)
+        around_mean = np.where(n_around > 0, around_mean, np.nan)
+        no_fire = around_mean / self._vd / 1e5 < s.fuel_cut_work_bar
+        fuel_cut = closed & (ev["rpm"] >= s.fuel_cut_min_rpm) & no_fire & np.isfinite(around_mean)
+        cand = ok & ~fuel_cut & (metric > thr)
+        verdict[fuel_cut] = FUEL_CUT
+        verdict[cand] = MISFIRE
+        # ring-down hold-off: sequential, but only over the (rare) candidates
+        gidx = ev["index"]
+        for k in np.flatnonzero(cand):
+            if gidx[k] - self._last_misfire <= self._holdoff and metric[k] <= s.holdoff_threshold:
+                verdict[k] = FIRED
+            else:
+                self._last_misfire = int(gidx[k])
+        out["metric"] = metric
+        out["threshold"] = thr
+        out["verdict"] = verdict
+        scale = np.maximum(3.0 * sigma, 0.05)
+        conf = np.clip(np.abs(metric - thr) / scale, 0.0, 1.0)
+        conf[fuel_cut] = np.clip(
+            (s.fuel_cut_work_bar - around_mean[fuel_cut] / self._vd / 1e5) / s.fuel_cut_work_bar,
+            0,
+            1,
+        )
+        out["confidence"] = np.where(np.isfinite(conf), conf, 0.0)
+        out["contribution"] = contribution
+        self._intervals(out, ev)
+        # statistics from fired, usable events of this segment (applied when the block closes)
+        fired = (verdict == FIRED) & np.isfinite(base)
+        acc = np.zeros(
+            int(fired.sum()),
+            dtype=[("c", "i8"), ("r", "i8"), ("l", "i8"), ("m", "f8"), ("q", "f8")],
+        )
+        acc["c"], acc["r"], acc["l"] = cyl0[fired], rc[fired], lc[fired]
+        acc["m"] = metric[fired]
+        acc["q"] = (work / base)[fired]
+        self._block_acc.append(acc)
+        return out
+
+    def _intervals(self, out: np.ndarray, ev: np.ndarray) -> None:
+        pos_in_seq = np.mod(ev["index"], self.n)
+        out["expected_interval_deg"] = self._expected_before[pos_in_seq]
+        at = ev["theta"] + ev["rise_deg"]
+        fired = out["verdict"] == FIRED
+        at = np.where(fired, at, np.nan)
+        if self._prev is not None:
+            prev_at = np.concatenate(([self._prev[0]], at[:-1]))
+            prev_idx = np.concatenate(([self._prev_index], ev["index"][:-1]))
+        else:
+            prev_at = np.concatenate(([np.nan], at[:-1]))
+            prev_idx = np.concatenate(([-2], ev["index"][:-1]))
+        iv = at - prev_at
+        out["interval_deg"] = np.where(prev_idx == ev["index"] - 1, iv, np.nan)
+        if ev.size:
+            self._prev = np.array([at[-1]])
+            self._prev_index = int(ev["index"][-1])
+
+
+def detect_misfires(
+    raw: np.ndarray,
+    engine: Engine,
+    *,
+    throttle: np.ndarray | None = None,
+    settings: MisfireSettings | None = None,
+) -> np.ndarray:
+    """Whole-run version of :class:`MisfireDetector`: the same events, identical numbers.
+
+    Parameters
+    ----------
+    raw : ndarray of :data:`dsp.fluctuation.RAW_EVENT_DTYPE`, in event order
+    engine : Engine
+    throttle : (n,) float, %, keyword-only
+        Throttle at each event (NaN or None when unknown).
+    settings : MisfireSettings, keyword-only
+
+    Returns
+    -------
+    events : ndarray of :data:`dsp.events.EVENT_DTYPE`
+    """
+    det = MisfireDetector(engine, settings=settings)
+    return np.concatenate((det.push(raw, throttle), det.finish()))
+
+
+__all__ = ["MisfireSettings", "MisfireDetector", "detect_misfires", "EVENT_DTYPE", "MISFIRE"]
