@@ -72,6 +72,7 @@ def test_run_report_embeds_every_figure(filled, tmp_path):
     assert "Firing intervals" in parser.titles
     # Self-contained: nothing is fetched from elsewhere.
     assert not re.search(r"(src|href)=['\"](?!data:)", rep.html.read_text())
+    assert f"href='run{run}.html'" in (tmp_path / "out" / "index.html").read_text()
 
 
 def test_a_run_without_data_says_what_is_missing(filled, tmp_path):

@@ -1,6 +1,7 @@
 """Reports from the store alone: PNG figures and one self-contained HTML page per run.
 
-``make_run_report(store, run_id, out_dir) -> RunReport`` and
+``make_run_report(store, run_id, out_dir) -> RunReport`` (``run<ID>.html`` with the figures
+embedded, ``run<ID>_*.png``, and an ``index.html`` linking every run page of the folder) and
 ``plot_trend(points, path, metric=...)`` (matplotlib, Agg backend; nothing is shown on screen).
 """
 

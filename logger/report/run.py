@@ -60,7 +60,21 @@ def make_run_report(store: Store, run_id: int, out_dir: str | Path) -> RunReport
     drawn = [(title, p) for title, p in figures if p is not None]
     page.write_text(_page(store, run_id, info, drawn, [t for t, p in figures if p is None]),
                     encoding="utf-8")
+    _write_index(out)
     return RunReport(run_id, page, [p for _, p in drawn])
+
+
+def _write_index(out: Path) -> None:
+    """``index.html``: links to every run page in the folder (several runs may share one)."""
+    pages = sorted(out.glob("run*.html"), key=lambda p: int("".join(filter(str.isdigit, p.stem))
+                                                            or 0))
+    links = "".join(f"<li><a href='{html.escape(p.name)}'>{html.escape(p.stem)}</a></li>"
+                    for p in pages)
+    (out / "index.html").write_text(
+        "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
+        f"<title>crankbeat reports</title><style>{_CSS}</style></head><body>"
+        f"<h1>crankbeat reports in this folder</h1><ul>{links}</ul></body></html>",
+        encoding="utf-8")
 
 
 _CSS = """
