@@ -1,0 +1,112 @@
+"""Accelerometer boards of the simulated bike: what reaches a sensor and when it is sampled.
+
+Sources, in bike axes (x forward, y left, z up; the crank lies along y and turns forward over the
+top): the reciprocating shaking forces and rocking couples of the engine's layout (exact
+slider-crank, :mod:`dsp.layout`), the reaction to the fluctuating engine torque (gas plus
+reciprocating inertia), the road (more on rough sections), gravity (+1 g along "up", as any
+accelerometer at rest reads) and sensor noise. Forces and moments reach the sensor through a
+mount transfer function of two damped resonances (the bar's bending modes, say) with unit gain
+at low frequency.
+
+The device samples on its own clock, which starts at an offset and runs fast by ``drift_ppm``;
+its time stamps are integers of its unit (µs) and wrap at the sensor's modulo.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy.signal import bilinear, butter, lfilter, sosfilt
+
+from dsp.kinematics import reciprocating_torque
+from dsp.layout import shaking_couples, shaking_forces
+from logger.sim.teeth import hermite
+
+CYLINDER_TILT_DEG = 30.0  # cylinder 1's axis leans forward from vertical
+FORCE_GAIN_G_PER_N = 6.0e-5  # low-frequency sensor acceleration per newton of shaking force
+MOMENT_GAIN_G_PER_NM = 1.2e-4  # ... per N·m of rocking couple or torque reaction
+SENSOR_NOISE_G = 0.01
+#: Where a sensor at each location sits relative to the crank's middle, m (x fwd, y left, z up).
+LOCATIONS = {
+    "bar": (0.55, 0.35, 0.50), "seat": (-0.35, 0.0, 0.30), "footpeg": (-0.15, 0.18, -0.15),
+    "tank": (0.15, 0.0, 0.35), "frame": (0.30, 0.10, 0.20), "engine": (0.0, 0.10, 0.0),
+}
+AXES = {"forward": (1, 0, 0), "back": (-1, 0, 0), "left": (0, 1, 0), "right": (0, -1, 0),
+        "up": (0, 0, 1), "down": (0, 0, -1)}
+
+
+def mount_filter(fs: float, hz: tuple[float, ...], zeta: float):
+    """Discrete (b, a) of the mount: the mean of unit-gain damped resonances at ``hz``."""
+    num = np.zeros(1)
+    den = np.ones(1)
+    for f in hz:
+        w = 2 * np.pi * f
+        d = np.array([1.0, 2 * zeta * w, w * w])
+        num = np.polyadd(np.polymul(num, d), np.polymul(den, [w * w / len(hz)]))
+        den = np.polymul(den, d)
+    return bilinear(num, den, fs=fs)
+
+
+def sample_times(sensor, scenario, rng: np.random.Generator):
+    """(true times from the ride start, device raw stamps, device seconds) of every sample."""
+    ser = scenario.serial
+    rate = 1.0 + ser.drift_ppm * 1e-6
+    first = rng.random() / sensor.sample_rate_hz
+    n = int(np.floor((scenario.duration - first) * sensor.sample_rate_hz * rate))
+    dev = ser.clock_offset_s + first * rate + np.arange(n) / sensor.sample_rate_hz
+    t = (dev - ser.clock_offset_s) / rate
+    raw = np.mod(np.rint(dev / sensor.device_time_unit_s).astype(np.int64), sensor.device_time_modulo)
+    return t, raw
+
+
+def fill(ride, track, cycle_t: np.ndarray) -> None:
+    """Set ``ride.accel`` for every sensor of the rig."""
+    from logger.sim.ride import AccelTruth
+
+    sc = ride.scenario
+    for idx, sensor in enumerate(ride.rig.sensors):
+        rng = np.random.default_rng([*ride.seeds["accel"].generate_state(2), idx])
+        t, raw = sample_times(sensor, sc, rng)
+        xyz = sensor_signal(ride, track, cycle_t, sensor, t, rng)
+        seq0 = int(rng.integers(0, sensor.sequence_modulo))
+        ride.accel[sensor.name] = AccelTruth(
+            t=t + sc.start_time, device_raw=raw, seq=seq0 + np.arange(len(t)), xyz=xyz
+        )
+
+
+def sensor_signal(ride, track, cycle_t, sensor, t: np.ndarray, rng) -> np.ndarray:
+    """Acceleration at the sensor, g, in its own axes, shape (n, 3)."""
+    sc, eng = ride.scenario, ride.engine
+    edges = ride.tooth_time - sc.start_time
+    theta_rad = np.radians(ride.tooth_angle)
+    theta = np.degrees(hermite(t, edges, theta_rad, ride.tooth_omega))
+    omega = np.interp(t, edges, ride.tooth_omega)
+    force2 = shaking_forces(eng, theta, omega, model="exact")
+    couple2 = shaking_couples(eng, theta, omega, model="exact")
+    tilt = np.radians(CYLINDER_TILT_DEG)
+    u1 = np.array([np.sin(tilt), 0.0, np.cos(tilt)])  # along cylinder 1
+    u2 = np.array([np.cos(tilt), 0.0, -np.sin(tilt)])  # 90° ahead in the crank's rotation
+    force = force2[:, :1] * u1 + force2[:, 1:] * u2
+    moment = couple2[:, :1] * u2 - couple2[:, 1:] * u1  # y × u1 = u2, y × u2 = -u1
+    torque = np.interp(t, edges, ride.tooth_gas_torque) + reciprocating_torque(theta, omega, eng)
+    torque = torque - np.convolve(torque, np.ones(401) / 401, mode="same")
+    moment = moment - torque[:, None] * np.array([0.0, 1.0, 0.0])
+    lever = np.asarray(LOCATIONS.get(sensor.location, LOCATIONS["frame"]))
+    acc = FORCE_GAIN_G_PER_N * force + MOMENT_GAIN_G_PER_NM * np.cross(moment, lever) / 0.5
+    fs = sensor.sample_rate_hz
+    phys = sc.physics
+    hz = tuple(f for f in phys.mount_hz if f < 0.45 * fs)
+    if hz:
+        b, a = mount_filter(fs, hz, phys.mount_damping)
+        acc = lfilter(b, a, acc, axis=0)
+    # Road: vertical mostly, some fore-aft, more on rough sections.
+    starts = cycle_t[:-1]
+    cyc = np.clip(np.searchsorted(starts, t, side="right") - 1, 0, len(track.rough) - 1)
+    level = phys.road_noise_g * (1.0 + 4.0 * track.rough[cyc])
+    sos = butter(2, [3.0, min(60.0, 0.4 * fs)], btype="bandpass", fs=fs, output="sos")
+    road = sosfilt(sos, rng.standard_normal((len(t) + 1000, 3)), axis=0)[1000:]
+    road /= max(float(np.std(road[:, 2])), 1e-12)
+    acc = acc + road * level[:, None] * np.array([0.4, 0.25, 1.0])
+    acc[:, 2] += 1.0
+    acc = acc + SENSOR_NOISE_G * rng.standard_normal(acc.shape)
+    dirs = np.array([AXES[a] for a in sensor.axes], dtype=float)  # (3 sensor axes, 3 bike axes)
+    return acc @ dirs.T
