@@ -1,0 +1,109 @@
+"""A live CAN bus through python-can: any interface it supports (socketcan, virtual, ...).
+
+Frames are read with ``recv(timeout)``; a batch ends when ``max_frames`` arrived or the bus has
+been quiet for ``timeout`` seconds, so a caller gets control back at least that often (to check
+a stop flag) even when nothing arrives — then the batch is empty.
+
+Receive times are rounded to ``resolution_s`` (1 µs, what a candump log keeps) so that the
+recording of a live run replays to exactly the same numbers.
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Iterator
+
+import can
+import numpy as np
+
+from dsp.errors import SourceError
+from logger.can.sources.base import CanSource, FrameBatch
+from logger.rig.model import CanBus
+
+
+class BusSource(CanSource):
+    """Frames from a live python-can bus.
+
+    Parameters
+    ----------
+    bus : CanBus or can.BusABC
+        Where the bus is (opened here with ``can.Bus(interface=, channel=, bitrate=)``), or an
+        already open python-can bus (not shut down by :meth:`close`).
+    timeout : float
+        Longest wait for a frame before an (possibly empty) batch is handed back, s.
+    resolution_s : float or None
+        Receive times are rounded to this step; None keeps them as the interface gives them.
+    max_batch_s : float
+        A batch is also handed back after this much wall time, however busy the bus.
+    """
+
+    def __init__(
+        self,
+        bus: CanBus | can.BusABC,
+        *,
+        timeout: float = 0.05,
+        resolution_s: float | None = 1e-6,
+        max_batch_s: float = 0.05,
+    ) -> None:
+        super().__init__()
+        if isinstance(bus, can.BusABC):
+            self.bus = bus
+            self._owns = False
+            self.origin = f"bus {bus.channel_info}"
+        else:
+            kwargs: dict[str, object] = {"interface": bus.interface, "channel": bus.channel}
+            if bus.interface != "virtual":
+                kwargs["bitrate"] = bus.bitrate
+            if bus.fd:
+                kwargs["fd"] = True
+            try:
+                self.bus = can.Bus(**kwargs)
+            except (can.CanError, OSError, ValueError, ImportError) as exc:
+                raise SourceError(f"CAN bus {bus.interface}:{bus.channel}: cannot open "
+                                  f"({exc})") from None
+            self._owns = True
+            self.origin = f"bus {bus.interface}:{bus.channel}"
+        self.timeout = float(timeout)
+        self.max_batch_s = float(max_batch_s)
+        self.resolution_s = resolution_s
+        self.frames_read = 0
+        self._closed = False
+
+    def _quantise(self, ts: np.ndarray) -> np.ndarray:
+        if self.resolution_s is None:
+            return ts
+        if self.resolution_s == 1e-6:
+            # exactly what a candump writer's "%f" and a reader's float() make of it
+            return np.array([float(f"{t:f}") for t in ts])
+        return np.round(ts / self.resolution_s) * self.resolution_s
+
+    def recv_batch(self, max_frames: int = 65536) -> FrameBatch:
+        """One batch: what arrives until ``max_frames``, a quiet ``timeout``, or ``max_batch_s``."""
+        msgs: list[can.Message] = []
+        deadline = time.monotonic() + self.max_batch_s
+        while len(msgs) < max_frames:
+            try:
+                msg = self.bus.recv(timeout=self.timeout)
+            except (can.CanError, OSError) as exc:
+                raise SourceError(f"{self.origin}: receive failed ({exc})") from None
+            if msg is None:
+                break
+            msgs.append(msg)
+            if time.monotonic() > deadline:
+                break
+        first = self.frames_read
+        self.frames_read += len(msgs)
+        batch = FrameBatch.from_messages(msgs, range(first, first + len(msgs)),
+                                         origin=self.origin, index_kind="frame")
+        batch.ts = self._quantise(batch.ts)
+        return batch
+
+    def batches(self, max_frames: int = 65536) -> Iterator[FrameBatch]:
+        """Endless batches (empty ones when the bus is quiet) until :meth:`close`."""
+        while not self._closed:
+            yield self.recv_batch(max_frames)
+
+    def close(self) -> None:
+        self._closed = True
+        if self._owns:
+            self.bus.shutdown()
