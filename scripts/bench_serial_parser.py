@@ -2,7 +2,8 @@
 
 Usage: python scripts/bench_serial_parser.py [seconds_of_stream] [read_bytes]
 Makes a 2 kHz stream of 16-byte frames with a little damage, cuts it into port reads of
-``read_bytes`` and times (a) one push per read and (b) push_records over batches of reads.
+``read_bytes`` and times (a) one push per read, (b) push_records over batches of reads, (c) the whole decoder
+(parser and clock aligner) with one read per push and in batches.
 """
 
 from __future__ import annotations
@@ -13,6 +14,7 @@ import time
 import numpy as np
 
 from logger.rig.model import Checksum, SerialField, SerialSensor
+from logger.serial.decoder import SerialDecoder
 from logger.serial.frames import encode_frames
 from logger.serial.parser import SerialFrameParser
 
@@ -56,6 +58,13 @@ def main() -> None:
         got = sum(len(p.push_records(reads[i : i + batch])) for i in range(0, len(reads), batch))
         dt = time.perf_counter() - t0
         print(f"push_records x{batch:<5}: {got / dt:12,.0f} frames/s  ({dt:.2f} s)")
+    for batch in (1, 64, 1024):
+        dec = SerialDecoder(SENSOR)
+        t0 = time.perf_counter()
+        got = sum(len(dec.push(reads[i : i + batch])) for i in range(0, len(reads), batch))
+        got += len(dec.flush())
+        dt = time.perf_counter() - t0
+        print(f"decoder x{batch:<5}     : {got / dt:12,.0f} samples/s ({dt:.2f} s, parse + align)")
 
 
 if __name__ == "__main__":

@@ -39,8 +39,8 @@ def test_writer_takes_open_file_and_leaves_it_open():
 
 
 @settings(max_examples=30, deadline=None)
-@given(st.lists(st.tuples(st.floats(allow_nan=False, allow_infinity=False), st.binary(max_size=300)),
-                max_size=20))
+@given(st.lists(st.tuples(st.floats(allow_nan=False, allow_infinity=False),
+                          st.binary(max_size=300)), max_size=20))
 def test_round_trip(tmp_path_factory, records):
     path = tmp_path_factory.mktemp("cap") / "r.accraw"
     _write(path, records)

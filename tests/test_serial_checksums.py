@@ -47,7 +47,8 @@ def test_sum8_and_xor8_against_plain_python(data):
 
 
 def test_sum8_xor8_known_values():
-    # '1'..'9' are 0x31..0x39: sum 477 -> 477 - 256 = 221; xor of nine codes = 0x31 (worked by hand).
+    # '1'..'9' are 0x31..0x39: sum 477 -> 477 - 256 = 221; the xor of the nine codes is 0x31
+    # (worked by hand).
     assert sum8(b"123456789") == 221
     assert xor8(b"123456789") == 0x31
 

@@ -48,7 +48,9 @@ class CaptureWriter:
             try:
                 self._f: BinaryIO = open(self.name, "wb")  # noqa: SIM115 - closed in close()
             except OSError as exc:
-                raise SourceError(f"{self.name}: cannot create capture file: {exc.strerror}") from None
+                raise SourceError(
+                    f"{self.name}: cannot create capture file: {exc.strerror}"
+                ) from None
             self._owns = True
         else:
             self.name = getattr(target, "name", "<stream>")

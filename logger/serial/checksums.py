@@ -34,7 +34,8 @@ def _as_frames(data: bytes | bytearray | memoryview | np.ndarray) -> tuple[np.nd
     arr = np.asarray(data)
     if arr.dtype != np.uint8 or arr.ndim != 2:
         raise InputError(
-            f"checksum input must be bytes or a (n, m) uint8 array, got {arr.dtype} shape {arr.shape}"
+            "checksum input must be bytes or a (n, m) uint8 array, "
+            f"got {arr.dtype} shape {arr.shape}"
         )
     return arr, False
 

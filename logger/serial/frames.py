@@ -70,7 +70,7 @@ class FrameLayout:
 
     # -- decoding -------------------------------------------------------------------------
     def field_raw(self, frames: np.ndarray, f: SerialField) -> np.ndarray:
-        """Raw integer values of one field in each row of ``frames`` ((n, L) uint8) -> (n,) int64."""
+        """Raw values of field ``f`` in each row of ``frames`` ((n, L) uint8): (n,) int64."""
         cols = np.ascontiguousarray(frames[:, f.offset : f.offset + f.size])
         return cols.view(_np_dtype(f)).reshape(-1).astype(np.int64)
 
@@ -117,7 +117,8 @@ class FrameLayout:
             wrapped = raw % (1 << (8 * f.size)) if dt.kind == "u" else raw
             if wrapped.min(initial=0) < info.min or wrapped.max(initial=0) > info.max:
                 raise InputError(
-                    f"field {f.name!r}: values {wrapped.min()}..{wrapped.max()} do not fit {f.dtype}"
+                    f"field {f.name!r}: values {wrapped.min()}..{wrapped.max()} "
+                    f"do not fit {f.dtype}"
                 )
             frames[:, f.offset : f.offset + f.size] = (
                 wrapped.astype(dt).view(np.uint8).reshape(n, f.size)

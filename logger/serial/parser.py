@@ -137,7 +137,8 @@ class SerialFrameParser:
         self._carry = np.zeros(0, dtype=np.uint8)
         self._pending_break = False
         # Unwrap state: previous frame's raw values, unwrapped values and host time.
-        self._prev: tuple[int, int, int, int, float] | None = None  # seq_raw, dev_raw, seq, dev, host
+        # seq_raw, dev_raw, seq, dev, host
+        self._prev: tuple[int, int, int, int, float] | None = None
 
     # -- public ---------------------------------------------------------------------------
     def push(self, data: bytes, host_time: float) -> ParsedFrames:
