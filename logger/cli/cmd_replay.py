@@ -19,7 +19,7 @@ HELP = "analyse a recorded ride (CAN log + accelerometer captures) into the stor
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--rig", required=True, help="rig file (TOML) or preset name, e.g. m1")
     parser.add_argument("--can", required=True, metavar="LOG",
-                        help="CAN log in any format python-can reads (.log, .asc, .blf, .csv, .trc)")
+                        help="CAN log in a format python-can reads (.log, .asc, .blf, .csv, .trc)")
     parser.add_argument("--accel", action="append", default=[], metavar="[NAME=]CAPTURE",
                         help="accelerometer capture of sensor NAME (repeat per sensor; the name "
                              "may be left out when the rig has one sensor)")
@@ -29,7 +29,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--odometer", type=float, metavar="KM", help="odometer reading, km")
     parser.add_argument("--pace", nargs="?", type=float, const=1.0, default=None,
                         metavar="FACTOR",
-                        help="feed the files at FACTOR x real time (default 1) as a live ride would")
+                        help="feed the files at FACTOR x real time (default 1), as live")
     parser.add_argument("--force", action="store_true",
                         help="analyse again even if these files were analysed before")
     parser.add_argument("--json", action="store_true", help="print one JSON object (with 'id')")
@@ -100,7 +100,7 @@ def _analyse(args, rig, can_path: Path, accel: dict[str, Path], store) -> int:
     except ModuleNotFoundError as exc:
         if exc.name != "logger.pipeline":
             raise
-        raise CrankbeatError("the analysis pipeline (logger.pipeline) is not installed yet") from None
+        raise CrankbeatError("the analysis pipeline (logger.pipeline) is missing") from None
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
 

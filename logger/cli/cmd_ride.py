@@ -71,7 +71,7 @@ def run(args: argparse.Namespace) -> int:
     except ModuleNotFoundError as exc:
         if exc.name != "logger.pipeline":
             raise
-        raise CrankbeatError("the analysis pipeline (logger.pipeline) is not installed yet") from None
+        raise CrankbeatError("the analysis pipeline (logger.pipeline) is missing") from None
 
     stop = threading.Event()
 

@@ -123,7 +123,7 @@ class LiveDisplay:
             self.console.print(view)
 
     def alerts(self, state: LiveState) -> list[str]:
-        """One line per reason to stop and look (misfire over the limit, interval off, lost sync)."""
+        """One line per reason to stop and look: misfire over the limit, interval off, no sync."""
         out = []
         for c in state.cylinders:
             if c.rate200_pct is not None and c.rate200_pct > self.alert_pct:
