@@ -19,7 +19,7 @@ import numpy as np
 from dsp.crank import CrankAngles, CrankTracker, ToothWheel
 from dsp.engine import Engine
 from dsp.errors import InputError
-from dsp.events import empty_events
+from dsp.events import FIRED, MISFIRE, VERDICT_NAMES, empty_events
 from dsp.fluctuation import RAW_EVENT_DTYPE, FluctuationStage, WindowSpec
 from dsp.misfire import MisfireDetector, MisfireSettings
 
@@ -207,3 +207,182 @@ def analyse_ride(
         crank=CrankAngles.concat([a.crank, b.crank]),
         notes=a.notes + b.notes,
     )
+
+
+# --- whole-run summaries over the event array (pure functions) ---------------------------------
+
+#: Misfire pattern labels of :func:`misfire_patterns`.
+PATTERNS = ("isolated", "consecutive", "alternating", "random")
+
+
+def _counted(events: np.ndarray) -> np.ndarray:
+    """Events that count for rates: fired or misfire (not masked, fuel cut or unusable)."""
+    v = events["verdict"]
+    return (v == FIRED) | (v == MISFIRE)
+
+
+def misfire_counts(events: np.ndarray, n_cyl: int) -> dict[str, np.ndarray]:
+    """Per-cylinder counts of each verdict and the misfire rate.
+
+    Parameters
+    ----------
+    events : ndarray of EVENT_DTYPE
+    n_cyl : int
+
+    Returns
+    -------
+    dict with (n_cyl,) arrays ``fired``, ``misfire``, ``masked``, ``unusable``, ``fuel_cut`` (int)
+    and ``rate_pct`` (misfires / (fired + misfires), %, NaN when nothing was counted), and the
+    totals under ``total_misfire`` and ``total_rate_pct``.
+    """
+    if int(n_cyl) < 1:
+        raise InputError(f"n_cyl must be >= 1, got {n_cyl!r}")
+    cyl = events["cylinder"].astype(np.int64) - 1
+    if cyl.size and (cyl.min() < 0 or cyl.max() >= n_cyl):
+        raise InputError(f"cylinder numbers {cyl.min() + 1}..{cyl.max() + 1} outside 1..{n_cyl}")
+    out: dict[str, np.ndarray] = {}
+    for code, name in VERDICT_NAMES.items():
+        out[name] = np.bincount(cyl[events["verdict"] == code], minlength=n_cyl)
+    denom = out["fired"] + out["misfire"]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out["rate_pct"] = np.where(denom > 0, 100.0 * out["misfire"] / denom, np.nan)
+    tot = int(denom.sum())
+    out["total_misfire"] = np.array(int(out["misfire"].sum()))
+    out["total_rate_pct"] = np.array(100.0 * out["misfire"].sum() / tot if tot else np.nan)
+    return out
+
+
+WINDOW_DTYPE = np.dtype(
+    [
+        ("start_cycle", "i8"),
+        ("t_start", "f8"),
+        ("t_end", "f8"),
+        ("counted", "i8"),  # fired + misfire events in the window
+        ("misfires", "i8"),
+        ("rate_pct", "f8"),  # total misfire rate of the window, %
+        ("complete", "?"),  # the window spans its full number of revolutions
+    ]
+)
+
+
+def window_rates(
+    events: np.ndarray, *, revolutions: int = 200, engine: Engine
+) -> tuple[np.ndarray, np.ndarray]:
+    """Misfire rates over consecutive windows of crank revolutions.
+
+    The OBD misfire monitors count in 200-revolution windows (catalyst-damage level) and
+    1000-revolution windows (emission level); from memory of 13 CCR 1968.2(e)(3).
+
+    Parameters
+    ----------
+    events : ndarray of EVENT_DTYPE
+    revolutions : int, keyword-only
+        Crank revolutions per window.
+    engine : Engine, keyword-only
+
+    Returns
+    -------
+    windows : ndarray of :data:`WINDOW_DTYPE`, one per window that holds events
+    per_cylinder_pct : (n_windows, n_cyl) float, misfire rate per cylinder in each window, %
+    """
+    if int(revolutions) != revolutions or revolutions < 1:
+        raise InputError(f"revolutions must be a positive integer, got {revolutions!r}")
+    revs_per_cycle = engine.cycle_deg / 360.0
+    cycles_per_window = revolutions / revs_per_cycle
+    n = engine.n_cylinders
+    if not events.size:
+        return np.zeros(0, WINDOW_DTYPE), np.zeros((0, n))
+    win = np.floor(events["cycle"] / cycles_per_window).astype(np.int64)
+    uw, inv = np.unique(win, return_inverse=True)
+    counted = _counted(events)
+    mis = events["verdict"] == MISFIRE
+    out = np.zeros(uw.size, WINDOW_DTYPE)
+    out["start_cycle"] = np.ceil(uw * cycles_per_window).astype(np.int64)
+    out["counted"] = np.bincount(inv, counted, minlength=uw.size)
+    out["misfires"] = np.bincount(inv, mis, minlength=uw.size)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out["rate_pct"] = np.where(out["counted"] > 0, 100.0 * out["misfires"] / out["counted"], np.nan)
+    t = events["t"]
+    out["t_start"] = [np.nanmin(t[inv == i]) if np.isfinite(t[inv == i]).any() else np.nan
+                      for i in range(uw.size)]
+    out["t_end"] = [np.nanmax(t[inv == i]) if np.isfinite(t[inv == i]).any() else np.nan
+                    for i in range(uw.size)]
+    span = np.bincount(inv, minlength=uw.size)
+    out["complete"] = span >= 0.98 * cycles_per_window * n
+    cyl = events["cylinder"].astype(np.int64) - 1
+    key = inv * n + cyl
+    c_cnt = np.bincount(key, counted, minlength=uw.size * n).reshape(uw.size, n)
+    c_mis = np.bincount(key, mis, minlength=uw.size * n).reshape(uw.size, n)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        per = np.where(c_cnt > 0, 100.0 * c_mis / c_cnt, np.nan)
+    return out, per
+
+
+def misfire_patterns(events: np.ndarray, *, near_events: int | None = None) -> dict[str, object]:
+    """Classify each misfire by its neighbours.
+
+    * ``consecutive``: the same cylinder also misfired in the previous or next cycle;
+    * ``alternating``: misfires on one cylinder every other cycle (k-2, k+2 cycles), or on
+      different cylinders in turn, with no consecutive one;
+    * ``isolated``: no other misfire within ``near_events`` events (default 4 cycles);
+    * ``random``: the rest (other misfires nearby, no pattern).
+
+    Returns
+    -------
+    dict with ``labels`` (one per misfire, in event order), ``counts`` per label, and
+    ``index`` (positions of the misfires in ``events``).
+    """
+    cyl = events["cylinder"].astype(np.int64)
+    n = int(cyl.max()) if cyl.size else 1
+    near = 4 * n if near_events is None else int(near_events)
+    mis_at = np.flatnonzero(events["verdict"] == MISFIRE)
+    cycles = events["cycle"]
+    key = set(zip(cyl[mis_at].tolist(), cycles[mis_at].tolist()))
+    labels = []
+    for i in mis_at:
+        c, k = int(cyl[i]), int(cycles[i])
+        if (c, k - 1) in key or (c, k + 1) in key:
+            labels.append("consecutive")
+            continue
+        lo, hi = np.searchsorted(mis_at, [i - near, i + near + 1])
+        others = mis_at[lo:hi]
+        others = others[others != i]
+        if others.size == 0:
+            labels.append("isolated")
+        elif (c, k - 2) in key or (c, k + 2) in key or _takes_turns(i, others, cyl):
+            labels.append("alternating")
+        else:
+            labels.append("random")
+    counts = {p: labels.count(p) for p in PATTERNS}
+    return {"labels": labels, "counts": counts, "index": mis_at}
+
+
+def _takes_turns(i: int, others: np.ndarray, cyl: np.ndarray) -> bool:
+    before = others[others < i]
+    after = others[others > i]
+    return bool(
+        before.size and after.size and cyl[before[-1]] != cyl[i] and cyl[after[0]] != cyl[i]
+    )
+
+
+def cylinder_contribution(events: np.ndarray) -> dict[int, dict[str, float]]:
+    """Relative contribution of each cylinder over the fired events.
+
+    ``contribution`` of an event is its work over the engine's current typical work (1.0 =
+    average cylinder). Returns per cylinder the median ``contribution``, its robust spread and
+    the number of fired events; a weak cylinder that still fires shows a median below 1.
+    """
+    fired = (events["verdict"] == FIRED) & np.isfinite(events["contribution"])
+    out: dict[int, dict[str, float]] = {}
+    for c in np.unique(events["cylinder"]):
+        x = events["contribution"][fired & (events["cylinder"] == c)]
+        if x.size:
+            med = float(np.median(x))
+            out[int(c)] = {
+                "median": med,
+                "spread": 1.4826 * float(np.median(np.abs(x - med))),
+                "n": float(x.size),
+            }
+        else:
+            out[int(c)] = {"median": float("nan"), "spread": float("nan"), "n": 0.0}
+    return out
