@@ -61,6 +61,19 @@ def test_batches(tmp_path):
         assert r.notes == []
 
 
+def test_read_until_keeps_step_with_a_clock(tmp_path):
+    path = tmp_path / "u.accraw"
+    recs = [(float(t), bytes([t])) for t in (1, 2, 3, 5, 8, 13)]
+    _write(path, recs)
+    with CaptureReader(path) as r:
+        assert r.read_until(0.5) == []
+        assert r.read_until(3.0) == recs[:3]
+        assert r.read_until(4.0) == []
+        assert r.read(1) == [recs[3]]
+        assert r.read_until(100.0) == recs[4:]
+        assert r.read_until(200.0) == [] and r.read() == []
+
+
 @pytest.mark.parametrize("cut", range(1, 16))
 def test_cut_mid_record_keeps_whole_records(tmp_path, cut):
     path = tmp_path / "c.accraw"

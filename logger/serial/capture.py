@@ -128,6 +128,7 @@ class CaptureReader:
         self.backwards = 0
         self.done = False
         self._last_time: float | None = None
+        self._peeked: Record | None = None  # read ahead by read_until, not yet delivered
 
     def _note(self, text: str) -> None:
         if len(self.notes) < 20:
@@ -136,12 +137,34 @@ class CaptureReader:
     def read(self, max_records: int | None = None) -> list[Record]:
         """The next records (at most ``max_records``; all the rest when None). Empty at the end."""
         out: list[Record] = []
-        while not self.done and (max_records is None or len(out) < max_records):
-            rec = self._next()
+        while max_records is None or len(out) < max_records:
+            rec = self._take()
             if rec is None:
                 break
             out.append(rec)
         return out
+
+    def read_until(self, host_time: float) -> list[Record]:
+        """The next records whose host time is at most ``host_time`` (s), to keep a replay of
+        the serial stream in step with the CAN log. A record with a time going backwards is
+        delivered with its neighbours (arrival order is the order that matters)."""
+        out: list[Record] = []
+        while True:
+            rec = self._take()
+            if rec is None:
+                return out
+            if rec[0] > host_time:
+                self._peeked = rec
+                return out
+            out.append(rec)
+
+    def _take(self) -> Record | None:
+        if self._peeked is not None:
+            rec, self._peeked = self._peeked, None
+            return rec
+        if self.done:
+            return None
+        return self._next()
 
     def _next(self) -> Record | None:
         start = self.offset
@@ -183,7 +206,7 @@ class CaptureReader:
 
     def __iter__(self) -> Iterator[Record]:
         while True:
-            rec = self._next()
+            rec = self._take()
             if rec is None:
                 return
             yield rec
