@@ -250,3 +250,31 @@ def test_misfire_verdict_filter(tmp_path):
         two = st.events(run, cylinder=2)
     assert len(mis) == 40 and set(mis["verdict"].tolist()) == {MISFIRE}
     assert set(two["cylinder"].tolist()) == {2} and len(two) == 400
+
+
+def test_dsp_results_are_stored_as_they_come(tmp_path):
+    """window_rates and interval_check output go in without reshaping (real dsp functions)."""
+    from dsp.analysis import window_rates
+    from dsp.intervals import interval_check
+
+    rig = m1_like_rig()
+    ev = make_events(1500, misfire_every={2: 10}, interval_offset={2: 1.0}, special=False)
+    windows, per_cyl = window_rates(ev, revolutions=1000, engine=rig.engine)
+    results = interval_check(ev, rig.engine, tolerance_deg=3.0)
+    with Store.open(tmp_path / "p.db") as st:
+        run = st.begin_run(rig)
+        st.add_window_rates(run, "rev1000", windows, per_cyl)
+        st.add_intervals(run, results)
+        st.commit()
+        whole = [w for w in st.windows(run, kind="rev1000") if w["cylinder"] == 0]
+        cyl2 = [w for w in st.windows(run, kind="rev1000") if w["cylinder"] == 2]
+        iv = {(i["from_cyl"], i["to_cyl"]): i for i in st.intervals(run)}
+    # 1000 revolutions of a 4-stroke = 500 cycles (common practice) -> 3 windows of 1000 events
+    assert [w["events"] for w in whole] == [1000, 1000, 1000]
+    assert [w["misfires"] for w in whole] == [50, 50, 50]
+    assert [w["idx"] for w in cyl2] == [0, 1, 2]
+    assert all(w["rate"] == pytest.approx(10.0) for w in cyl2)  # every 10th cycle, arithmetic
+    # RIG.md: 270 deg from cylinder 1 to 2; the synthetic offset of +1 deg is seen
+    assert iv[(1, 2)]["expected_deg"] == 270.0
+    assert iv[(1, 2)]["observed_deg"] == pytest.approx(271.0, abs=0.1)
+    assert iv[(2, 1)]["observed_deg"] == pytest.approx(450.0, abs=0.1)

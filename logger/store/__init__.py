@@ -10,8 +10,9 @@ What the pipeline calls, in order::
                              sources=[(path, sha, kind), ...], started_at=...)  # "incomplete"
     store.add_events(run_id, events)                      # EVENT_DTYPE arrays, any number of times
     store.commit()                                        # at least once a second when live
-    store.add_windows(run_id, rows, kind="rev200")        # and rev1000 / rpm-band
-    store.add_intervals(run_id, rows)
+    store.add_window_rates(run_id, "rev200", *dsp.analysis.window_rates(ev, revolutions=200, ...))
+    store.add_windows(run_id, rows, kind="rpm-band")      # any other windows, as rows
+    store.add_intervals(run_id, dsp.intervals.interval_check(...))   # IntervalResult list as is
     store.add_vibration(run_id, rows)
     store.add_order_map(run_id, sensor=..., rpm_lo=..., rpm_hi=..., orders=..., amplitude=...)
     store.save_tooth_errors(rig.name, wheel_key, errors, run_id=run_id, n_revs=...)

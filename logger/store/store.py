@@ -28,8 +28,14 @@ _INTERVAL_COLS = (
     "from_cyl", "to_cyl", "expected_deg", "observed_deg", "stderr_deg", "n", "flagged",
 )
 _VIBRATION_COLS = ("sensor", "rpm_lo", "rpm_hi", "axis", "weighting", "rms", "n")
-# Input names that are SQL keywords are stored under a short column name.
-_ALIASES = {"index": "idx", "order": "ord"}
+# Input names that are SQL keywords are stored under a short column name; the others are the
+# field names of the dsp results (dsp.analysis.WINDOW_DTYPE, dsp.intervals.IntervalResult).
+_ALIASES = {
+    "index": "idx", "order": "ord", "counted": "events", "rate_pct": "rate",
+    "from_cylinder": "from_cyl", "to_cylinder": "to_cyl", "uncertainty_deg": "stderr_deg",
+}
+# Fields of those results that are accepted and deliberately not stored.
+_NOT_STORED = {"start_cycle", "complete", "spread_deg"}
 
 
 def sha256_file(path: str | os.PathLike, *, block: int = 1 << 20) -> str:
@@ -98,10 +104,12 @@ def _records(rows: Any, columns: Sequence[str], what: str) -> list[tuple]:
     misspelt field does not vanish silently.
     """
     if isinstance(rows, np.ndarray) and rows.dtype.names:
-        cols = {_ALIASES.get(n, n): rows[n].tolist() for n in rows.dtype.names}
+        cols = {_ALIASES.get(n, n): rows[n].tolist() for n in rows.dtype.names
+                if n not in _NOT_STORED}
         return _from_columns(cols, columns, what, len(rows))
     if isinstance(rows, Mapping):
-        cols = {_ALIASES.get(k, k): list(np.asarray(v).tolist()) for k, v in rows.items()}
+        cols = {_ALIASES.get(k, k): list(np.asarray(v).tolist()) for k, v in rows.items()
+                if k not in _NOT_STORED}
         lengths = {len(v) for v in cols.values()}
         if len(lengths) > 1:
             raise StoreError(f"{what}: columns have different lengths {sorted(lengths)}")
@@ -112,7 +120,7 @@ def _records(rows: Any, columns: Sequence[str], what: str) -> list[tuple]:
             row = asdict(row)
         if not isinstance(row, Mapping):
             raise StoreError(f"{what}: row {i} is a {type(row).__name__}, expected a mapping")
-        row = {_ALIASES.get(k, k): v for k, v in row.items()}
+        row = {_ALIASES.get(k, k): v for k, v in row.items() if k not in _NOT_STORED}
         unknown = set(row) - set(columns)
         if unknown:
             raise StoreError(
@@ -323,19 +331,50 @@ class Store:
         Fields: ``kind`` ("rev200", "rev1000" or "rpm-band"; or give ``kind=`` for all rows),
         ``index`` (window number) or ``band`` ("LO-HI" rpm), ``cylinder`` (0 = all),
         ``t_start``, ``t_end`` (s), ``events`` (counted events), ``misfires``, ``rate`` (%).
+        A :data:`dsp.analysis.WINDOW_DTYPE` array works as is (whole-engine rows, numbered in
+        order); see also :meth:`add_window_rates`.
         """
         recs = _records(rows, _WINDOW_COLS, "add_windows")
         if kind is not None:
             recs = [(kind, *r[1:]) for r in recs]
+        # Rows without a cylinder (the whole-engine windows of dsp.analysis) are cylinder 0.
+        recs = [(*r[:3], 0 if r[3] is None else r[3], *r[4:]) for r in recs]
+        if recs and all(r[1] is None and r[2] is None for r in recs):
+            recs = [(r[0], i, *r[2:]) for i, r in enumerate(recs)]
         bad = {r[0] for r in recs} - {"rev200", "rev1000", "rpm-band"}
         if bad:
             raise StoreError(f"add_windows: unknown kind(s) {sorted(map(str, bad))}, "
                              "expected rev200, rev1000 or rpm-band")
         return self._insert("windows", _WINDOW_COLS, run_id, recs)
 
+    def add_window_rates(self, run_id: int, kind: str, windows: np.ndarray,
+                         per_cylinder_pct: np.ndarray | None = None) -> int:
+        """Store the result of :func:`dsp.analysis.window_rates` as it comes.
+
+        ``windows`` (WINDOW_DTYPE) become cylinder-0 rows; ``per_cylinder_pct[w, c]`` becomes
+        the rate of cylinder c + 1 in window w (its counts are not known, so they stay NULL).
+        Window numbers are the row positions (windows holding events, in order).
+        """
+        n = self.add_windows(run_id, windows, kind=kind)
+        if per_cylinder_pct is None:
+            return n
+        pct = np.asarray(per_cylinder_pct, dtype=float)
+        if pct.ndim != 2 or pct.shape[0] != len(windows):
+            raise StoreError(f"add_window_rates: per_cylinder_pct has shape {pct.shape}, "
+                             f"expected ({len(windows)}, n_cylinders)")
+        t0 = np.asarray(windows["t_start"], dtype=float)
+        t1 = np.asarray(windows["t_end"], dtype=float)
+        rows = [{"idx": w, "cylinder": c + 1, "rate": pct[w, c], "t_start": t0[w],
+                 "t_end": t1[w]} for w in range(pct.shape[0]) for c in range(pct.shape[1])]
+        return n + self.add_windows(run_id, rows, kind=kind)
+
     def add_intervals(self, run_id: int, rows: Any) -> int:
         """Append firing-interval checks: ``from_cyl``, ``to_cyl`` (1-based), ``expected_deg``,
-        ``observed_deg``, ``stderr_deg``, ``n`` (intervals averaged), ``flagged`` (0/1)."""
+        ``observed_deg``, ``stderr_deg``, ``n`` (intervals averaged), ``flagged`` (0/1).
+
+        A list of :class:`dsp.intervals.IntervalResult` works as is (``from_cylinder``,
+        ``to_cylinder`` and ``uncertainty_deg`` are taken for the short names; ``spread_deg`` is
+        not stored)."""
         return self._insert(
             "intervals", _INTERVAL_COLS, run_id, _records(rows, _INTERVAL_COLS, "add_intervals")
         )
