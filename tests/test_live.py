@@ -85,3 +85,43 @@ def test_caution_lines_come_first():
     joined = " ".join(CAUTION_LINES).lower()
     for must in ("closed course", "never operate the laptop", "secure", "catalyst", "local rules"):
         assert must in joined
+
+
+def test_tally_counts_and_the_rolling_200_rev_window():
+    import numpy as np
+
+    from logger.chunks import StreamHealth
+    from logger.live import LiveTally
+    from test_store_fill import m1_like_rig, make_events
+
+    rig = m1_like_rig()
+    # Cylinder 2 misfires on every 10th cycle for the first 1000 cycles, then never.
+    ev = make_events(1500, misfire_every={2: 10}, interval_offset={2: 1.0}, special=False)
+    late = ev["cycle"] >= 1000
+    ev["verdict"][late] = 0
+    tally = LiveTally(rig.engine)
+    for chunk in np.array_split(ev, 37):  # the pipeline's steps are of any size
+        tally.push_events(chunk)
+    tally.set_health(StreamHealth(can_frames=500, can_lost_frames=3,
+                                  serial_corrupt={"bar_left": 4},
+                                  serial_reconnects={"bar_left": 1}))
+    tally.set_vibration("bar_left", 7.0)
+    s = tally.state(60.0)
+    c1, c2 = s.cylinders
+    assert (c1.events, c1.misfires) == (1500, 0)
+    assert (c2.events, c2.misfires) == (1500, 100)
+    # The last 200 revolutions are the last 100 cycles of a 4-stroke (common practice): clean.
+    assert c2.rate200_pct == 0.0
+    pairs = {(i.from_cyl, i.to_cyl): i for i in s.intervals}
+    assert pairs[(1, 2)].expected_deg == 270.0  # RIG.md, 270° crank
+    assert abs(pairs[(1, 2)].observed_deg - 271.0) < 0.1
+    assert (s.can_lost, s.serial_crc_errors, s.serial_reconnects) == (3, 4, 1)
+    assert s.rpm == ev["rpm"][-1] and s.vibration == {"bar_left": 7.0}
+
+    # Rolling window while misfiring: the last 100 cycles before cycle 1000 hold 10 misfires.
+    t2 = LiveTally(rig.engine)
+    t2.push_events(ev[ev["cycle"] < 1000])
+    assert t2.state(0.0).cylinders[1].rate200_pct == 10.0
+    assert len(t2._recent) == 200  # bounded: 100 cycles x 2 cylinders
+    text = _text(_display(alert_pct=2.0), t2.state(0.0))
+    assert "MISFIRE ALERT cyl 2: 10.0 %" in text

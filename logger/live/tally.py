@@ -1,0 +1,129 @@
+"""Running tallies that turn the pipeline's results into a :class:`LiveState`.
+
+The live pipeline pushes each step's events, the stream health and the vibration level; the
+display asks for :meth:`LiveTally.state` a few times a second. Memory is bounded: only the
+events of the last 200 revolutions (and a few hundred intervals per cylinder) are kept.
+"""
+
+from __future__ import annotations
+
+from collections import deque
+
+import numpy as np
+
+from dsp.engine import Engine
+from dsp.errors import InputError
+from dsp.events import FIRED, MISFIRE, UNUSABLE
+from logger.chunks import StreamHealth
+from logger.live.display import CylinderState, IntervalState, LiveState
+
+
+class LiveTally:
+    """Counts per cylinder, the latest 200-revolution window, recent firing intervals.
+
+    Parameters
+    ----------
+    engine : Engine
+        Gives the firing order (which interval ends at which cylinder) and the cycle length.
+    window_revs : int
+        Crank revolutions of the rolling misfire-rate window (200: the catalyst-damage window of
+        the OBD misfire monitors, from memory of 13 CCR 1968.2).
+    interval_events : int
+        Fired events per cylinder averaged for the observed interval.
+    interval_tolerance_deg : float
+        Shown with the interval check (the rig's ``limits.interval_tolerance_deg``).
+    """
+
+    def __init__(self, engine: Engine, *, window_revs: int = 200, interval_events: int = 200,
+                 interval_tolerance_deg: float = 3.0) -> None:
+        if window_revs < 1 or interval_events < 1:
+            raise InputError(f"window_revs and interval_events must be >= 1, got "
+                             f"{window_revs!r}, {interval_events!r}")
+        self.engine = engine
+        self.cycles_per_window = window_revs / (engine.cycle_deg / 360.0)
+        self.tolerance = float(interval_tolerance_deg)
+        n = engine.n_cylinders
+        self.events = np.zeros(n, dtype=np.int64)
+        self.misfires = np.zeros(n, dtype=np.int64)
+        self._recent: deque[tuple[int, int, int]] = deque()  # (cycle, cylinder, verdict)
+        self._intervals = {c: deque(maxlen=interval_events) for c in range(1, n + 1)}
+        self._expected: dict[int, float] = {}
+        self._contrib = {c: deque(maxlen=interval_events) for c in range(1, n + 1)}
+        self._last_verdict: int | None = None
+        self.rpm: float | None = None
+        self.throttle: float | None = None
+        self.health = StreamHealth()
+        self.vibration: dict[str, float] = {}
+        self.notes: list[str] = []
+
+    def push_events(self, events: np.ndarray) -> None:
+        """Add final events (dsp.events.EVENT_DTYPE) in the order they were decided."""
+        if not len(events):
+            return
+        for c, v in zip(events["cylinder"].tolist(), events["verdict"].tolist(), strict=True):
+            if v in (FIRED, MISFIRE):
+                self.events[c - 1] += 1
+                self.misfires[c - 1] += v == MISFIRE
+        fired = events[events["verdict"] == FIRED]
+        for row in fired[["cylinder", "interval_deg", "expected_interval_deg",
+                          "contribution"]].tolist():
+            c, obs, exp, con = row
+            if np.isfinite(obs):
+                self._intervals[c].append(obs)
+            if np.isfinite(exp):
+                self._expected[c] = exp
+            if np.isfinite(con):
+                self._contrib[c].append(con)
+        self._recent.extend(zip(events["cycle"].tolist(), events["cylinder"].tolist(),
+                                events["verdict"].tolist(), strict=True))
+        newest = self._recent[-1][0]
+        while self._recent and self._recent[0][0] <= newest - self.cycles_per_window:
+            self._recent.popleft()
+        self._last_verdict = int(events["verdict"][-1])
+        rpm = events["rpm"][np.isfinite(events["rpm"])]
+        if rpm.size:
+            self.rpm = float(rpm[-1])
+
+    def set_status(self, *, rpm: float | None = None, throttle: float | None = None) -> None:
+        if rpm is not None:
+            self.rpm = float(rpm)
+        if throttle is not None:
+            self.throttle = float(throttle)
+
+    def set_health(self, health: StreamHealth) -> None:
+        self.health = health
+
+    def set_vibration(self, sensor: str, weighted_rms: float) -> None:
+        self.vibration[sensor] = float(weighted_rms)
+
+    def state(self, elapsed_s: float, *, recording: str | None = None) -> LiveState:
+        n = self.engine.n_cylinders
+        cnt = np.zeros(n)
+        mis = np.zeros(n)
+        for _, c, v in self._recent:
+            if v in (FIRED, MISFIRE):
+                cnt[c - 1] += 1
+                mis[c - 1] += v == MISFIRE
+        cylinders = []
+        for c in range(1, n + 1):
+            rate = 100.0 * mis[c - 1] / cnt[c - 1] if cnt[c - 1] else None
+            contrib = float(np.mean(self._contrib[c])) if self._contrib[c] else None
+            cylinders.append(CylinderState(c, int(self.events[c - 1]), int(self.misfires[c - 1]),
+                                           rate, contrib))
+        order = list(self.engine.firing_order)
+        intervals = []
+        for k, c in enumerate(order):
+            if c not in self._expected:
+                continue
+            obs = float(np.mean(self._intervals[c])) if self._intervals[c] else None
+            intervals.append(IntervalState(order[k - 1], c, self._expected[c], obs))
+        h = self.health
+        return LiveState(
+            elapsed_s=float(elapsed_s), rpm=self.rpm, throttle_pct=self.throttle,
+            cylinders=cylinders, intervals=intervals, interval_tolerance_deg=self.tolerance,
+            vibration=dict(self.vibration), can_frames=h.can_frames, can_lost=h.can_lost_frames,
+            serial_crc_errors=sum(h.serial_corrupt.values()),
+            serial_reconnects=sum(h.serial_reconnects.values()),
+            synced=self._last_verdict != UNUSABLE, recording=recording,
+            notes=list(h.notes[-3:]) + self.notes[-3:],
+        )
