@@ -187,3 +187,34 @@ def test_no_reconnect_ends_the_thread_at_the_first_failure():
     finally:
         r.close()
         server.stop()
+
+
+def test_posix_tty_backend_on_a_pseudo_terminal():
+    # A pty is a real tty: pyserial's posix backend (termios, select) runs as on a USB adapter.
+    # Closing the master end plays the pulled adapter: the tty read fails with EIO.
+    import os
+    import tty
+
+    master, slave = os.openpty()
+    tty.setraw(slave)
+    path = os.ttyname(slave)
+    data, acc = _stream(100)
+    try:
+        # No reconnect: a freed pty number may be handed to another process at once.
+        with PortReader(path, 921600, reconnect=False, read_timeout_s=0.01) as r:
+            os.close(slave)
+            slave = -1
+            for i in range(0, len(data), 256):
+                os.write(master, data[i : i + 256])
+            recs = _collect(r, len(data))
+            os.close(master)
+            master = -1
+            assert _wait(lambda: r.gaps == 1)
+            recs += r.read_available()
+    finally:
+        for fd in (master, slave):
+            if fd >= 0:
+                os.close(fd)
+    assert recs[-1][1] == b"" and b"".join(d for _, d in recs) == data
+    frames, _ = parse_stream(M1, recs)
+    np.testing.assert_array_equal(frames.accel, acc / 2048.0)
