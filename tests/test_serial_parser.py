@@ -179,6 +179,9 @@ def test_frame_inside_failed_frame_is_found():
     got, counts = parse_stream(M1, [(0.0, bad + stream[16:])])
     np.testing.assert_array_equal(got.accel, acc[1:] / 2048.0)
     assert counts.corrupt == 1 and counts.skipped == 9
+    p = SerialFrameParser(M1)
+    p.push(bad + stream[16:], 0.0)
+    assert (p.good, p.corrupt, p.lost, p.skipped) == (2, 1, 1, 9)
 
 
 def test_frame_split_across_reads_gets_time_of_completing_read():

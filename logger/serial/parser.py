@@ -141,6 +141,23 @@ class SerialFrameParser:
         self._prev: tuple[int, int, int, int, float] | None = None
 
     # -- public ---------------------------------------------------------------------------
+    @property
+    def good(self) -> int:
+        return self.counts.good
+
+    @property
+    def corrupt(self) -> int:
+        return self.counts.corrupt
+
+    @property
+    def lost(self) -> int:
+        return self.counts.lost
+
+    @property
+    def skipped(self) -> int:
+        """Bytes that belong to no accepted frame."""
+        return self.counts.skipped
+
     def push(self, data: bytes, host_time: float) -> ParsedFrames:
         """Frames that complete in ``data`` (one port read that arrived at ``host_time`` s)."""
         return self.push_records([(host_time, data)])
