@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import os
 import sys
 from types import ModuleType
 
@@ -84,7 +85,12 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
         return 130
-    except BrokenPipeError:  # e.g. `crankbeat events 3 | head`
+    except BrokenPipeError:  # e.g. `crankbeat events 3 | head`: the reader has gone
+        try:
+            # Python flushes stdout again at exit; point it at nothing so that stays quiet.
+            os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        except (OSError, ValueError):
+            pass
         return 0
 
 
