@@ -93,7 +93,7 @@ def plot_windows(store: Store, run_id: int, ev: np.ndarray, path: Path,
         ax.bar(x, y, width=width, color=cyl_colour(c), label=f"cyl {c}")
     if alert_pct is not None:
         ax.axhline(alert_pct, color=MISFIRE_COLOUR, lw=1, ls="--",
-                   label=f"live alert level {alert_pct:g} %")
+                   label=f"rig alert level {alert_pct:g} %")
     ax.set_xlabel("1000-revolution window number")
     ax.set_ylabel("misfire rate [%]")
     ax.set_title(f"Misfire rate per 1000-revolution window ({source})")
