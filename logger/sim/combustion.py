@@ -156,3 +156,67 @@ def pressure(
     ramp = np.clip((phi - (IVC_DEG - 40.0)) / 40.0, 0.0, 1.0)
     intake = intake + (p_ivc - intake) * ramp
     return np.where(phi < IVC_DEG, intake, np.where(phi < EVO_DEG, closed, blow))
+
+
+class PressureKernel:
+    """:func:`pressure` at a fixed set of local angles, with the angle-only parts precomputed.
+
+    The volume terms of the polytropes depend on the angle alone, so they are computed once;
+    per event only the Wiebe fraction and a few products remain. Gives the same numbers as
+    :func:`pressure` (to rounding) at a fraction of the cost.
+    """
+
+    def __init__(self, phi_deg, *, engine: Engine, compression_ratio: float,
+                 n_compression: float = 1.32, n_expansion: float = 1.30,
+                 a: float = 5.0, m: float = 2.0) -> None:
+        self.phi = np.asarray(phi_deg, dtype=float)
+        self.engine, self.cr = engine, compression_ratio
+        self.nc, self.ne, self.a, self.m = n_compression, n_expansion, a, m
+        vol = cylinder_volume(self.phi, engine, compression_ratio)
+        self.v_ivc = float(cylinder_volume(IVC_DEG, engine, compression_ratio))
+        self.v_tdc = float(cylinder_volume(0.0, engine, compression_ratio))
+        v_evo = float(cylinder_volume(EVO_DEG, engine, compression_ratio))
+        n_me = n_compression + MOTORED_EXTRA_N
+        self.n_me = n_me
+        # motored = p_ivc * shape_mot; fired = (p_star * v50^ne) * vol^-ne
+        self.tdc_ratio = (self.v_ivc / self.v_tdc) ** n_compression
+        self.shape_mot = np.where(self.phi <= 0.0, (self.v_ivc / vol) ** n_compression,
+                                  self.tdc_ratio * (self.v_tdc / vol) ** n_me)
+        self.vol_ne = vol ** (-n_expansion)
+        self.evo_mot = self.tdc_ratio * (self.v_tdc / v_evo) ** n_me
+        self.evo_ne = v_evo ** (-n_expansion)
+        self.blow = np.exp(-np.clip(self.phi - EVO_DEG, 0.0, None) / BLOWDOWN_DEG)
+        self.ease = np.clip((self.phi + 360.0) / 40.0, 0.0, 1.0)
+        self.ramp = np.clip((self.phi - (IVC_DEG - 40.0)) / 40.0, 0.0, 1.0)
+        self.region = np.where(self.phi < IVC_DEG, 0, np.where(self.phi < EVO_DEG, 1, 2))
+        self.x50 = wiebe_50_offset(a=a, m=m)
+
+    def event_constants(self, *, p_ivc, heat_j, start_deg, duration_deg):
+        """Per-event constants (fired polytrope constant, pressure at EVO), any shape."""
+        phi50 = start_deg + self.x50 * duration_deg
+        v50 = cylinder_volume(phi50, self.engine, self.cr)
+        shape50 = np.where(phi50 <= 0.0, (self.v_ivc / v50) ** self.nc,
+                           self.tdc_ratio * (self.v_tdc / v50) ** self.n_me)
+        k_fired = (p_ivc * shape50 + (GAMMA - 1.0) * heat_j / v50) * v50**self.ne
+        z_evo = np.clip((EVO_DEG - start_deg) / duration_deg, 0.0, None)
+        x_evo = 1.0 - np.exp(-self.a * z_evo ** (self.m + 1.0))
+        p_mot_evo = p_ivc * self.evo_mot
+        p_evo = p_mot_evo + x_evo * (k_fired * self.evo_ne - p_mot_evo)
+        return k_fired, p_evo
+
+    def __call__(self, *, p_manifold, p_ivc, start_deg, duration_deg, k_fired, p_evo,
+                 cols=slice(None)) -> np.ndarray:
+        """Pressure, Pa, at the kernel's angles ``[cols]``; parameters broadcast against them.
+
+        ``k_fired`` and ``p_evo`` come from :meth:`event_constants`.
+        """
+        phi = self.phi[cols]
+        z = np.clip((phi - start_deg) / duration_deg, 0.0, None)
+        x = 1.0 - np.exp(-self.a * z ** (self.m + 1.0))
+        motored = p_ivc * self.shape_mot[cols]
+        closed = motored + x * (k_fired * self.vol_ne[cols] - motored)
+        blow = P_EXHAUST + (p_evo - P_EXHAUST) * self.blow[cols]
+        intake = P_EXHAUST + (p_manifold - P_EXHAUST) * self.ease[cols]
+        intake = intake + (p_ivc - intake) * self.ramp[cols]
+        region = self.region[cols]
+        return np.where(region == 0, intake, np.where(region == 1, closed, blow))

@@ -28,7 +28,7 @@ from dsp.engine import Engine
 from dsp.errors import InputError
 from dsp.kinematics import equivalent_inertia
 from logger.sim import maps
-from logger.sim.firing import GRID_STEP_DEG, N_GRID, EventParams, cylinder_torque
+from logger.sim.firing import GRID_STEP_DEG, N_GRID, GasTorque
 from logger.sim.profile import Profile, overall_ratio
 from logger.sim.scenario import Scenario
 
@@ -63,6 +63,7 @@ class SlowTrack:
     engaged: np.ndarray
     throttle: np.ndarray  # % at the cycle start
     rough: np.ndarray
+    nominal_work: np.ndarray  # J, the cycle's gas work without scatter or faults
 
 
 def displacement(engine: Engine) -> float:
@@ -94,7 +95,8 @@ def slow_loop(
 ) -> SlowTrack:
     """Run the mean-speed loop over ``n_cycles`` working cycles.
 
-    ``works(c, rpm, throttle) -> (W, M, V)`` gives the cycle's gas-work summaries; ``decide(c, t,
+    ``works(c, rpm, throttle) -> (W, M, V, W_nominal)`` gives the cycle's gas-work summaries
+    (W_nominal: the work without scatter or faults, which the controller's feed-forward knows); ``decide(c, t,
     omega, targets)`` (first pass only) is called before it to fix the cycle's events. With
     ``t_end`` the loop stops early once the ride time reaches it.
     """
@@ -107,10 +109,18 @@ def slow_loop(
     eng_out = np.empty(n_cycles, dtype=bool)
     tg0 = profile.at(0.0)
     omega = float(tg0.omega_ref)
+    n_gears = len(phys.gear_ratios)
+    ratio_of = [math.nan] + [float(overall_ratio(phys, g)) for g in range(1, n_gears + 1)]
+    jv_of = [0.0] + [vehicle_inertia(scenario, g) for g in range(1, n_gears + 1)]
+    fa, fb, fc = phys.fmep_bar
+    fric_k = maps.BAR * vd / (4.0 * math.pi)
+    roll = phys.vehicle_mass_kg * G * phys.rolling_coeff
+    drag = 0.5 * RHO_AIR * phys.drag_area_m2
     energy = 0.5 * j_mean * omega**2
     t = 0.0
     integ = 0.0
     tf_prev = ts_prev = 0.0
+    nominal_w = np.empty(n_cycles)
     v = omega * phys.wheel_radius_m / float(overall_ratio(phys, max(int(tg0.gear), 1)))
     prev_state: tuple[int, bool] | None = None
     four_pi = 4.0 * math.pi
@@ -119,55 +129,58 @@ def slow_loop(
         if t_end is not None and t >= t_end:
             done = c
             break
-        tg = profile.at(t)
+        tg = profile.at_scalar(t)
         if decide is not None:
             decide(c, t, omega, tg)
-        w_c, m_c, v_c = works(c, omega * 30.0 / math.pi, float(tg.throttle))
+        w_c, m_c, v_c, w_nom = works(c, omega * 30.0 / math.pi, tg[2])
         if c == 0:
             # Start in balance at the target speed: the first cycle's load takes its gas work.
-            tf_prev = float(maps.fmep(omega * 30.0 / math.pi, phys.fmep_bar)) * vd / four_pi
+            krpm = omega * 30.0 / math.pi / 1000.0
+            tf_prev = (fa + fb * krpm + fc * krpm * krpm) * fric_k
             ts_prev = w_c / four_pi - tf_prev
             energy = 0.5 * j_mean * omega**2 - (m_c - (tf_prev + ts_prev) * H_RAD * (N_GRID - 1) / 2.0)
-        e_mean = energy + m_c - (tf_prev + ts_prev) * H_RAD * (N_GRID - 1) / 2.0
-        if e_mean <= 0.0:
-            raise InputError(
-                f"scenario {scenario.name!r}: the engine stalls at t={t:.2f} s "
-                "(throttle too low for the load or target speed)"
-            )
-        omega = math.sqrt(2.0 * e_mean / j_mean)
-        dt = four_pi / omega * (1.0 + 0.375 * v_c / e_mean**2)
-        tg = profile.at(t + 0.5 * dt)
-        gear, engaged = int(tg.gear), bool(tg.engaged)
-        rpm = omega * 30.0 / math.pi
-        tf = float(maps.fmep(rpm, phys.fmep_bar)) * vd / four_pi
-        if engaged:
-            ratio = float(overall_ratio(phys, gear))
-            j_v = vehicle_inertia(scenario, gear)
-            v = omega * phys.wheel_radius_m / ratio
-            force = phys.vehicle_mass_kg * G * phys.rolling_coeff + 0.5 * RHO_AIR * phys.drag_area_m2 * v * v
-            t_road = force * phys.wheel_radius_m / ratio
-        else:
-            j_v, t_road = 0.0, 0.0
-            force = phys.vehicle_mass_kg * G * phys.rolling_coeff + 0.5 * RHO_AIR * phys.drag_area_m2 * v * v
-            v = max(v - force / phys.vehicle_mass_kg * dt, 0.0)
-        j_tot = j_mean + j_v
-        kp = j_tot / CONTROL_TAU_S
-        ki = j_tot / (2.0 * CONTROL_TAU_S**2)
-        err = float(tg.omega_ref) - omega
-        rate = float(tg.omega_rate)
-        if prev_state != (gear, engaged):
-            # Bumpless start of each clutch/gear state: the integral takes the torque balance.
-            balance = w_c / four_pi - tf - t_road
-            integ = -(balance + kp * err) / ki
-            prev_state = (gear, engaged)
-        integ += err * dt
-        brake = -kp * err - ki * integ - j_tot * rate
-        t_load = t_road + brake
-        alpha = (w_c / four_pi - tf - t_load) / j_tot
-        ts = t_load + j_v * alpha
+        half = H_RAD * (N_GRID - 1) / 2.0
+        load = tf_prev + ts_prev
+        for _ in range(3):
+            # The cycle's mean speed depends on its own load, which depends on the mean speed:
+            # a few fixed-point rounds settle it (the load is smooth, two or three suffice).
+            e_mean = energy + m_c - load * half
+            if e_mean <= 0.0:
+                raise InputError(
+                    f"scenario {scenario.name!r}: the engine stalls at t={t:.2f} s "
+                    "(throttle too low for the load or target speed)"
+                )
+            omega = math.sqrt(2.0 * e_mean / j_mean)
+            dt = four_pi / omega * (1.0 + 0.375 * v_c / e_mean**2)
+            w_ref, rate, thr, gear, engaged, rough = profile.at_scalar(t + 0.5 * dt)
+            krpm = omega * 30.0 / math.pi / 1000.0
+            tf = (fa + fb * krpm + fc * krpm * krpm) * fric_k
+            if engaged:
+                ratio = ratio_of[gear]
+                j_v = jv_of[gear]
+                v_new = omega * phys.wheel_radius_m / ratio
+                t_road = (roll + drag * v_new * v_new) * phys.wheel_radius_m / ratio
+            else:
+                j_v, t_road = 0.0, 0.0
+                v_new = max(v - (roll + drag * v * v) / phys.vehicle_mass_kg * dt, 0.0)
+            j_tot = j_mean + j_v
+            kp = j_tot / CONTROL_TAU_S
+            ki = j_tot / (2.0 * CONTROL_TAU_S**2)
+            err = w_ref - omega
+            integ_new = (0.0 if prev_state != (gear, engaged) else integ) + err * dt
+            # The rider-and-dyno controller knows the nominal torque balance of the operating
+            # point (feed-forward) but not this cycle's scatter or faults: only its PI part does.
+            nominal = w_nom / four_pi - tf - t_road
+            brake = nominal - j_tot * rate - kp * err - ki * integ_new
+            t_load = t_road + brake
+            alpha = (w_c / four_pi - tf - t_load) / j_tot
+            ts = t_load + j_v * alpha
+            load = tf + ts
+        integ, v, prev_state = integ_new, v_new, (gear, engaged)
         out["t"][c], out["omega"][c], out["energy"][c] = t, omega, energy
         out["friction"][c], out["shaft"][c], out["v"][c] = tf, ts, v
-        out["throttle"][c], out["rough"][c] = float(tg.throttle), float(tg.rough)
+        out["throttle"][c], out["rough"][c] = thr, rough
+        nominal_w[c] = w_nom
         gear_out[c], eng_out[c] = gear, engaged
         energy += w_c - four_pi * (tf + ts)
         t += dt
@@ -177,31 +190,8 @@ def slow_loop(
     o = {k: v[:done] for k, v in out.items()}
     return SlowTrack(t=o["t"], omega=o["omega"], energy=o["energy"], friction=o["friction"],
                      shaft=o["shaft"], road_kmh=o["v"] * 3.6, gear=gear_out[:done],
-                     engaged=eng_out[:done], throttle=o["throttle"], rough=o["rough"])
-
-
-def gas_torque_block(
-    engine: Engine, scenario: Scenario, params: EventParams, fire_deg: np.ndarray, c0: int, c1: int
-) -> np.ndarray:
-    """Total gas torque on the grid of windows c0..c1-1, N·m, shape (c1 - c0, N_GRID + 1).
-
-    Column N_GRID repeats the next window's first point, for the trapezoid.
-    """
-    j = GRID_STEP_DEG * np.arange(N_GRID + 1)
-    cyc = np.arange(c0, c1)[:, None]
-    total = np.zeros((c1 - c0, N_GRID + 1))
-    for k in range(engine.n_cylinders):
-        phi = j - fire_deg[k]
-        shift = np.floor((phi + 360.0) / 720.0).astype(np.int64)
-        local = phi - 720.0 * shift
-        row = cyc + shift[None, :] + 1  # +1: params row 0 is cycle -1
-        total += cylinder_torque(
-            np.broadcast_to(local, row.shape), engine, scenario,
-            p_manifold=params.p_man[row, k], p_ivc=params.p_ivc[row, k],
-            heat_j=params.heat[row, k], start_deg=params.start[row, k],
-            duration_deg=params.duration[row, k],
-        )
-    return total
+                     engaged=eng_out[:done], throttle=o["throttle"], rough=o["rough"],
+                     nominal_work=nominal_w[:done])
 
 
 def cumulative(y: np.ndarray) -> np.ndarray:
@@ -211,12 +201,13 @@ def cumulative(y: np.ndarray) -> np.ndarray:
     return out
 
 
-def cycle_works(engine, scenario, params, fire_deg, n_cycles: int) -> CycleWorks:
+def cycle_works(gas: GasTorque, n_cycles: int) -> CycleWorks:
+    """Per-window gas-work summaries from the exact traces (for the second pass)."""
     w, m, v = (np.empty(n_cycles) for _ in range(3))
     ramp = np.arange(N_GRID) / N_GRID
     for c0 in range(0, n_cycles, BLOCK_CYCLES):
         c1 = min(c0 + BLOCK_CYCLES, n_cycles)
-        g = cumulative(gas_torque_block(engine, scenario, params, fire_deg, c0, c1))
+        g = cumulative(gas.block(c0, c1))
         w[c0:c1] = g[:, -1]
         m[c0:c1] = g[:, :-1].mean(axis=1)
         v[c0:c1] = (g[:, :-1] - g[:, -1:] * ramp).var(axis=1)
@@ -233,7 +224,7 @@ class FineBlock:
     gas_torque: np.ndarray  # N·m
 
 
-def fine_blocks(engine, scenario, params, fire_deg, track: SlowTrack):
+def fine_blocks(engine: Engine, scenario: Scenario, gas: GasTorque, track: SlowTrack):
     """Yield :class:`FineBlock` for consecutive blocks of windows (the exact time base)."""
     jtab = inertia_table(engine)
     n = len(track.energy)
@@ -241,7 +232,7 @@ def fine_blocks(engine, scenario, params, fire_deg, track: SlowTrack):
     steps = np.arange(N_GRID + 1) * H_RAD
     for c0 in range(0, n, BLOCK_CYCLES):
         c1 = min(c0 + BLOCK_CYCLES, n)
-        tq = gas_torque_block(engine, scenario, params, fire_deg, c0, c1)
+        tq = gas.block(c0, c1)
         load = (track.friction[c0:c1] + track.shaft[c0:c1])[:, None]
         energy = track.energy[c0:c1, None] + cumulative(tq) - load * steps
         if np.any(energy <= 0.0):

@@ -172,3 +172,53 @@ class WorkTable:
             w += w0 + burn * (w1 - w0)
             m += m0 + burn * (m1 - m0)
         return w, m, self._bl(self.v, i, j, u, v)
+
+
+class GasTorque:
+    """Total gas torque of all cylinders on the crank-window grid, for blocks of windows.
+
+    Window c covers crank angles [720c, 720c + 720] on the simulation grid (N_GRID + 1 points,
+    the last repeating the next window's first). Each cylinder's local angle along a window is
+    the same vector for every window, so its volume terms are computed once per cylinder.
+    """
+
+    def __init__(self, engine: Engine, scenario: Scenario, params: EventParams,
+                 fire_deg: np.ndarray) -> None:
+        from dsp.kinematics import gas_torque_factor
+
+        phys = scenario.physics
+        j = GRID_STEP_DEG * np.arange(N_GRID + 1)
+        area = np.pi * engine.bore_m**2 / 4.0
+        self.params = params
+        self.cyl = []
+        for k in range(engine.n_cylinders):
+            phi = j - fire_deg[k]
+            shift = np.floor((phi + 360.0) / 720.0).astype(np.int64)
+            local = phi - 720.0 * shift
+            kern = combustion.PressureKernel(
+                local, engine=engine, compression_ratio=phys.compression_ratio,
+                n_compression=phys.polytropic_compression, n_expansion=phys.polytropic_expansion,
+                a=phys.wiebe_a, m=phys.wiebe_m,
+            )
+            lever = area * gas_torque_factor(local, r=engine.crank_radius_m, l=engine.conrod_m)
+            kf, pe = kern.event_constants(p_ivc=params.p_ivc[:, k], heat_j=params.heat[:, k],
+                                          start_deg=params.start[:, k],
+                                          duration_deg=params.duration[:, k])
+            # Columns where the window passes from one event of the cylinder to the next.
+            cuts = np.flatnonzero(np.diff(shift)) + 1
+            pieces = np.split(np.arange(N_GRID + 1), cuts)
+            self.cyl.append((k, kern, lever, kf, pe, [(p[0], p[-1] + 1, int(shift[p[0]])) for p in pieces]))
+
+    def block(self, c0: int, c1: int) -> np.ndarray:
+        """Gas torque of windows c0..c1-1, N·m, shape (c1 - c0, N_GRID + 1)."""
+        pr = self.params
+        total = np.zeros((c1 - c0, N_GRID + 1))
+        for k, kern, lever, kf, pe, pieces in self.cyl:
+            for a, b, sh in pieces:
+                rows = np.arange(c0, c1) + sh + 1  # params row 0 is cycle -1
+                col = lambda arr: arr[rows, k][:, None]  # noqa: E731
+                p = kern(p_manifold=col(pr.p_man), p_ivc=col(pr.p_ivc), start_deg=col(pr.start),
+                         duration_deg=col(pr.duration), k_fired=kf[rows][:, None],
+                         p_evo=pe[rows][:, None], cols=slice(a, b))
+                total[:, a:b] += (p - combustion.P_CRANKCASE) * lever[a:b]
+        return total

@@ -7,6 +7,7 @@ a shift between two gears the throttle is closed (the rider rolls off, the ECU m
 
 from __future__ import annotations
 
+import bisect
 from dataclasses import dataclass
 
 import numpy as np
@@ -66,6 +67,42 @@ class Profile:
         prev_gear = np.concatenate(([segs[0].gear], self.gear[:-1]))
         self.shift = self.gear != prev_gear
         self.shift_closed = self.shift & (self.gear > 0) & (prev_gear > 0)
+        self._start_list = self.start.tolist()
+        self._gear_list = [int(g) for g in self.gear]
+        self._w0, self._w1 = self.w0.tolist(), self.w1.tolist()
+        self._t0, self._t1 = self.thr0.tolist(), self.thr1.tolist()
+        self._shift, self._closed = self.shift.tolist(), self.shift_closed.tolist()
+        self._rough = self.rough.tolist()
+
+    def at_scalar(self, t: float) -> tuple[float, float, float, int, bool, float]:
+        """(omega_ref, omega_rate, throttle, gear, engaged, rough) at one time; plain floats.
+
+        Same values as :meth:`at`, for the per-cycle loop where numpy's per-call cost dominates.
+        """
+        start = self._start_list
+        i = min(max(bisect.bisect_right(start, t) - 1, 0), len(self._gear_list) - 1)
+        dur = start[i + 1] - start[i]
+        u = min(max((t - start[i]) / dur, 0.0), 1.0)
+        w0, w1, th0, th1 = self._w0[i], self._w1[i], self._t0[i], self._t1[i]
+        w = w0 + (w1 - w0) * u
+        rate = (w1 - w0) / dur
+        thr = th0 + (th1 - th0) * u
+        since = t - start[i]
+        gear = self._gear_list[i]
+        in_shift = self._shift[i] and since < SHIFT_S
+        if in_shift:
+            ts = min(SHIFT_S, dur)
+            prev_end = self._w1[max(i - 1, 0)]
+            w_after = w0 + (w1 - w0) * (ts / dur)
+            w = prev_end + (w_after - prev_end) * since / ts
+            rate = (w_after - prev_end) / ts
+            if self._closed[i]:
+                thr = 0.0
+            else:
+                prev_thr = self._t1[max(i - 1, 0)]
+                thr_after = th0 + (th1 - th0) * (ts / dur)
+                thr = prev_thr + (thr_after - prev_thr) * since / ts
+        return w, rate, thr, gear, gear > 0 and not in_shift, self._rough[i]
 
     def at(self, t) -> Targets:
         t = np.asarray(t, dtype=float)
@@ -83,6 +120,11 @@ class Profile:
         w_after = self.w0[i] + (self.w1[i] - self.w0[i]) * (ts / dur)
         w = np.where(in_shift, prev_end + (w_after - prev_end) * since / ts, w)
         rate = np.where(in_shift, (w_after - prev_end) / ts, rate)
+        # Pulling away the rider opens the throttle while letting the clutch in; shifting
+        # between gears he rolls it off.
+        prev_thr = self.thr1[np.maximum(i - 1, 0)]
+        thr_after = self.thr0[i] + (self.thr1[i] - self.thr0[i]) * (ts / dur)
+        thr = np.where(in_shift, prev_thr + (thr_after - prev_thr) * since / ts, thr)
         thr = np.where(in_shift & self.shift_closed[i], 0.0, thr)
         gear = self.gear[i]
         engaged = (gear > 0) & ~in_shift

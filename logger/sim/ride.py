@@ -112,17 +112,19 @@ def _first_pass(scenario, engine, profile, fire, noise, n_max):
 
     def decide(c, t, omega, tg):
         r = omega * 30.0 / math.pi
-        th = float(tg.throttle)
+        th = tg[2]
         fc = spec.fuel_cut and th < spec.fuel_cut_throttle and r > spec.fuel_cut_rpm
         for k in range(n_cyl):
             te = t + fire[k] / (6.0 * r)
             b, d = firing.fault_effects(scenario.faults, k + 1, c, te, float(u[c + 1, k]))
             burn[c + 1, k] = 0.0 if fc else b
             ret[c + 1, k] = d
-        rpm[c + 1], thr[c + 1], cut[c + 1], rough[c + 1] = r, th, fc, float(tg.rough) > 0
+        rpm[c + 1], thr[c + 1], cut[c + 1], rough[c + 1] = r, th, fc, tg[5] > 0
 
     def works(c, r, th):
-        return table.summary(r, th, burn[c + 1].tolist())
+        w, m, v = table.summary(r, th, burn[c + 1].tolist())
+        nominal = table.summary(r, th, [0.0 if cut[c + 1, 0] else 1.0] * n_cyl)[0]
+        return w, m, v, nominal
 
     track = crank.slow_loop(scenario, engine, profile, n_max, works=works, decide=decide,
                             t_end=scenario.duration + 0.3)
@@ -137,14 +139,14 @@ def _first_pass(scenario, engine, profile, fire, noise, n_max):
         retard=ret[rows], fuel_cut=cut[rows], rough=rough[rows],
         heat_noise=noise["combustion"][rows], phase_noise=noise["phase"][rows],
     )
-    return n, params
+    return track, params
 
 
-def _engine_alone(scenario, engine, params, fire, track, wheel, errors):
+def _engine_alone(scenario, engine, gas, track, wheel, errors):
     """Edges of the fine engine-alone solution: angle, tooth, rev, time, speed, gas torque."""
     parts: dict[str, list[np.ndarray]] = {k: [] for k in ("ang", "tooth", "rev", "t", "om", "tq")}
     cycle_t = [0.0]
-    for blk in crank.fine_blocks(engine, scenario, params, fire, track):
+    for blk in crank.fine_blocks(engine, scenario, gas, track):
         th = np.concatenate((blk.theta_deg[:, :-1].ravel(), blk.theta_deg[-1:, -1]))
         tt = np.concatenate((blk.t[:, :-1].ravel(), blk.t[-1:, -1]))
         om = np.concatenate((blk.omega[:, :-1].ravel(), blk.omega[-1:, -1]))
@@ -220,17 +222,19 @@ def simulate(
         "faults": np.random.default_rng(seeds["faults"]).random(shape),
     }
     say("planning", 0.0)
-    n, params = _first_pass(scenario, engine, profile, fire, noise, n_max)
+    first, params = _first_pass(scenario, engine, profile, fire, noise, n_max)
+    n = len(first.t)
     say("planning", 0.5)
-    w = crank.cycle_works(engine, scenario, params, fire, n)
+    gas = firing.GasTorque(engine, scenario, params, fire)
+    w = crank.cycle_works(gas, n)
     track = crank.slow_loop(
         scenario, engine, profile, n,
-        works=lambda c, r, th: (w.work[c], w.mean_cum[c], w.var_cum[c]),
+        works=lambda c, r, th: (w.work[c], w.mean_cum[c], w.var_cum[c], first.nominal_work[c]),
     )
     say("crank", 0.0)
     wheel = rig.wheel
     errors = wheel_errors(wheel, scenario.wheel.error_rms_deg, np.random.default_rng(seeds["wheel"]))
-    edges, cycle_t = _engine_alone(scenario, engine, params, fire, track, wheel, errors)
+    edges, cycle_t = _engine_alone(scenario, engine, gas, track, wheel, errors)
     say("driveline", 0.0)
     j_mean = float(np.mean(crank.inertia_table(engine)))
     t, omega, _, _ = driveline.apply(
