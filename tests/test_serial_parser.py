@@ -262,3 +262,23 @@ def test_struct_decoded_values():
     assert got.seq.tolist() == [4321]
     assert got.device_t.tolist() == pytest.approx([123.456789])
     np.testing.assert_array_equal(got.accel, [[-1.0, 0.5, 2047 / 2048]])
+
+
+def test_passing_candidate_overlapping_an_accepted_frame_is_refused():
+    # Built by hand on the sum8 board: frame A carries B's sync inside its payload (bytes 5..7),
+    # and five bytes after A complete a B whose sum8 passes. Greedy from the left keeps A.
+    a = encode_frames(ODD, None, np.array([0x7E81]), np.array([[0x5501, 2, 3]]))
+    assert a[5:8] == ODD.sync
+    tail = bytearray(4)
+    b_covered = a[8:14] + bytes(tail)  # B's bytes 3..12
+    tail.append(sum(b_covered) % 256)  # B's checksum at B[13]
+    b = a[5:] + bytes(tail)
+    assert sum(b[3:13]) % 256 == b[13]  # B really passes on its own
+    c = encode_frames(ODD, None, np.array([9]), np.array([[7, 8, 9]]))
+    stream = a + bytes(tail) + c
+    got, counts = parse_stream(ODD, [(0.0, stream)])
+    assert reference_scan(ODD, stream) == [0, 19]
+    np.testing.assert_allclose(got.accel, [[0x5501 * 1e-3, 2e-3, 3e-3], [7e-3, 8e-3, 9e-3]])
+    assert counts.skipped == 5
+    alone, _ = parse_stream(ODD, [(0.0, b)])
+    assert len(alone) == 1
