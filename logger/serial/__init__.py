@@ -1,5 +1,14 @@
 """Serial accelerometer boards: checksums, frame layouts, capture files, parsing, ports.
 
+The flow is ``PortReader`` (live) or ``CaptureReader`` (replay) -> records
+``(host_time, bytes)`` -> ``SerialDecoder.push(records)`` -> ``AccelBlock`` on the CAN time base.
+Conventions shared by every module here:
+
+- host times are ``time.time()`` seconds, the clock python-can stamps live CAN frames with;
+- a zero-length record marks a break in the link (adapter pulled, queue overflow): bytes on
+  its two sides are never joined into one frame; capture files keep these markers;
+- a frame's sync bytes sit at offset 0; fields, checksum kind and range come from the rig.
+
 The public surface is re-exported here; the modules are one concern each.
 """
 
