@@ -59,6 +59,7 @@ class LogFileSource(CanSource):
             raise FormatError(f"{self.path}: offset 0: not a readable CAN log "
                               f"({_one_line(exc)})") from None
         self.frames_read = 0
+        self._done = False
 
     def _position(self) -> float:
         f = getattr(self._reader, "file", None)
@@ -70,6 +71,8 @@ class LogFileSource(CanSource):
         return 0.0
 
     def progress(self) -> tuple[float, float | None]:
+        if self._done:
+            return float(self.size), float(self.size)
         return min(self._position(), float(self.size)), float(self.size)
 
     def batches(self, max_frames: int = 65536) -> Iterator[FrameBatch]:
@@ -98,6 +101,7 @@ class LogFileSource(CanSource):
                 yield FrameBatch.from_messages(msgs, range(first, first + len(msgs)),
                                                origin=self.path, index_kind="frame")
             if failed is not None or len(msgs) < max_frames:
+                self._done = True
                 return
 
     def close(self) -> None:

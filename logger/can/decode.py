@@ -1,0 +1,353 @@
+"""From CAN frames to the analysis' blocks: tooth periods, cam, status signals, stream health.
+
+:class:`FrameDecoder` knows nothing of the reference rig: every id, layout and role comes from
+the :class:`~logger.rig.model.Rig`. Whatever does not fit is counted in
+:class:`~logger.chunks.StreamHealth` and described by a one-line note naming the frame's place
+in its source (file line or frame number); nothing about it is fatal, and no good frame is lost
+because of a bad neighbour.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from logger.can.bits import decode_raw, decode_signal
+from logger.can.sources.base import FrameBatch
+from logger.chunks import StatusBlock, StreamHealth, TeethBlock
+from logger.rig.model import CanMessage, CanSignal, Rig
+
+#: Status roles, in the order their arrays appear in :class:`StatusBlock`.
+STATUS_ROLES = ("engine_speed", "throttle", "gear", "coolant", "road_speed")
+#: A gap longer than this on a message with a ``rate_hz`` is a time jump, s.
+JUMP_S = 0.5
+#: Notes kept per kind of problem (the counters keep counting).
+NOTES_PER_KIND = 5
+#: Frames after which a log with no frame of the rig is called out.
+NO_MATCH_AFTER = 1000
+#: Tooth periods needed before their plausibility is judged.
+PLAUSIBLE_AFTER = 200
+
+
+def _key(can_id: int | np.ndarray, extended: bool | np.ndarray) -> np.ndarray:
+    return np.asarray(can_id, np.uint64) | (np.asarray(extended, np.uint64) << np.uint64(32))
+
+
+def _id_text(msg: CanMessage) -> str:
+    return f"0x{msg.can_id:08X}" if msg.extended else f"0x{msg.can_id:03X}"
+
+
+@dataclass
+class _MsgState:
+    msg: CanMessage
+    key: int
+    counter: CanSignal | None
+    last_counter: int | None = None
+    last_ts: float | None = None
+
+
+class FrameDecoder:
+    """Decode CAN frame batches of one rig into teeth and status blocks.
+
+    Parameters
+    ----------
+    rig : Rig
+        Which ids carry which roles, with their bit layouts.
+
+    Attributes
+    ----------
+    health : StreamHealth
+        Cumulative counters and notes; shared with the stream, which adds the serial side.
+
+    Notes
+    -----
+    * Error and remote frames are counted and skipped; so are frames of ids the rig does not
+      describe, and frames whose DLC differs from the message's ``length``.
+    * A message's ``counter`` signal gives the frames lost before each frame,
+      ``(c - c_prev - 1) mod modulo`` (``modulo`` defaults to ``2**length``); a repeated value
+      counts no loss.
+    * When status roles live in several messages, every status frame makes one row and the
+      roles not in that frame hold their last value (NaN before their first frame). The same
+      holds for a cam signal kept in another message than the tooth periods.
+    """
+
+    def __init__(self, rig: Rig, *, health: StreamHealth | None = None) -> None:
+        self.rig = rig
+        self.health = health if health is not None else StreamHealth()
+        self._states = [
+            _MsgState(m, int(_key(m.can_id, m.extended)), m.signal_for("counter"))
+            for m in rig.messages
+        ]
+        self._teeth = rig.message_for("tooth_periods")
+        self._teeth_sig = self._teeth.signal_for("tooth_periods") if self._teeth else None
+        self._cam_msg = rig.message_for("cam_level")
+        self._cam_sig = self._cam_msg.signal_for("cam_level") if self._cam_msg else None
+        self._last_cam = -1
+        self._status = {r: rig.message_for(r) for r in STATUS_ROLES if rig.message_for(r)}
+        self._status_msgs = sorted({m.name for m in self._status.values()})
+        self._last_status = {r: np.nan for r in self._status}
+        self._frames_seen = 0
+        self._known_seen = 0
+        self._last_ts: float | None = None
+        self._noted: dict[str, int] = {}
+        self._unknown_ids: set[int] = set()
+        self._period_stats = [0, 0, 0]  # periods judged, bad ratios, too short
+        self._plausibility_noted = False
+        self._no_match_noted = False
+
+    # ----------------------------------------------------------------- notes
+    def _note(self, kind: str, text: str) -> None:
+        k = self._noted.get(kind, 0)
+        self._noted[kind] = k + 1
+        if k < NOTES_PER_KIND:
+            self.health.notes.append(text)
+
+    # ------------------------------------------------------------------ push
+    def push(self, batch: FrameBatch) -> tuple[TeethBlock, StatusBlock]:
+        """Decode one batch (frames in arrival order); state carries over to the next batch."""
+        h = self.health
+        m = len(batch)
+        base = self._frames_seen
+        self._frames_seen += m
+        h.can_frames += m
+        if m == 0:
+            return self.empty_teeth(), self.empty_status()
+        self._check_backwards(batch)
+
+        err = batch.is_error
+        rem = batch.is_remote & ~err
+        normal = ~err & ~rem
+        h.can_error_frames += int(err.sum())
+        h.can_remote_frames += int(rem.sum())
+        for i in np.flatnonzero(err)[:1]:
+            self._note("error", f"{batch.where(int(i))}: CAN error frame (counted, skipped)")
+        for i in np.flatnonzero(rem)[:1]:
+            self._note("remote", f"{batch.where(int(i))}: remote frame id "
+                       f"0x{int(batch.can_id[i]):X} (counted, skipped)")
+
+        keys = _key(batch.can_id, batch.extended)
+        known = np.zeros(m, bool)
+        rows: dict[str, np.ndarray] = {}
+        lost: dict[str, np.ndarray] = {}
+        for st in self._states:
+            sel = normal & (keys == np.uint64(st.key))
+            known |= sel
+            idx = np.flatnonzero(sel)
+            if len(idx):
+                rows[st.msg.name], lost_m = self._check_message(st, batch, idx)
+                if lost_m is not None:
+                    lost[st.msg.name] = lost_m
+        self._known_seen += int(known.sum())
+        unknown = np.flatnonzero(normal & ~known)
+        h.can_unknown_id += len(unknown)
+        if len(unknown):
+            self._note_unknown(batch, unknown, keys)
+        if (not self._no_match_noted and self._known_seen == 0
+                and self._frames_seen >= NO_MATCH_AFTER):
+            self._note_no_match(batch)
+
+        teeth = self._decode_teeth(batch, rows, lost, base)
+        status = self._decode_status(batch, rows)
+        if len(teeth):
+            self._judge_periods(teeth.periods, batch, rows[self._teeth.name])
+        return teeth, status
+
+    def finish(self) -> None:
+        """Call at the end of a stream: adds the notes that need the whole of it."""
+        if not self._no_match_noted and self._known_seen == 0 and self._frames_seen > 0:
+            self._note_no_match(None)
+        if not self._plausibility_noted and self._period_stats[0] > 0:
+            self._judge_periods(np.zeros((0, 1)), None, None, final=True)
+
+    # -------------------------------------------------------------- checks
+    def _check_backwards(self, batch: FrameBatch) -> None:
+        ts = batch.ts
+        prev = np.empty_like(ts)
+        prev[0] = ts[0] if self._last_ts is None else self._last_ts
+        prev[1:] = ts[:-1]
+        back = np.flatnonzero(ts < prev)
+        self.health.can_time_backwards += len(back)
+        for i in back[:NOTES_PER_KIND]:
+            self._note("backwards", f"{batch.where(int(i))}: timestamp goes backwards "
+                       f"{prev[i]:.6f} -> {ts[i]:.6f} s")
+        self._last_ts = float(ts[-1])
+
+    def _check_message(self, st: _MsgState, batch: FrameBatch, idx: np.ndarray
+                       ) -> tuple[np.ndarray, np.ndarray | None]:
+        """The frames of ``st.msg`` that can be decoded, and the frames lost before each."""
+        h = self.health
+        msg = st.msg
+        bad = batch.dlc[idx] != msg.length
+        if bad.any():
+            h.can_bad_length += int(bad.sum())
+            i = int(idx[np.argmax(bad)])
+            self._note("dlc", f"{batch.where(i)}: id {_id_text(msg)} ({msg.name}) has "
+                       f"{int(batch.dlc[i])} data bytes, expected {msg.length} (frame skipped)")
+            idx = idx[~bad]
+        if len(idx) == 0:
+            return idx, None
+        ts = batch.ts[idx]
+        if msg.rate_hz:
+            prev = np.concatenate(([ts[0] if st.last_ts is None else st.last_ts], ts[:-1]))
+            jumps = np.flatnonzero(ts - prev > JUMP_S)
+            h.can_time_jumps += len(jumps)
+            for j in jumps[:NOTES_PER_KIND]:
+                self._note("jump", f"{batch.where(int(idx[j]))}: {msg.name} ({_id_text(msg)}, "
+                           f"{msg.rate_hz:g} Hz) silent for {ts[j] - prev[j]:.3f} s")
+        st.last_ts = float(ts[-1])
+        if st.counter is None:
+            return idx, None
+        lost = self._lost(st, batch, idx)
+        h.can_lost_frames += int(lost.sum())
+        return idx, lost
+
+    def _lost(self, st: _MsgState, batch: FrameBatch, idx: np.ndarray) -> np.ndarray:
+        sig = st.counter
+        assert sig is not None
+        c = decode_raw(batch.data[idx], sig).astype(np.int64)
+        modulo = int(sig.modulo) if sig.modulo else 1 << sig.length
+        prev = np.empty_like(c)
+        prev[0] = c[0] - 1 if st.last_counter is None else st.last_counter
+        prev[1:] = c[:-1]
+        diff = (c - prev) % modulo
+        lost = np.where(diff == 0, 0, diff - 1)
+        st.last_counter = int(c[-1])
+        for j in np.flatnonzero(lost)[:NOTES_PER_KIND]:
+            self._note("lost", f"{batch.where(int(idx[j]))}: {st.msg.name} counter "
+                       f"{int(prev[j])} -> {int(c[j])}: {int(lost[j])} frame(s) lost")
+        return lost
+
+    def _note_unknown(self, batch: FrameBatch, unknown: np.ndarray, keys: np.ndarray) -> None:
+        ids, first = np.unique(keys[unknown], return_index=True)
+        for k, f in zip(ids.tolist(), first.tolist(), strict=True):
+            if k in self._unknown_ids or len(self._unknown_ids) >= 50:
+                continue
+            self._unknown_ids.add(k)
+            i = int(unknown[f])
+            ext = bool(batch.extended[i])
+            text = f"0x{int(batch.can_id[i]):08X}" if ext else f"0x{int(batch.can_id[i]):03X}"
+            self._note("unknown", f"{batch.where(i)}: id {text} is not in rig "
+                       f"{self.rig.name!r} (ignored, counted)")
+
+    def _note_no_match(self, batch: FrameBatch | None) -> None:
+        self._no_match_noted = True
+        ids = ", ".join(_id_text(s.msg) for s in self._states)
+        where = f"{batch.origin}: " if batch is not None and batch.origin else ""
+        self.health.notes.append(
+            f"{where}none of the first {self._frames_seen} frames has an id of rig "
+            f"{self.rig.name!r} (expected {ids}): is this the right rig for this log?")
+
+    def _judge_periods(self, periods: np.ndarray, batch: FrameBatch | None,
+                       idx: np.ndarray | None, *, final: bool = False) -> None:
+        if self._plausibility_noted:
+            return
+        p = periods.ravel()
+        p = p[np.isfinite(p)]
+        stats = self._period_stats
+        if len(p) > 1:
+            ratio = p[1:] / np.where(p[:-1] > 0, p[:-1], np.nan)
+            stats[0] += len(p)
+            stats[1] += int(np.sum(~((ratio >= 0.25) & (ratio <= 4.0))))
+            # a tooth faster than at twice the rev limit cannot be a real tooth
+            shortest = 60.0 / (2.0 * self.rig.limits.rev_limit_rpm * self.rig.wheel.teeth)
+            stats[2] += int(np.sum(p < shortest))
+        if stats[0] < PLAUSIBLE_AFTER and not final:
+            return
+        if stats[0] == 0:
+            return
+        bad_ratio = stats[1] / stats[0]
+        too_short = stats[2] / stats[0]
+        # a real wheel: smooth periods, the gap ~3x once a revolution (common practice)
+        if bad_ratio > 0.05 or too_short > 0.05:
+            sig = self._teeth_sig
+            where = batch.where(int(idx[0])) if batch is not None and idx is not None and len(idx) \
+                else "stream"
+            self.health.notes.append(
+                f"{where}: tooth periods implausible ({100 * bad_ratio:.0f}% of successive "
+                f"ratios outside 1/4..4, {100 * too_short:.0f}% shorter than a tooth at twice "
+                f"the rev limit); expected a smooth {self.rig.wheel.teeth}-tooth wheel: check "
+                f"byte order, scale and start bit of signal {sig.name if sig else '?'!r}")
+            self._plausibility_noted = True
+        elif stats[0] >= PLAUSIBLE_AFTER:
+            self._plausibility_noted = True  # judged plausible once; stop judging
+
+    # ------------------------------------------------------------- decoding
+    def empty_teeth(self) -> TeethBlock:
+        k = self._teeth_sig.count if self._teeth_sig else 1
+        return TeethBlock(np.zeros(0), np.zeros((0, k)), np.zeros(0, np.int8),
+                          np.zeros(0, np.int32), np.zeros(0, np.int64))
+
+    def empty_status(self) -> StatusBlock:
+        return StatusBlock(np.zeros(0), {r: np.zeros(0) for r in self._status})
+
+    def _decode_teeth(self, batch: FrameBatch, rows: dict[str, np.ndarray],
+                      lost: dict[str, np.ndarray], base: int) -> TeethBlock:
+        if self._teeth is None or self._teeth.name not in rows or not len(rows[self._teeth.name]):
+            self._update_cam(batch, rows)
+            return self.empty_teeth()
+        assert self._teeth_sig is not None
+        idx = rows[self._teeth.name]
+        periods = decode_signal(batch.data[idx], self._teeth_sig).reshape(len(idx), -1)
+        lt = lost.get(self._teeth.name)
+        lost_before = np.zeros(len(idx), np.int32) if lt is None else lt.astype(np.int32)
+        cam = self._cam_at(batch, rows, idx)
+        return TeethBlock(
+            frame_time=batch.ts[idx].astype(np.float64),
+            periods=periods,
+            cam=cam,
+            lost_before=lost_before,
+            frame_index=idx.astype(np.int64) + base,
+        )
+
+    def _cam_values(self, batch: FrameBatch, rows: dict[str, np.ndarray]
+                    ) -> tuple[np.ndarray, np.ndarray]:
+        assert self._cam_msg is not None and self._cam_sig is not None
+        cidx = rows.get(self._cam_msg.name, np.zeros(0, np.int64))
+        vals = decode_raw(batch.data[cidx], self._cam_sig).astype(np.int8) if len(cidx) \
+            else np.zeros(0, np.int8)
+        return cidx, vals
+
+    def _cam_at(self, batch: FrameBatch, rows: dict[str, np.ndarray], idx: np.ndarray
+                ) -> np.ndarray:
+        if self._cam_sig is None:
+            return np.full(len(idx), -1, np.int8)
+        cidx, vals = self._cam_values(batch, rows)
+        if self._cam_msg is self._teeth:
+            out = vals
+        else:  # hold the last cam frame received at or before each tooth frame
+            k = np.searchsorted(cidx, idx, side="right") - 1
+            held = np.concatenate(([self._last_cam], vals)).astype(np.int8)
+            out = held[k + 1]
+        if len(vals):
+            self._last_cam = int(vals[-1])
+        return out
+
+    def _update_cam(self, batch: FrameBatch, rows: dict[str, np.ndarray]) -> None:
+        if self._cam_sig is not None:
+            _, vals = self._cam_values(batch, rows)
+            if len(vals):
+                self._last_cam = int(vals[-1])
+
+    def _decode_status(self, batch: FrameBatch, rows: dict[str, np.ndarray]) -> StatusBlock:
+        if not self._status:
+            return self.empty_status()
+        present = [rows[n] for n in self._status_msgs if n in rows and len(rows[n])]
+        if not present:
+            return self.empty_status()
+        all_rows = np.unique(np.concatenate(present)) if len(present) > 1 else present[0]
+        values: dict[str, np.ndarray] = {}
+        for role, msg in self._status.items():
+            sig = msg.signal_for(role)
+            assert sig is not None
+            ridx = rows.get(msg.name, np.zeros(0, np.int64))
+            v = decode_signal(batch.data[ridx], sig) if len(ridx) else np.zeros(0)
+            if len(present) == 1:
+                values[role] = v.astype(np.float64)
+            else:
+                k = np.searchsorted(ridx, all_rows, side="right") - 1
+                held = np.concatenate(([self._last_status[role]], v))
+                values[role] = held[k + 1].astype(np.float64)
+            if len(v):
+                self._last_status[role] = float(v[-1])
+        return StatusBlock(t=batch.ts[all_rows].astype(np.float64), values=values)
