@@ -127,6 +127,11 @@ class ClockAligner:
         return len(self._pend_d)
 
     @property
+    def windows(self) -> int:
+        """Window minima the current fit rests on (at most ``span_windows``)."""
+        return len(self._hist)
+
+    @property
     def fit(self) -> tuple[float, float] | None:
         """The latest line as ``(offset, drift)``: host = offset + (1 + drift)·device, or None."""
         if self._line is None or self._t0 is None:

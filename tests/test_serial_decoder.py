@@ -121,6 +121,17 @@ def test_reconnect_and_board_reset_mark_gaps_and_keep_time():
     assert any("link broke" in n for n in dec.notes) and any("clock jumped" in n for n in dec.notes)
 
 
+def test_wrong_clock_unit_in_the_rig_is_noted():
+    from dataclasses import replace
+    records, truth, _ = board(M1, 12, seed=8)
+    wrong = replace(M1, device_time_unit_s=1.1e-6)  # 10 % off: no crystal is that bad
+    dec, t, _, _ = _decode(wrong, records, batch=20)
+    assert len(t) == len(truth)
+    assert any("ppm against the host clock" in n and "device_time_unit_s" in n for n in dec.notes)
+    good, _, _, _ = _decode(M1, records, batch=20)
+    assert not any("ppm" in n for n in good.notes)
+
+
 def test_wrong_framing_is_noted_not_fatal():
     records, _, _ = board(ODD, 5, seed=5)  # ODD's bytes fed to a decoder expecting M1 frames
     dec, t, _, _ = _decode(M1, records, batch=10)

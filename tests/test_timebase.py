@@ -95,7 +95,7 @@ def test_bounded_lookahead_and_memory():
     for a in range(0, len(dev), 100):
         released += len(al.push(dev[a : a + 100], host[a : a + 100], pair=last[a : a + 100]))
         assert al.pending <= 2 * 2000 + 100  # at most two windows and one push behind
-        assert len(al._hist) <= 10
+        assert al.windows <= 10
     assert released + al.pending == len(dev)
 
 

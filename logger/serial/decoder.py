@@ -23,6 +23,9 @@ from logger.timebase import ClockAligner
 MAX_NOTES = 20
 #: Bytes without a single good frame before the decoder says the framing looks wrong.
 _SILENT_BYTES = 4096
+#: A device clock further off the host's than this is a wrong unit in the rig, not a crystal
+#: (crystals are specified to tens of ppm; common practice).
+_DRIFT_LIMIT = 1e-3
 
 
 @dataclass
@@ -69,6 +72,7 @@ class SerialDecoder:
         self._gap = np.zeros(0, dtype=bool)
         self._bytes_since_good = 0
         self._silence_noted = False
+        self._drift_noted = False
 
     def push(self, records: list[tuple[float, bytes]]) -> AccelBlock:
         """Decode port reads; return the samples whose time is now final (maybe none)."""
@@ -81,6 +85,7 @@ class SerialDecoder:
         self._gap = np.concatenate([self._gap, (frames.lost_before > 0) | frames.break_before])
         t = self.aligner.push(frames.device_t, frames.host_time, pair=frames.last_in_read,
                               epoch_before=frames.break_before)
+        self._check_drift(records)
         return self._release(t)
 
     def flush(self) -> AccelBlock:
@@ -106,6 +111,17 @@ class SerialDecoder:
     def _note(self, text: str) -> None:
         if len(self.notes) < MAX_NOTES:
             self.notes.append(f"{self.sensor.name}: {text}")
+
+    def _check_drift(self, records) -> None:
+        fit = self.aligner.fit
+        if self._drift_noted or fit is None or self.aligner.windows < 5:
+            return
+        drift = fit[1]
+        if abs(drift) > _DRIFT_LIMIT:
+            self._drift_noted = True
+            self._note(f"device clock runs {drift * 1e6:+.0f} ppm against the host clock by host "
+                       f"t={records[-1][0]:.1f} s: check device_time_unit_s "
+                       f"({self.sensor.device_time_unit_s:g} s) and sample_rate_hz in the rig")
 
     def _note_changes(self, before, records, frames) -> None:
         good, corrupt, lost, skipped, breaks, jumps = self._counts()
