@@ -93,6 +93,10 @@ class ClockAligner:
     span_windows : int, optional
         Number of window minima the line is fitted over (default 60: one minute). Longer spans
         average more read jitter; shorter ones follow a drifting crystal more closely.
+    max_pending : int, optional
+        Safety valve for a device clock that does not advance (a broken board): beyond this many
+        held samples the oldest are released with the latest fit and counted in
+        :attr:`forced`. Never reached with a working clock (two windows hold far fewer).
 
     Notes
     -----
@@ -100,14 +104,18 @@ class ClockAligner:
     See the module docstring for the rule that makes live and replay identical.
     """
 
-    def __init__(self, *, window_s: float = 1.0, span_windows: int = 60) -> None:
+    def __init__(
+        self, *, window_s: float = 1.0, span_windows: int = 60, max_pending: int = 1_000_000
+    ) -> None:
         if not (window_s > 0 and np.isfinite(window_s)):
             raise InputError(f"window_s must be a positive number of seconds, got {window_s!r}")
         if int(span_windows) < 2:
             raise InputError(f"span_windows must be >= 2, got {span_windows!r}")
         self.window_s = float(window_s)
         self.span_windows = int(span_windows)
+        self.max_pending = int(max_pending)
         self.epochs = 0
+        self.forced = 0
         self._reset_epoch()
 
     def _reset_epoch(self) -> None:
@@ -235,6 +243,14 @@ class ClockAligner:
             self._closed_to = win
             self._release_through(win - 1, out)
         self._close_through(latest - 1, out)
+        excess = len(self._pend_d) - self.max_pending
+        if excess > 0:
+            pts = list(self._hist) + ([self._open] if self._open is not None else [])
+            self._line = self._fit(pts[-self.span_windows :])
+            out.append(self._map(self._pend_d[:excess]))
+            self._pend_d = self._pend_d[excess:]
+            self._pend_w = self._pend_w[excess:]
+            self.forced += excess
         return np.concatenate(out) if out else np.zeros(0)
 
     def _close_through(self, win: int, out: list[np.ndarray]) -> None:

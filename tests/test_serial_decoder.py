@@ -132,6 +132,16 @@ def test_wrong_clock_unit_in_the_rig_is_noted():
     assert not any("ppm" in n for n in good.notes)
 
 
+def test_stuck_board_clock_is_noted_and_memory_stays_bounded():
+    n = 100_000  # 50 s at 2 kHz, every frame stamped with the same device time
+    data = encode_frames(M1, np.arange(n), np.full(n, 1234), np.zeros((n, 3), np.int64))
+    records = [(1000.0 + i * 0.008, data[i * 256 : (i + 1) * 256]) for i in range(len(data) // 256)]
+    dec = SerialDecoder(M1)
+    out = sum(len(dec.push(records[i : i + 50])) for i in range(0, len(records), 50))
+    assert dec.aligner.pending <= 30 * 2000 and out + dec.aligner.pending == n
+    assert any("not advancing" in note for note in dec.notes)
+
+
 def test_wrong_framing_is_noted_not_fatal():
     records, _, _ = board(ODD, 5, seed=5)  # ODD's bytes fed to a decoder expecting M1 frames
     dec, t, _, _ = _decode(M1, records, batch=10)

@@ -99,6 +99,12 @@ def test_bounded_lookahead_and_memory():
     assert released + al.pending == len(dev)
 
 
+def test_stuck_device_clock_cannot_hold_unbounded_samples():
+    al = ClockAligner(max_pending=500)
+    out = [al.push(np.full(200, 3.0), 100.0 + np.arange(200) * 1e-3) for _ in range(10)]
+    assert al.pending == 500 and sum(len(o) for o in out) == 1500 and al.forced == 1500
+
+
 def test_epoch_restart_after_device_reset():
     dev, truth, host, last = simulate(40, seed=7, jitter=1e-3)
     # Second half: the board restarted, its clock reads from 0 again (new offset).

@@ -65,7 +65,9 @@ class SerialDecoder:
     def __init__(self, sensor: SerialSensor, *, window_s: float = 1.0, span_windows: int = 60):
         self.sensor = sensor
         self.parser = SerialFrameParser(sensor)
-        self.aligner = ClockAligner(window_s=window_s, span_windows=span_windows)
+        # Hold at most 30 s of samples even if the board's clock stops advancing.
+        self.aligner = ClockAligner(window_s=window_s, span_windows=span_windows,
+                                    max_pending=max(1000, int(30 * sensor.sample_rate_hz)))
         self.health = SerialHealth()
         self.notes: list[str] = []
         self._xyz = np.zeros((0, 3))
@@ -73,6 +75,7 @@ class SerialDecoder:
         self._bytes_since_good = 0
         self._silence_noted = False
         self._drift_noted = False
+        self._stuck_noted = False
 
     def push(self, records: list[tuple[float, bytes]]) -> AccelBlock:
         """Decode port reads; return the samples whose time is now final (maybe none)."""
@@ -86,6 +89,10 @@ class SerialDecoder:
         t = self.aligner.push(frames.device_t, frames.host_time, pair=frames.last_in_read,
                               epoch_before=frames.break_before)
         self._check_drift(records)
+        if self.aligner.forced and not self._stuck_noted:
+            self._stuck_noted = True
+            self._note(f"device clock not advancing by host t={records[-1][0]:.1f} s: samples "
+                       "released with the last clock fit")
         return self._release(t)
 
     def flush(self) -> AccelBlock:
