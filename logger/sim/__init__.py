@@ -6,6 +6,7 @@ firing event; ``write_ride`` lays it out as the rig's CAN frames (any python-can
 serial capture files, a truth CSV and a copy of the scenario.
 """
 
+from logger.sim.canframes import CanFrames, build_frames
 from logger.sim.ride import TRUTH_DTYPE, AccelTruth, SimRide, simulate
 from logger.sim.scenario import (
     CanSpec,
@@ -20,8 +21,20 @@ from logger.sim.scenario import (
     scenario_from_dict,
     scenario_to_toml,
 )
+from logger.sim.writers import (
+    CAN_FORMATS,
+    RidePaths,
+    can_messages,
+    read_truth,
+    serial_chunks,
+    write_can,
+    write_ride,
+    write_truth,
+)
 
 __all__ = [
+    "CAN_FORMATS", "CanFrames", "RidePaths", "build_frames", "can_messages", "read_truth",
+    "serial_chunks", "write_can", "write_ride", "write_truth",
     "TRUTH_DTYPE", "AccelTruth", "CanSpec", "EngineSpec", "Fault", "Physics", "Scenario",
     "Segment", "SerialSpec", "SimRide", "WheelSpec", "load_scenario", "scenario_from_dict",
     "scenario_to_toml", "simulate",

@@ -7,6 +7,7 @@ scenario file (TOML, crankbeat's own layout):
 
     [ride]
     name = "short pull"
+    rig = "m1"                     # optional: the rig the scenario was written for
     seed = 11
     start_time = 1767225600.0      # s on the CAN time base at the start of the ride
     coolant_c = [62.0, 88.0]       # coolant at the start and the limit it warms towards
@@ -209,6 +210,7 @@ class Scenario:
     name: str = "ride"
     start_time: float = 1767225600.0
     coolant_c: tuple[float, float] = (62.0, 88.0)
+    rig: str | None = None  # preset name or rig file the scenario was written for (metadata)
     faults: tuple[Fault, ...] = ()
     engine: EngineSpec = field(default_factory=EngineSpec)
     physics: Physics = field(default_factory=Physics)
@@ -233,7 +235,7 @@ class Scenario:
 
 _SECTIONS = {"engine": EngineSpec, "physics": Physics, "wheel": WheelSpec, "can": CanSpec,
              "serial": SerialSpec}
-_RIDE_KEYS = {"name", "seed", "start_time", "coolant_c"}
+_RIDE_KEYS = {"name", "seed", "start_time", "coolant_c", "rig"}
 
 
 def _tuplify(value: Any) -> Any:
@@ -312,7 +314,7 @@ def scenario_to_toml(sc: Scenario) -> str:
     """The scenario as a scenario file; :func:`scenario_from_dict` reads it back unchanged."""
     lines = ["# crankbeat ride scenario (written by the simulator)", "[ride]"]
     lines += _table_lines({"name": sc.name, "seed": sc.seed, "start_time": sc.start_time,
-                           "coolant_c": sc.coolant_c})
+                           "coolant_c": sc.coolant_c, "rig": sc.rig})
     seg_defaults = {"gear": 0, "rough": 0.0, "label": ""}
     for s in sc.segments:
         lines += ["", "[[segment]]"] + _table_lines(asdict(s), seg_defaults)
