@@ -27,6 +27,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from dsp.errors import InputError
 from logger.rig.model import SerialSensor
 from logger.serial.frames import FrameLayout
 
@@ -127,6 +128,10 @@ class SerialFrameParser:
     def __init__(self, sensor: SerialSensor, *, max_clock_step_s: float = 2.0) -> None:
         self.sensor = sensor
         self.layout = FrameLayout(sensor)
+        if not max_clock_step_s > 0:
+            raise InputError(
+                f"max_clock_step_s must be a positive time in s, got {max_clock_step_s!r}"
+            )
         self.max_clock_step_s = float(max_clock_step_s)
         self.counts = FrameCounts()
         self._L = sensor.frame_length
@@ -159,7 +164,10 @@ class SerialFrameParser:
         return self.counts.skipped
 
     def push(self, data: bytes, host_time: float) -> ParsedFrames:
-        """Frames that complete in ``data`` (one port read that arrived at ``host_time`` s)."""
+        """Frames that complete in ``data`` (one port read that arrived at ``host_time`` s).
+
+        Empty ``data`` is a link-break marker (see the module docstring), not a no-op.
+        """
         return self.push_records([(host_time, data)])
 
     def push_records(self, records: Iterable[tuple[float, bytes]]) -> ParsedFrames:
