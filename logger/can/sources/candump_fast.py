@@ -194,6 +194,8 @@ def _python_can_line(text: bytes) -> can.Message | None:
     msg = msgs[0]
     if len(msg.data) > (64 if msg.is_fd else 8) or msg.dlc > 255:
         return None
+    if not msg.is_remote_frame and len(msg.data) != msg.dlc:
+        return None  # an odd number of hex digits: python-can keeps a half byte, we do not
     return msg
 
 
@@ -248,7 +250,7 @@ class CandumpFastSource(CanSource):
         """(buffer, line starts, line ends, number of the first line, final) per block."""
         carry = b""
         line_no = 1
-        long_line = False
+        skipping = False  # inside an overlong line, dropping bytes up to its newline
         while True:
             try:
                 chunk = self._f.read(self.block_bytes)
@@ -258,25 +260,22 @@ class CandumpFastSource(CanSource):
                           "the frames before it were kept")
                 chunk = b""
             final = not chunk
-            data = carry + chunk
-            cut = len(data) if final else data.rfind(b"\n") + 1
-            if final and not data:
-                return
-            if cut == 0:  # no newline in the whole block: an overlong line
-                if not long_line:
-                    self._bad(line_no, data, f"line longer than {MAX_LINE_BYTES} bytes")
-                long_line = True
-                carry = b""
-                continue
-            body, carry = data[:cut], data[cut:]
-            if long_line:  # drop the rest of the overlong line
-                k = body.find(b"\n") + 1
-                body = body[k:]
+            data, carry = carry + chunk, b""
+            if skipping:
+                k = data.find(b"\n")
+                if k < 0:
+                    if final:
+                        return
+                    continue
+                data, skipping = data[k + 1 :], False
                 line_no += 1
-                long_line = False
-            if len(carry) > MAX_LINE_BYTES:
-                self._bad(line_no, carry, f"line longer than {MAX_LINE_BYTES} bytes")
-                carry, long_line = b"", True
+            cut = len(data) if final else data.rfind(b"\n") + 1
+            body, rest = data[:cut], data[cut:]
+            if len(rest) > MAX_LINE_BYTES:
+                self._bad(line_no + body.count(b"\n"), rest,
+                          f"line longer than {MAX_LINE_BYTES} bytes")
+                rest, skipping = b"", True
+            carry = rest
             if body:
                 buf = np.frombuffer(body, dtype=np.uint8)
                 nl = np.flatnonzero(buf == 10)

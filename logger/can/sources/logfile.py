@@ -8,11 +8,14 @@ kept. A file python-can cannot even start to read raises :class:`~dsp.errors.For
 
 from __future__ import annotations
 
+import gzip
 import os
 import pathlib
 from collections.abc import Iterator
 
 import can
+from can.io.generic import TextIOMessageReader
+from can.io import MESSAGE_READERS
 
 from dsp.errors import FormatError, SourceError
 from logger.can.sources.base import CanSource, FrameBatch
@@ -21,6 +24,21 @@ from logger.can.sources.base import CanSource, FrameBatch
 def _one_line(exc: BaseException) -> str:
     text = str(exc).strip().splitlines()
     return f"{type(exc).__name__}: {text[0]}" if text else type(exc).__name__
+
+
+def _open_gzip(path: str, real_suffix: str, kwargs: dict) -> can.io.generic.MessageReader:
+    """python-can's LogReader drops reader options for ``.gz`` files; open those here."""
+    try:
+        cls = MESSAGE_READERS[real_suffix]
+    except KeyError:
+        raise ValueError(f"no python-can reader for {real_suffix!r} inside gzip") from None
+    mode = "rt" if issubclass(cls, TextIOMessageReader) else "rb"
+    f = gzip.open(path, mode=mode)  # noqa: SIM115 - the reader closes it in stop()
+    try:
+        return cls(f, **kwargs)
+    except BaseException:
+        f.close()
+        raise
 
 
 class LogFileSource(CanSource):
@@ -51,7 +69,10 @@ class LogFileSource(CanSource):
             suffixes[-1] if suffixes else "")
         kwargs = {"relative_timestamp": False} if real == ".asc" else {}
         try:
-            self._reader = can.LogReader(self.path, **kwargs)
+            if suffixes and suffixes[-1] == ".gz":
+                self._reader = _open_gzip(self.path, real, kwargs)
+            else:
+                self._reader = can.LogReader(self.path, **kwargs)
         except (ValueError, OSError, EOFError, ImportError) as exc:
             raise FormatError(f"{self.path}: offset 0: not a readable CAN log "
                               f"({_one_line(exc)})") from None
