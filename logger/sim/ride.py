@@ -67,6 +67,9 @@ class SimRide:
     status: dict[str, np.ndarray]  # role -> (m,) values: engine_speed, throttle, gear, coolant, road_speed
     events: np.ndarray  # TRUTH_DTYPE
     accel: dict[str, AccelTruth] = field(default_factory=dict)
+    cycle_t: np.ndarray = field(default_factory=lambda: np.empty(0))  # (c+1,) start of each crank window (720c), s
+    cycle_friction: np.ndarray = field(default_factory=lambda: np.empty(0))  # (c,) friction torque, N·m
+    cycle_load: np.ndarray = field(default_factory=lambda: np.empty(0))  # (c,) shaft load torque on the crank, N·m
     seeds: dict[str, np.random.SeedSequence] = field(default_factory=dict, repr=False)
 
     @property
@@ -242,6 +245,8 @@ def simulate(
         omega_alone=edges["om"], cycle_t=cycle_t, rng=np.random.default_rng(seeds["road"]),
     )
     events = _truth(scenario, engine, params, fire, edges["ang"], t, omega, n)
+    cycle_true = hermite(np.radians(720.0 * np.arange(len(cycle_t))), np.radians(edges["ang"]),
+                         t, 1.0 / omega)
     keep = t < scenario.duration
     ride = SimRide(
         rig=rig, scenario=scenario, engine=engine,
@@ -253,6 +258,8 @@ def simulate(
         tooth_gas_torque=edges["tq"][keep],
         tooth_error_deg=errors,
         status_t=np.empty(0), status={}, events=events, seeds=seeds,
+        cycle_t=cycle_true + scenario.start_time, cycle_friction=track.friction,
+        cycle_load=track.shaft,
     )
     say("status", 0.0)
     status.fill(ride, track, cycle_t)
