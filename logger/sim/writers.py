@@ -3,7 +3,7 @@
 ``write_ride`` gives, in ``out_dir``:
 
 * ``<stem><can_format>``: every CAN frame through python-can's own writer for the suffix
-  (``.log`` candump, ``.asc``, ``.blf``, ``.csv``, ``.trc``; any of them ``+ .gz``);
+  (``.log`` candump, ``.asc``, ``.blf``, ``.csv``, ``.trc``; the text ones also ``+ .gz``);
 * ``<stem>.<sensor>.acraw``: each sensor's serial capture file (RIG.md format);
 * ``<stem>.truth.csv``: the ground truth of every firing event;
 * ``<stem>.scenario.toml``: the scenario, which regenerates the ride bit for bit.
@@ -89,6 +89,9 @@ def _split_suffix(can_format: str) -> tuple[str, bool]:
     base = fmt[:-3] if gz else fmt
     if base not in CAN_FORMATS:
         raise InputError(f"CAN format {can_format!r} is not one of {', '.join(CAN_FORMATS)} (optionally + .gz)")
+    if gz and base == ".blf":
+        raise InputError("CAN format '.blf.gz' cannot be written: a BLF writer rewrites its header "
+                         "at the end (BLF compresses its own objects; use .blf)")
     return base, gz
 
 
@@ -172,7 +175,7 @@ def write_ride(ride, out_dir: str | os.PathLike, *, can_format: str = ".log",
         Created if missing.
     can_format : str, keyword-only
         Suffix of the CAN log: ``.log`` (candump, default), ``.asc``, ``.blf``, ``.csv``,
-        ``.trc``, each optionally followed by ``.gz``.
+        ``.trc``; the text formats optionally followed by ``.gz``.
     stem : str, keyword-only
         File name stem of every file.
     """
