@@ -18,7 +18,7 @@ import numpy as np
 import sqlite_utils
 
 from dsp.errors import RunNotFoundError, StoreError, UsageError
-from dsp.events import EVENT_DTYPE, VERDICT_NAMES
+from dsp.events import EVENT_DTYPE, FIRED, MASKED, MISFIRE, VERDICT_NAMES
 from logger.store.schema import EVENT_COLUMNS, SCHEMA_VERSION, current_version, migrate, source_key
 
 _VERDICT_CODES = {name: code for code, name in VERDICT_NAMES.items()}
@@ -324,6 +324,22 @@ class Store:
         )
         self._seq[run_id] = start + len(rows)
         return len(rows)
+
+    def mask_events(self, run_id: int, spans: Iterable[tuple[float, float]]) -> int:
+        """Mark the fired and misfire events of a run inside each ``(t0, t1)`` span "masked".
+
+        Rough-road spans are known only after the events in them were written; unusable and
+        fuel-cut events keep their verdict. Returns the number of events changed.
+        """
+        changed = 0
+        for t0, t1 in spans:
+            cur = self.db.conn.execute(
+                "UPDATE events SET verdict = ? WHERE run = ? AND t >= ? AND t <= ?"
+                " AND verdict IN (?, ?)",
+                (MASKED, run_id, float(t0), float(t1), FIRED, MISFIRE),
+            )
+            changed += cur.rowcount
+        return changed
 
     def add_windows(self, run_id: int, rows: Any, *, kind: str | None = None) -> int:
         """Append misfire-rate windows.
