@@ -1,0 +1,402 @@
+"""One run's analysis: a stream of chunks through the dsp stages into the store.
+
+Live and replay share everything after the source. :func:`analyse_replay` and
+:func:`analyse_live` differ only in the stream (:func:`logger.stream.replay` or
+:func:`logger.stream.live`) and in the live display; :class:`RunAnalysis` does the work:
+
+1. :class:`dsp.analysis.EventAnalyzer` turns tooth frames and status into final events
+   (fired, misfire, unusable, fuel cut).
+2. :class:`dsp.vibration.VibrationAnalyzer` takes the accelerometer and the crank edges and
+   reports rough-road spans as they close.
+3. The store receives each event as soon as it is final (low latency), and later an update that
+   masks the events inside each rough-road span (verdict "masked").
+4. :class:`logger.run_summary.RunSummary` summarises the run block by block, once the masking of
+   a block is known, so memory stays bounded whatever the ride length.
+
+The store is committed at least every :data:`COMMIT_EVERY_S` seconds of wall time, so a ride
+killed mid-way keeps every event up to the last commit, in a run marked incomplete.
+"""
+
+from __future__ import annotations
+
+import threading
+import time
+import warnings
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from dsp.analysis import EventAnalyzer
+from dsp.crank import ToothWheel
+from dsp.engine import Engine
+from dsp.errors import CrankbeatWarning, DuplicateRunError
+from dsp.events import FIRED, MASKED, MISFIRE
+from dsp.misfire import MisfireSettings
+from dsp.vibration import SensorSpec, VibrationAnalyzer, merge_spans
+from logger import stream
+from logger.chunks import Chunk, StreamHealth
+from logger.rig import list_layouts, load_layout
+from logger.rig.model import CanBus, Rig
+from logger.run_summary import RunSummary
+from logger.store import Store, sha256_file
+
+COMMIT_EVERY_S = 0.5
+#: How long events wait for the rough-road verdict before they are summarised without it, s
+#: of CAN time (a board that fell silent must not hold the summaries back for ever).
+MASK_WAIT_LIMIT_S = 5.0
+#: Longest rough-road span whose events are held back for the summaries, s (the store's events
+#: are masked however long the span lasts).
+OPEN_SPAN_LIMIT_S = 300.0
+
+
+@dataclass
+class RunResult:
+    """What an analysis returns: the run's id in the store and its summary."""
+
+    run_id: int
+    summary: dict
+    duplicate: bool = False
+
+
+def wheel_key(rig: Rig) -> str:
+    """The store's key of a trigger wheel: learnt tooth errors belong to one wheel of one rig."""
+    w = rig.wheel
+    return f"{w.teeth}-{w.missing}@{w.tdc_offset_deg:g}"
+
+
+def layout_candidates(engine: Engine) -> dict[str, Engine]:
+    """Shipped layouts with the engine's cylinder count, plus the engine itself."""
+    out = {}
+    for name in list_layouts():
+        eng = load_layout(name)
+        if eng.n_cylinders == engine.n_cylinders:
+            out[name] = eng.with_geometry(
+                bore_m=engine.bore_m, stroke_m=engine.stroke_m, conrod_m=engine.conrod_m,
+                recip_mass_kg=engine.recip_mass_kg, inertia_kgm2=engine.inertia_kgm2)
+    out[engine.name] = engine
+    return out
+
+
+def misfire_settings(rig: Rig) -> MisfireSettings:
+    """Detector settings: the defaults, with the rig file's overrides."""
+    if rig.limits.misfire_threshold is not None:
+        return MisfireSettings(threshold=rig.limits.misfire_threshold)
+    return MisfireSettings()
+
+
+@dataclass
+class StepOutput:
+    """What one chunk produced: events now final, and spans whose events are now masked."""
+
+    events: np.ndarray
+    masked_spans: list[tuple[float, float]] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+
+
+class RunAnalysis:
+    """The streaming analysis of one run (no I/O: chunks in, events and summaries out).
+
+    Parameters
+    ----------
+    rig : Rig
+    tooth_correction_deg : (real_teeth,) array or None
+        Tooth errors learnt on an earlier run of the same wheel.
+    """
+
+    def __init__(self, rig: Rig, *, tooth_correction_deg: np.ndarray | None = None) -> None:
+        self.rig = rig
+        engine = rig.engine
+        self.events = EventAnalyzer(
+            engine, ToothWheel.like(rig.wheel), settings=misfire_settings(rig),
+            tooth_correction_deg=tooth_correction_deg,
+        )
+        specs = [SensorSpec.of(s) for s in rig.sensors]
+        self.vibration = VibrationAnalyzer(engine, specs) if specs else None
+        self.summary = RunSummary(engine, engine.name, layout_candidates(engine),
+                                  tolerance_deg=rig.limits.interval_tolerance_deg)
+        self.health = StreamHealth()
+        self.notes: list[str] = []
+        self._held: list[np.ndarray] = []  # events waiting for the rough-road verdict
+        self._spans: list[tuple[float, float]] = []  # closed spans that may still touch held events
+        self._accel_done = {s.name: -np.inf for s in specs}  # accelerometer accounted up to, s
+        self._accel_seen = {s.name: False for s in specs}
+        self._last_event_t = -np.inf
+        self.rough_spans: list[tuple[float, float]] = []
+
+    # -- per chunk -----------------------------------------------------------------------
+    def push(self, chunk: Chunk) -> StepOutput:
+        te = chunk.teeth
+        status_t = chunk.status.t if len(chunk.status) else None
+        throttle = chunk.status.values.get("throttle") if len(chunk.status) else None
+        step = self.events.push(te.frame_time, te.periods, te.cam, te.lost_before,
+                                status_t=status_t, throttle=throttle)
+        self.health = chunk.health
+        out = StepOutput(step.events, notes=list(step.notes))
+        new_spans = []
+        if self.vibration is not None:
+            accel = {n: (b.t, b.xyz, b.gap_before) for n, b in chunk.accel.items() if len(b)}
+            for name in accel:
+                self._accel_seen[name] = True
+            crank = step.crank
+            vstep = self.vibration.push(accel, (crank.t, crank.angle, crank.valid))
+            for name, t in vstep.t_done.items():
+                self._accel_done[name] = max(self._accel_done[name], t)
+            for spans in vstep.rough_spans.values():
+                new_spans += spans
+        self._hold(step.events, new_spans, out, end_time=chunk.end_time)
+        self.notes += out.notes
+        return out
+
+    def finish(self) -> StepOutput:
+        step = self.events.finish()
+        out = StepOutput(step.events, notes=list(step.notes))
+        new_spans = []
+        if self.vibration is not None:
+            crank = step.crank
+            if len(crank.t):
+                self.vibration.push({}, (crank.t, crank.angle, crank.valid))
+            self.vib_summary = self.vibration.finish()
+            new_spans = self.vib_summary.rough_spans_all
+        self._hold(step.events, new_spans, out, end_time=np.inf, final=True)
+        self.summary.finish()
+        self.notes += out.notes
+        return out
+
+    # -- rough-road masking --------------------------------------------------------------
+    def _hold(self, events: np.ndarray, new_spans, out: StepOutput, *, end_time: float,
+              final: bool = False) -> None:
+        if new_spans:
+            merged = merge_spans(list(new_spans))
+            self._spans = merge_spans(self._spans + merged)
+            self.rough_spans = merge_spans(self.rough_spans + merged)
+            out.masked_spans = merged
+        if len(events):
+            self._held.append(events.copy())
+            self._last_event_t = float(np.nanmax(np.r_[events["t"], self._last_event_t]))
+        if not self._held:
+            return
+        held = np.concatenate(self._held)
+        _mask(held, self._spans)
+        if final or self.vibration is None:
+            ready = len(held)
+        else:
+            decided = self._rough_decided_until(end_time)
+            ready = int(np.searchsorted(held["t"], decided, side="right"))
+        self.summary.push(held[:ready])
+        self._held = [held[ready:]] if ready < len(held) else []
+        oldest = held["t"][ready] if ready < len(held) else self._last_event_t
+        self._spans = [s for s in self._spans if s[1] >= oldest]
+
+    def _rough_decided_until(self, end_time: float) -> float:
+        """Events up to this time know their rough-road verdict (spans report as they close)."""
+        boards = self.vibration.boards.values()
+        lag = max((b.rough.window_frames * b.rough.frame_s + b.rough.hold_s + 2 * b.rough.frame_s
+                   for b in boards), default=0.0)
+        seen = [t for n, t in self._accel_done.items() if self._accel_seen[n]]
+        decided = (min(seen) - lag) if seen else -np.inf
+        # a silent board (unplugged, or none recorded) must not hold the summaries for ever
+        decided = max(decided, end_time - MASK_WAIT_LIMIT_S)
+        open_since = [b.rough.open_since for b in boards if b.rough.open_since is not None]
+        if open_since:  # an open span already holds its start (one window before it opened)
+            decided = min(decided, max(min(open_since), end_time - OPEN_SPAN_LIMIT_S))
+        return decided
+
+
+def _mask(events: np.ndarray, spans: list[tuple[float, float]]) -> np.ndarray:
+    """Mark fired/misfire events inside a rough-road span MASKED (in place); return the mask."""
+    hit = np.zeros(len(events), bool)
+    if not spans or not len(events):
+        return hit
+    t = events["t"]
+    for a, b in spans:
+        hit |= (t >= a) & (t <= b)
+    hit &= np.isin(events["verdict"], (FIRED, MISFIRE))
+    events["verdict"][hit] = MASKED
+    return hit
+
+
+# ------------------------------------------------------------------------------ driving
+def _drive(analysis: RunAnalysis, chunks: Iterable[Chunk], store: Store, run_id: int, *,
+           on_step: Callable[[StepOutput, Chunk], None] | None = None) -> None:
+    last_commit = time.monotonic()
+    for chunk in chunks:
+        out = analysis.push(chunk)
+        _write(store, run_id, out)
+        if on_step is not None:
+            on_step(out, chunk)
+        now = time.monotonic()
+        if now - last_commit >= COMMIT_EVERY_S:
+            store.commit()
+            last_commit = now
+    out = analysis.finish()
+    _write(store, run_id, out)
+    store.commit()
+
+
+def _write(store: Store, run_id: int, out: StepOutput) -> None:
+    if len(out.events):
+        store.add_events(run_id, out.events)
+    if out.masked_spans:
+        store.mask_events(run_id, out.masked_spans)
+
+
+def _finish(analysis: RunAnalysis, store: Store, run_id: int, *, status: str = "complete"
+            ) -> dict:
+    s = analysis.summary
+    for kind in ("rev200", "rev1000"):
+        store.add_windows(run_id, s.windows(kind), kind=kind)
+    store.add_intervals(run_id, s.interval_rows())
+    summary = s.as_dict()
+    vib = getattr(analysis, "vib_summary", None)
+    if vib is not None:
+        store.add_vibration(run_id, _vibration_rows(vib))
+        for name, amp in vib.order_amplitude.items():
+            if amp.size:
+                for a, axis in enumerate(("x", "y", "z")):
+                    store.add_order_map(run_id, sensor=name, rpm_lo=vib.order_rpm_lo,
+                                        rpm_hi=vib.order_rpm_hi, orders=vib.orders,
+                                        amplitude=amp[:, a, :], axis=axis)
+                store.add_order_map(run_id, sensor=name, rpm_lo=vib.order_rpm_lo,
+                                    rpm_hi=vib.order_rpm_hi, orders=vib.orders,
+                                    amplitude=np.sqrt(np.nansum(amp**2, axis=1))
+                                    if np.isfinite(amp).any() else amp[:, 0, :], axis="sum")
+        summary["vibration_exposure"] = {
+            "riding_hours": vib.riding_hours, "a8_m_s2": vib.exposure}
+    summary["rough_road"] = {"spans": len(analysis.rough_spans),
+                             "seconds": float(sum(b - a for a, b in analysis.rough_spans))}
+    summary["stream"] = _health_dict(analysis.health)
+    summary["notes"] = _first_notes(analysis.notes + analysis.health.notes)
+    limit = analysis.rig.limits.misfire_alert_pct
+    worst = summary["misfire"]["worst_rev200_pct"]
+    summary["misfire"]["alert"] = bool(worst is not None and worst > limit)
+    summary["misfire"]["alert_limit_pct"] = limit
+    store.finish_run(run_id, summary, status=status)
+    return summary
+
+
+def _vibration_rows(vib) -> list[dict]:
+    rows = []
+    for r in vib.rows():
+        weighted = r["weighting"] not in ("none", "")
+        rows.append({
+            "sensor": r["sensor"], "rpm_lo": r["rpm_lo"], "rpm_hi": r["rpm_hi"],
+            "axis": r["axis"], "weighting": r["weighting"] if weighted else "none",
+            "rms": r["rms"] if weighted else r["rms_unweighted"], "n": int(r["samples"]),
+        })
+    return rows
+
+
+def _health_dict(h: StreamHealth) -> dict:
+    return {
+        "can_frames": h.can_frames, "can_lost_frames": h.can_lost_frames,
+        "can_unknown_id": h.can_unknown_id, "can_error_frames": h.can_error_frames,
+        "can_remote_frames": h.can_remote_frames, "can_bad_length": h.can_bad_length,
+        "can_time_backwards": h.can_time_backwards, "can_time_jumps": h.can_time_jumps,
+        "serial_good": dict(h.serial_good), "serial_corrupt": dict(h.serial_corrupt),
+        "serial_lost": dict(h.serial_lost), "serial_reconnects": dict(h.serial_reconnects),
+    }
+
+
+def _first_notes(notes: list[str], limit: int = 20) -> list[str]:
+    seen: list[str] = []
+    for n in notes:
+        if n not in seen:
+            seen.append(n)
+    return seen[:limit] + ([f"... and {len(seen) - limit} more"] if len(seen) > limit else [])
+
+
+def _begin(rig: Rig, store: Store, sources: list[tuple[Path, str, str]], *, force: bool,
+           label, notes, odometer_km) -> tuple[int, np.ndarray | None]:
+    hashes = [s[1] for s in sources]
+    if sources and not force:
+        earlier = store.find_run_by_sources(hashes)
+        if earlier is not None:
+            err = DuplicateRunError(
+                f"these files were analysed before as run {earlier} (force to analyse again)")
+            err.run_id = earlier  # type: ignore[attr-defined]
+            raise err
+    run_id = store.begin_run(rig, label=label, notes=notes, odometer_km=odometer_km,
+                             sources=[(str(p), h, k) for p, h, k in sources])
+    return run_id, store.load_tooth_errors(rig.name, wheel_key(rig))
+
+
+def analyse_replay(
+    rig: Rig, can_path, accel_paths: dict[str, Path] | None, store: Store, *,
+    label: str | None = None, notes: str | None = None, odometer_km: float | None = None,
+    pace: float | None = None, force: bool = False,
+    progress: Callable[[float], None] | None = None,
+) -> RunResult:
+    """Analyse recordings into a new run of ``store``.
+
+    Raises :class:`dsp.errors.DuplicateRunError` (with ``run_id``) when the same files were
+    analysed before, unless ``force``.
+    """
+    accel_paths = dict(accel_paths or {})
+    sources = [(Path(can_path), sha256_file(can_path), "can")] + [
+        (Path(p), sha256_file(p), f"accel:{n}") for n, p in accel_paths.items()]
+    run_id, correction = _begin(rig, store, sources, force=force, label=label, notes=notes,
+                                odometer_km=odometer_km)
+    analysis = RunAnalysis(rig, tooth_correction_deg=correction)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", CrankbeatWarning)
+        with stream.replay(rig, can_path, accel_paths, pace=pace) as chunks:
+            def report(out: StepOutput, chunk: Chunk) -> None:
+                if progress is not None:
+                    done, total = chunks.progress
+                    if total:
+                        progress(done / total)
+            _drive(analysis, chunks, store, run_id, on_step=report)
+    analysis.notes += [str(w.message) for w in caught]
+    summary = _finish(analysis, store, run_id)
+    if progress is not None:
+        progress(1.0)
+    return RunResult(run_id, summary)
+
+
+def analyse_live(
+    rig: Rig, bus: CanBus | None, ports: dict[str, str], store: Store, *,
+    record_dir: str | Path | None = None, display=None,
+    stop_event: threading.Event | None = None, label: str | None = None,
+    notes: str | None = None, odometer_km: float | None = None, chunk_s: float = 0.2,
+) -> RunResult:
+    """Analyse a live ride until ``stop_event`` is set (or the bus closes).
+
+    ``display`` is a :class:`logger.live.LiveDisplay` (or None); it is refreshed a few times a
+    second from a :class:`logger.live.LiveTally`.
+    """
+    from logger.live import LiveTally
+
+    run_id, correction = _begin(rig, store, [], force=True, label=label, notes=notes,
+                                odometer_km=odometer_km)
+    analysis = RunAnalysis(rig, tooth_correction_deg=correction)
+    tally = LiveTally(rig.engine, interval_tolerance_deg=rig.limits.interval_tolerance_deg)
+    last_draw = [0.0]
+    t0 = time.monotonic()
+
+    def on_step(out: StepOutput, chunk: Chunk) -> None:
+        tally.push_events(out.events)
+        if len(chunk.status):
+            vals = chunk.status.values
+            tally.set_status(
+                rpm=float(vals["engine_speed"][-1]) if "engine_speed" in vals else None,
+                throttle=float(vals["throttle"][-1]) if "throttle" in vals else None)
+        tally.set_health(chunk.health)
+        now = time.monotonic()
+        if display is not None and now - last_draw[0] >= 0.25:
+            display.update(tally.state(now - t0, recording=str(record_dir) if record_dir else None))
+            last_draw[0] = now
+
+    status = "complete"
+    try:
+        with stream.live(rig, bus, ports, record_dir=record_dir, chunk_s=chunk_s,
+                         stop=stop_event) as chunks:
+            _drive(analysis, chunks, store, run_id, on_step=on_step)
+    except KeyboardInterrupt:
+        status = "complete"  # the rider stopped the ride: what was analysed is the run
+    summary = _finish(analysis, store, run_id, status=status)
+    return RunResult(run_id, summary)
+
+
+__all__ = ["RunAnalysis", "RunResult", "analyse_live", "analyse_replay"]
