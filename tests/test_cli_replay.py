@@ -29,7 +29,7 @@ needs_pipeline = pytest.mark.skipif(not HAVE_PIPELINE,
                                     reason="logger.pipeline (lead engineer) has not landed yet")
 
 
-def fixture_ride() -> tuple[Path, list[Path]] | None:
+def _fixture_ride() -> tuple[Path, list[Path]] | None:
     """The first recorded ride under fixtures/: a candump .log and its .acraw captures."""
     for log in sorted((ROOT / "fixtures").rglob("*.log")):
         stem = log.name[: -len(".log")]
@@ -37,9 +37,20 @@ def fixture_ride() -> tuple[Path, list[Path]] | None:
     return None
 
 
-def needs_ride():
-    return pytest.mark.skipif(fixture_ride() is None,
-                              reason="no fixture ride under fixtures/ yet (make fixtures)")
+@pytest.fixture(scope="module")
+def ride(tmp_path_factory):
+    """A fixture ride, or one made now with `crankbeat synth` (30 s, cylinder 2 misfiring)."""
+    found = _fixture_ride()
+    if found is not None:
+        return found
+    if importlib.util.find_spec("logger.cli.cmd_synth") is None:
+        pytest.skip("no fixture ride under fixtures/ and no simulator to make one")
+    out = tmp_path_factory.mktemp("ride")
+    code = main(["synth", "--rig", "m1", "--duration", "30", "--rpm", "3000:6000",
+                 "--throttle", "30", "--misfire-cylinder", "2", "--seed", "3", "--out", str(out),
+                 "--quiet"])
+    assert code == 0
+    return out / "ride.log", sorted(out.glob("ride.*.acraw"))
 
 
 def _replay_argv(store: Path, log: Path, caps: list[Path], *extra: str) -> list[str]:
@@ -69,16 +80,21 @@ def test_same_files_give_the_earlier_run_without_analysing(tmp_path, capsys):
     # Another capture with the same CAN log is another set of files: not the earlier run.
     other = tmp_path / "other.bar_left.acraw"
     other.write_bytes(b"ACCRAW1\n\x00")
-    code = main(_replay_argv(db, log, [other]))
+    code = main(_replay_argv(db, log, [other], "--json"))
     out, err = capsys.readouterr()
     if not HAVE_PIPELINE:
         assert code == 1 and "pipeline" in err and err.startswith("error: ")
+    else:
+        assert "analysed before" not in err
+        if code == 0:  # a one-frame log analyses to an (empty) run of its own
+            assert json.loads(out)["id"] != earlier
+        else:
+            assert err.startswith("error: ")
 
 
 @needs_pipeline
-@needs_ride()
-def test_replay_twice_gives_one_run_unless_forced(tmp_path, capsys):
-    log, caps = fixture_ride()
+def test_replay_twice_gives_one_run_unless_forced(tmp_path, capsys, ride):
+    log, caps = ride
     db = tmp_path / "r.db"
     assert main(_replay_argv(db, log, caps, "--json", "--label", "first")) == 0
     first = json.loads(capsys.readouterr()[0])["id"]
@@ -94,6 +110,15 @@ def test_replay_twice_gives_one_run_unless_forced(tmp_path, capsys):
         ea, eb = st.events(first), st.events(forced)
     assert len(ea) > 0 and ea.tobytes() == eb.tobytes()
     assert {s["sha256"] for s in a["sources"]} == {sha256_file(p) for p in [log, *caps]}
+    # The run's date is the ride's own start: the first receive time in the log, read with
+    # python-can's own candump reader.
+    import can
+    from datetime import datetime
+
+    with can.LogReader(str(log)) as reader:
+        first = next(iter(reader)).timestamp
+    started = datetime.fromisoformat(a["started_at"]).timestamp()
+    assert abs(started - first) <= 2.0
 
 
 def _count_events(db: Path) -> int:
@@ -110,9 +135,8 @@ def _count_events(db: Path) -> int:
 
 
 @needs_pipeline
-@needs_ride()
-def test_killed_replay_leaves_an_incomplete_run_with_its_events(tmp_path):
-    log, caps = fixture_ride()
+def test_killed_replay_leaves_an_incomplete_run_with_its_events(tmp_path, ride):
+    log, caps = ride
     db = tmp_path / "killed.db"
     argv = [sys.executable, "-m", "logger.cli.main",
             *_replay_argv(db, log, caps, "--pace", "1", "--label", "killed")]

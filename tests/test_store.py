@@ -278,3 +278,32 @@ def test_dsp_results_are_stored_as_they_come(tmp_path):
     assert iv[(1, 2)]["expected_deg"] == 270.0
     assert iv[(1, 2)]["observed_deg"] == pytest.approx(271.0, abs=0.1)
     assert iv[(2, 1)]["observed_deg"] == pytest.approx(450.0, abs=0.1)
+
+
+def test_mask_events_changes_only_judged_events_inside_spans(tmp_path):
+    ev = make_events(100, misfire_every={2: 10})
+    with Store.open(tmp_path / "p.db") as st:
+        run = fill_run(st, ev)
+        t0, t1 = float(ev["t"][40]), float(ev["t"][60])
+        inside = (ev["t"] >= t0) & (ev["t"] <= t1)
+        judged = inside & np.isin(ev["verdict"], (0, 1))
+        changed = st.mask_events(run, [(t0, t1)])
+        st.commit()
+        back = st.events(run)
+        plan = st.db.execute(
+            "EXPLAIN QUERY PLAN UPDATE events SET verdict = 2 WHERE run = 1 AND t >= 0 "
+            "AND t <= 1 AND verdict IN (0, 1)").fetchall()
+    assert changed == int(judged.sum()) == 21
+    assert (back["verdict"][judged] == 2).all()
+    np.testing.assert_array_equal(back["verdict"][~judged], ev["verdict"][~judged])
+    assert "idx_events_run_t" in " ".join(str(r) for r in plan)  # SQLite uses the time index
+
+
+def test_update_run_fields(tmp_path):
+    with Store.open(tmp_path / "p.db") as st:
+        run = st.begin_run(m1_like_rig(), label="a", started_at="2026-01-01T00:00:00+00:00")
+        # 1767225600 s after the Unix epoch is 2026-01-01T00:00:00Z (date arithmetic)
+        st.update_run(run, started_at=1767225600.0 + 86400.0, notes="wet")
+        info = st.run(run)
+    assert info["started_at"] == "2026-01-02T00:00:00+00:00"
+    assert info["notes"] == "wet" and info["label"] == "a"

@@ -121,4 +121,14 @@ def _analyse(args, rig, can_path: Path, accel: dict[str, Path], store) -> int:
                 raise
             stderr(f"these files were analysed before as run {earlier}")
             return int(earlier)
-    return int(result.run_id)
+    run_id = int(result.run_id)
+    # A candump log keeps wall-clock receive times: the ride's own start is the run's date
+    # (trends by date then follow the rides, not the day they were replayed).
+    t_start = (result.summary or {}).get("t_start")
+    if isinstance(t_start, int | float) and _PLAUSIBLE_EPOCH[0] < t_start < _PLAUSIBLE_EPOCH[1]:
+        store.update_run(run_id, started_at=float(t_start))
+    return run_id
+
+
+#: Epoch seconds that can be a ride's start (2001 .. 2100); logs with relative times start near 0.
+_PLAUSIBLE_EPOCH = (1.0e9, 4.1e9)

@@ -164,7 +164,12 @@ def _v2(db: sqlite_utils.Database) -> None:
     db["runs"].create_index(["source_key"])
 
 
-MIGRATIONS: list[Callable[[sqlite_utils.Database], None]] = [_v1, _v2]
+def _v3(db: sqlite_utils.Database) -> None:
+    """Events by time within a run: rough-road masking updates them by time span."""
+    db["events"].create_index(["run", "t"])
+
+
+MIGRATIONS: list[Callable[[sqlite_utils.Database], None]] = [_v1, _v2, _v3]
 
 #: The version a file has after every migration ran.
 SCHEMA_VERSION = len(MIGRATIONS)

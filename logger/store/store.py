@@ -443,6 +443,25 @@ class Store:
         )
         return len(recs)
 
+    def update_run(
+        self,
+        run_id: int,
+        *,
+        started_at: datetime | float | str | None = None,
+        label: str | None = None,
+        notes: str | None = None,
+        odometer_km: float | None = None,
+    ) -> None:
+        """Change a run's descriptive fields (those given); commits."""
+        self._check_run(run_id)
+        changes = {"label": label, "notes": notes, "odometer_km": odometer_km}
+        if started_at is not None:
+            changes["started_at"] = utc_iso(started_at)
+        for column, value in changes.items():
+            if value is not None:
+                self.db.execute(f"UPDATE runs SET {column} = ? WHERE id = ?", (value, run_id))
+        self.commit()
+
     def finish_run(self, run_id: int, summary: Mapping | None, status: str = "complete") -> None:
         """Store the run's summary (JSON), set its status and commit."""
         self._check_run(run_id)
