@@ -87,7 +87,7 @@ class WindowSpec:
 
     start_deg: float
     length_deg: float
-    smooth_deg: float = 9.0
+    smooth_deg: float = 18.0
     trend_cycles: int = 2
 
     def __post_init__(self) -> None:
@@ -109,7 +109,7 @@ def default_window(engine: Engine) -> WindowSpec:
     _, angles = firing_sequence(engine)
     iv = np.diff(np.concatenate((angles, [angles[0] + engine.cycle_deg])))
     length = float(min(180.0, 0.75 * float(np.min(iv))))
-    return WindowSpec(start_deg=-0.25 * length, length_deg=length)
+    return WindowSpec(start_deg=-0.25 * length, length_deg=length, smooth_deg=min(18.0, length / 8))
 
 
 def _check_window(window: WindowSpec, engine: Engine) -> None:

@@ -36,6 +36,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy.special import ndtri
 
 from dsp.engine import Engine
 from dsp.errors import InputError
@@ -68,17 +69,23 @@ class MisfireSettings:
         Fuel-cut recognition: throttle at or below, rpm at or above, and mean window work of the
         events around below this (bar of swept volume).
     holdoff_events : int or None
-        Events after a misfire during which ``holdoff_threshold`` applies (None = 2 cycles).
-    holdoff_threshold : float
+        Events after a misfire during which a further misfire must clear the threshold by
+        ``holdoff_margin`` of the way to the misfire level (None = 2 cycles).
+    holdoff_margin : float
     block : int
         Events per statistics update.
+    z_local : float
+        A misfire must exceed this many relative standard deviations of the neighbours that
+        form its reference (rough road, ringing driveline).
+    min_misfires, misfire_history : int
+        Clear misfires a cell needs before their metric moves its threshold; misfires kept.
     """
 
     threshold: float | None = None
-    default_threshold: float = 0.5
+    default_threshold: float = 0.6
     threshold_min: float = 0.35
-    threshold_max: float = 0.65
-    spread_k: float = 6.0
+    threshold_max: float = 20.0
+    spread_k: float = 4.5
     min_cell_events: int = 24
     history: int = 96
     rpm_bin: float = 1000.0
@@ -87,8 +94,11 @@ class MisfireSettings:
     fuel_cut_min_rpm: float = 1600.0
     fuel_cut_work_bar: float = 1.0
     holdoff_events: int | None = None
-    holdoff_threshold: float = 0.75
+    holdoff_margin: float = 0.5
     block: int = 128
+    min_misfires: int = 5
+    z_local: float = 2.5
+    misfire_history: int = 16
 
     def __post_init__(self) -> None:
         if self.threshold is not None and not 0 < self.threshold < 2:
@@ -118,6 +128,10 @@ class _Cells:
         self.fill = np.zeros(shape, dtype=np.int64)  # values ever written
         self.thr = np.full(shape, settings.default_threshold)
         self.sigma = np.full(shape, 0.1)
+        self.med = np.zeros(shape)
+        self.mis = np.ones(shape)
+        self.mis_metric = np.full(shape + (settings.misfire_history,), np.nan)
+        self.mis_fill = np.zeros(shape, dtype=np.int64)
         self.factor = np.ones(shape)
         # per-cylinder factor over all cells, for cells with too little data
         self.cyl_ratio = np.full((n_cyl, settings.history), np.nan)
@@ -155,10 +169,39 @@ class _Cells:
                 hist = self.metric[c, r, ld]
                 med = float(np.nanmedian(hist))
                 sig = 1.4826 * float(np.nanmedian(np.abs(hist - med)))
+                self.med[c, r, ld] = med
                 self.sigma[c, r, ld] = max(sig, 0.01)
-                thr = med + self.s.spread_k * sig
-                self.thr[c, r, ld] = float(np.clip(thr, self.s.threshold_min, self.s.threshold_max))
                 self.factor[c, r, ld] = float(np.nanmedian(self.ratio[c, r, ld]))
+                self._threshold(c, r, ld)
+
+    def update_misfires(self, cyl0, rc, lc, metric) -> None:
+        """Learn the metric of clear misfires per cell (it sets how far the threshold may go)."""
+        hm = self.s.misfire_history
+        key = (cyl0 * self.n_rpm + rc) * self.n_load + lc
+        for u in np.unique(key):
+            sel = key == u
+            c, rest = divmod(int(u), self.n_rpm * self.n_load)
+            r, ld = divmod(rest, self.n_load)
+            k = self.mis_fill[c, r, ld]
+            m = metric[sel][-hm:]
+            pos = (k + np.arange(m.size)) % hm
+            self.mis_metric[c, r, ld, pos] = m
+            self.mis_fill[c, r, ld] = k + int(sel.sum())
+            self._threshold(c, r, ld)
+
+    def _threshold(self, c: int, r: int, ld: int) -> None:
+        s = self.s
+        if self.fill[c, r, ld] < s.min_cell_events:
+            return
+        med, sig = self.med[c, r, ld], self.sigma[c, r, ld]
+        mis = 1.0
+        if self.mis_fill[c, r, ld] >= s.min_misfires:
+            mis = max(float(np.nanmedian(self.mis_metric[c, r, ld])), 1.0)
+        self.mis[c, r, ld] = mis
+        # far enough above the fired spread (false alarms) and at least half-way to the misfire
+        # level (partial burns and disturbances); where the spread is wide the first term wins
+        thr = med + max(s.spread_k * sig, 0.5 * (mis - med))
+        self.thr[c, r, ld] = float(np.clip(thr, s.threshold_min, s.threshold_max))
 
 
 class MisfireDetector:
@@ -187,13 +230,22 @@ class MisfireDetector:
         # expected interval *before* each position of the firing sequence
         self._expected_before = np.roll(iv, 1)
         self._holdoff = self.s.holdoff_events if self.s.holdoff_events is not None else 2 * self.n
+        self._nn = 2 * self.n  # neighbours on each side: two cycles
+        # expected distance between the 2nd largest and the nn-th largest of 2nn normal values
+        # (Blom's approximation of normal order statistics), to turn the range into a sigma
+        m = 2 * self._nn
+        blom = lambda i: ndtri((m - i + 1 - 0.375) / (m + 0.25))  # noqa: E731  i-th largest
+        self._range_scale = float(blom(2) - blom(self._nn)) if self._nn > 2 else 1.0
         self._raw = np.zeros(0, dtype=RAW_EVENT_DTYPE)
         self._thr_in = np.zeros(0)
         self._done_upto: int | None = None  # global index of the next event to decide
+        self._origin = 0
         self._last_misfire = -(10**18)
+        self._last_cyl = 0
         self._prev: np.ndarray | None = None  # the last decided event (for intervals)
         self._prev_index = -1
         self._block_acc: list[np.ndarray] = []
+        self._mis_acc: list[np.ndarray] = []
         self._block_id: int | None = None
 
     # -- streaming ------------------------------------------------------------------------------
@@ -212,6 +264,7 @@ class MisfireDetector:
         self._thr_in = np.concatenate((self._thr_in, thr))
         if self._done_upto is None and self._raw.size:
             self._done_upto = int(self._raw["index"][0])
+            self._origin = self._done_upto
         return self._decide(final=False)
 
     def finish(self) -> np.ndarray:
@@ -222,32 +275,45 @@ class MisfireDetector:
             return empty_events(0)
         first = int(self._raw["index"][0])
         last = int(self._raw["index"][-1])
-        ready_hi = last + 1 if final else last + 1 - self.n  # events < ready_hi are decidable
+        ready_hi = last + 1 if final else last + 1 - self._nn  # events < ready_hi are decidable
         outs = []
-        b = self.s.block
         while self._done_upto < ready_hi:
-            blk = self._done_upto // b
-            seg_hi = min(ready_hi, (blk + 1) * b)
+            end = self._block_end(self._done_upto)
+            seg_hi = min(ready_hi, end)
             outs.append(self._segment(self._done_upto - first, seg_hi - first))
             self._done_upto = seg_hi
-            if seg_hi == (blk + 1) * b:
+            if seg_hi == end:
                 self._close_block()
         # keep n events of history before the next undecided one
-        keep_from = max(self._done_upto - first - self.n, 0)
+        keep_from = max(self._done_upto - first - self._nn, 0)
         self._raw = self._raw[keep_from:]
         self._thr_in = self._thr_in[keep_from:]
-        if final and self._block_acc:
+        if final:
             self._close_block()
         return np.concatenate(outs) if outs else empty_events(0)
 
+    def _block_end(self, i: int) -> int:
+        """End (exclusive) of the statistics block holding event i: blocks of 16, 32, 64 events
+        from the run's first event let the statistics start early, then ``block`` each."""
+        rel = i - self._origin
+        b = self.s.block
+        for edge in (16, 48, 112):
+            if rel < edge and edge < b:
+                return self._origin + edge
+        start = 112 if b > 64 else 0
+        return self._origin + start + ((rel - start) // b + 1) * b
+
     def _close_block(self) -> None:
-        if not self._block_acc:
-            return
-        acc = np.concatenate(self._block_acc)
-        self._block_acc = []
-        if acc.size:
-            cyl0, rc, lc, metric, ratio = (acc[name] for name in acc.dtype.names or ())
-            self._cells.update(cyl0.astype(np.int64), rc, lc, metric, ratio)
+        if self._block_acc:
+            acc = np.concatenate(self._block_acc)
+            self._block_acc = []
+            if acc.size:
+                self._cells.update(acc["c"], acc["r"], acc["l"], acc["m"], acc["q"])
+        if self._mis_acc:
+            macc = np.concatenate(self._mis_acc)
+            self._mis_acc = []
+            if macc.size:
+                self._cells.update_misfires(macc["c"], macc["r"], macc["l"], macc["m"])
 
     # -- one vectorised segment (inside one statistics block) -----------------------------------
     def _segment(self, i0: int, i1: int) -> np.ndarray:
@@ -264,22 +330,35 @@ class MisfireDetector:
         cyl0 = ev["cylinder"].astype(np.int64) - 1
         work = np.where(ev["usable"], ev["work"], np.nan)
         # neighbours k-n..k+n without k (missing ones at the edges of the buffer are NaN)
-        offs = np.concatenate((np.arange(-n, 0), np.arange(1, n + 1)))
+        nn = self._nn
+        offs = np.concatenate((np.arange(-nn, 0), np.arange(1, nn + 1)))
         j = idx[:, None] + offs[None, :]
         inb = (j >= 0) & (j < raw.size)
         jc = np.clip(j, 0, raw.size - 1)
         w_all = np.where(raw["usable"], raw["work"], np.nan)
-        nb_cyl = raw["cylinder"].astype(np.int64)[jc] - 1
-        nb = np.where(inb, w_all[jc], np.nan) / cells.cyl_factor[nb_cyl]
+        nb = np.where(inb, w_all[jc], np.nan)
         # upper half of the neighbours (NaN sorts last: count the finite ones)
         nb_sorted = np.sort(np.where(np.isfinite(nb), nb, -np.inf), axis=1)[:, ::-1]
         cnt = np.isfinite(nb).sum(axis=1)
         half = np.maximum(cnt // 2, 1)
-        take = np.arange(2 * n)[None, :] < half[:, None]
+        take = np.arange(2 * nn)[None, :] < half[:, None]
         base = np.where(take & np.isfinite(nb_sorted), nb_sorted, 0.0).sum(axis=1) / half
-        base = np.where(cnt >= max(2, n), base, np.nan)
+        base = np.where(cnt >= max(2, nn), base, np.nan)
+        # the spread of the neighbours (each over its cylinder's factor) says how disturbed the
+        # crank is right now: a rough road or a ringing driveline widens it, and then a misfire
+        # must stand out by z_local of it. The spread is the range between the second largest
+        # and the median-rank value, which leaves out a rebound just after a misfire (largest)
+        # and neighbouring misfires (lowest).
+        nbn = nb / cells.cyl_factor[raw["cylinder"].astype(np.int64)[jc] - 1]
+        nbn_sorted = np.sort(np.where(np.isfinite(nbn), nbn, -np.inf), axis=1)[:, ::-1]
+        full = cnt == 2 * nn
+        with np.errstate(invalid="ignore", divide="ignore"):
+            rng_ = nbn_sorted[:, 1] - nbn_sorted[:, nn - 1]
+            local_rel = rng_ / self._range_scale / np.abs(nbn_sorted[:, 1:nn].mean(axis=1))
+        local_rel = np.where(full & np.isfinite(local_rel), local_rel, 0.0)
         load_bar = base / self._vd / 1e5
         rc, lc = cells.cell(ev["rpm"], load_bar)
+        sigma = cells.sigma[cyl0, rc, lc]
         factor = np.where(
             cells.fill[cyl0, rc, lc] >= s.min_cell_events,
             cells.factor[cyl0, rc, lc],
@@ -293,7 +372,6 @@ class MisfireDetector:
             thr = np.full(idx.size, float(s.threshold))
         else:
             thr = cells.thr[cyl0, rc, lc]
-        sigma = cells.sigma[cyl0, rc, lc]
         ok = np.isfinite(metric)
         verdict = np.where(ok, FIRED, UNUSABLE).astype(np.int8)
         # fuel cut: closed (or unknown) throttle, rpm above the overrun limit, nothing fires
@@ -307,16 +385,23 @@ class MisfireDetector:
         around_mean = np.where(n_around > 0, around_mean, np.nan)
         no_fire = around_mean / self._vd / 1e5 < s.fuel_cut_work_bar
         fuel_cut = closed & (ev["rpm"] >= s.fuel_cut_min_rpm) & no_fire & np.isfinite(around_mean)
-        cand = ok & ~fuel_cut & (metric > thr)
+        # only the part of the local spread beyond twice the cell's usual spread counts
+        excess = np.sqrt(np.maximum(local_rel**2 - (3.0 * sigma) ** 2, 0.0))
+        cand = ok & ~fuel_cut & (metric > thr) & (metric > s.z_local * excess)
         verdict[fuel_cut] = FUEL_CUT
         verdict[cand] = MISFIRE
         # ring-down hold-off: sequential, but only over the (rare) candidates
         gidx = ev["index"]
+        strict = thr + s.holdoff_margin * np.maximum(cells.mis[cyl0, rc, lc] - thr, 0.0)
+        cyl_now = ev["cylinder"]
         for k in np.flatnonzero(cand):
-            if gidx[k] - self._last_misfire <= self._holdoff and metric[k] <= s.holdoff_threshold:
+            # a burst on one cylinder is real; the ring-down shows on the other cylinders' events
+            ring = gidx[k] - self._last_misfire <= self._holdoff and cyl_now[k] != self._last_cyl
+            if ring and metric[k] <= strict[k]:
                 verdict[k] = FIRED
             else:
                 self._last_misfire = int(gidx[k])
+                self._last_cyl = int(cyl_now[k])
         out["metric"] = metric
         out["threshold"] = thr
         out["verdict"] = verdict
@@ -340,6 +425,10 @@ class MisfireDetector:
         acc["m"] = metric[fired]
         acc["q"] = (work / base)[fired]
         self._block_acc.append(acc)
+        clear = (verdict == MISFIRE) & (conf >= 0.5) & np.isfinite(base)
+        macc = np.zeros(int(clear.sum()), dtype=[("c", "i8"), ("r", "i8"), ("l", "i8"), ("m", "f8")])
+        macc["c"], macc["r"], macc["l"], macc["m"] = cyl0[clear], rc[clear], lc[clear], metric[clear]
+        self._mis_acc.append(macc)
         return out
 
     def _intervals(self, out: np.ndarray, ev: np.ndarray) -> None:

@@ -80,7 +80,7 @@ def synth_ride(
         burn = np.where((cyc_k >= 0) & (cyc_k < cycles), fired[np.clip(cyc_k, 0, cycles - 1), k], 1.0)
         p = _pressure(np.mod(local, 720.0), burn.astype(float), p_ivc, retard=retard[k])
         torque += (p - 1e5) * area * gas_torque_factor(np.mod(local, 720.0), r=r, l=l)
-    mean_t = torque[(theta >= 0) & (theta < 720)].mean()
+    mean_t = torque[theta >= 0].mean()
     load = mean_t * load_frac
     dth = np.deg2rad(STEP)
     J = equivalent_inertia(theta, engine)
