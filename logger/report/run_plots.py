@@ -5,6 +5,8 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
+from matplotlib.colors import LogNorm
+from matplotlib.ticker import MaxNLocator
 
 from dsp.events import FIRED, MISFIRE
 from logger.report.style import (
@@ -23,6 +25,11 @@ def plot_metric(ev: np.ndarray, path: Path) -> Path | None:
         return None
     fig, axes = new_figure(10.0, 2.0 * len(cyls) + 0.9, nrows=len(cyls), sharex=True,
                            squeeze=False)
+    # CAN logs carry wall-clock seconds (~1.7e9): plot time since the first event instead.
+    finite = ev["t"][np.isfinite(ev["t"])]
+    t0 = float(finite.min()) if finite.size else 0.0
+    ev = ev.copy()
+    ev["t"] = ev["t"] - t0
     for ax, c in zip(axes[:, 0], cyls, strict=True):
         e = ev[ev["cylinder"] == c]
         fired = e[e["verdict"] == FIRED]
@@ -42,7 +49,7 @@ def plot_metric(ev: np.ndarray, path: Path) -> Path | None:
         ax.set_ylabel("metric [-]")
         # Outside the axes, so that no marker is hidden behind the legend.
         ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), markerscale=2, frameon=False)
-    axes[-1, 0].set_xlabel("time on the CAN log [s]")
+    axes[-1, 0].set_xlabel(f"time since the first event [s]  (CAN time {t0:.3f} s)")
     fig.suptitle("Speed-fluctuation metric per firing event (larger = weaker combustion); "
                  "not judged = masked, unusable or fuel cut", fontsize=9)
     save(fig, path)
@@ -95,6 +102,7 @@ def plot_windows(store: Store, run_id: int, ev: np.ndarray, path: Path,
         ax.axhline(alert_pct, color=MISFIRE_COLOUR, lw=1, ls="--",
                    label=f"rig alert level {alert_pct:g} %")
     ax.set_xlabel("1000-revolution window number")
+    ax.xaxis.set_major_locator(MaxNLocator(integer=True))
     ax.set_ylabel("misfire rate [%]")
     ax.set_title(f"Misfire rate per 1000-revolution window ({source})")
     ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
@@ -160,32 +168,54 @@ def plot_contribution(ev: np.ndarray, path: Path) -> Path | None:
     return path
 
 
-def plot_order_map(store: Store, run_id: int, path: Path) -> Path | None:
-    """rpm-vs-order map per sensor (colour = amplitude)."""
-    rows = store.order_map(run_id)
+def plot_order_map(store: Store, run_id: int, path: Path, *, max_order: float = 12.0
+                   ) -> Path | None:
+    """rpm-vs-order map per sensor (colour = amplitude, log scale), orders up to ``max_order``.
+
+    The vector-sum map is drawn when the store has one, else each axis.
+    """
+    rows = [r for r in store.order_map(run_id)
+            if r["rpm_lo"] is not None and r["rpm_hi"] is not None and r["order"] is not None
+            and r["order"] <= max_order]
     if not rows:
         return None
-    sensors = sorted({(r["sensor"], r["axis"]) for r in rows})
-    fig, axes = new_figure(5.0 * len(sensors) + 1.0, 4.0, ncols=len(sensors), squeeze=False)
-    for ax, (sensor, axis) in zip(axes[0], sensors, strict=True):
+    keys = sorted({(r["sensor"], r["axis"]) for r in rows})
+    summed = [k for k in keys if k[1] == "sum"]
+    keys = summed or keys
+    fig, axes = new_figure(5.2 * len(keys) + 1.0, 4.0, ncols=len(keys), squeeze=False)
+    for ax, (sensor, axis) in zip(axes[0], keys, strict=True):
         sel = [r for r in rows if r["sensor"] == sensor and r["axis"] == axis]
-        bands = sorted({(r["rpm_lo"], r["rpm_hi"]) for r in sel})
+        # Bands that were never visited carry no amplitude (NULL or 0): leave them out.
+        visited = {(r["rpm_lo"], r["rpm_hi"]) for r in sel if r["amplitude"]}
+        bands = sorted(visited)
         orders = sorted({r["order"] for r in sel})
+        if not bands or not orders:
+            ax.text(0.5, 0.5, "no data", transform=ax.transAxes, ha="center")
+            continue
         grid = np.full((len(bands), len(orders)), np.nan)
         bi = {b: i for i, b in enumerate(bands)}
         oi = {o: i for i, o in enumerate(orders)}
         for r in sel:
-            grid[bi[(r["rpm_lo"], r["rpm_hi"])], oi[r["order"]]] = (
-                np.nan if r["amplitude"] is None else r["amplitude"])
+            b = (r["rpm_lo"], r["rpm_hi"])
+            if b in bi and r["amplitude"]:
+                grid[bi[b], oi[r["order"]]] = r["amplitude"]
         o = np.asarray(orders)
         do = np.diff(o).min() if len(o) > 1 else 0.5
         o_edges = np.concatenate([o - do / 2, [o[-1] + do / 2]])
         r_edges = np.array([b[0] for b in bands] + [bands[-1][1]])
-        mesh = ax.pcolormesh(o_edges, r_edges, grid, shading="flat", cmap="magma")
+        top = float(np.nanmax(grid))
+        # Log colours: the small orders (a weak cylinder's half order) must stay visible.
+        norm = LogNorm(vmin=max(top / 1000.0, float(np.nanmin(grid))), vmax=top)
+        if len(bands) > 1 and np.any(np.diff([b[0] for b in bands]) != np.diff(r_edges)[:-1]):
+            r_edges = np.arange(len(bands) + 1)  # gaps between bands: one row per band
+            ax.set_yticks(np.arange(len(bands)) + 0.5, [f"{lo:.0f}-{hi:.0f}" for lo, hi in bands])
+        mesh = ax.pcolormesh(o_edges, r_edges, np.clip(grid, norm.vmin, None), shading="flat",
+                             cmap="magma", norm=norm)
         fig.colorbar(mesh, ax=ax, label="amplitude [m/s²]")
         ax.set_xlabel("engine order [per crank revolution]")
         ax.set_ylabel("engine speed [rpm]")
-        ax.set_title(f"order map, {sensor} ({axis})")
+        ax.set_title(f"order map, {sensor} ({'vector sum' if axis == 'sum' else axis})")
+        ax.set_xlim(0, min(max_order, o_edges[-1]))
         ax.grid(False)
     save(fig, path)
     return path
@@ -193,7 +223,11 @@ def plot_order_map(store: Store, run_id: int, path: Path) -> Path | None:
 
 def plot_vibration(store: Store, run_id: int, path: Path) -> Path | None:
     """Weighted (and unweighted) vibration r.m.s. against rpm, per sensor."""
-    rows = store.vibration(run_id)
+    everything = store.vibration(run_id)
+    # Rows without an rpm band are whole-run values: they go into the legend, not on the axis.
+    rows = [r for r in everything if r["rpm_lo"] is not None and r["rpm_hi"] is not None]
+    whole = {(r["sensor"], r["weighting"], r["axis"]): r["rms"] for r in everything
+             if r["rpm_lo"] is None and r["rms"] is not None}
     if not rows:
         return None
     fig, ax = new_figure(8.0, 3.6)
@@ -206,6 +240,8 @@ def plot_vibration(store: Store, run_id: int, path: Path) -> Path | None:
         y = [np.nan if r["rms"] is None else r["rms"] for r in sel]
         style = "--" if weighting == "none" else "-"
         label = f"{sensor} {axis}, " + ("unweighted" if weighting == "none" else weighting)
+        if (sensor, weighting, axis) in whole:
+            label += f" (whole run {whole[(sensor, weighting, axis)]:.2f})"
         ax.plot(x, y, style, marker="o", ms=3, color=cyl_colour(j + 1), label=label)
     ax.set_xlabel("engine speed, band centre [rpm]")
     ax.set_ylabel("r.m.s. acceleration [m/s²]")
