@@ -43,6 +43,9 @@ def filled(tmp_path):
                  started_at="2026-04-01T08:00:00+00:00")
         vib = [{"sensor": "bar_left", "rpm_lo": lo, "rpm_hi": lo + 500, "axis": "sum",
                 "weighting": "Wh", "rms": lo / 1000, "n": 500} for lo in range(3000, 7000, 500)]
+        # a whole-run value has no rpm band (the pipeline writes one per sensor)
+        vib.append({"sensor": "bar_left", "rpm_lo": None, "rpm_hi": None, "axis": "sum",
+                    "weighting": "Wh", "rms": 4.2, "n": 4000})
         run = fill_run(st, make_events(600, misfire_every={2: 10}, seed=8), label="second",
                        started_at="2026-04-02T08:00:00+00:00", vibration=vib)
         orders = np.arange(0.5, 6.01, 0.5)
