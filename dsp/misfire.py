@@ -97,7 +97,7 @@ class MisfireSettings:
     holdoff_margin: float = 0.5
     block: int = 128
     min_misfires: int = 5
-    z_local: float = 2.5
+    z_local: float = 0.0
     misfire_history: int = 16
 
     def __post_init__(self) -> None:
@@ -137,6 +137,10 @@ class _Cells:
         self.cyl_ratio = np.full((n_cyl, settings.history), np.nan)
         self.cyl_fill = np.zeros(n_cyl, dtype=np.int64)
         self.cyl_factor = np.ones(n_cyl)
+        # per-cylinder metric spread over all cells: the threshold of cells not learnt yet
+        self.cyl_metric = np.full((n_cyl, settings.history), np.nan)
+        self.cyl_thr = np.full(n_cyl, settings.default_threshold)
+        self.cyl_sigma = np.full(n_cyl, 0.1)
 
     def cell(self, rpm: np.ndarray, load_bar: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         r = np.clip(np.nan_to_num(rpm / self.s.rpm_bin), 0, self.n_rpm - 1).astype(np.int64)
@@ -153,6 +157,17 @@ class _Cells:
             self.cyl_ratio[c, pos[-h:]] = vals[-h:]
             self.cyl_fill[c] = k + vals.size
             self.cyl_factor[c] = float(np.nanmedian(self.cyl_ratio[c]))
+            self.cyl_metric[c, pos[-h:]] = metric[sel][-h:]
+            if self.cyl_fill[c] >= self.s.min_cell_events:
+                hist = self.cyl_metric[c]
+                med = float(np.nanmedian(hist))
+                sig = max(1.4826 * float(np.nanmedian(np.abs(hist - med))), 0.01)
+                thr = med + max(self.s.spread_k * sig, 0.5 * (1.0 - med))
+                self.cyl_sigma[c] = sig
+                self.cyl_thr[c] = float(
+                    np.clip(thr, max(self.s.threshold_min, self.s.default_threshold),
+                            self.s.threshold_max)
+                )
         key = (cyl0 * self.n_rpm + rc) * self.n_load + lc
         for u in np.unique(key):
             sel = key == u
@@ -358,7 +373,11 @@ class MisfireDetector:
         local_rel = np.where(full & np.isfinite(local_rel), local_rel, 0.0)
         load_bar = base / self._vd / 1e5
         rc, lc = cells.cell(ev["rpm"], load_bar)
-        sigma = cells.sigma[cyl0, rc, lc]
+        sigma = np.where(
+            cells.fill[cyl0, rc, lc] >= s.min_cell_events,
+            cells.sigma[cyl0, rc, lc],
+            cells.cyl_sigma[cyl0],
+        )
         factor = np.where(
             cells.fill[cyl0, rc, lc] >= s.min_cell_events,
             cells.factor[cyl0, rc, lc],
@@ -371,7 +390,8 @@ class MisfireDetector:
         if s.threshold is not None:
             thr = np.full(idx.size, float(s.threshold))
         else:
-            thr = cells.thr[cyl0, rc, lc]
+            learnt = cells.fill[cyl0, rc, lc] >= s.min_cell_events
+            thr = np.where(learnt, cells.thr[cyl0, rc, lc], cells.cyl_thr[cyl0])
         ok = np.isfinite(metric)
         verdict = np.where(ok, FIRED, UNUSABLE).astype(np.int8)
         # fuel cut: closed (or unknown) throttle, rpm above the overrun limit, nothing fires
