@@ -74,6 +74,9 @@ class MisfireSettings:
     holdoff_margin : float
     block : int
         Events per statistics update.
+    learn_below : float
+        Events with a metric below this feed the fired statistics even if they were called
+        misfires (so that a steady weak pattern is learnt, while complete misfires are not).
     z_local : float
         A misfire must exceed this many relative standard deviations of the neighbours that
         form its reference (rough road, ringing driveline).
@@ -98,6 +101,7 @@ class MisfireSettings:
     block: int = 128
     min_misfires: int = 5
     z_local: float = 0.0
+    learn_below: float = 0.8
     misfire_history: int = 16
 
     def __post_init__(self) -> None:
@@ -158,7 +162,7 @@ class _Cells:
             self.cyl_fill[c] = k + vals.size
             self.cyl_factor[c] = float(np.nanmedian(self.cyl_ratio[c]))
             self.cyl_metric[c, pos[-h:]] = metric[sel][-h:]
-            if self.cyl_fill[c] >= self.s.min_cell_events:
+            if self.cyl_fill[c] >= max(8, self.s.min_cell_events // 3):
                 hist = self.cyl_metric[c]
                 med = float(np.nanmedian(hist))
                 sig = max(1.4826 * float(np.nanmedian(np.abs(hist - med))), 0.01)
@@ -436,7 +440,11 @@ class MisfireDetector:
         out["contribution"] = contribution
         self._intervals(out, ev)
         # statistics from fired, usable events of this segment (applied when the block closes)
-        fired = (verdict == FIRED) & np.isfinite(base)
+        # a steady pattern that makes one cylinder look weak (a driveline resonance, a weak
+        # cylinder) is learnt too: events below ``learn_below`` feed the statistics even when
+        # the current threshold calls them misfires; complete misfires never do
+        fired = ((verdict == FIRED) | ((verdict == MISFIRE) & (metric < s.learn_below)))
+        fired &= np.isfinite(base)
         acc = np.zeros(
             int(fired.sum()),
             dtype=[("c", "i8"), ("r", "i8"), ("l", "i8"), ("m", "f8"), ("q", "f8")],
