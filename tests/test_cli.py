@@ -37,7 +37,9 @@ def store(tmp_path):
         b = fill_run(st, ev_b, label="after", odometer_km=900.0,
                      started_at="2026-03-02T07:00:00+00:00",
                      vibration=[{"sensor": "bar_left", "rpm_lo": 5000, "rpm_hi": 5500,
-                                 "axis": "sum", "weighting": "Wh", "rms": 7.5, "n": 100}])
+                                 "axis": "sum", "weighting": "Wh", "rms": 7.5, "n": 100},
+                                {"sensor": "bar_left", "rpm_lo": None, "rpm_hi": None,
+                                 "axis": "sum", "weighting": "Wh", "rms": 5.0, "n": 900}])
         st.add_intervals(b, [{"from_cyl": 1, "to_cyl": 2, "expected_deg": 270.0,
                               "observed_deg": 270.2, "stderr_deg": 0.05, "n": 590, "flagged": 0},
                              {"from_cyl": 2, "to_cyl": 1, "expected_deg": 450.0,
@@ -185,7 +187,9 @@ def test_compare_two_runs(capsys, store):
     assert cyl2["rate_pct_diff"] == pytest.approx(10.0 - 2000 / 600)
     cyl1 = next(c for c in obj["cylinders"] if c["cylinder"] == 1)
     assert cyl1["interval_error_deg_diff"] == pytest.approx(-1.5, abs=0.05)
-    assert obj["vibration"][0]["diff"] == pytest.approx(1.5)
+    whole, band = obj["vibration"]  # the whole-run row (b only) sorts first
+    assert whole["rpm_lo"] is None and whole["rms_a"] is None and whole["rms_b"] == 5.0
+    assert band["diff"] == pytest.approx(1.5)
     code, out, _ = run_cli(capsys, "compare", "before", "after", "--store", str(path))
     assert code == 0 and "diff = B - A" in out and "+6.67" in out
 

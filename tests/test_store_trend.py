@@ -35,7 +35,8 @@ def history(tmp_path):
                       + _vib("seat", [((5000, 5500), 9.0)], weighting="Wk")),
         "b": fill_run(st, evs["b"], label="b", odometer_km=3000.0,
                       started_at="2026-01-02T08:00:00+00:00",
-                      vibration=_vib("bar_left", [((5000, 5500), 5.0)], axis="x")
+                      vibration=_vib("bar_left", [((None, None), 70.0)])
+                      + _vib("bar_left", [((5000, 5500), 5.0)], axis="x")
                       + _vib("bar_left", [((5000, 5500), 12.0)], axis="y")
                       + _vib("bar_left", [((5000, 5500), 84.0)], axis="z")),
         "c": fill_run(st, evs["c"], label="c", odometer_km=2000.0,
@@ -98,6 +99,9 @@ def test_bar_vibration_pools_bands_and_sums_axes(history):
     (only_low,) = [p for p in st.trend("bar_vibration", rpm_band="5000-5500")
                    if p.run_id == ids["a"]]
     assert only_low.value == pytest.approx(3.0)
+    every = {p.run_id: p for p in st.trend("bar_vibration")}
+    assert every[ids["b"]].value == pytest.approx(70.0)  # the whole-run row, not the bands
+    assert every[ids["a"]].value == pytest.approx(math.sqrt(12.5))  # no whole-run row: pooled
 
 
 def test_contribution_trend(history):

@@ -23,6 +23,11 @@ def _diff(a: float | None, b: float | None) -> float | None:
     return None if a is None or b is None else b - a
 
 
+def _band_key(key: tuple) -> tuple:
+    """Sort key of (sensor, weighting, axis, rpm_lo, rpm_hi); whole-run rows (None) first."""
+    return (*key[:3], -1.0 if key[3] is None else key[3], -1.0 if key[4] is None else key[4])
+
+
 def comparison(store: Store, a: int, b: int) -> dict:
     """Per-cylinder, per-interval and per-band rows holding both runs' values and b − a."""
     ca = {c["cylinder"]: c for c in store.cylinder_stats(a)}
@@ -55,7 +60,7 @@ def comparison(store: Store, a: int, b: int) -> dict:
     vibration = [
         {"sensor": k[0], "weighting": k[1], "axis": k[2], "rpm_lo": k[3], "rpm_hi": k[4],
          "rms_a": va.get(k), "rms_b": vb.get(k), "diff": _diff(va.get(k), vb.get(k))}
-        for k in sorted(set(va) | set(vb))
+        for k in sorted(set(va) | set(vb), key=_band_key)
     ]
     return {"a": store.run(a), "b": store.run(b), "cylinders": cyl, "intervals": intervals,
             "vibration": vibration}
@@ -99,7 +104,7 @@ def run(args: argparse.Namespace) -> int:
         print(table(
             ["sensor", "weighting", "axis", "rpm", "A", "B", "diff"],
             [[v["sensor"], v["weighting"], v["axis"],
-              f"{fmt(v['rpm_lo'], '.0f')}-{fmt(v['rpm_hi'], '.0f')}",
+              "all" if v["rpm_lo"] is None else f"{v['rpm_lo']:.0f}-{fmt(v['rpm_hi'], '.0f')}",
               fmt(v["rms_a"], ".3f"), fmt(v["rms_b"], ".3f"), fmt(v["diff"], "+.3f")]
              for v in cmp["vibration"]],
         ))

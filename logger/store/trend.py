@@ -11,7 +11,8 @@ different crankbeat versions compare on the same terms):
     interval that ends at that cylinder's firing). Filters: ``cylinder``, ``rpm_band``.
 ``bar_vibration``
     Hand-arm weighted (Wh) r.m.s. vector sum at the bar sensors, m/s², per sensor; bands inside
-    ``rpm_band`` are pooled by energy (sqrt of the sample-weighted mean square).
+    ``rpm_band`` are pooled by energy (sqrt of the sample-weighted mean square). Without a band,
+    the run's whole-run row when it has one, else all its bands pooled.
 ``contribution``
     Mean relative contribution of fired events (1.0 = cylinder mean), per cylinder.
 """
@@ -185,8 +186,12 @@ def _bar_vibration(store: Store, run: dict, band: tuple[float, float] | None
         per.setdefault(sensor, {}).setdefault(lo, {})[axis] = (float(rms), int(n or 0))
     out = []
     for sensor in sorted(per):
+        bands = per[sensor]
+        # A whole-run row (no rpm band) is the run's own value: bands would count it twice.
+        if None in bands:
+            bands = {None: bands[None]}
         energy, count = 0.0, 0
-        for axes in per[sensor].values():
+        for axes in bands.values():
             if "sum" in axes:
                 rms, n = axes["sum"]
             else:
