@@ -9,6 +9,7 @@ What the pipeline calls, in order::
     run_id = store.begin_run(rig, label=..., notes=..., odometer_km=...,
                              sources=[(path, sha, kind), ...], started_at=...)  # "incomplete"
     store.add_events(run_id, events)                      # EVENT_DTYPE arrays, any number of times
+    store.mask_events(run_id, [(t0, t1), ...])            # rough-road spans closed later
     store.commit()                                        # at least once a second when live
     store.add_window_rates(run_id, "rev200", *dsp.analysis.window_rates(ev, revolutions=200, ...))
     store.add_windows(run_id, rows, kind="rpm-band")      # any other windows, as rows
@@ -22,6 +23,8 @@ Rows for ``add_windows`` / ``add_intervals`` / ``add_vibration`` may be a numpy 
 array, a dict of columns or a list of dicts/dataclasses; each method's docstring lists the fields.
 Units: times in s on the CAN time base, angles in crank degrees, rates in %, vibration in m/s².
 A run killed before ``finish_run`` stays "incomplete" with every event up to the last commit.
+
+Afterwards :meth:`Store.update_run` changes started_at / label / notes / odometer_km.
 
 Queries: :meth:`Store.runs`, :meth:`Store.run`, :meth:`Store.resolve_run` (id, label or
 "last"), :meth:`Store.events`, :meth:`Store.windows`, :meth:`Store.intervals`,
