@@ -23,11 +23,20 @@ class RunReport:
     figures: list[Path] = field(default_factory=list)
 
 
-def _alert_pct(rig_toml: str) -> float | None:
+def _limits(rig_toml: str) -> dict[str, float]:
+    """The rig's [limits] as stored with the run (model defaults where the file is silent)."""
+    from logger.rig.model import Limits
+
+    base = {"misfire_alert_pct": Limits.misfire_alert_pct,
+            "interval_tolerance_deg": Limits.interval_tolerance_deg}
     try:
-        return float(tomllib.loads(rig_toml).get("limits", {}).get("misfire_alert_pct", 2.0))
-    except (tomllib.TOMLDecodeError, TypeError, ValueError):
-        return None
+        given = tomllib.loads(rig_toml).get("limits", {})
+    except tomllib.TOMLDecodeError:
+        return base
+    for key in base:
+        if isinstance(given.get(key), int | float):
+            base[key] = float(given[key])
+    return base
 
 
 def make_run_report(store: Store, run_id: int, out_dir: str | Path) -> RunReport:
@@ -39,13 +48,15 @@ def make_run_report(store: Store, run_id: int, out_dir: str | Path) -> RunReport
         raise CrankbeatError(f"cannot create report folder '{out}': {exc.strerror}") from None
     info = store.run(run_id)
     ev = store.events(run_id)
+    limits = _limits(store.rig_toml(run_id))
     stem = f"run{run_id}"
     figures: list[tuple[str, Path | None]] = [
         ("Per-event metric", run_plots.plot_metric(ev, out / f"{stem}_metric.png")),
         ("Misfire rate per 1000 revolutions", run_plots.plot_windows(
             store, run_id, ev, out / f"{stem}_windows.png",
-            alert_pct=_alert_pct(store.rig_toml(run_id)))),
-        ("Firing intervals", run_plots.plot_intervals(ev, out / f"{stem}_intervals.png")),
+            alert_pct=limits.get("misfire_alert_pct"))),
+        ("Firing intervals", run_plots.plot_intervals(
+            ev, out / f"{stem}_intervals.png", tolerance_deg=limits.get("interval_tolerance_deg"))),
         ("Contribution per cylinder",
          run_plots.plot_contribution(ev, out / f"{stem}_contribution.png")),
         ("Order map", run_plots.plot_order_map(store, run_id, out / f"{stem}_orders.png")),

@@ -111,7 +111,8 @@ def plot_windows(store: Store, run_id: int, ev: np.ndarray, path: Path,
     return path
 
 
-def plot_intervals(ev: np.ndarray, path: Path) -> Path | None:
+def plot_intervals(ev: np.ndarray, path: Path, *, tolerance_deg: float | None = None
+                   ) -> Path | None:
     """Histogram of observed firing intervals of fired events, one panel per expected value."""
     ok = (ev["verdict"] == FIRED) & np.isfinite(ev["interval_deg"]) & \
         np.isfinite(ev["expected_interval_deg"])
@@ -129,6 +130,13 @@ def plot_intervals(ev: np.ndarray, path: Path) -> Path | None:
             ax.hist(np.clip(obs[sel["cylinder"] == c], bins[0], bins[-1]), bins=bins,
                     histtype="step", lw=1.3, color=cyl_colour(c), label=f"ending at cyl {c}")
         ax.axvline(g, color=THRESHOLD_COLOUR, lw=1.2, ls="--", label=f"expected {g:g}°")
+        if tolerance_deg:
+            ax.axvspan(g - tolerance_deg, g + tolerance_deg, color="#2bb3a3", alpha=0.12,
+                       label=f"rig tolerance on the mean ±{tolerance_deg:g}°")
+        outside = int(np.sum(np.abs(obs - g) > span))
+        if outside:
+            ax.text(0.99, 0.97, f"{outside} beyond the axis,\npiled at its ends",
+                    transform=ax.transAxes, ha="right", va="top", fontsize=7, color="#555555")
         ax.set_xlabel("observed firing interval [crank deg]")
         ax.set_ylabel("events")
         ax.set_title(f"interval expected {g:g}°, mean {np.mean(obs):.2f}°")
