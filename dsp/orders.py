@@ -35,6 +35,7 @@ from scipy import signal
 from dsp.errors import InputError
 
 Window = Literal["hann", "flattop", "boxcar"]
+Detrend = Literal["none", "constant", "linear"]
 
 _HALF = 8  # interpolation kernel half-width, input samples
 _UP = 8  # upsampling factor ahead of the linear read-out
@@ -343,7 +344,8 @@ class AngleResampler:
         """
         ts = np.asarray(t_samples, dtype=float).reshape(-1)
         xs = np.asarray(x, dtype=float)
-        xs = xs.reshape(len(xs), -1) if xs.ndim else xs.reshape(1, 1)
+        if xs.ndim == 1:
+            xs = xs[:, None]
         if xs.shape != (len(ts), self.n_channels):
             raise InputError(
                 f"x must have shape ({len(ts)}, {self.n_channels}) to match t_samples, "
@@ -396,6 +398,19 @@ class AngleResampler:
         self._fine_j, self._fine_t = np.empty(0, np.int64), np.empty(0)
         self._fine_x = np.empty((0, self.n_channels))
         self._pend_j, self._pend_t = np.empty(0, np.int64), np.empty(0)
+        return self._collect()
+
+    def sample_gap(self) -> AngleSamples:
+        """Samples were lost after the last one pushed: read out what the samples so far can
+        give, then forget them, so that no point is read across the gap. Edges are kept."""
+        if len(self._ts):
+            k = int(np.searchsorted(self._pend_t, self._ts[-1], side="right"))
+            rest_j, rest_t = self._pend_j[k:], self._pend_t[k:]
+            self._pend_j, self._pend_t = self._pend_j[:k], self._pend_t[:k]
+            self._interpolate(final=True)
+            self._pend_j, self._pend_t = rest_j, rest_t
+            self._decimate_ready()
+        self._ts, self._xs = np.empty(0), np.empty((0, self.n_channels))
         return self._collect()
 
     def reset(self) -> AngleSamples:
@@ -451,7 +466,8 @@ def _window(name: str, n: int) -> np.ndarray:
 
 def order_spectrum(
     x_angle: ArrayLike, *, samples_per_rev: int, revs_per_block: int = 8,
-    window: Window = "hann", average: Literal["power", "none"] = "power", axis: int = -1,
+    window: Window = "hann", average: Literal["power", "none"] = "power",
+    detrend: Detrend = "none", axis: int = -1,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Amplitude spectrum in engine orders of a signal on the crank-angle grid.
 
@@ -473,6 +489,9 @@ def order_spectrum(
         Block window. ``"flattop"`` keeps the amplitude of orders between lines within 0.1 %.
     average : {"power", "none"}
         ``"power"``: r.m.s. average of the block amplitudes; ``"none"``: one row per block.
+    detrend : {"none", "constant", "linear"}
+        Removed from each block before the window (``"linear"`` keeps gravity and slow
+        attitude changes out of the lowest lines).
     axis : int
         The angle axis.
 
@@ -500,7 +519,9 @@ def order_spectrum(
             f"got {x.shape[-1]}"
         )
     blocks = x[..., : n_blocks * n_block].reshape(*x.shape[:-1], n_blocks, n_block)
-    amp = _block_amplitude(blocks, _window(window, n_block))
+    if detrend not in ("none", "constant", "linear"):
+        raise InputError(f"detrend must be 'none', 'constant' or 'linear', got {detrend!r}")
+    amp = _block_amplitude(blocks, _window(window, n_block), detrend)
     orders = np.arange(n_block // 2 + 1) / revs_per_block
     if average == "power":
         amp = np.sqrt(np.mean(amp**2, axis=-2))
@@ -508,7 +529,13 @@ def order_spectrum(
     return orders, amp
 
 
-def _block_amplitude(blocks: np.ndarray, w: np.ndarray) -> np.ndarray:
+def _block_amplitude(blocks: np.ndarray, w: np.ndarray, detrend: str = "none") -> np.ndarray:
+    if detrend != "none":  # gravity and slow lean changes would leak into the lowest lines
+        blocks = blocks - blocks.mean(axis=-1, keepdims=True)
+        if detrend == "linear":  # least-squares line, row by row (same numbers in any batch)
+            n = np.arange(blocks.shape[-1]) - (blocks.shape[-1] - 1) / 2
+            slope = (blocks * n).sum(axis=-1, keepdims=True) / np.sum(n * n)
+            blocks = blocks - slope * n
     spec = np.abs(np.fft.rfft(blocks * w, axis=-1)) / np.sum(w)
     spec[..., 1:] *= 2.0
     if blocks.shape[-1] % 2 == 0:
@@ -562,8 +589,8 @@ class OrderMap:
 
     Parameters
     ----------
-    samples_per_rev, revs_per_block, window
-        As for :func:`order_spectrum`.
+    samples_per_rev, revs_per_block, window, detrend
+        As for :func:`order_spectrum` (here ``detrend`` defaults to ``"linear"``).
     rpm_band : float
         Band width, rpm.
     rpm_range : (float, float)
@@ -575,7 +602,7 @@ class OrderMap:
     def __init__(
         self, *, samples_per_rev: int = 64, revs_per_block: int = 8, window: Window = "hann",
         rpm_band: float = 500.0, rpm_range: tuple[float, float] = (1000.0, 11000.0),
-        n_channels: int = 1,
+        n_channels: int = 1, detrend: Detrend = "linear",
     ) -> None:
         lo, hi = rpm_range
         if not (rpm_band > 0 and 0 <= lo < hi):
@@ -589,6 +616,9 @@ class OrderMap:
         self.n_block = self.samples_per_rev * self.revs_per_block
         self.edges = np.arange(lo, hi + 0.5 * rpm_band, rpm_band)
         self.w = _window(window, self.n_block)
+        if detrend not in ("none", "constant", "linear"):
+            raise InputError(f"detrend must be 'none', 'constant' or 'linear', got {detrend!r}")
+        self.detrend = detrend
         self.n_channels = int(n_channels)
         n_bands, n_orders = len(self.edges) - 1, self.n_block // 2 + 1
         self._power = np.zeros((n_bands, self.n_channels, n_orders))
@@ -633,7 +663,7 @@ class OrderMap:
         # revolutions over the block's span, first point to the next block's first
         dt = (t[sel + nb - 1] - t[sel]) * nb / (nb - 1)
         rpm = 60.0 * self.revs_per_block / dt
-        amp = _block_amplitude(np.swapaxes(x[rows], 1, 2), self.w)  # (k, c, n_orders)
+        amp = _block_amplitude(np.swapaxes(x[rows], 1, 2), self.w, self.detrend)  # (k, c, n)
         band = np.searchsorted(self.edges, rpm, side="right") - 1
         inside = (band >= 0) & (band < len(self._count))
         np.add.at(self._power, band[inside], amp[inside] ** 2)
@@ -664,7 +694,8 @@ def order_map(samples: AngleSamples, **options: object) -> OrderMapResult:
 
 def compare_orders(
     orders: ArrayLike, amplitude: ArrayLike, predicted: list[dict[str, float | str]], *,
-    tolerance: float = 0.05, floor_rel: float = 0.1, max_order: float = 6.0,
+    tolerance: float = 0.05, floor_rel: float = 0.05, prominence: float = 3.0,
+    min_order: float = 0.5, max_order: float = 6.0,
 ) -> dict[str, list[dict[str, float | str]]]:
     """Predicted order lines against a measured spectrum.
 
@@ -679,8 +710,13 @@ def compare_orders(
         Half-width, orders, within which a line counts as the predicted one.
     floor_rel : float
         Measured peaks below this fraction of the largest peak are not reported.
-    max_order : float
-        Highest order looked at.
+    prominence : float
+        A peak must also exceed this many times the median of the lines within one order
+        around it (its own line and the two on either side left out): broadband road noise
+        makes local maxima too, but no lines that stand out. Lines within two lines of a
+        predicted order are left out of that median.
+    min_order, max_order : float
+        Orders looked at (a 4-stroke's lowest engine order is 0.5: below it is road and noise).
 
     Returns
     -------
@@ -695,7 +731,7 @@ def compare_orders(
         raise InputError(f"orders and amplitude must be 1-d of equal length, got {o.shape}, {a.shape}")
     if not tolerance > 0:
         raise InputError(f"tolerance must be > 0, got {tolerance!r}")
-    look = (o > tolerance) & (o <= max_order + tolerance)  # leave the DC line out
+    look = (o >= min_order - tolerance) & (o <= max_order + tolerance) & (o > 0)
     av = np.where(look, np.nan_to_num(a), 0.0)
     out_pred = []
     for p in predicted:
@@ -705,11 +741,22 @@ def compare_orders(
     left = np.concatenate(([-np.inf], av[:-1]))
     right = np.concatenate((av[1:], [-np.inf]))
     peak = look & (av > left) & (av >= right)
+    step = o[1] - o[0] if len(o) > 1 else 1.0
+    reach = max(int(round(1.0 / step)), 3)
+    pred_orders = np.array([float(p["order"]) for p in predicted]) if predicted else np.empty(0)
+    # lines that belong to a predicted order (with the window's spread) are not noise
+    busy = np.zeros(len(o), bool)
+    for po in pred_orders:
+        busy |= np.abs(o - po) <= max(tolerance, 2.01 * step)
+    for i in np.flatnonzero(peak):
+        near = np.abs(np.arange(len(o)) - i)
+        around = av[(near <= reach) & (near > 2) & ~busy & (o > tolerance)]
+        if len(around) and av[i] < prominence * np.median(around):
+            peak[i] = False
     floor = floor_rel * (av[peak].max() if peak.any() else 0.0)
     peak &= av >= floor
     k = np.flatnonzero(peak)
     k = k[np.argsort(-av[k], kind="stable")]
-    pred_orders = np.array([float(p["order"]) for p in predicted]) if predicted else np.empty(0)
     dominant, unpredicted = [], []
     for i in k:
         row = {"order": float(o[i]), "amplitude": float(av[i])}

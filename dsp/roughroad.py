@@ -9,6 +9,7 @@ half order even at a 1300 rpm idle, 10.8 Hz) summed over the three axes:
 * a threshold learnt from the run: ``k`` times the running median of that r.m.s. over all
   frames so far (a log-spaced histogram: bounded memory), never below an absolute ``floor``;
   a rough stretch is the minority of a ride, so the median is the smooth road's level;
+* the first ``settle_s`` of the run only settle the filter (no learning, no spans);
 * hysteresis: a span opens when the r.m.s. exceeds the threshold and stays open while it is
   above ``release`` × threshold; it closes ``hold_s`` after the last such frame. Its start is
   put one window before the frame that opened it (the window's lag), its end at the last frame
@@ -67,12 +68,15 @@ class RoughRoadDetector:
         Shortest span kept, s.
     order : int
         Butterworth order of the band-pass (per edge).
+    settle_s : float
+        Time after the first sample during which the band-pass settles: frames then are neither
+        learnt from nor allowed to open a span, s.
     """
 
     def __init__(
         self, fs: float, *, band_hz: tuple[float, float] = (2.0, 8.0), frame_s: float = 0.05,
         window_s: float = 0.5, k: float = 3.0, floor: float = 0.02, release: float = 0.6,
-        hold_s: float = 0.5, min_span_s: float = 0.5, order: int = 2,
+        hold_s: float = 0.5, min_span_s: float = 0.5, order: int = 2, settle_s: float = 2.0,
     ) -> None:
         lo, hi = band_hz
         if not (np.isfinite(fs) and fs > 0):
@@ -92,17 +96,19 @@ class RoughRoadDetector:
         self.window_frames = max(1, int(round(window_s / self.frame_s)))
         self.k, self.floor, self.release = float(k), float(floor), float(release)
         self.hold_s, self.min_span_s = float(hold_s), float(min_span_s)
+        self.settle_s = float(settle_s)
+        self._t_first = np.nan
         self.rpm_min = 120.0 * 1.25 * hi  # half order at 1.25 × the band's top
         self._sos = signal.butter(order, self.band_hz, "bandpass", fs=fs, output="sos")
-        self._zi = np.zeros((self._sos.shape[0], 2, 3))
+        self._zi: np.ndarray | None = None
         # partial frame
         self._acc_e = 0.0
         self._acc_n = 0
         self._acc_rpm = 0.0
         self._acc_t0 = np.nan
         # last window_frames frame energies (and whether each is usable)
-        self._ring = np.zeros(self.window_frames)
-        self._ring_n = 0
+        self._tail = np.empty(0)  # energies of the last window_frames - 1 frames
+        self._seen = 0  # frames seen so far
         self._hist = np.zeros(int(round((_HIST_HI - _HIST_LO) / _HIST_STEP)) + 1, np.int64)
         self._open: float | None = None
         self._last_above = np.nan
@@ -111,7 +117,12 @@ class RoughRoadDetector:
     # -- frames -------------------------------------------------------------------------
     def _frames(self, t: np.ndarray, xyz: np.ndarray, rpm: np.ndarray | None):
         """Energies, start/end times and mean rpm of the frames completed by these samples."""
-        y, self._zi = signal.sosfilt(self._sos, xyz, axis=0, zi=self._zi)
+        if self._zi is None and len(t):  # start settled on the first value: no step from rest
+            self._zi = signal.sosfilt_zi(self._sos)[:, :, None] * xyz[0][None, None, :]
+        if len(t):
+            y, self._zi = signal.sosfilt(self._sos, xyz, axis=0, zi=self._zi)
+        else:
+            y = np.empty((0, 3))
         e = np.sum(y * y, axis=1)
         r = np.full(len(t), np.inf) if rpm is None else rpm
         n = self.frame_n
@@ -147,14 +158,12 @@ class RoughRoadDetector:
             return (np.empty(0),) * 4
         return tuple(np.concatenate(v) for v in (out_e, out_r, out_t0, out_t1))
 
-    def _median(self) -> float:
-        total = self._hist.sum()
-        if total == 0:
-            return 0.0
-        k = int(np.searchsorted(np.cumsum(self._hist), (total + 1) / 2))
-        return float(10 ** (_HIST_LO + k * _HIST_STEP))
-
     # -- public -------------------------------------------------------------------------
+    @property
+    def open_since(self) -> float | None:
+        """Start of the span open now (s), or None: later events may still fall in a span."""
+        return self._open
+
     def push(self, t: ArrayLike, xyz: ArrayLike, rpm: ArrayLike | None = None) -> RoughStep:
         """Add samples; return the spans this closed.
 
@@ -179,33 +188,67 @@ class RoughRoadDetector:
             r = np.where(np.isnan(r), np.inf, r)
         step = RoughStep()
         fe, fr, f0, f1 = self._frames(tt, a, r)
-        for e, rp, t0, t1 in zip(fe, fr, f0, f1):
-            self._frame(float(e), float(rp), float(t0), float(t1), step)
+        if len(fe):
+            level, usable = self._levels(fe, fr, f0, f1)
+            thr = self._thresholds(level, usable)
+            self._hysteresis(level.tolist(), usable.tolist(), thr.tolist(), f1.tolist(), step)
+            self.threshold = float(thr[-1])
         step.open_since = self._open
         step.threshold = self.threshold
         return step
 
-    def _frame(self, e: float, rpm: float, t0: float, t1: float, step: RoughStep) -> None:
-        usable = rpm >= self.rpm_min
-        self._ring = np.roll(self._ring, -1)
-        self._ring[-1] = e
-        self._ring_n = min(self._ring_n + 1, self.window_frames)
-        level = float(np.sqrt(np.mean(self._ring[-self._ring_n:])))
-        if usable and self._ring_n == self.window_frames:
-            b = int(np.clip(round((np.log10(max(level, 1e-300)) - _HIST_LO) / _HIST_STEP), 0,
-                            len(self._hist) - 1))
-            self._hist[b] += 1
-        thr = max(self.floor, self.k * self._median())
-        self.threshold = thr
-        if self._open is None:
-            if usable and level > thr:
-                self._open = t1 - self.window_frames * self.frame_s
-                self._last_above = t1
-            return
-        if usable and level > self.release * thr:
-            self._last_above = t1
-        elif t1 - self._last_above >= self.hold_s:
-            self._close(step)
+    def _levels(self, fe: np.ndarray, fr: np.ndarray, f0: np.ndarray, f1: np.ndarray
+                ) -> tuple[np.ndarray, np.ndarray]:
+        """Window r.m.s. at each frame, and whether the frame may be learnt from / trigger."""
+        w = self.window_frames
+        if np.isnan(self._t_first):
+            self._t_first = float(f0[0])
+        seen = self._seen
+        allv = np.concatenate((self._tail, fe))
+        p = np.arange(len(self._tail), len(allv))  # positions of the new frames in allv
+        level = np.empty(len(fe))
+        full = seen + np.arange(1, len(fe) + 1) >= w
+        start = p - w + 1  # first frame of each window, in allv
+        if full.any():
+            views = np.lib.stride_tricks.sliding_window_view(allv, w)
+            level[full] = views[start[full]].mean(axis=1)
+        for i in np.flatnonzero(~full):  # the run's first frames: shorter windows
+            level[i] = np.mean(allv[: p[i] + 1])
+        level = np.sqrt(level)
+        self._seen = seen + len(fe)
+        self._tail = allv[-(w - 1):] if w > 1 else allv[:0]
+        usable = (fr >= self.rpm_min) & (f1 - self._t_first >= self.settle_s) & full
+        return level, usable
+
+    def _thresholds(self, level: np.ndarray, usable: np.ndarray) -> np.ndarray:
+        """Threshold in force at each frame (the frame itself learnt first), from the running
+        histogram of log10 levels."""
+        nb = len(self._hist)
+        b = np.clip(np.rint((np.log10(np.maximum(level, 1e-300)) - _HIST_LO) / _HIST_STEP),
+                    0, nb - 1).astype(np.int64)
+        med = np.empty(len(level))
+        for s in range(0, len(level), 512):
+            sl = slice(s, s + 512)
+            onehot = np.zeros((len(b[sl]), nb), np.int64)
+            onehot[np.arange(len(b[sl])), b[sl]] = usable[sl]
+            counts = self._hist[None, :] + np.cumsum(onehot, axis=0)
+            total = counts.sum(axis=1)
+            k = np.argmax(np.cumsum(counts, axis=1) >= ((total + 1) / 2)[:, None], axis=1)
+            med[sl] = np.where(total > 0, 10.0 ** (_HIST_LO + k * _HIST_STEP), 0.0)
+            self._hist = counts[-1].copy()
+        return np.maximum(self.floor, self.k * med)
+
+    def _hysteresis(self, level: list, usable: list, thr: list, t1: list, step: RoughStep
+                    ) -> None:
+        for lv, ok, th, t in zip(level, usable, thr, t1):
+            if self._open is None:
+                if ok and lv > th:
+                    self._open = t - self.window_frames * self.frame_s
+                    self._last_above = t
+            elif ok and lv > self.release * th:
+                self._last_above = t
+            elif t - self._last_above >= self.hold_s:
+                self._close(step)
 
     def _close(self, step: RoughStep) -> None:
         span = (float(self._open), float(self._last_above))  # type: ignore[arg-type]

@@ -178,13 +178,7 @@ def weighting_sos(kind: Kind, fs: float) -> np.ndarray:
     w = np.geomspace(1e-4, 1.0, 600) * np.pi  # rad/sample, log-spaced up to Nyquist
     s = 1j * w * fs
     ejw = np.exp(1j * w)
-    rows = []
-    # high-pass: its double zero stays at z = 1; only a gain is fitted
-    a_d = _matched_poles(secs[0][1], fs)
-    b_d = np.array([1.0, -2.0, 1.0])
-    got = np.abs(np.polyval(b_d, ejw) / np.polyval(a_d, ejw))
-    rows.append(np.concatenate((np.exp(np.mean(np.log(_analog_mag(secs[:1], s) / got))) * b_d,
-                                a_d)))
+    rows = [_highpass_row(secs, s, w, fs)]
     if len(secs) == 4:  # Wk's upward step lies far below fs/2: zeros and poles both matched
         a_d = _matched_poles(secs[3][1], fs)
         b_d = _matched_poles(secs[3][0], fs)
@@ -197,6 +191,34 @@ def weighting_sos(kind: Kind, fs: float) -> np.ndarray:
     b_d = _fit_numerator(_analog_mag(secs[1:3], s), a_d, w, 6)
     rows.extend(signal.tf2sos(b_d, np.concatenate((a_d, [0.0, 0.0]))))
     return np.vstack(rows)
+
+
+def band_limiting_sos(kind: Kind, fs: float) -> np.ndarray:
+    """Digital sections of the weighting's band limiting alone (high-pass f1, low-pass f2).
+
+    The "unweighted" but band-limited acceleration that ISO 8041 instruments report beside the
+    weighted value. Designed as :func:`weighting_sos` (the low-pass with two extra zeros).
+    """
+    _check_kind(kind)
+    if not (np.isfinite(fs) and fs > 4 * _PARAMS[kind][0]):
+        raise InputError(f"fs must be > {4 * _PARAMS[kind][0]:.4g} Hz for {kind}, got {fs!r}")
+    secs = _sections(kind)
+    w = np.geomspace(1e-4, 1.0, 600) * np.pi
+    s = 1j * w * fs
+    rows = [_highpass_row(secs, s, w, fs)]
+    a_d = _matched_poles(secs[1][1], fs)
+    b_d = _fit_numerator(_analog_mag(secs[1:2], s), a_d, w, 4)
+    rows.extend(signal.tf2sos(b_d, np.concatenate((a_d, [0.0, 0.0]))))
+    return np.vstack(rows)
+
+
+def _highpass_row(secs: list, s: np.ndarray, w: np.ndarray, fs: float) -> np.ndarray:
+    # the double zero stays at z = 1; only a gain is fitted
+    ejw = np.exp(1j * w)
+    a_d = _matched_poles(secs[0][1], fs)
+    b_d = np.array([1.0, -2.0, 1.0])
+    got = np.abs(np.polyval(b_d, ejw) / np.polyval(a_d, ejw))
+    return np.concatenate((np.exp(np.mean(np.log(_analog_mag(secs[:1], s) / got))) * b_d, a_d))
 
 
 def weighted_rms(
