@@ -73,40 +73,62 @@ def fill(ride, track, cycle_t: np.ndarray) -> None:
         )
 
 
+BLOCK = 1 << 18  # samples per block: bounds the temporaries of a long ride
+
+
 def sensor_signal(ride, track, cycle_t, sensor, t: np.ndarray, rng) -> np.ndarray:
-    """Acceleration at the sensor, g, in its own axes, shape (n, 3)."""
+    """Acceleration at the sensor, g, in its own axes, shape (n, 3).
+
+    Computed in blocks with the filters' states carried over, so memory stays bounded by the
+    block size whatever the ride's length.
+    """
     sc, eng = ride.scenario, ride.engine
     edges = ride.tooth_time - sc.start_time
     theta_rad = np.radians(ride.tooth_angle)
-    theta = np.degrees(hermite(t, edges, theta_rad, ride.tooth_omega))
-    omega = np.interp(t, edges, ride.tooth_omega)
-    force2 = shaking_forces(eng, theta, omega, model="exact")
-    couple2 = shaking_couples(eng, theta, omega, model="exact")
+    fs = sensor.sample_rate_hz
+    phys = sc.physics
     tilt = np.radians(CYLINDER_TILT_DEG)
     u1 = np.array([np.sin(tilt), 0.0, np.cos(tilt)])  # along cylinder 1
     u2 = np.array([np.cos(tilt), 0.0, -np.sin(tilt)])  # 90° ahead in the crank's rotation
-    force = force2[:, :1] * u1 + force2[:, 1:] * u2
-    moment = couple2[:, :1] * u2 - couple2[:, 1:] * u1  # y × u1 = u2, y × u2 = -u1
-    torque = np.interp(t, edges, ride.tooth_gas_torque) + reciprocating_torque(theta, omega, eng)
-    torque = torque - np.convolve(torque, np.ones(401) / 401, mode="same")
-    moment = moment - torque[:, None] * np.array([0.0, 1.0, 0.0])
     lever = np.asarray(LOCATIONS.get(sensor.location, LOCATIONS["frame"]))
-    acc = FORCE_GAIN_G_PER_N * force + MOMENT_GAIN_G_PER_NM * np.cross(moment, lever) / 0.5
-    fs = sensor.sample_rate_hz
-    phys = sc.physics
     hz = tuple(f for f in phys.mount_hz if f < 0.45 * fs)
-    if hz:
-        b, a = mount_filter(fs, hz, phys.mount_damping)
-        acc = lfilter(b, a, acc, axis=0)
-    # Road: vertical mostly, some fore-aft, more on rough sections.
-    starts = cycle_t[:-1]
-    cyc = np.clip(np.searchsorted(starts, t, side="right") - 1, 0, len(track.rough) - 1)
-    level = phys.road_noise_g * (1.0 + 4.0 * track.rough[cyc])
+    mount = mount_filter(fs, hz, phys.mount_damping) if hz else None
+    zi_mount = None
+    if mount is not None:
+        zi_mount = np.zeros((max(len(mount[0]), len(mount[1])) - 1, 3))
     sos = butter(2, [3.0, min(60.0, 0.4 * fs)], btype="bandpass", fs=fs, output="sos")
-    road = sosfilt(sos, rng.standard_normal((len(t) + 1000, 3)), axis=0)[1000:]
-    road /= max(float(np.std(road[:, 2])), 1e-12)
-    acc = acc + road * level[:, None] * np.array([0.4, 0.25, 1.0])
-    acc[:, 2] += 1.0
-    acc = acc + SENSOR_NOISE_G * rng.standard_normal(acc.shape)
+    zi_road = np.zeros((sos.shape[0], 2, 3))
+    sosfilt(sos, rng.standard_normal((1000, 3)), axis=0, zi=zi_road)  # settle the road filter
+    # The road filter's output std for unit white noise, to scale it to g.
+    road_std = float(np.sqrt(np.sum(sosfilt(sos, np.r_[1.0, np.zeros(4095)]) ** 2)))
+    starts = cycle_t[:-1]
     dirs = np.array([AXES[a] for a in sensor.axes], dtype=float)  # (3 sensor axes, 3 bike axes)
-    return acc @ dirs.T
+    n = len(t)
+    out = np.empty((n, 3))
+    half = 200  # the torque's running mean needs this much context each side
+    for b0 in range(0, n, BLOCK):
+        b1 = min(b0 + BLOCK, n)
+        p0, p1 = max(b0 - half, 0), min(b1 + half, n)
+        tb = t[p0:p1]
+        theta = np.degrees(hermite(tb, edges, theta_rad, ride.tooth_omega))
+        omega = np.interp(tb, edges, ride.tooth_omega)
+        torque = np.interp(tb, edges, ride.tooth_gas_torque) + reciprocating_torque(theta, omega, eng)
+        torque = (torque - np.convolve(torque, np.ones(401) / 401, mode="same"))[b0 - p0 : b1 - p0]
+        theta, omega = theta[b0 - p0 : b1 - p0], omega[b0 - p0 : b1 - p0]
+        force2 = shaking_forces(eng, theta, omega, model="exact")
+        couple2 = shaking_couples(eng, theta, omega, model="exact")
+        force = force2[:, :1] * u1 + force2[:, 1:] * u2
+        moment = couple2[:, :1] * u2 - couple2[:, 1:] * u1  # y × u1 = u2, y × u2 = -u1
+        moment[:, 1] -= torque  # the block reacts to the engine torque about the crank (y)
+        acc = FORCE_GAIN_G_PER_N * force + MOMENT_GAIN_G_PER_NM * np.cross(moment, lever) / 0.5
+        if mount is not None:
+            acc, zi_mount = lfilter(mount[0], mount[1], acc, axis=0, zi=zi_mount)
+        # Road: vertical mostly, some fore-aft, more on rough sections.
+        cyc = np.clip(np.searchsorted(starts, t[b0:b1], side="right") - 1, 0, len(track.rough) - 1)
+        level = phys.road_noise_g * (1.0 + 4.0 * track.rough[cyc])
+        road, zi_road = sosfilt(sos, rng.standard_normal((b1 - b0, 3)), axis=0, zi=zi_road)
+        acc = acc + road / road_std * level[:, None] * np.array([0.4, 0.25, 1.0])
+        acc[:, 2] += 1.0
+        acc = acc + SENSOR_NOISE_G * rng.standard_normal(acc.shape)
+        out[b0:b1] = acc @ dirs.T
+    return out
