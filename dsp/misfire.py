@@ -69,8 +69,8 @@ class MisfireSettings:
         Fuel-cut recognition: throttle at or below, rpm at or above, and mean window work of the
         events around below this (bar of swept volume).
     holdoff_events : int or None
-        Events after a misfire during which a further misfire must clear the threshold by
-        ``holdoff_margin`` of the way to the misfire level (None = 2 cycles).
+        Events after a misfire during which a further misfire on another cylinder must clear
+        the threshold by ``holdoff_margin`` of the way to 1 (None = 2 cycles).
     holdoff_margin : float
     block : int
         Events per statistics update.
@@ -81,7 +81,7 @@ class MisfireSettings:
         A misfire must exceed this many relative standard deviations of the neighbours that
         form its reference (rough road, ringing driveline).
     min_misfires, misfire_history : int
-        Clear misfires a cell needs before their metric moves its threshold; misfires kept.
+        Clear misfires a cell needs before their typical metric is kept; misfires kept.
     """
 
     threshold: float | None = None
@@ -97,7 +97,7 @@ class MisfireSettings:
     fuel_cut_min_rpm: float = 1600.0
     fuel_cut_work_bar: float = 1.0
     holdoff_events: int | None = None
-    holdoff_margin: float = 0.5
+    holdoff_margin: float = 0.25
     block: int = 128
     min_misfires: int = 5
     z_local: float = 0.0
@@ -213,13 +213,14 @@ class _Cells:
         if self.fill[c, r, ld] < s.min_cell_events:
             return
         med, sig = self.med[c, r, ld], self.sigma[c, r, ld]
-        mis = 1.0
         if self.mis_fill[c, r, ld] >= s.min_misfires:
-            mis = max(float(np.nanmedian(self.mis_metric[c, r, ld])), 1.0)
-        self.mis[c, r, ld] = mis
-        # far enough above the fired spread (false alarms) and at least half-way to the misfire
-        # level (partial burns and disturbances); where the spread is wide the first term wins
-        thr = med + max(s.spread_k * sig, 0.5 * (mis - med))
+            self.mis[c, r, ld] = float(np.nanmedian(self.mis_metric[c, r, ld]))
+        # far enough above the fired spread (false alarms) and at least half-way to a complete
+        # misfire (1: partial burns and disturbances); where the spread is wide the first term
+        # wins. The misfire level seen in the run is kept for reports, not for the threshold:
+        # misfires scatter widely (a second one in a row keeps more work) and a threshold
+        # pushed up by the clear ones would miss the others.
+        thr = med + max(s.spread_k * sig, 0.5 * (1.0 - med))
         self.thr[c, r, ld] = float(np.clip(thr, s.threshold_min, s.threshold_max))
 
 
@@ -407,7 +408,11 @@ class MisfireDetector:
         n_around = np.isfinite(around).sum(axis=1)
         around_mean = np.where(np.isfinite(around), around, 0.0).sum(axis=1) / np.maximum(n_around, 1)
         around_mean = np.where(n_around > 0, around_mean, np.nan)
-        no_fire = around_mean / self._vd / 1e5 < s.fuel_cut_work_bar
+        # with the throttle closed above the cut speed, an event without work is the ECU's
+        # overrun cut (alone at the start and end of a cut, or with its neighbours in it)
+        no_fire = (around_mean / self._vd / 1e5 < s.fuel_cut_work_bar) | (
+            work / self._vd / 1e5 < s.fuel_cut_work_bar
+        )
         fuel_cut = closed & (ev["rpm"] >= s.fuel_cut_min_rpm) & no_fire & np.isfinite(around_mean)
         # only the part of the local spread beyond twice the cell's usual spread counts
         excess = np.sqrt(np.maximum(local_rel**2 - (3.0 * sigma) ** 2, 0.0))
@@ -416,7 +421,7 @@ class MisfireDetector:
         verdict[cand] = MISFIRE
         # ring-down hold-off: sequential, but only over the (rare) candidates
         gidx = ev["index"]
-        strict = thr + s.holdoff_margin * np.maximum(cells.mis[cyl0, rc, lc] - thr, 0.0)
+        strict = thr + s.holdoff_margin * np.maximum(1.0 - thr, 0.0)
         cyl_now = ev["cylinder"]
         for k in np.flatnonzero(cand):
             # a burst on one cylinder is real; the ring-down shows on the other cylinders' events
