@@ -58,6 +58,8 @@ class EdgeStage:
     def __init__(self, *, lookahead: int, lookback: int, max_lost: int,
                  latency_floor_s: float, loss_tolerance: float, latency_span_s: float) -> None:
         self.A, self.B = int(lookahead), int(lookback)
+        if (self.A + self.B) % 2:
+            raise ValueError("the anchor window must have an odd length")
         self.max_lost = int(max_lost)
         self.floor = float(latency_floor_s)
         self.tol = float(loss_tolerance)

@@ -221,7 +221,7 @@ class CrankTracker:
         loss_guard: int = 3,
         max_lost_frames: int = 64,
         latency_floor_s: float = 0.0,
-        anchor_frames: int = 160,
+        anchor_frames: int = 320,
         pattern_cycles: int = 4,
         phase_confidence: float = 0.95,
         max_slip_teeth: int = 3,
@@ -262,7 +262,9 @@ class CrankTracker:
             self.mode = "none"
         self.hold_revs = 2 * self.P if self.mode == "pattern" else 4
         ahead = max(anchor_frames * 2 // 5, 1)
-        self.edges = EdgeStage(lookahead=ahead, lookback=anchor_frames - ahead - 1,
+        back = anchor_frames - ahead
+        back += (ahead + back) % 2  # an odd window, centred as minimum_filter1d defines it
+        self.edges = EdgeStage(lookahead=ahead, lookback=back,
                                max_lost=max_lost_frames, latency_floor_s=latency_floor_s,
                                loss_tolerance=0.35, latency_span_s=2e-3)
         self.buf = EdgeBatch.empty()
@@ -361,8 +363,12 @@ class CrankTracker:
                 if not self.finished:
                     pending_s = s
                     break
-                self._invalid(s, "the ride ends before the next gap")
-                continue
+                # the ride ends inside this revolution: unconfirmed, but no loss of sync
+                self._flush_queue("the ride ends")
+                self.in_run = False
+                self.cont = None
+                self.search = final_end
+                break
             j = int(np.searchsorted(gaps, s, side="right"))
             nxt = int(gaps[j]) if j < len(gaps) else None
             st_end = status[r0 + L]

@@ -33,6 +33,7 @@ class Truth:
     t: np.ndarray  # true edge times, s
     phi: np.ndarray  # true crank angle, deg, 0 = cylinder 1 firing TDC
     tooth: np.ndarray
+    rev: np.ndarray  # revolution counted from tooth 0; even ones hold cylinder 1's firing TDC
 
 
 @dataclass
@@ -59,8 +60,9 @@ def tooth_edges(omega_rpm, phi_end: float, wheel: ToothWheel, *, phi_start: floa
     phi = (360.0 * revs[:, None] + tooth_pos).ravel()
     tooth = np.tile(np.arange(L), len(revs))
     keep = (phi > grid[0]) & (phi < grid[-1])
+    rev = np.repeat(revs, L)[keep]
     phi, tooth = phi[keep], tooth[keep]
-    return Truth(np.interp(phi, grid, t_grid) + 1.0, phi, tooth)
+    return Truth(np.interp(phi, grid, t_grid) + 1.0, phi, tooth, rev)
 
 
 def make_frames(truth: Truth, wheel: ToothWheel, *, seed: int = 0, k: int = 3,
@@ -72,7 +74,8 @@ def make_frames(truth: Truth, wheel: ToothWheel, *, seed: int = 0, k: int = 3,
     n = (len(per) // k) * k
     per = per[:n]
     edges = slice(1, n + 1)
-    t_e, phi_e, tooth_e = truth.t[edges], truth.phi[edges], truth.tooth[edges]
+    t_e, phi_e, tooth_e, rev_e = (truth.t[edges], truth.phi[edges], truth.tooth[edges],
+                                  truth.rev[edges])
     q = np.round(per / UNIT) * UNIT
     q[per >= SAT] = np.nan
     P = q.reshape(-1, k)
@@ -81,9 +84,7 @@ def make_frames(truth: Truth, wheel: ToothWheel, *, seed: int = 0, k: int = 3,
     if cam:
         # window cam: active during the revolution from tooth 0 that holds a firing TDC;
         # a late cam edge shows the previous revolution's level for ``cam_late_teeth`` teeth
-        rev_start_phi = phi_e - tooth_e * wheel.pitch_deg
-        firing_rev = np.mod(np.floor((rev_start_phi + wheel.tdc_offset_deg + 1e-6) / 360.0)
-                            , 2) == 0
+        firing_rev = np.mod(rev_e, 2) == 0
         lvl = np.where(firing_rev, wheel.cam_active_level, 1 - wheel.cam_active_level)
         if cam_late_teeth:
             prev_lvl = np.concatenate((lvl[:cam_late_teeth], lvl[:-cam_late_teeth]))
@@ -98,7 +99,7 @@ def make_frames(truth: Truth, wheel: ToothWheel, *, seed: int = 0, k: int = 3,
         lb[j + cnt] = cnt
     ek = np.repeat(keep, k)
     return Frames(ft[keep], P[keep], cm[keep], lb[keep],
-                  Truth(t_e[ek], phi_e[ek], tooth_e[ek]))
+                  Truth(t_e[ek], phi_e[ek], tooth_e[ek], rev_e[ek]))
 
 
 def run(fr: Frames, wheel=M1_WHEEL, engine=TWIN_270, **opt) -> CrankAngles:
@@ -133,10 +134,14 @@ def test_constant_speed_angles_times_and_phase():
     assert off % 720 == 0
     # all but the first revolution (before the first gap) and the last (unconfirmed) are synced
     assert out.valid.sum() >= len(out) - 3 * 58
-    # edge times: the anchor is the lower envelope of latency (0.1 ms floor given); the error
-    # left is the envelope's excess over the floor plus 0.125 µs rounding per period summed
+    # edge times: the anchor is the lower envelope of latency (0.1 ms floor given). At a
+    # perfectly steady speed every period rounds the same way (333.33 -> 333.25 µs), so the
+    # summed time drifts 0.083 µs per period against the frame times and the envelope window
+    # (192 frames back, 128 ahead) lags by up to 192 * 3 * 0.083 µs = 48 µs; real engines vary
+    # from tooth to tooth and the rounding then averages out (see the other tests)
     period = 60.0 / 3000 / 60
-    assert tmax < 0.1 * period
+    assert tmax < 192 * 3 * (period - 333.25e-6) + 5e-6
+    assert tmax < 0.2 * period
     kinds = [e.kind for e in out.events]
     assert kinds[:2] == ["gained", "phase-set"]
 
@@ -158,3 +163,259 @@ def test_hard_linear_acceleration(accel):
     assert amax < 1e-9 and off % 720 == 0
     assert out.valid.sum() >= len(out) - 3 * 58
     assert tmax < 30e-6  # well under the shortest tooth period here (~100 µs)
+
+
+def firing_speed(base_rpm, engine=TWIN_270, *, swing=0.03):
+    """omega(phi) of a toy engine: per cylinder a compression dip before its firing TDC and a
+    combustion push after it (Gaussian torque lobes), integrated through 1/2 J w^2 = E.
+
+    Independent of the tracker's pattern template (which uses plain dips at TDC): only the
+    physics sign is shared - compression slows the crank, combustion speeds it up.
+    """
+    from dsp.layout import firing_angles
+
+    fire = firing_angles(engine)
+    grid = np.arange(0.0, 720.0, 0.05)
+    torque = np.zeros_like(grid)
+    for f in fire:
+        x = np.mod(grid - f + 360.0, 720.0) - 360.0
+        torque += 2.0 * np.exp(-0.5 * ((x - 35.0) / 30.0) ** 2)  # combustion after TDC
+        torque -= 1.0 * np.exp(-0.5 * ((x + 25.0) / 30.0) ** 2)  # compression before TDC
+    torque -= torque.mean()
+    energy = np.cumsum(torque) * 0.05
+    energy -= energy.mean()
+    shape = energy / np.max(np.abs(energy))
+
+    def omega(phi):
+        b = np.asarray(base_rpm(phi) if callable(base_rpm) else np.full_like(phi, base_rpm))
+        return b * np.sqrt(1.0 + 2 * swing * np.interp(np.mod(phi, 720.0), grid, shape))
+
+    return omega
+
+
+def test_speed_sweep_idle_to_rev_limit():
+    # M1: idle 1300 rpm, rev limit 10 500 rpm (RIG.md); speed linear in angle over 600 revs
+    phi_end = 360.0 * 600
+    base = lambda phi: 1300.0 + (10500.0 - 1300.0) * np.clip((phi + 300) / (phi_end + 300), 0, 1)
+    tr = tooth_edges(firing_speed(base), phi_end, M1_WHEEL, step_deg=0.02)
+    fr = make_frames(tr, M1_WHEEL, seed=3)
+    out = run(fr, latency_floor_s=0.1e-3)
+    off, amax, tmax = angle_errors(out, fr)
+    assert amax < 1e-9 and off % 720 == 0
+    assert out.valid.sum() >= len(out) - 3 * 58
+    # shortest tooth period at 10 500 rpm is ~90 µs (60 positions): a quarter of it at most
+    assert tmax < 0.25 * np.diff(tr.t).min()
+
+
+def test_sinusoidal_cycle_fluctuation_5pct():
+    w = lambda phi: 2500.0 * (1 + 0.05 * np.sin(2 * np.pi * phi / 720.0))
+    tr = tooth_edges(w, 360.0 * 80, M1_WHEEL)
+    fr = make_frames(tr, M1_WHEEL, seed=4)
+    out = run(fr, latency_floor_s=0.1e-3)
+    off, amax, tmax = angle_errors(out, fr)
+    assert amax < 1e-9 and off % 720 == 0
+    assert tmax < 0.1 * np.diff(tr.t).min()
+    assert not [e for e in out.events if e.kind == "lost"]
+
+
+def test_lost_frames_short_loss_keeps_count_long_loss_resyncs():
+    tr = tooth_edges(firing_speed(4000.0), 360.0 * 120, M1_WHEEL)
+    # 2 frames dropped (counter says 2: the count is trusted); 300 frames dropped while the
+    # 8-bit rolling counter can only say 300 % 256 = 44 (the count must not be trusted)
+    fr = make_frames(tr, M1_WHEEL, seed=5, lost={400: 2, 1200: 300})
+    j_long = np.flatnonzero(fr.lost_before == 300)[0]
+    fr.lost_before[j_long] = 300 % 256
+    out = run(fr, latency_floor_s=0.1e-3)
+    off, amax, _ = angle_errors(out, fr)
+    assert amax < 1e-9 and off % 720 == 0
+    # short loss: edges right next to it are invalid, but the revolution count goes on
+    j_short = np.flatnonzero(fr.lost_before == 2)[0]
+    e_short = 3 * j_short
+    assert not out.valid[e_short:e_short + 3].any()
+    assert out.valid[e_short + 3:e_short + 60].all()
+    lost_ev = [e for e in out.events if e.kind == "lost"]
+    assert len(lost_ev) == 1 and "not trusted" in lost_ev[0].message
+    # after the long loss: no angles until the next two gaps, then right ones again
+    e_long = 3 * j_long
+    assert not out.valid[e_long:e_long + 3].any()
+    assert out.valid[e_long + 2 * 58:].sum() > 0.9 * (len(out) - e_long - 3 * 58)
+
+
+def _insert_edge(tr: Truth, i: int, frac: float) -> Truth:
+    t_new = tr.t[i - 1] + frac * (tr.t[i] - tr.t[i - 1])
+    return Truth(np.insert(tr.t, i, t_new), np.insert(tr.phi, i, np.nan),
+                 np.insert(tr.tooth, i, -1), np.insert(tr.rev, i, tr.rev[i - 1]))
+
+
+def _delete_edge(tr: Truth, i: int) -> Truth:
+    return Truth(np.delete(tr.t, i), np.delete(tr.phi, i), np.delete(tr.tooth, i),
+                 np.delete(tr.rev, i))
+
+
+@pytest.mark.parametrize("where", ["tooth", "gap"])
+def test_noisy_extra_edge_never_gives_wrong_angles(where):
+    tr = tooth_edges(firing_speed(3000.0), 360.0 * 40, M1_WHEEL)
+    gap_edges = np.flatnonzero(tr.tooth == 0)
+    i = gap_edges[10] + (25 if where == "tooth" else 0)  # a spurious edge inside a tooth or gap
+    tr = _insert_edge(tr, int(i), 0.3)
+    fr = make_frames(tr, M1_WHEEL, seed=6)
+    out = run(fr)
+    spurious = ~np.isfinite(fr.truth.phi)
+    assert spurious.sum() == 1 and not out.valid[spurious].any()
+    assert np.isnan(out.angle[spurious]).all()
+    off, amax, _ = angle_errors(out, fr)
+    assert amax < 1e-9 and off % 720 == 0  # every valid angle right: the bad revolution dropped
+    assert any(e.kind == "lost" for e in out.events)
+    # at most the revolutions touching the glitch are lost
+    assert out.valid.sum() >= len(out) - 5 * 58
+
+
+def test_missing_edge_never_gives_wrong_angles():
+    tr = tooth_edges(firing_speed(3000.0), 360.0 * 40, M1_WHEEL)
+    i = int(np.flatnonzero(tr.tooth == 30)[12])
+    fr = make_frames(_delete_edge(tr, i), M1_WHEEL, seed=7)
+    out = run(fr)
+    off, amax, _ = angle_errors(out, fr)
+    assert amax < 1e-9 and off % 720 == 0
+    assert any(e.kind == "lost" for e in out.events)
+    assert out.valid.sum() >= len(out) - 5 * 58
+
+
+def test_36_minus_1_wheel_and_late_cam_bit():
+    wheel = ToothWheel(36, 1, 55.0, "window", 0)  # inverted cam level, another TDC offset
+    tr = tooth_edges(firing_speed(5000.0), 360.0 * 60, wheel)
+    # the cam edge reaches the frames 4 teeth late: the first frame of each revolution shows
+    # the previous revolution's level
+    fr = make_frames(tr, wheel, seed=8, cam_late_teeth=4)
+    out = run(fr, wheel=wheel, latency_floor_s=0.1e-3)
+    off, amax, tmax = angle_errors(out, fr)
+    assert amax < 1e-9 and off % 720 == 0
+    assert out.tooth.max() == 34 and out.valid.sum() >= len(out) - 3 * 35
+    assert not [e for e in out.events if e.kind == "phase-set" and "disagrees" in e.message]
+
+
+def test_no_cam_uneven_layout_phase_from_pattern():
+    wheel = ToothWheel(60, 2, 96.0, "none")
+    for start in (-300.0, 60.0):  # the recording starts in one revolution or the other
+        tr = tooth_edges(firing_speed(3500.0), 360.0 * 60, wheel, phi_start=start)
+        fr = make_frames(tr, wheel, seed=9, cam=False)
+        out = run(fr, wheel=wheel)
+        off, amax, _ = angle_errors(out, fr)
+        assert amax < 1e-9 and off % 720 == 0
+        ev = [e for e in out.events if e.kind == "phase-set"]
+        assert ev and "pattern" in ev[0].message
+
+
+def test_no_cam_even_firing_phase_unknown_warns_once():
+    wheel = ToothWheel(60, 2, 96.0, "none")
+    tr = tooth_edges(firing_speed(3500.0, TWIN_360), 360.0 * 30, wheel)
+    fr = make_frames(tr, wheel, seed=10, cam=False)
+    with pytest.warns(PhaseUnknownWarning):
+        out = run(fr, wheel=wheel, engine=TWIN_360)
+    assert any(e.kind == "phase-unknown" for e in out.events)
+    _, amax, _ = angle_errors(out, fr, cycle=360.0)  # right modulo one revolution
+    assert amax < 1e-9
+
+
+def test_two_stroke_needs_no_phase():
+    wheel = ToothWheel(36, 1, 0.0, "none")
+    tr = tooth_edges(firing_speed(6000.0, SINGLE_2T), 360.0 * 40, wheel)
+    fr = make_frames(tr, wheel, seed=11, cam=False)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        out = run(fr, wheel=wheel, engine=SINGLE_2T)
+    off, amax, _ = angle_errors(out, fr, cycle=360.0)
+    assert amax < 1e-9
+    assert not [e for e in out.events if e.kind.startswith("phase")]
+    a = out.angle[out.valid]
+    assert np.all(np.diff(a) > 0)
+
+
+def test_saturated_periods_while_cranking_no_sync_until_regular_teeth():
+    # cranking at 40 rpm: a 6° tooth takes 25 ms, beyond the 16.38 ms full scale (RIG.md)
+    def omega(phi):
+        return np.where(phi < 360.0, 40.0, np.minimum(40.0 + (phi - 360.0) * 3.0, 1500.0))
+
+    tr = tooth_edges(omega, 360.0 * 30, M1_WHEEL)
+    fr = make_frames(tr, M1_WHEEL, seed=12)
+    out = run(fr)
+    sat = ~np.isfinite(out.period)
+    assert sat.sum() > 20
+    last_sat = np.flatnonzero(sat)[-1]
+    assert not out.valid[:last_sat + 1].any()
+    off, amax, _ = angle_errors(out, fr)
+    assert amax < 1e-9 and off % 720 == 0
+    assert out.valid[last_sat + 3 * 58:-2 * 58].all()
+
+
+def test_tooth_correction_is_applied():
+    err = 0.2 * np.sin(np.arange(58) * 0.7)
+    err -= err[0]  # tooth 0 is the reference of the wheel's TDC offset
+    tr = tooth_edges(firing_speed(3000.0), 360.0 * 20, M1_WHEEL, errors_deg=err)
+    fr = make_frames(tr, M1_WHEEL, seed=13)
+    plain = run(fr)
+    fixed = run(fr, tooth_correction_deg=err)
+    _, a_plain, _ = angle_errors(plain, fr)
+    _, a_fixed, _ = angle_errors(fixed, fr)
+    assert a_fixed < 1e-9 and a_plain == pytest.approx(np.max(np.abs(err)), rel=1e-6)
+
+
+def test_chunked_pushes_give_identical_numbers():
+    phi_end = 360.0 * 150
+    base = lambda phi: 2000.0 + 4000.0 * (phi > 20000) + 2000.0 * np.sin(phi / 9000.0)
+    tr = tooth_edges(firing_speed(base), phi_end, M1_WHEEL)
+    tr = _insert_edge(tr, 3000, 0.5)
+    fr = make_frames(tr, M1_WHEEL, seed=14, lost={500: 1, 1500: 3, 2000: 280})
+    whole = run(fr)
+    rng = np.random.default_rng(15)
+    for _ in range(4):
+        trk = CrankTracker(M1_WHEEL, TWIN_270)
+        parts, a = [], 0
+        while a < len(fr.frame_time):
+            b = a + int(rng.integers(0, 400))
+            sl = slice(a, b)
+            parts.append(trk.push(fr.frame_time[sl], fr.periods[sl], fr.cam[sl],
+                                  fr.lost_before[sl]))
+            a = b
+        parts.append(trk.finish())
+        got = CrankAngles.concat(parts)
+        for name in ("t", "angle", "tooth", "valid", "period"):
+            np.testing.assert_array_equal(getattr(got, name), getattr(whole, name), err_msg=name)
+        assert got.events == whole.events
+
+
+def test_held_back_edges_are_bounded():
+    tr = tooth_edges(firing_speed(3000.0), 360.0 * 60, M1_WHEEL)
+    fr = make_frames(tr, M1_WHEEL, seed=16)
+    trk = CrankTracker(M1_WHEEL, TWIN_270)
+    pushed = got = 0
+    for a in range(0, len(fr.frame_time), 10):
+        sl = slice(a, a + 10)
+        got += len(trk.push(fr.frame_time[sl], fr.periods[sl], fr.cam[sl], fr.lost_before[sl]))
+        pushed += 3 * len(fr.frame_time[sl])
+        # held back: the anchor's look-ahead (128 frames) plus one revolution and a margin
+        assert pushed - got <= 3 * 128 + 2 * 60 + 30
+    assert got + len(trk.finish()) == pushed
+
+
+def test_phase_from_pattern_direct():
+    wheel = ToothWheel(60, 2, 96.0, "none")
+    tr = tooth_edges(firing_speed(3000.0), 360.0 * 16, wheel)
+    per = np.diff(tr.t, prepend=np.nan)
+    off, conf = phase_from_pattern(tr.phi, per, TWIN_270)
+    assert off == 0.0 and conf > 0.99
+    off, conf = phase_from_pattern(tr.phi + 360.0, per, TWIN_270)
+    assert off == 360.0 and conf > 0.99
+    assert phase_from_pattern(tr.phi, per, TWIN_360) == (0.0, 0.0)  # 360/360 looks the same
+
+
+def test_bad_input_one_line_errors():
+    trk = CrankTracker(M1_WHEEL, TWIN_270)
+    with pytest.raises(InputError, match=r"shape \(m, k\)"):
+        trk.push(np.zeros(3), np.zeros(3), np.zeros(3), np.zeros(3))
+    with pytest.raises(InputError, match="frame 1 has"):
+        trk.push(np.array([0.0, np.nan]), np.ones((2, 3)) * 1e-4, np.zeros(2), np.zeros(2))
+    with pytest.raises(InputError, match="58 finite values"):
+        CrankTracker(M1_WHEEL, TWIN_270, tooth_correction_deg=np.zeros(60))
+    with pytest.raises(InputError, match="missing teeth"):
+        ToothWheel(60, 0)
