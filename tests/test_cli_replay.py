@@ -29,32 +29,30 @@ needs_pipeline = pytest.mark.skipif(not HAVE_PIPELINE,
                                     reason="logger.pipeline (lead engineer) has not landed yet")
 
 
-def _fixture_ride() -> tuple[Path, list[Path]] | None:
-    """The first recorded ride under fixtures/: a candump .log and its .acraw captures."""
-    for log in sorted((ROOT / "fixtures").rglob("*.log")):
-        stem = log.name[: -len(".log")]
-        return log, sorted(log.parent.glob(f"{stem}.*.acraw"))
-    return None
+DEMO = ROOT / "fixtures" / "demo"  # fixtures/README.md: the M1's 60 s demo ride
+SHORT = ROOT / "fixtures" / "blf"  # 2 s of the M1 in python-can's BLF format, no capture
 
 
 @pytest.fixture(scope="module")
-def ride(tmp_path_factory):
-    """A fixture ride, or one made now with `crankbeat synth` (30 s, cylinder 2 misfiring)."""
-    found = _fixture_ride()
-    if found is not None:
-        return found
-    if importlib.util.find_spec("logger.cli.cmd_synth") is None:
-        pytest.skip("no fixture ride under fixtures/ and no simulator to make one")
-    out = tmp_path_factory.mktemp("ride")
-    code = main(["synth", "--rig", "m1", "--duration", "30", "--rpm", "3000:6000",
-                 "--throttle", "30", "--misfire-cylinder", "2", "--seed", "3", "--out", str(out),
-                 "--quiet"])
-    assert code == 0
-    return out / "ride.log", sorted(out.glob("ride.*.acraw"))
+def ride():
+    """The demo ride (candump .log + bar_left capture): long enough to be killed mid-way."""
+    log, caps = DEMO / "demo.log", sorted(DEMO.glob("demo.*.acraw"))
+    if not log.is_file():
+        pytest.skip("fixtures/demo is missing (make fixtures)")
+    return log, caps
 
 
-def _replay_argv(store: Path, log: Path, caps: list[Path], *extra: str) -> list[str]:
-    argv = ["replay", "--rig", "m1", "--can", str(log), "--store", str(store), *extra]
+@pytest.fixture(scope="module")
+def short_ride():
+    log = SHORT / "blf.blf"
+    if not log.is_file():
+        pytest.skip("fixtures/blf is missing (make fixtures)")
+    return log, []
+
+
+def _replay_argv(store: Path, log: Path, caps: list[Path], *extra: str, rig: str = "m1"
+                 ) -> list[str]:
+    argv = ["replay", "--rig", rig, "--can", str(log), "--store", str(store), *extra]
     for cap in caps:
         argv += ["--accel", str(cap)]
     return argv
@@ -93,8 +91,8 @@ def test_same_files_give_the_earlier_run_without_analysing(tmp_path, capsys):
 
 
 @needs_pipeline
-def test_replay_twice_gives_one_run_unless_forced(tmp_path, capsys, ride):
-    log, caps = ride
+def test_replay_twice_gives_one_run_unless_forced(tmp_path, capsys, short_ride):
+    log, caps = short_ride
     db = tmp_path / "r.db"
     assert main(_replay_argv(db, log, caps, "--json", "--label", "first")) == 0
     first = json.loads(capsys.readouterr()[0])["id"]
@@ -111,7 +109,7 @@ def test_replay_twice_gives_one_run_unless_forced(tmp_path, capsys, ride):
     assert len(ea) > 0 and ea.tobytes() == eb.tobytes()
     assert {s["sha256"] for s in a["sources"]} == {sha256_file(p) for p in [log, *caps]}
     # The run's date is the ride's own start: the first receive time in the log, read with
-    # python-can's own candump reader.
+    # python-can's own reader.
     import can
     from datetime import datetime
 
@@ -166,3 +164,38 @@ def test_killed_replay_leaves_an_incomplete_run_with_its_events(tmp_path, ride):
     assert len(ev) > 0
     assert set(ev["cylinder"].tolist()) <= {1, 2}  # RIG.md: the M1 is a twin
     assert np.isfinite(ev["t"]).all()
+
+
+@needs_pipeline
+def test_query_commands_on_a_replayed_ride(tmp_path, capsys):
+    """Any rig: the four-cylinder example (big-endian, 29-bit id, .asc log, a seat sensor)."""
+    import csv
+    import io
+
+    folder = ROOT / "fixtures" / "example-four"
+    logs = sorted(folder.glob("*.asc"))
+    if not logs:
+        pytest.skip("fixtures/example-four is missing (make fixtures)")
+    caps = sorted(folder.glob("*.acraw"))
+    db = tmp_path / "q.db"
+    assert main(_replay_argv(db, logs[0], caps, "--label", "sim", rig="example-four")) == 0
+    out, _ = capsys.readouterr()
+    assert out.startswith("run 1  [complete]  rig example-four")
+    assert "layout check: best fit" in out and "per cylinder" in out
+    assert main(["runs", "--store", str(db), "--json"]) == 0
+    (row,) = json.loads(capsys.readouterr()[0])
+    assert main(["events", "sim", "--store", str(db)]) == 0
+    rows = list(csv.DictReader(io.StringIO(capsys.readouterr()[0])))
+    assert len(rows) == row["n_events"] > 0
+    assert sum(int(r["misfire"]) for r in rows) == row["n_misfires"]
+    assert {int(r["cylinder"]) for r in rows} == {1, 2, 3, 4}  # a four
+    assert main(["trend", "misfire_rate", "--cylinder", "3", "--store", str(db), "--json"]) == 0
+    (pt,) = json.loads(capsys.readouterr()[0])
+    cyl3 = [r for r in rows if r["cylinder"] == "3" and r["verdict"] in ("fired", "misfire")]
+    assert pt["n"] == len(cyl3)
+    assert pt["value"] == pytest.approx(100 * sum(r["verdict"] == "misfire" for r in cyl3)
+                                        / len(cyl3))
+    assert main(["report", "last", "--store", str(db), "--out", str(tmp_path / "rep")]) == 0
+    names = {p.name for p in (tmp_path / "rep").glob("*.png")}
+    assert {"run1_metric.png", "run1_intervals.png", "run1_vibration.png",
+            "run1_orders.png"} <= names

@@ -120,7 +120,7 @@ def plot_intervals(ev: np.ndarray, path: Path, *, tolerance_deg: float | None = 
     if not len(e):
         return None
     groups = sorted({round(float(v), 1) for v in e["expected_interval_deg"]})
-    fig, axes = new_figure(4.2 * len(groups) + 0.6, 3.4, ncols=len(groups), squeeze=False)
+    fig, axes = new_figure(6.0 * len(groups) + 0.6, 3.4, ncols=len(groups), squeeze=False)
     for ax, g in zip(axes[0], groups, strict=True):
         sel = e[np.isclose(e["expected_interval_deg"], g, atol=0.05)]
         obs = sel["interval_deg"]
@@ -140,7 +140,7 @@ def plot_intervals(ev: np.ndarray, path: Path, *, tolerance_deg: float | None = 
         ax.set_xlabel("observed firing interval [crank deg]")
         ax.set_ylabel("events")
         ax.set_title(f"interval expected {g:g}°, mean {np.mean(obs):.2f}°")
-        ax.legend(loc="upper left")
+        ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
     save(fig, path)
     return path
 
