@@ -238,7 +238,7 @@ def plot_vibration(store: Store, run_id: int, path: Path) -> Path | None:
              if r["rpm_lo"] is None and r["rms"] is not None}
     if not rows:
         return None
-    fig, ax = new_figure(8.0, 3.6)
+    fig, ax = new_figure(10.0, 3.8)
     keys = sorted({(r["sensor"], r["weighting"], r["axis"]) for r in rows})
     shown = [k for k in keys if k[2] == "sum"] or keys
     for j, (sensor, weighting, axis) in enumerate(shown):
@@ -253,8 +253,9 @@ def plot_vibration(store: Store, run_id: int, path: Path) -> Path | None:
         ax.plot(x, y, style, marker="o", ms=3, color=cyl_colour(j + 1), label=label)
     ax.set_xlabel("engine speed, band centre [rpm]")
     ax.set_ylabel("r.m.s. acceleration [m/s²]")
-    ax.set_title("Vibration against engine speed (Wh = ISO 5349-1 hand-arm weighting)")
-    ax.legend(loc="upper left")
+    ax.set_title("Weighted vibration against engine speed\n(Wh: hand-arm, ISO 5349-1; "
+                 "Wk, Wd: whole-body, ISO 2631-1)")
+    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
     ax.set_ylim(bottom=0)
     save(fig, path)
     return path
