@@ -102,7 +102,8 @@ def build(out: Path) -> None:
         rig = load_rig(_layout_rig(out / layout, layout))
         sc = short_scenario(101 + i, rig=f"fixtures/{layout}/rig.toml")
         jobs.append((layout, rig, sc, ".log", False))
-    jobs.append(("mismatch-360", load_rig("m1"), short_scenario(201, layout="twin-360"), ".log", False))
+    mismatch = short_scenario(201, layout="twin-360")
+    jobs.append(("mismatch-360", load_rig("m1"), mismatch, ".log", False))
     jobs.append(("blf", load_rig("m1"), short_scenario(301), ".blf", False))
     if (ROOT / "logger" / "presets" / "example-four.toml").exists():
         sc = Scenario(segments=(Segment(0.8, gear=0, rpm=(1200, 1200), throttle=(2, 2)),

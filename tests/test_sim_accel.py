@@ -13,7 +13,8 @@ M1 = load_rig("m1")
 
 
 def _ride(layout, rpm=6000, rough=0.0, gear=0, seconds=1.5, inertia_scale=1.0):
-    sc = Scenario(segments=(Segment(seconds, gear=gear, rpm=(rpm, rpm), throttle=(15, 15), rough=rough),),
+    seg = Segment(seconds, gear=gear, rpm=(rpm, rpm), throttle=(15, 15), rough=rough)
+    sc = Scenario(segments=(seg,),
                   seed=4, engine=EngineSpec(true_layout=layout),
                   physics=Physics(inertia_scale=inertia_scale))
     return simulate(M1, sc)

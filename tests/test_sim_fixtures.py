@@ -20,7 +20,9 @@ def _sha(p: Path) -> str:
     return hashlib.sha256(p.read_bytes()).hexdigest()
 
 
-@pytest.mark.parametrize("name, fmt", [("twin-270", ".log"), ("blf", ".blf"), ("example-four", ".asc")])
+@pytest.mark.parametrize(
+    "name, fmt", [("twin-270", ".log"), ("blf", ".blf"), ("example-four", ".asc")]
+)
 def test_fixture_regenerates_from_its_scenario(name, fmt, tmp_path):
     folder = FIX / name
     if not (folder / f"{name}.scenario.toml").exists():

@@ -60,7 +60,8 @@ def test_pressure_kernel_matches_the_reference_function():
     kern = combustion.PressureKernel(phi, **kw)
     for q, st in ((0.0, -10.0), (700.0, -25.0), (300.0, 5.0)):
         kf, pe = kern.event_constants(p_ivc=0.8e5, heat_j=q, start_deg=st, duration_deg=60.0)
-        a = kern(p_manifold=0.85e5, p_ivc=0.8e5, start_deg=st, duration_deg=60.0, k_fired=kf, p_evo=pe)
+        a = kern(p_manifold=0.85e5, p_ivc=0.8e5, start_deg=st, duration_deg=60.0, k_fired=kf,
+                 p_evo=pe)
         b = combustion.pressure(phi, p_manifold=0.85e5, p_ivc=0.8e5, heat_j=q, start_deg=st,
                                 duration_deg=60.0, **kw)
         assert np.allclose(a, b, rtol=1e-12, atol=1e-9)
@@ -88,7 +89,8 @@ def test_indicated_work_by_torque_equals_cyclic_integral_of_p_dV():
 
 
 def _steady(rpm, thr, gear, **kw):
-    sc = Scenario(segments=(Segment(3.0, gear=gear, rpm=(rpm, rpm), throttle=(thr, thr)),), seed=2, **kw)
+    seg = Segment(3.0, gear=gear, rpm=(rpm, rpm), throttle=(thr, thr))
+    sc = Scenario(segments=(seg,), seed=2, **kw)
     return simulate(RIG, sc)
 
 

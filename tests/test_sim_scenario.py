@@ -1,4 +1,4 @@
-"""Scenario files, the ride profile and the simulated wheel, against RIG.md and the layouts' facts."""
+"""Scenario files, the ride profile and the simulated wheel, against RIG.md and layout facts."""
 
 from __future__ import annotations
 

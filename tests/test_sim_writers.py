@@ -1,4 +1,4 @@
-"""Simulated rides written to disk: python-can's readers, cantools' bit layouts, the CRC catalogue."""
+"""Simulated rides on disk: python-can's readers, cantools' bit layouts, the CRC catalogue."""
 
 from __future__ import annotations
 
@@ -53,7 +53,10 @@ def _cantools_message(msg):
     sigs = []
     for s in msg.signals:
         for i in range(s.count):
-            start = s.start_bit + i * s.length if s.byte_order == "little" else s.start_bit + 8 * (s.length // 8) * i
+            if s.byte_order == "little":
+                start = s.start_bit + i * s.length
+            else:  # Motorola: element i starts i whole bytes later (sawtooth numbering)
+                start = s.start_bit + 8 * (s.length // 8) * i
             sigs.append(cantools.database.can.Signal(
                 name=f"{s.name}_{i}" if s.count > 1 else s.name, start=start, length=s.length,
                 byte_order="little_endian" if s.byte_order == "little" else "big_endian",
@@ -108,7 +111,8 @@ def test_tooth_frames_decode_with_cantools(ride, frames):
     teeth = ride.tooth_number[1 : 1 + 3 * len(dec)]
     p = true.ravel()
     gap = p[teeth == 0]
-    assert np.all((gap / p[np.flatnonzero(teeth == 0) - 1] > 2.5) & (gap / p[np.flatnonzero(teeth == 0) - 1] < 3.6))
+    ratio = gap / p[np.flatnonzero(teeth == 0) - 1]
+    assert np.all((ratio > 2.5) & (ratio < 3.6))
 
 
 def test_status_frames_decode_with_cantools(ride, frames):
@@ -193,7 +197,8 @@ def test_device_clock_drifts_and_wraps():
 
 def test_serial_faults_are_counted_by_the_parser():
     sc = Scenario(segments=(Segment(1.0, gear=0, rpm=(1300, 1300), throttle=(1, 1)),), seed=1,
-                  serial=SerialSpec(corrupt_probability=0.01, lost_probability=0.01, start_offset=7))
+                  serial=SerialSpec(corrupt_probability=0.01, lost_probability=0.01,
+                                    start_offset=7))
     ride = simulate(M1, sc)
     records = list(serial_chunks(ride, "bar_left"))
     parser = SerialFrameParser(M1.sensor("bar_left"))

@@ -79,7 +79,8 @@ class _Progress:
     def __call__(self, stage: str, frac: float) -> None:
         if self.enabled:
             bar = "#" * int(20 * frac)
-            sys.stderr.write(f"\rsynth: {stage:<14} [{bar:<20}] {time.perf_counter() - self.t0:6.1f} s")
+            took = time.perf_counter() - self.t0
+            sys.stderr.write(f"\rsynth: {stage:<14} [{bar:<20}] {took:6.1f} s")
             sys.stderr.flush()
 
     def done(self) -> None:

@@ -54,7 +54,8 @@ def sample_times(sensor, scenario, rng: np.random.Generator):
     n = int(np.floor((scenario.duration - first) * sensor.sample_rate_hz * rate))
     dev = ser.clock_offset_s + first * rate + np.arange(n) / sensor.sample_rate_hz
     t = (dev - ser.clock_offset_s) / rate
-    raw = np.mod(np.rint(dev / sensor.device_time_unit_s).astype(np.int64), sensor.device_time_modulo)
+    raw = np.rint(dev / sensor.device_time_unit_s).astype(np.int64)
+    raw = np.mod(raw, sensor.device_time_modulo)
     return t, raw
 
 
@@ -112,7 +113,8 @@ def sensor_signal(ride, track, cycle_t, sensor, t: np.ndarray, rng) -> np.ndarra
         tb = t[p0:p1]
         theta = np.degrees(hermite(tb, edges, theta_rad, ride.tooth_omega))
         omega = np.interp(tb, edges, ride.tooth_omega)
-        torque = np.interp(tb, edges, ride.tooth_gas_torque) + reciprocating_torque(theta, omega, eng)
+        torque = np.interp(tb, edges, ride.tooth_gas_torque)
+        torque = torque + reciprocating_torque(theta, omega, eng)
         torque = (torque - np.convolve(torque, np.ones(401) / 401, mode="same"))[b0 - p0 : b1 - p0]
         theta, omega = theta[b0 - p0 : b1 - p0], omega[b0 - p0 : b1 - p0]
         force2 = shaking_forces(eng, theta, omega, model="exact")

@@ -117,7 +117,9 @@ def build_frames(ride) -> CanFrames:
         # Latency with jitter; one id's frames keep their order (a node sends them in turn).
         recv = t + spec.latency_s + spec.jitter_s * np.abs(rng.standard_normal(n))
         recv = _monotonic(recv, 0.0)
-        keep = rng.random(n) >= spec.drop_probability if spec.drop_probability > 0 else np.ones(n, bool)
+        keep = np.ones(n, bool)
+        if spec.drop_probability > 0:
+            keep = rng.random(n) >= spec.drop_probability
         padded = np.zeros((n, 8), dtype=np.uint8)
         padded[:, : data.shape[1]] = data
         cols["t"].append(recv[keep])

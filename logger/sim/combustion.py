@@ -31,7 +31,7 @@ GAMMA = 1.30  # ratio of specific heats of the burning charge
 R_AIR = 287.0  # J/(kg K)
 T_IVC = 330.0  # K, charge temperature at IVC
 LHV = 44.0e6  # J/kg, lower heating value of petrol
-HEAT_TO_GAS = 0.80  # share of the fuel energy that ends up raising pressure (wall loss, dissociation)
+HEAT_TO_GAS = 0.80  # share of the fuel energy that raises pressure (wall loss, dissociation)
 MOTORED_EXTRA_N = 0.04  # motored expansion exponent above compression's: heat lost at TDC
 
 
@@ -146,7 +146,8 @@ def pressure(
     p_mot_evo = polytropic_pressure(v_evo, p_ref=p_tdc, v_ref=v_tdc, n=n_me)
     p_fired_evo = polytropic_pressure(v_evo, p_ref=p_star, v_ref=v50, n=n_expansion)
     p_evo = p_mot_evo + x_evo * (p_fired_evo - p_mot_evo)
-    blow = P_EXHAUST + (p_evo - P_EXHAUST) * np.exp(-np.clip(phi - EVO_DEG, 0.0, None) / BLOWDOWN_DEG)
+    decay = np.exp(-np.clip(phi - EVO_DEG, 0.0, None) / BLOWDOWN_DEG)
+    blow = P_EXHAUST + (p_evo - P_EXHAUST) * decay
 
     # Intake stroke: exhaust pressure at the gas-exchange TDC eases to manifold pressure.
     p_man = np.asarray(p_manifold, dtype=float)

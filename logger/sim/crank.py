@@ -42,7 +42,7 @@ BLOCK_CYCLES = 256
 
 @dataclass
 class CycleWorks:
-    """Per-cycle summaries of the gas torque on the fine grid (cycle = crank window [720c, 720c+720))."""
+    """Per-cycle summaries of the gas torque on the fine grid (cycle c: crank [720c, 720c+720))."""
 
     work: np.ndarray  # J over the window (trapezoid on the grid)
     mean_cum: np.ndarray  # mean over the window of the cumulative gas work from its start, J
@@ -96,9 +96,9 @@ def slow_loop(
     """Run the mean-speed loop over ``n_cycles`` working cycles.
 
     ``works(c, rpm, throttle) -> (W, M, V, W_nominal)`` gives the cycle's gas-work summaries
-    (W_nominal: the work without scatter or faults, which the controller's feed-forward knows); ``decide(c, t,
-    omega, targets)`` (first pass only) is called before it to fix the cycle's events. With
-    ``t_end`` the loop stops early once the ride time reaches it.
+    (W_nominal: the work without scatter or faults, which the controller's feed-forward knows);
+    ``decide(c, t, omega, targets)`` (first pass only) is called before it to fix the cycle's
+    events. With ``t_end`` the loop stops early once the ride time reaches it.
     """
     phys = scenario.physics
     vd = displacement(engine)
@@ -138,7 +138,8 @@ def slow_loop(
             krpm = omega * 30.0 / math.pi / 1000.0
             tf_prev = (fa + fb * krpm + fc * krpm * krpm) * fric_k
             ts_prev = w_c / four_pi - tf_prev
-            energy = 0.5 * j_mean * omega**2 - (m_c - (tf_prev + ts_prev) * H_RAD * (N_GRID - 1) / 2.0)
+            shape = m_c - (tf_prev + ts_prev) * H_RAD * (N_GRID - 1) / 2.0
+            energy = 0.5 * j_mean * omega**2 - shape
         half = H_RAD * (N_GRID - 1) / 2.0
         load = tf_prev + ts_prev
         for it in range(4):

@@ -120,10 +120,12 @@ def apply(
             (na, da), (nq, dq) = transfer(scenario, j_engine, gear)
             ba, aa = bilinear(na, da, fs=FS)
             bq, aq = bilinear(nq, dq, fs=FS)
-            q = gain * vehicle_inertia(scenario, gear) * omega_u[i0:i1] * rough[i0:i1] * kicks[i0:i1]
+            q = gain * vehicle_inertia(scenario, gear) * omega_u[i0:i1] * rough[i0:i1]
+            q = q * kicks[i0:i1]
             d = lfilter(ba, aa, fluct[i0:i1]) + lfilter(bq, aq, q)
             tail = np.arange(i1 - i0) - (i_end - i0)
-            taper = np.where(tail <= 0, 1.0, 0.5 * (1.0 + np.cos(np.pi * np.clip(tail / (TAPER_S * FS), 0, 1))))
+            fade = 0.5 * (1.0 + np.cos(np.pi * np.clip(tail / (TAPER_S * FS), 0, 1)))
+            taper = np.where(tail <= 0, 1.0, fade)
             delta[i0:i1] += d * taper
     t = t_alone.copy()
     for _ in range(2):

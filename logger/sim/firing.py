@@ -81,7 +81,8 @@ def event_params(
     p_man = maps.manifold_pressure(rpm, throttle)
     p_ivc = p_man * maps.volumetric_efficiency(rpm)
     load = maps.load_fraction(p_man)
-    q_full = combustion.charge_heat(p_ivc, engine, phys.compression_ratio, maps.air_fuel_ratio(load))
+    afr = maps.air_fuel_ratio(load)
+    q_full = combustion.charge_heat(p_ivc, engine, phys.compression_ratio, afr)
     scatter = np.clip(1.0 + phys.combustion_cov * heat_noise, 0.3, None)
     heat = q_full * scatter * burn_fraction
     start = maps.combustion_start(rpm, load) + retard + phys.phasing_scatter_deg * phase_noise
@@ -97,8 +98,9 @@ def local_grid() -> np.ndarray:
     return -360.0 + GRID_STEP_DEG * np.arange(N_GRID)
 
 
-def cylinder_torque(phi_deg: np.ndarray, engine: Engine, scenario: Scenario, **params) -> np.ndarray:
-    """Gas torque of one cylinder at local angles ``phi_deg``, N·m (params broadcast against it)."""
+def cylinder_torque(phi_deg: np.ndarray, engine: Engine, scenario: Scenario,
+                    **params) -> np.ndarray:
+    """Gas torque of one cylinder at local angles ``phi_deg``, N·m (params broadcast)."""
     from dsp.kinematics import gas_torque_factor
 
     phys = scenario.physics
@@ -144,8 +146,8 @@ class WorkTable:
                     p_ivc=ep.p_ivc[..., None], heat_j=ep.heat[..., None],
                     start_deg=ep.start[..., None], duration_deg=ep.duration[..., None],
                 )
-                cum = np.concatenate((np.zeros(R.shape + (1,)),
-                                      np.cumsum(0.5 * (tq[..., 1:] + tq[..., :-1]) * h, axis=-1)), axis=-1)
+                steps = np.cumsum(0.5 * (tq[..., 1:] + tq[..., :-1]) * h, axis=-1)
+                cum = np.concatenate((np.zeros(R.shape + (1,)), steps), axis=-1)
                 self.w[b, k], self.m[b, k] = cum[..., -1], cum[..., :-1].mean(axis=-1)
                 if burn == 1.0:
                     total = total + cum
@@ -207,7 +209,8 @@ class GasTorque:
             # Columns where the window passes from one event of the cylinder to the next.
             cuts = np.flatnonzero(np.diff(shift)) + 1
             pieces = np.split(np.arange(N_GRID + 1), cuts)
-            self.cyl.append((k, kern, lever, kf, pe, [(p[0], p[-1] + 1, int(shift[p[0]])) for p in pieces]))
+            spans = [(p[0], p[-1] + 1, int(shift[p[0]])) for p in pieces]
+            self.cyl.append((k, kern, lever, kf, pe, spans))
 
     def block(self, c0: int, c1: int) -> np.ndarray:
         """Gas torque of windows c0..c1-1, N·m, shape (c1 - c0, N_GRID + 1)."""

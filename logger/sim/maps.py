@@ -59,7 +59,7 @@ def combustion_start(rpm, load):
 
 
 def fmep(rpm, coeffs: tuple[float, float, float]):
-    """Friction mean effective pressure, Pa: a + b·(rpm/1000) + c·(rpm/1000)², coefficients in bar."""
+    """Friction mean effective pressure, Pa: a + b·krpm + c·krpm², coefficients in bar."""
     k = np.asarray(rpm, dtype=float) / 1000.0
     a, b, c = coeffs
     return BAR * (a + b * k + c * k * k)

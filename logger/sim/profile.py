@@ -57,7 +57,8 @@ class Profile:
                 a, b = (x * np.pi / 30.0 for x in s.rpm)
             else:
                 g = float(overall_ratio(phys, s.gear))
-                a, b = (x / 3.6 / phys.wheel_radius_m * g for x in s.road_kmh)  # type: ignore[union-attr]
+                kmh = s.road_kmh or (0.0, 0.0)
+                a, b = (x / 3.6 / phys.wheel_radius_m * g for x in kmh)
             w0.append(a)
             w1.append(b)
         self.w0, self.w1 = np.array(w0), np.array(w1)

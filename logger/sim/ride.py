@@ -64,12 +64,15 @@ class SimRide:
     tooth_gas_torque: np.ndarray  # (n,) N·m, total gas torque at each edge
     tooth_error_deg: np.ndarray  # (real_teeth,) spacing error of each physical tooth
     status_t: np.ndarray  # (m,) times of the status frames
-    status: dict[str, np.ndarray]  # role -> (m,) values: engine_speed, throttle, gear, coolant, road_speed
+    status: dict[str, np.ndarray]  # role -> (m,): engine_speed, throttle, gear, coolant, road_speed
     events: np.ndarray  # TRUTH_DTYPE
     accel: dict[str, AccelTruth] = field(default_factory=dict)
-    cycle_t: np.ndarray = field(default_factory=lambda: np.empty(0))  # (c+1,) start of each crank window (720c), s
-    cycle_friction: np.ndarray = field(default_factory=lambda: np.empty(0))  # (c,) friction torque, N·m
-    cycle_load: np.ndarray = field(default_factory=lambda: np.empty(0))  # (c,) shaft load torque on the crank, N·m
+    #: (c+1,) time of crank angle 720c (start of each working cycle), s
+    cycle_t: np.ndarray = field(default_factory=lambda: np.empty(0))
+    #: (c,) friction torque of each cycle, N·m
+    cycle_friction: np.ndarray = field(default_factory=lambda: np.empty(0))
+    #: (c,) load on the crank (shaft: controller, road, vehicle inertia), N·m
+    cycle_load: np.ndarray = field(default_factory=lambda: np.empty(0))
     seeds: dict[str, np.random.SeedSequence] = field(default_factory=dict, repr=False)
 
     @property
@@ -98,7 +101,9 @@ def simulated_engine(rig: Rig, scenario: Scenario) -> Engine:
             firing_deg=lay.firing_deg,
         )
     if eng.stroke_cycle != 4:
-        raise InputError(f"the simulator models 4-stroke engines only, got {eng.stroke_cycle}-stroke")
+        raise InputError(
+            f"the simulator models 4-stroke engines only, got {eng.stroke_cycle}-stroke"
+        )
     return eng.with_geometry(inertia_kgm2=eng.inertia_kgm2 * scenario.physics.inertia_scale)
 
 
@@ -236,7 +241,8 @@ def simulate(
     )
     say("crank", 0.0)
     wheel = rig.wheel
-    errors = wheel_errors(wheel, scenario.wheel.error_rms_deg, np.random.default_rng(seeds["wheel"]))
+    wheel_rng = np.random.default_rng(seeds["wheel"])
+    errors = wheel_errors(wheel, scenario.wheel.error_rms_deg, wheel_rng)
     edges, cycle_t = _engine_alone(scenario, engine, gas, track, wheel, errors)
     say("driveline", 0.0)
     j_mean = float(np.mean(crank.inertia_table(engine)))

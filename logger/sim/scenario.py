@@ -121,7 +121,9 @@ class Fault:
 
     def __post_init__(self) -> None:
         if self.kind not in ("misfire", "partial_burn", "retard"):
-            raise InputError(f"fault kind must be misfire, partial_burn or retard, got {self.kind!r}")
+            raise InputError(
+                f"fault kind must be misfire, partial_burn or retard, got {self.kind!r}"
+            )
         if self.cylinder < 1:
             raise InputError(f"fault cylinder is 1-based, got {self.cylinder!r}")
         if not 0.0 <= self.probability <= 1.0:
@@ -173,7 +175,9 @@ class Physics:
             if not getattr(self, name) > 0:
                 raise InputError(f"physics {name} must be > 0, got {getattr(self, name)!r}")
         if not 0.0 <= self.combustion_cov < 0.5:
-            raise InputError(f"physics combustion_cov must be within 0..0.5, got {self.combustion_cov!r}")
+            raise InputError(
+                f"physics combustion_cov must be within 0..0.5, got {self.combustion_cov!r}"
+            )
 
 
 @dataclass(frozen=True)
@@ -258,17 +262,23 @@ def scenario_from_dict(doc: dict[str, Any], *, where: str = "scenario") -> Scena
     known = {"ride", "segment", "fault"} | set(_SECTIONS)
     unknown = sorted(set(doc) - known)
     if unknown:
-        raise InputError(f"{where}: unknown section {unknown[0]!r}, expected one of {sorted(known)}")
+        raise InputError(
+            f"{where}: unknown section {unknown[0]!r}, expected one of {sorted(known)}"
+        )
     ride = dict(doc.get("ride", {}))
     bad = sorted(set(ride) - _RIDE_KEYS)
     if bad:
-        raise InputError(f"{where}: ride: unknown key {bad[0]!r}, expected one of {sorted(_RIDE_KEYS)}")
+        raise InputError(
+            f"{where}: ride: unknown key {bad[0]!r}, expected one of {sorted(_RIDE_KEYS)}"
+        )
     segs = doc.get("segment", [])
     if not segs:
         raise InputError(f"{where}: no [[segment]] tables, expected at least one")
     segments = tuple(_build(Segment, s, f"{where}: segment[{i}]") for i, s in enumerate(segs))
-    faults = tuple(_build(Fault, f, f"{where}: fault[{i}]") for i, f in enumerate(doc.get("fault", [])))
-    parts = {name: _build(cls, doc.get(name, {}), f"{where}: {name}") for name, cls in _SECTIONS.items()}
+    faults = tuple(_build(Fault, f, f"{where}: fault[{i}]")
+                   for i, f in enumerate(doc.get("fault", [])))
+    parts = {name: _build(cls, doc.get(name, {}), f"{where}: {name}")
+             for name, cls in _SECTIONS.items()}
     kwargs = {k: _tuplify(v) for k, v in ride.items()}
     return Scenario(segments=segments, faults=faults, **parts, **kwargs)
 

@@ -35,9 +35,8 @@ def stream(ride, sensor_name: str) -> list[tuple[float, bytes]]:
     spec = ride.scenario.serial
     idx = [s.name for s in ride.rig.sensors].index(sensor_name)
     rng = np.random.default_rng([*ride.seeds["serial"].generate_state(2), idx])
-    raw = np.frombuffer(
-        encode_frames(sensor, acc.seq, acc.device_raw, accel_counts(sensor, acc.xyz)), dtype=np.uint8
-    ).copy()
+    data = encode_frames(sensor, acc.seq, acc.device_raw, accel_counts(sensor, acc.xyz))
+    raw = np.frombuffer(data, dtype=np.uint8).copy()
     n, flen = len(acc.t), sensor.frame_length
     byte_time = 1.0 / (sensor.baud / 10.0)  # 8N1: ten bit times per byte
     frame_t = acc.t + PROCESSING_S

@@ -79,7 +79,8 @@ def can_messages(ride) -> Iterator[can.Message]:
 def serial_chunks(ride, sensor: str) -> Iterator[tuple[float, bytes]]:
     """The host's port reads of one sensor, ``(host_time, bytes)``, in time order."""
     if sensor not in ride.accel:
-        raise InputError(f"rig {ride.rig.name!r} has no sensor {sensor!r}, expected one of {sorted(ride.accel)}")
+        raise InputError(f"rig {ride.rig.name!r} has no sensor {sensor!r}, "
+                         f"expected one of {sorted(ride.accel)}")
     return iter(stream(ride, sensor))
 
 
@@ -88,7 +89,8 @@ def _split_suffix(can_format: str) -> tuple[str, bool]:
     gz = fmt.endswith(".gz")
     base = fmt[:-3] if gz else fmt
     if base not in CAN_FORMATS:
-        raise InputError(f"CAN format {can_format!r} is not one of {', '.join(CAN_FORMATS)} (optionally + .gz)")
+        raise InputError(f"CAN format {can_format!r} is not one of {', '.join(CAN_FORMATS)} "
+                         "(optionally + .gz)")
     if gz and base == ".blf":
         raise InputError("CAN format '.blf.gz' cannot be written: a BLF writer rewrites its header "
                          "at the end (BLF compresses its own objects; use .blf)")
