@@ -45,6 +45,7 @@ def plot_metric(ev: np.ndarray, path: Path) -> Path | None:
         ax.plot(mis["t"], mis["metric"], "x", ms=5, mew=1.2, color=MISFIRE_COLOUR,
                 label=f"misfire ({len(mis)})")
         ax.plot(e["t"], e["threshold"], "-", lw=1.0, color=THRESHOLD_COLOUR, label="threshold")
+        _robust_ylim(ax, e)
         ax.set_title(f"cylinder {c}", loc="left", fontsize=9)
         ax.set_ylabel("metric [-]")
         # Outside the axes, so that no marker is hidden behind the legend.
@@ -54,6 +55,27 @@ def plot_metric(ev: np.ndarray, path: Path) -> Path | None:
                  "not judged = masked, unusable or fuel cut", fontsize=9)
     save(fig, path)
     return path
+
+
+def _robust_ylim(ax, e: np.ndarray) -> None:
+    """Y range from the judged events and the threshold, so that a few wild values of events
+    that were not judged (sync loss, overrun) do not flatten the panel; says what is cut off."""
+    judged = e["metric"][np.isin(e["verdict"], (FIRED, MISFIRE)) & np.isfinite(e["metric"])]
+    thr = e["threshold"][np.isfinite(e["threshold"])]
+    if not judged.size:
+        return
+    lo = float(np.percentile(judged, 0.2))
+    hi = float(np.percentile(judged, 99.8))
+    if thr.size:
+        lo, hi = min(lo, float(thr.min())), max(hi, float(thr.max()))
+    pad = 0.1 * (hi - lo or 1.0)
+    lo, hi = lo - pad, hi + pad
+    allm = e["metric"][np.isfinite(e["metric"])]
+    cut = int(np.sum((allm < lo) | (allm > hi)))
+    ax.set_ylim(lo, hi)
+    if cut:
+        ax.text(0.995, 0.03, f"{cut} events beyond the axis", transform=ax.transAxes,
+                ha="right", va="bottom", fontsize=7, color="#555555")
 
 
 def windows_from_events(ev: np.ndarray, *, revolutions: int = 1000) -> list[dict]:
