@@ -159,3 +159,23 @@ def test_fuel_cut_on_closed_throttle_overrun():
     assert above.sum() > 50
     assert np.all(ev["fuel_cut"][above]) and not np.any(ev["fired"][above])
     assert np.all(ev["burn_fraction"][ev["fuel_cut"]] == 0.0)
+
+
+def test_cylinder_to_cylinder_spread_shows_in_the_expansion_speed_rise():
+    # A cylinder releasing more heat accelerates the crank more over its expansion stroke; on a
+    # 360° twin the two expansion windows are alike, so the stronger cylinder shows a larger rise.
+    from logger.sim import EngineSpec, Physics
+
+    sc = Scenario(segments=(Segment(3.0, gear=0, rpm=(3000, 3000), throttle=(8, 8)),), seed=6,
+                  engine=EngineSpec(true_layout="twin-360"),
+                  physics=Physics(cylinder_spread=0.08, combustion_cov=0.0))
+    ride = simulate(RIG, sc)
+    f = ride.cylinder_factor
+    assert f.mean() == pytest.approx(1.0) and abs(f[0] - f[1]) > 0.02
+    ev = ride.events[ride.events["t"] - ride.start_time > 1.0]
+    tdc = 720.0 * ev["cycle"] + np.where(ev["cylinder"] == 1, 0.0, 360.0)
+    th = np.radians(ride.tooth_angle)
+    rise = (np.interp(np.radians(tdc + 130), th, ride.tooth_omega)
+            - np.interp(np.radians(tdc + 10), th, ride.tooth_omega))
+    r1, r2 = rise[ev["cylinder"] == 1].mean(), rise[ev["cylinder"] == 2].mean()
+    assert np.sign(r1 - r2) == np.sign(f[0] - f[1])

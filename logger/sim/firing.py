@@ -75,6 +75,7 @@ def event_params(
     rough: np.ndarray,
     heat_noise: np.ndarray,
     phase_noise: np.ndarray,
+    cylinder_factor: np.ndarray | float = 1.0,
 ) -> EventParams:
     """Combustion parameters from the frozen decisions and the operating point of each event."""
     phys = scenario.physics
@@ -84,7 +85,7 @@ def event_params(
     afr = maps.air_fuel_ratio(load)
     q_full = combustion.charge_heat(p_ivc, engine, phys.compression_ratio, afr)
     scatter = np.clip(1.0 + phys.combustion_cov * heat_noise, 0.3, None)
-    heat = q_full * scatter * burn_fraction
+    heat = q_full * scatter * burn_fraction * cylinder_factor
     start = maps.combustion_start(rpm, load) + retard + phys.phasing_scatter_deg * phase_noise
     return EventParams(
         p_man=p_man, p_ivc=p_ivc, heat=heat, start=start, duration=maps.burn_duration(rpm),

@@ -33,7 +33,8 @@ TRUTH_DTYPE = np.dtype(
     ]
 )
 
-_STREAMS = ("combustion", "phase", "faults", "wheel", "road", "accel", "can", "serial")
+_STREAMS = ("combustion", "phase", "faults", "wheel", "road", "accel", "can", "serial",
+            "cylinders")
 
 
 @dataclass
@@ -63,6 +64,7 @@ class SimRide:
     tooth_omega: np.ndarray  # (n,) rad/s, true crank speed at each edge
     tooth_gas_torque: np.ndarray  # (n,) N·m, total gas torque at each edge
     tooth_error_deg: np.ndarray  # (real_teeth,) spacing error of each physical tooth
+    cylinder_factor: np.ndarray  # (n_cyl,) fixed heat factor of each cylinder (mean 1)
     status_t: np.ndarray  # (m,) times of the status frames
     status: dict[str, np.ndarray]  # role -> (m,): engine_speed, throttle, gear, coolant, road_speed
     events: np.ndarray  # TRUTH_DTYPE
@@ -107,7 +109,7 @@ def simulated_engine(rig: Rig, scenario: Scenario) -> Engine:
     return eng.with_geometry(inertia_kgm2=eng.inertia_kgm2 * scenario.physics.inertia_scale)
 
 
-def _first_pass(scenario, engine, profile, fire, noise, n_max):
+def _first_pass(scenario, engine, profile, fire, noise, n_max, factor):
     """Steer the crank with tabulated works and freeze every event's decisions."""
     n_cyl = engine.n_cylinders
     shape = (n_max + 2, n_cyl)
@@ -146,6 +148,7 @@ def _first_pass(scenario, engine, profile, fire, noise, n_max):
         scenario, engine, rpm=rpm[rows], throttle=thr[rows], burn_fraction=burn[rows],
         retard=ret[rows], fuel_cut=cut[rows], rough=rough[rows],
         heat_noise=noise["combustion"][rows], phase_noise=noise["phase"][rows],
+        cylinder_factor=factor,
     )
     return track, params
 
@@ -230,7 +233,10 @@ def simulate(
         "faults": np.random.default_rng(seeds["faults"]).random(shape),
     }
     say("planning", 0.0)
-    first, params = _first_pass(scenario, engine, profile, fire, noise, n_max)
+    spread = np.random.default_rng(seeds["cylinders"]).standard_normal(engine.n_cylinders)
+    factor = 1.0 + scenario.physics.cylinder_spread * spread
+    factor = factor / factor.mean()
+    first, params = _first_pass(scenario, engine, profile, fire, noise, n_max, factor)
     n = len(first.t)
     say("planning", 0.5)
     gas = firing.GasTorque(engine, scenario, params, fire)
@@ -262,7 +268,7 @@ def simulate(
         tooth_angle=edges["ang"][keep],
         tooth_omega=omega[keep],
         tooth_gas_torque=edges["tq"][keep],
-        tooth_error_deg=errors,
+        tooth_error_deg=errors, cylinder_factor=factor,
         status_t=np.empty(0), status={}, events=events, seeds=seeds,
         cycle_t=cycle_true + scenario.start_time, cycle_friction=track.friction,
         cycle_load=track.shaft,

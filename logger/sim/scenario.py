@@ -150,6 +150,7 @@ class Physics:
     driveline_stiffness: float = 9000.0  # N·m/rad, torsional, referred to the rear wheel
     driveline_damping: float = 0.10  # modal damping ratio of the driveline mode
     combustion_cov: float = 0.03  # cycle-to-cycle scatter of the heat released (std / mean)
+    cylinder_spread: float = 0.02  # std of the fixed cylinder-to-cylinder heat factors (seeded)
     phasing_scatter_deg: float = 1.5  # std of the combustion start, degrees
     compression_ratio: float = 12.5
     polytropic_compression: float = 1.32
