@@ -25,8 +25,9 @@ cycle and ``n`` the number of cylinders. ``W_k`` is in joules: an indicated-work
 window (plus a small offset from the compression work done outside the windows, the same for a
 fired and a misfired event). It needs ``nL < C``; the default window keeps ``nL/C ≤ 3/4``.
 
-The centre of the energy rise inside the window (first moment of the detrended ``dE``) is kept per
-event: it moves later with a retarded ignition and gives the observed firing interval.
+The centre of the combustion torque around TDC (first moment of the torque ``dE/dθ`` plus the loss
+torque, in excess of its median over the span) is kept per event: it moves later with a retarded
+ignition and gives the observed firing interval.
 
 :class:`FluctuationStage` streams (``push`` edges, get the events whose whole span has arrived);
 :func:`event_fluctuation` does a whole run at once with identical numbers.
@@ -34,6 +35,7 @@ event: it moves later with a retarded ignition and gives the observed firing int
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
@@ -43,10 +45,8 @@ from dsp.errors import InputError
 from dsp.kinematics import equivalent_inertia
 from dsp.layout import firing_sequence
 
-#: Span around each TDC over which the centre of the gas work is taken, degrees. It is centred
-#: near where combustion work is usually centred, so that slow torques of the other cylinders
-#: (pumping, early compression), which add work evenly over the span, hardly move the centre.
-RISE_SPAN = (-30.0, 90.0)
+#: Span around each TDC over which the centre of the combustion torque is taken, degrees.
+RISE_SPAN = (-45.0, 105.0)
 
 _BLOCK = 4096  # events computed per vectorised step (bounds the temporary arrays)
 
@@ -344,10 +344,17 @@ class FluctuationStage:
         dth = np.where(pair_ok, mid[jn] - mid[jc], 0.0)
         d_e = np.where(pair_ok, e[jn] - e[jc], 0.0) - slope[:, None] * dth
         c = np.where(pair_ok, 0.5 * (mid[jn] + mid[jc]) - pa[:, None], 0.0)
-        m0 = d_e.sum(axis=1)
-        m1 = (c * d_e).sum(axis=1)
+        # centre of the torque in excess of the span's median torque: the combustion pulse
+        # stands out of the slow torques (load, pumping, the other cylinders), and the median
+        # ignores the pulse itself
+        tq = np.where(pair_ok, d_e / np.where(dth > 0, dth, 1.0), np.nan)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            med = np.nanmedian(tq, axis=1)
+        wgt = np.where(pair_ok, np.maximum(tq - med[:, None], 0.0) * dth, 0.0)
+        m0 = wgt.sum(axis=1)
         with np.errstate(invalid="ignore", divide="ignore"):
-            rise = pa + m1 / m0
+            rise = pa + (c * wgt).sum(axis=1) / m0
             cnt = np.where(pair_ok, 1, 0).sum(axis=1)
             emean = np.where(good[jc] & inside, e[jc], 0.0).sum(axis=1) / np.maximum(
                 (good[jc] & inside).sum(axis=1), 1
