@@ -125,3 +125,14 @@ def test_tally_counts_and_the_rolling_200_rev_window():
     assert len(t2._recent) == 200  # bounded: 100 cycles x 2 cylinders
     text = _text(_display(alert_pct=2.0), t2.state(0.0))
     assert "MISFIRE ALERT cyl 2: 10.0 %" in text
+
+
+def test_plain_mode_prints_every_few_seconds_and_at_once_on_an_alert():
+    d = _display()
+    calm = [CylinderState(1, 100, 0, 0.0)]
+    for t in (0.0, 1.0, 2.0, 5.5, 6.0):
+        d.update(_state(elapsed_s=t, cylinders=calm))
+    d.update(_state(elapsed_s=6.2, cylinders=[CylinderState(1, 100, 9, 4.5)]))
+    text = d.console.export_text()
+    assert text.count("crankbeat ride") == 3  # at 0 s, 5.5 s and on the alert at 6.2 s
+    assert "MISFIRE ALERT cyl 1: 4.5 %" in text

@@ -73,6 +73,7 @@ def test_run_report_embeds_every_figure(filled, tmp_path):
         h, w = mpimg.imread(fig).shape[:2]
         assert w >= 500 and h >= 300  # readable size at 110 dpi
     assert "Firing intervals" in parser.titles
+    assert "Summary" in parser.titles and "note: synthetic" in rep.html.read_text()
     # Self-contained: nothing is fetched from elsewhere.
     assert not re.search(r"(src|href)=['\"](?!data:)", rep.html.read_text())
     assert f"href='run{run}.html'" in (tmp_path / "out" / "index.html").read_text()

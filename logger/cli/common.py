@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import math
 import os
 import sys
 from collections.abc import Iterable, Sequence
@@ -12,6 +11,7 @@ from pathlib import Path
 from typing import Any
 
 from dsp.errors import UsageError
+from logger.report.text import fmt
 from logger.store import Store, jsonable
 
 DEFAULT_STORE = "crankbeat.db"
@@ -45,15 +45,6 @@ def parse_assignment(text: str, what: str) -> tuple[str, str]:
 
 def print_json(obj: Any) -> None:
     print(json.dumps(jsonable(obj), indent=2, allow_nan=False))
-
-
-def fmt(value: Any, spec: str = ".2f", missing: str = "-") -> str:
-    """A number for a text table (``missing`` for None/NaN)."""
-    if value is None or (isinstance(value, float) and not math.isfinite(value)):
-        return missing
-    if isinstance(value, int | float):
-        return format(value, spec)
-    return str(value)
 
 
 def table(headers: Sequence[str], rows: Iterable[Sequence[Any]], *, indent: str = "  ") -> str:

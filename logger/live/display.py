@@ -86,16 +86,21 @@ class LiveDisplay:
     alert_pct : float
         Misfire-rate alert level, % (the rig's ``limits.misfire_alert_pct``).
     live : bool
-        True redraws in place (rich Live, for a terminal); False prints each update below the
-        last (for logs and tests).
+        True redraws in place (rich Live, for a terminal); False prints updates one below the
+        other (for logs and tests).
+    plain_every_s : float
+        Without ``live``, print at most one update per this many seconds of ride time (and at
+        once when the alerts change), so that a log stays readable.
     """
 
     def __init__(self, console: Console | None = None, *, alert_pct: float = 2.0,
-                 live: bool = True) -> None:
+                 live: bool = True, plain_every_s: float = 5.0) -> None:
         self.console = console or Console()
         self.alert_pct = float(alert_pct)
         self._live_mode = live
         self._live: Live | None = None
+        self._plain_every_s = float(plain_every_s)
+        self._last_plain: tuple[float, list[str]] | None = None
 
     def __enter__(self) -> LiveDisplay:
         self.start()
@@ -116,11 +121,16 @@ class LiveDisplay:
             self._live = None
 
     def update(self, state: LiveState) -> None:
-        view = self.render(state)
         if self._live is not None:
-            self._live.update(view)
-        else:
-            self.console.print(view)
+            self._live.update(self.render(state))
+            return
+        alerts = self.alerts(state)
+        if self._last_plain is not None:
+            last_t, last_alerts = self._last_plain
+            if alerts == last_alerts and state.elapsed_s - last_t < self._plain_every_s:
+                return
+        self._last_plain = (state.elapsed_s, alerts)
+        self.console.print(self.render(state))
 
     def alerts(self, state: LiveState) -> list[str]:
         """One line per reason to stop and look: misfire over the limit, interval off, no sync."""

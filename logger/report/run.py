@@ -10,6 +10,7 @@ from pathlib import Path
 
 from dsp.errors import CrankbeatError
 from logger.report import run_plots
+from logger.report.text import summary_lines
 from logger.report.trend import plot_trend
 from logger.store import Store
 
@@ -97,6 +98,7 @@ td, th { border: 1px solid #d4d9dd; padding: .25em .6em; text-align: right; }
 th { background: #eef3f5; } td.l, th.l { text-align: left; }
 .off { color: #c0262d; font-weight: bold; } .muted { color: #7f8a93; }
 img { max-width: 100%; border: 1px solid #e3e6e8; }
+pre { background: #f6f8f9; padding: .6em; font-size: .85em; white-space: pre-wrap; }
 """
 
 
@@ -141,6 +143,9 @@ def _page(store: Store, run_id: int, info: dict, figures: list[tuple[str, Path]]
             ["from", "to", "expected deg", "observed deg", "± deg", "n", "check"],
             [[i["from_cyl"], i["to_cyl"], i["expected_deg"], i["observed_deg"],
               i["stderr_deg"], i["n"], "OFF" if i["flagged"] else "ok"] for i in intervals])]
+    lines = summary_lines(info.get("summary"))
+    if lines:
+        parts += ["<h2>Summary</h2>", f"<pre>{html.escape(chr(10).join(lines))}</pre>"]
     for title, path in figures:
         data = base64.b64encode(path.read_bytes()).decode("ascii")
         parts.append(f"<h2>{html.escape(title)}</h2>"
