@@ -58,7 +58,7 @@ def _column(data, name: str, alt: int | None) -> np.ndarray | None:
         return np.asarray(data[name]) if name in data.dtype.names else None
     if isinstance(data, dict):
         return np.asarray(data[name]) if name in data else None
-    if alt is not None and alt < len(data):
+    if alt is not None and alt < len(data) and data[alt] is not None:
         return np.asarray(data[alt])
     return None
 
@@ -85,8 +85,8 @@ def score_misfire(detected, truth, *, tolerance_s: float | None = None) -> Score
     Parameters
     ----------
     detected : tuple ``(t, cylinder, misfire[, verdict])``, dict or structured array
-        Detected events: time (s), cylinder (1-based), misfire flag (0/1) and optionally the
-        verdict (code or name) for exclusions. A :data:`dsp.events.EVENT_DTYPE` array works too
+        Detected events: time (s), cylinder (1-based), misfire flag (0/1, or None to take it from
+        the verdict) and optionally the verdict (code or name) for exclusions. A :data:`dsp.events.EVENT_DTYPE` array works too
         (its ``verdict`` gives the misfire flag).
     truth : tuple ``(t, cylinder, fired[, fuel_cut])``, dict or structured array
         Ground truth per firing event, as the simulator's truth file.
