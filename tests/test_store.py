@@ -104,7 +104,11 @@ def test_finish_run_stores_plain_json(tmp_path):
     with Store.open(tmp_path / "p.db") as st:
         run = st.begin_run(m1_like_rig())
         st.finish_run(run, summary)
-    raw = sqlite_utils.Database(tmp_path / "p.db")["runs"].get(run)["summary"]
+    reader = sqlite_utils.Database(tmp_path / "p.db")
+    try:
+        raw = reader["runs"].get(run)["summary"]
+    finally:
+        reader.close()
     # json.loads with the default parser rejects nothing here; NaN/inf became null (RFC 8259
     # has no NaN).
     assert json.loads(raw) == {"rate": 1.5, "n": 3, "bad": None, "arr": [0, 1, 2],
