@@ -179,3 +179,15 @@ def test_cylinder_to_cylinder_spread_shows_in_the_expansion_speed_rise():
             - np.interp(np.radians(tdc + 10), th, ride.tooth_omega))
     r1, r2 = rise[ev["cylinder"] == 1].mean(), rise[ev["cylinder"] == 2].mean()
     assert np.sign(r1 - r2) == np.sign(f[0] - f[1])
+
+
+def test_fuel_cut_resumes_with_hysteresis():
+    # The cut holds until the crank falls below fuel_cut_rpm - hysteresis (common ECU practice),
+    # so there is no fuel on/off chatter around one threshold.
+    sc = Scenario(segments=(Segment(3.0, gear=2, rpm=(3000, 1200), throttle=(0.0, 0.0)),), seed=4)
+    ev = simulate(RIG, sc).events
+    band = (ev["rpm"] > 1560) & (ev["rpm"] < 1740)  # below 1800, above 1800 - 300
+    assert band.sum() > 5 and np.all(ev["fuel_cut"][band])
+    resume = int(np.argmax(~ev["fuel_cut"]))
+    assert resume > 0 and ev["rpm"][resume - 1] < 1800 - 300 + 60  # one event of slack
+    assert np.all(ev["fired"][resume:]) and not np.any(ev["fuel_cut"][resume:])

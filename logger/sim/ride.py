@@ -120,10 +120,20 @@ def _first_pass(scenario, engine, profile, fire, noise, n_max, factor):
     spec = scenario.engine
     u = noise["faults"]
 
+    cutting = [False]
+
     def decide(c, t, omega, tg):
         r = omega * 30.0 / math.pi
         th = tg[2]
-        fc = spec.fuel_cut and th < spec.fuel_cut_throttle and r > spec.fuel_cut_rpm
+        # Overrun cut with hysteresis, as ECUs do: it starts above fuel_cut_rpm and lasts until
+        # the throttle opens or the crank falls below fuel_cut_rpm - fuel_cut_hysteresis_rpm.
+        if not (spec.fuel_cut and th < spec.fuel_cut_throttle):
+            cutting[0] = False
+        elif r > spec.fuel_cut_rpm:
+            cutting[0] = True
+        elif r < spec.fuel_cut_rpm - spec.fuel_cut_hysteresis_rpm:
+            cutting[0] = False
+        fc = cutting[0]
         for k in range(n_cyl):
             te = t + fire[k] / (6.0 * r)
             b, d = firing.fault_effects(scenario.faults, k + 1, c, te, float(u[c + 1, k]))
@@ -153,7 +163,7 @@ def _first_pass(scenario, engine, profile, fire, noise, n_max, factor):
     return track, params
 
 
-def _engine_alone(scenario, engine, gas, track, wheel, errors):
+def _engine_alone(scenario, engine, gas, track, wheel, errors, say):
     """Edges of the fine engine-alone solution: angle, tooth, rev, time, speed, gas torque."""
     parts: dict[str, list[np.ndarray]] = {k: [] for k in ("ang", "tooth", "rev", "t", "om", "tq")}
     cycle_t = [0.0]
@@ -170,6 +180,7 @@ def _engine_alone(scenario, engine, gas, track, wheel, errors):
         parts["om"].append(np.interp(ang, th, om))
         parts["tq"].append(np.interp(ang, th, tq))
         cycle_t.extend(blk.t[:, -1].tolist())
+        say("crank", (len(cycle_t) - 1) / max(len(track.t), 1))
     out = {k: np.concatenate(v) for k, v in parts.items()}
     return out, np.asarray(cycle_t)
 
@@ -249,7 +260,7 @@ def simulate(
     wheel = rig.wheel
     wheel_rng = np.random.default_rng(seeds["wheel"])
     errors = wheel_errors(wheel, scenario.wheel.error_rms_deg, wheel_rng)
-    edges, cycle_t = _engine_alone(scenario, engine, gas, track, wheel, errors)
+    edges, cycle_t = _engine_alone(scenario, engine, gas, track, wheel, errors, say)
     say("driveline", 0.0)
     j_mean = float(np.mean(crank.inertia_table(engine)))
     t, omega, _, _ = driveline.apply(

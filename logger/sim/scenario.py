@@ -31,8 +31,9 @@ scenario file (TOML, crankbeat's own layout):
 
     [engine]
     true_layout = "twin-360"       # the bike really has this layout (the rig file says otherwise)
-    fuel_cut_rpm = 1800            # overrun cut: no fuel while throttle < fuel_cut_throttle ...
-    fuel_cut_throttle = 1.0        # ... and the crank turns faster than fuel_cut_rpm
+    fuel_cut_rpm = 1800            # overrun cut: no fuel once throttle < fuel_cut_throttle ...
+    fuel_cut_throttle = 1.0        # ... with the crank faster than fuel_cut_rpm, until it opens
+    fuel_cut_hysteresis_rpm = 300  # ... or the crank falls below fuel_cut_rpm minus this
 
     [physics]                      # variations; every key optional (see Physics for defaults)
     inertia_scale = 1.0
@@ -139,6 +140,7 @@ class EngineSpec:
     true_layout: str | None = None
     fuel_cut_rpm: float = 1800.0
     fuel_cut_throttle: float = 1.0
+    fuel_cut_hysteresis_rpm: float = 300.0
     fuel_cut: bool = True
 
 
