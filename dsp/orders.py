@@ -17,7 +17,9 @@ Resampling chain (computed order tracking)
    *in orders* by a linear-phase FIR (Kaiser, 80 dB; pass band to 0.4 · samples_per_rev, stop band
    from 0.6 · samples_per_rev) and decimated by ``q``. The filter's cut-off is fixed in orders,
    so it follows the engine speed. Orders up to 0.4 · samples_per_rev are clean; below
-   ``rpm_floor`` the fine grid itself may alias. With ``q = 1`` there is no FIR.
+   ``rpm_floor`` the fine grid itself may alias. With ``q = 1`` (the grid alone is fast enough,
+   e.g. 128 points per revolution at fs = 2 kHz and a 1000 rpm floor, as the
+   :class:`dsp.vibration.VibrationAnalyzer` uses) there is no FIR.
 
 Angles are in crank degrees, cumulative (not wrapped), 0 at cylinder 1's TDC; grid points sit at
 whole multiples of ``360 / samples_per_rev`` so blocks line up with the crank in every run.
@@ -455,7 +457,8 @@ def resample_to_angle(
                        n_channels=n_ch, max_buffer_s=np.inf)
     a = r.push(t_samples, xs, t_edges, angle_edges, valid)
     b = r.finish()
-    return AngleSamples(*(np.concatenate((getattr(a, f), getattr(b, f))) for f in ("index", "t", "x")))
+    fields = ("index", "t", "x")
+    return AngleSamples(*(np.concatenate((getattr(a, f), getattr(b, f))) for f in fields))
 
 
 def _window(name: str, n: int) -> np.ndarray:
@@ -644,7 +647,8 @@ class OrderMap:
         self._idx, self._t = np.empty(0, np.int64), np.empty(0)
         self._x = np.empty((0, self.n_channels))
         rest = self.push(AngleSamples(idx[cut:], t[cut:], x[cut:]))
-        return tuple(np.concatenate((p, q)) for p, q in zip(first, rest))  # type: ignore[return-value]
+        joined = tuple(np.concatenate((p, q)) for p, q in zip(first, rest))
+        return joined  # type: ignore[return-value]
 
     def _take(self, idx: np.ndarray, t: np.ndarray, x: np.ndarray, *, final: bool
               ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -687,7 +691,8 @@ class OrderMap:
 
 def order_map(samples: AngleSamples, **options: object) -> OrderMapResult:
     """Whole-record rpm-vs-order map: one push of :class:`OrderMap` (same options)."""
-    m = OrderMap(n_channels=samples.x.shape[1] if samples.x.ndim == 2 else 1, **options)  # type: ignore[arg-type]
+    n_ch = samples.x.shape[1] if samples.x.ndim == 2 else 1
+    m = OrderMap(n_channels=n_ch, **options)  # type: ignore[arg-type]
     m.push(samples)
     return m.finish()
 
@@ -728,7 +733,9 @@ def compare_orders(
     o = np.asarray(orders, dtype=float)
     a = np.asarray(amplitude, dtype=float)
     if o.shape != a.shape or o.ndim != 1:
-        raise InputError(f"orders and amplitude must be 1-d of equal length, got {o.shape}, {a.shape}")
+        raise InputError(
+            f"orders and amplitude must be 1-d of equal length, got {o.shape}, {a.shape}"
+        )
     if not tolerance > 0:
         raise InputError(f"tolerance must be > 0, got {tolerance!r}")
     look = (o >= min_order - tolerance) & (o <= max_order + tolerance) & (o > 0)

@@ -88,7 +88,8 @@ class SensorSpec:
         if self.location in HAND_ARM:
             return ("Wh", "Wh", "Wh")
         if self.location == "seat":
-            return tuple("Wk" if a in ("up", "down") else "Wd" for a in self.axes)  # type: ignore[return-value]
+            kinds = tuple("Wk" if a in ("up", "down") else "Wd" for a in self.axes)
+            return kinds  # type: ignore[return-value]
         return ("none", "none", "none")
 
     def vector_k(self) -> tuple[float, float, float]:
@@ -181,7 +182,8 @@ class _Board:
         for kind in sorted(set(self.kinds)):
             axes = [c for c in range(3) if self.kinds[c] == kind]
             sos_w = weighting_sos(kind, fs) if kind != "none" else None  # type: ignore[arg-type]
-            sos_u = band_limiting_sos("Wh" if kind == "none" else kind, fs)  # type: ignore[arg-type]
+            band = "Wh" if kind == "none" else kind
+            sos_u = band_limiting_sos(band, fs)  # type: ignore[arg-type]
             self.groups.append((kind, axes, sos_w, sos_u))
         self.zi: list[tuple[np.ndarray | None, np.ndarray] | None] = [None] * len(self.groups)
         n_bands = len(edges) - 1
@@ -214,8 +216,8 @@ class _Board:
                 seg = x[a:b, axes]
                 if gap[a] or self.zi[g] is None:  # start settled on the present value
                     x0 = seg[0][None, None, :]
-                    self.zi[g] = (None if sos_w is None else signal.sosfilt_zi(sos_w)[:, :, None] * x0,
-                                  signal.sosfilt_zi(sos_u)[:, :, None] * x0)
+                    zw0 = None if sos_w is None else signal.sosfilt_zi(sos_w)[:, :, None] * x0
+                    self.zi[g] = (zw0, signal.sosfilt_zi(sos_u)[:, :, None] * x0)
                 zw, zu = self.zi[g]  # type: ignore[misc]
                 yu[a:b, axes], zu = signal.sosfilt(sos_u, seg, axis=0, zi=zu)
                 if sos_w is not None:
@@ -312,7 +314,7 @@ class VibrationAnalyzer:
 
     # -- public -------------------------------------------------------------------------
     def push(
-        self, accel: dict[str, tuple[ArrayLike, ArrayLike] | tuple[ArrayLike, ArrayLike, ArrayLike]],
+        self, accel: dict[str, tuple[ArrayLike, ...]],
         crank: tuple[ArrayLike, ArrayLike, ArrayLike],
     ) -> VibrationStep:
         """Add accelerometer samples and crank edges.
@@ -361,7 +363,7 @@ class VibrationAnalyzer:
         board.gap = np.concatenate((board.gap, gap))
 
     def _process(self, board: _Board, t_cover: float, step: VibrationStep) -> None:
-        n = int(np.searchsorted(board.t, t_cover, side="right"))
+        n = int(np.searchsorted(board.t, t_cover, side="left"))  # rpm needs an edge after t
         name = board.spec.name
         step.samples_done[name] = n
         if n == 0:

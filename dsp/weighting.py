@@ -71,7 +71,8 @@ def _sections(kind: str) -> list[tuple[np.ndarray, np.ndarray, bool]]:
     if f5 is not None:
         w5, w6 = _TWO_PI * f5, _TWO_PI * f6  # type: ignore[operator]
         # (1 + s/(Q5 w5) + s²/w5²) / (1 + s/(Q6 w6) + s²/w6²) · (w5/w6)²
-        out.append((np.array([1.0, w5 / q5, w5**2]), np.array([1.0, w6 / q6, w6**2]), False))  # type: ignore[operator]
+        num = np.array([1.0, w5 / q5, w5**2])  # type: ignore[operator]
+        out.append((num, np.array([1.0, w6 / q6, w6**2]), False))  # type: ignore[operator]
     return out
 
 

@@ -38,7 +38,8 @@ def sweep(rpm0: float, rpm1: float, seconds: float, orders: dict[float, float], 
         return w0 * t + 0.5 * acc * t * t
 
     th = wheel_60_2(angle(seconds))
-    te = (2 * th / (w0 + np.sqrt(w0 * w0 + 2 * acc * th))) if acc else th / w0  # root of angle(t)=th
+    # the root of angle(t) = th, in the form that stays exact for small acc
+    te = 2 * th / (w0 + np.sqrt(w0 * w0 + 2 * acc * th))
     ts = np.arange(-pad_s, seconds + pad_s, 1 / fs)
     theta = np.deg2rad(angle(ts))
     x = sum(a * np.cos(o * theta) for o, a in orders.items())

@@ -21,7 +21,8 @@ def engine_orders(t: np.ndarray, rpm: float, amps=(0.5, 0.3, 0.1)) -> np.ndarray
 
 
 def road_burst(t: np.ndarray, t0: float, t1: float, rms: float, seed: int) -> np.ndarray:
-    """Gaussian noise band-limited to 1-15 Hz (scipy Butterworth), ``rms`` g per axis, in [t0, t1]."""
+    """Gaussian noise band-limited to 1-15 Hz (scipy Butterworth), ``rms`` g per axis, on
+    [t0, t1)."""
     rng = np.random.default_rng(seed)
     sos = signal.butter(4, (1.0, 15.0), "bandpass", fs=FS, output="sos")
     n = rng.standard_normal((len(t), 3))
