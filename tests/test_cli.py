@@ -162,7 +162,7 @@ def test_events_filters_and_json(capsys, store, tmp_path):
     target = tmp_path / "ev.csv"
     code, out, _ = run_cli(capsys, "events", "after", "--store", str(path), "--out", str(target))
     assert code == 0 and out == ""
-    assert sum(1 for _ in target.open()) == len(evs["b"]) + 1
+    assert len(target.read_text().splitlines()) == len(evs["b"]) + 1
 
 
 def test_trend_text_json_and_plot(capsys, store, tmp_path):
