@@ -311,3 +311,19 @@ def test_update_run_fields(tmp_path):
         info = st.run(run)
     assert info["started_at"] == "2026-01-02T00:00:00+00:00"
     assert info["notes"] == "wet" and info["label"] == "a"
+
+
+def test_a_store_locked_by_another_program(tmp_path):
+    path = tmp_path / "p.db"
+    Store.open(path).close()
+    holder = sqlite3.connect(path)
+    try:
+        holder.execute("PRAGMA locking_mode=EXCLUSIVE")
+        # SQLite docs (locking_mode): an exclusive transaction keeps every other reader out.
+        holder.execute("BEGIN EXCLUSIVE")
+        with pytest.raises(StoreError, match="locked by another program") as info:
+            Store.open(path, timeout=0.1)
+    finally:
+        holder.rollback()
+        holder.close()
+    assert info.value.exit_code == 5

@@ -4,8 +4,8 @@ Each command lives in ``logger/cli/cmd_<name>.py`` with ``NAME``, ``HELP`` (one 
 ``add_arguments(parser)`` (which also sets ``parser.epilog`` to an example) and
 ``run(args) -> int``. :data:`COMMANDS` lists them explicitly, in the order ``--help`` shows.
 Project errors (:class:`dsp.errors.CrankbeatError`) become one ``error: <message>`` line on
-stderr and the error's exit code (0 ok, 1 generic, 2 usage, 3 rig, 4 source, 5 store);
-Ctrl-C gives 130.
+stderr and the error's exit code (0 ok, 1 generic, 2 usage, 3 rig, 4 source, 5 store); an
+SQLite failure underneath (disk full, a lock held too long) is a store error too; Ctrl-C gives 130.
 """
 
 from __future__ import annotations
@@ -13,10 +13,11 @@ from __future__ import annotations
 import argparse
 import importlib
 import os
+import sqlite3
 import sys
 from types import ModuleType
 
-from dsp.errors import CrankbeatError
+from dsp.errors import CrankbeatError, StoreError
 
 #: Command modules, in help order. ``cmd_synth`` comes from the simulator; main works without it.
 COMMANDS: tuple[str, ...] = (
@@ -82,6 +83,9 @@ def main(argv: list[str] | None = None) -> int:
     except CrankbeatError as exc:
         print(_error_text(exc), file=sys.stderr)
         return exc.exit_code
+    except sqlite3.Error as exc:  # disk full, file locked too long, damaged pages ...
+        print(f"error: store: {exc}", file=sys.stderr)
+        return StoreError.exit_code
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
         return 130

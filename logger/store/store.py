@@ -152,11 +152,12 @@ class Store:
 
     # -- opening -------------------------------------------------------------------------
     @classmethod
-    def open(cls, path: str | os.PathLike, *, create: bool = True) -> Store:
+    def open(cls, path: str | os.PathLike, *, create: bool = True,
+             timeout: float = 10.0) -> Store:
         """Open (and create or migrate) the store file at ``path``.
 
         ``create=False`` is for queries: a missing file is then a :class:`StoreError` instead of
-        a new empty store.
+        a new empty store. ``timeout`` is how long to wait for another program's lock, s.
         """
         path = Path(path)
         if not path.exists():
@@ -169,12 +170,18 @@ class Store:
                 raise StoreError(f"cannot create store '{path}': folder '{path.parent}' is missing")
         try:
             # check_same_thread=False: the live pipeline may write from its worker thread.
-            conn = sqlite3.connect(str(path), check_same_thread=False, timeout=10.0)
+            conn = sqlite3.connect(str(path), check_same_thread=False, timeout=timeout)
         except sqlite3.Error as exc:
             raise StoreError(f"cannot open store '{path}': {exc}") from None
         store = cls(path, conn)
         try:
             store._prepare()
+        except sqlite3.OperationalError as exc:
+            conn.close()
+            if "locked" in str(exc) or "busy" in str(exc):
+                raise StoreError(f"store '{path}' is locked by another program ({exc}); "
+                                 "try again when it is done") from None
+            raise StoreError(f"cannot open store '{path}': {exc}") from None
         except sqlite3.DatabaseError as exc:
             conn.close()
             raise StoreError(f"'{path}' is not a crankbeat store ({exc})") from None
