@@ -151,19 +151,22 @@ class AngleResampler:
         Columns of ``x``.
     max_buffer_s : float
         Samples older than this before the latest are dropped while no edges arrive.
+    max_step_deg : float
+        Larger angle steps between edges end the stretch (a re-phased crank jumps by 360°).
 
     Notes
     -----
     ``push`` returns the points that are final; ``finish`` returns the rest. Pushing data in
     any chunking gives the same points as one push of everything (:func:`resample_to_angle`).
-    A stretch of edges ends where ``valid`` is False or the angle does not increase; points of
+    A stretch of edges ends where ``valid`` is False, the angle does not increase or jumps by
+    more than ``max_step_deg``; points of
     the grid that would need data across such a break, or before the first / after the last
     sample, are not produced.
     """
 
     def __init__(
         self, *, fs: float, samples_per_rev: int = 64, rpm_floor: float = 1000.0,
-        n_channels: int = 1, max_buffer_s: float = 2.0,
+        n_channels: int = 1, max_buffer_s: float = 2.0, max_step_deg: float = 120.0,
     ) -> None:
         if not (np.isfinite(fs) and fs > 0):
             raise InputError(f"fs must be a positive number of Hz, got {fs!r}")
@@ -179,6 +182,7 @@ class AngleResampler:
         self.fine_step_deg = 360.0 / (self.q * self.samples_per_rev)
         self.n_channels = int(n_channels)
         self.max_buffer_s = float(max_buffer_s)
+        self.max_step_deg = float(max_step_deg)
         # samples
         self._ts = np.empty(0)
         self._xs = np.empty((0, self.n_channels))
@@ -378,7 +382,9 @@ class AngleResampler:
             prev_te = self._te[-1] if len(self._te) else -np.inf
             th_all = np.concatenate(([prev_th], th[start:]))
             te_all = np.concatenate(([prev_te], te[start:]))
-            good = ok[start:] & (np.diff(th_all) > 0) & (np.diff(te_all) > 0)
+            dth = np.diff(th_all)
+            good = ok[start:] & (dth > 0) & (dth <= self.max_step_deg) & (np.diff(te_all) > 0)
+            good[0] |= len(self._th) == 0 and bool(ok[start])  # first edge of a stretch
             stop = start + (int(np.argmin(good)) if not good.all() else len(good))
             self._th = np.concatenate((self._th, th[start:stop]))
             self._te = np.concatenate((self._te, te[start:stop]))

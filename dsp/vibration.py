@@ -307,7 +307,9 @@ class VibrationAnalyzer:
         inside = (k >= 0) & (k < len(te) - 1)
         kk = k[inside]
         dt = te[kk + 1] - te[kk]
+        dth = th[kk + 1] - th[kk]
         good = ok[kk] & ok[kk + 1] & (dt > 0) & (dt <= self.max_edge_gap_s)
+        good &= (dth > 0) & (dth <= 120.0)  # a re-phased crank jumps by 360°: no speed there
         vals = np.where(good, (th[kk + 1] - th[kk]) / np.where(dt > 0, dt, 1.0) / 6.0, np.nan)
         rpm[inside] = vals
         return rpm

@@ -196,3 +196,22 @@ def test_bad_inputs_say_what_was_expected():
         order_spectrum(np.zeros(100), samples_per_rev=64, revs_per_block=2)
     with pytest.raises(InputError, match="window"):
         order_spectrum(np.zeros(1000), samples_per_rev=64, revs_per_block=2, window="kaiser")
+
+
+def test_rephased_crank_jump_is_not_bridged():
+    # the crank stage may correct its 720° phase by adding 360° from some edge on: no grid point
+    # may be made up inside that step; the points after it carry the new numbering (+64 points
+    # of 360/64 degrees) and the same values
+    ts, x, te, th = sweep(3000, 3000, 2.0, {1.0: 1.0})
+    jump = th.copy()
+    jump[400:] += 360.0
+    s = resample_to_angle(ts, x, te, jump, fs=FS, samples_per_rev=64)
+    ref = resample_to_angle(ts, x, te, th, fs=FS, samples_per_rev=64)
+    # away from the step by more than the order-domain FIR reaches (about 11 teeth here)
+    early_s, early_r = s.t < te[380], ref.t < te[380]
+    assert np.array_equal(s.index[early_s], ref.index[early_r])
+    assert np.array_equal(s.x[early_s], ref.x[early_r])
+    assert not np.any((s.t > te[399]) & (s.t < te[400]))
+    late_s, late_r = s.t > te[420], ref.t > te[420]
+    assert np.array_equal(s.index[late_s], ref.index[late_r] + 64)
+    assert np.allclose(s.x[late_s], ref.x[late_r], atol=1e-9)
