@@ -48,7 +48,7 @@ def run(args: argparse.Namespace) -> int:
     x_head = "km" if args.by == "odometer" else "started"
     print(table(
         ["run", "label", x_head, "series", f"{args.metric}{f' [{unit}]' if unit else ''}", "n"],
-        [[p.run_id, p.label or "-",
+        [[p.run_id, (p.label or "-") + ("" if p.status == "complete" else f" ({p.status})"),
           fmt(p.odometer_km, ".0f") if args.by == "odometer" else p.started_at,
           p.series, fmt(p.value, ".3f"), p.n] for p in points],
         indent="",
