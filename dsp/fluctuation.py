@@ -35,7 +35,6 @@ ignition and gives the observed firing interval.
 
 from __future__ import annotations
 
-import warnings
 from dataclasses import dataclass
 
 import numpy as np
@@ -166,6 +165,9 @@ class FluctuationStage:
         self._t = np.empty(0)
         self._ok = np.empty(0, dtype=bool)
         self._per = np.empty(0)
+        self._mid = np.empty(0)
+        self._e = np.empty(0)
+        self._good = np.empty(0, dtype=bool)
         self._max_angle = -np.inf
         self._next: int | None = None  # next global event index to emit
 
@@ -202,10 +204,16 @@ class FluctuationStage:
             prev = np.maximum(prev, self._max_angle)
             keep &= angle > prev
         if keep.any():
+            n_old = self._ang.size
             self._ang = np.concatenate((self._ang, angle[keep]))
             self._t = np.concatenate((self._t, t[keep]))
             self._ok = np.concatenate((self._ok, valid[keep]))
             self._per = np.concatenate((self._per, period[keep]))
+            # samples (one per tooth interval) depend on two edges only: computed once
+            mid, e, good = self._make_samples(max(n_old - 1, 0), self._ang.size)
+            self._mid = np.concatenate((self._mid, mid))
+            self._e = np.concatenate((self._e, e))
+            self._good = np.concatenate((self._good, good))
             self._max_angle = float(self._ang[-1])
             if self._next is None:
                 self._next = self._first_index_after(float(self._ang[0]))
@@ -240,10 +248,16 @@ class FluctuationStage:
             self._t = self._t[cut:]
             self._ok = self._ok[cut:]
             self._per = self._per[cut:]
+            self._mid = self._mid[cut:]
+            self._e = self._e[cut:]
+            self._good = self._good[cut:]
 
     # -- the computation ------------------------------------------------------------------------
     def _samples(self, s0: int, s1: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Mid-angle, kinetic energy and goodness of each tooth interval of buffer[s0:s1]."""
+        return self._mid[s0 : s1 - 1], self._e[s0 : s1 - 1], self._good[s0 : s1 - 1]
+
+    def _make_samples(self, s0: int, s1: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         a, t, ok, per = self._ang[s0:s1], self._t[s0:s1], self._ok[s0:s1], self._per[s0:s1]
         da = np.diff(a)
         dt = np.where(np.isfinite(per[1:]) & (per[1:] > 0), per[1:], np.diff(t))
@@ -322,8 +336,8 @@ class FluctuationStage:
         # centre of the gas work inside the window: per-sample energy changes plus the loss
         # loss torque (friction, load), J/deg: the cycle's gas work minus the trend
         loss = sum_x / (2 * h) / (1.0 - n * frac) / C - slope
-        rise, _, _ = self._rise(mid, e, good, theta + RISE_SPAN[0], theta + RISE_SPAN[1], -loss)
-        _, energy_mean, clean_win = self._rise(mid, e, good, pa, pb, -loss)
+        rise = self._rise(mid, e, good, theta + RISE_SPAN[0], theta + RISE_SPAN[1], -loss)
+        energy_mean, clean_win = self._window(mid, e, good, pa, pb)
         usable = np.isfinite(work) & clean_win
         out["work"] = np.where(usable, work, np.nan)
         out["energy"] = energy_mean
@@ -331,7 +345,7 @@ class FluctuationStage:
         out["usable"] = usable & np.isfinite(out["t"]) & np.isfinite(out["rpm"])
         return out
 
-    def _rise(self, mid, e, good, pa, pb, slope):
+    def _gather(self, mid, good, pa, pb):
         i0 = np.searchsorted(mid, pa, side="left")
         i1 = np.searchsorted(mid, pb, side="right")
         j = (i0 - 1)[:, None] + np.arange(self._win_m)[None, :]
@@ -341,26 +355,39 @@ class FluctuationStage:
         pair = inside & (j + 1 < mid.size) & (j + 1 <= i1[:, None])
         pair_ok = pair & good[jc] & good[jn]
         clean = ~(pair & ~pair_ok).any(axis=1) & (i1 - i0 + 2 <= self._win_m) & (i1 > i0)
+        return jc, jn, inside, pair_ok, clean
+
+    def _window(self, mid, e, good, pa, pb):
+        """Mean energy over each window and whether the window is free of bad samples."""
+        jc, _, inside, pair_ok, clean = self._gather(mid, good, pa, pb)
+        use = good[jc] & inside
+        cnt = use.sum(axis=1)
+        emean = np.where(use, e[jc], 0.0).sum(axis=1) / np.maximum(cnt, 1)
+        return np.where(cnt > 0, emean, np.nan), clean & (pair_ok.sum(axis=1) > 0)
+
+    def _rise(self, mid, e, good, pa, pb, slope):
+        """Centre of the combustion torque over each span [pa, pb], degrees (absolute)."""
+        jc, jn, _, pair_ok, _ = self._gather(mid, good, pa, pb)
         dth = np.where(pair_ok, mid[jn] - mid[jc], 0.0)
         d_e = np.where(pair_ok, e[jn] - e[jc], 0.0) - slope[:, None] * dth
         c = np.where(pair_ok, 0.5 * (mid[jn] + mid[jc]) - pa[:, None], 0.0)
         # centre of the torque in excess of the span's median torque: the combustion pulse
         # stands out of the slow torques (load, pumping, the other cylinders), and the median
         # ignores the pulse itself
-        tq = np.where(pair_ok, d_e / np.where(dth > 0, dth, 1.0), np.nan)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)
-            med = np.nanmedian(tq, axis=1)
+        tq = np.where(pair_ok, d_e / np.where(dth > 0, dth, 1.0), np.inf)
+        srt = np.sort(tq, axis=1)  # the missing ones (inf) sort last
+        cnt = pair_ok.sum(axis=1)
+        rows = np.arange(tq.shape[0])
+        lo = srt[rows, np.maximum((cnt - 1) // 2, 0)]
+        hi = srt[rows, np.maximum(cnt // 2, 0)]
+        med = np.where(cnt > 0, 0.5 * (lo + hi), 0.0)
+        tq = np.where(pair_ok, tq, 0.0)
+        med = np.where(np.isfinite(med), med, 0.0)
         wgt = np.where(pair_ok, np.maximum(tq - med[:, None], 0.0) * dth, 0.0)
         m0 = wgt.sum(axis=1)
         with np.errstate(invalid="ignore", divide="ignore"):
             rise = pa + (c * wgt).sum(axis=1) / m0
-            cnt = np.where(pair_ok, 1, 0).sum(axis=1)
-            emean = np.where(good[jc] & inside, e[jc], 0.0).sum(axis=1) / np.maximum(
-                (good[jc] & inside).sum(axis=1), 1
-            )
-        rise = np.where(m0 > 0, rise, np.nan)
-        return rise, np.where(cnt > 0, emean, np.nan), clean
+        return np.where(m0 > 0, rise, np.nan)
 
 
 def _interp_or_nan(x: np.ndarray, xp: np.ndarray, fp: np.ndarray) -> np.ndarray:
