@@ -112,7 +112,9 @@ def _e(v: object) -> str:
 
 def _table(headers: list[str], rows: list[list[object]]) -> str:
     head = "".join(f"<th>{html.escape(h)}</th>" for h in headers)
-    body = "".join("<tr>" + "".join(f"<td>{_e(c)}</td>" for c in r) + "</tr>" for r in rows)
+    body = "".join(
+        "<tr>" + "".join(f"<td class='off'>{_e(c)}</td>" if c == "OFF" else f"<td>{_e(c)}</td>"
+                         for c in r) + "</tr>" for r in rows)
     return f"<table><tr>{head}</tr>{body}</table>"
 
 
