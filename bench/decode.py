@@ -1,0 +1,45 @@
+"""Decode only: the recordings through ``logger.stream.replay`` with no analysis after it.
+
+That is every step a replay takes before the dsp stages: reading the CAN log (the numpy
+candump path for ``.log``), decoding the rig's frames, reading the capture files, parsing the
+serial frames and aligning the board's clock onto the CAN time base.
+"""
+
+from __future__ import annotations
+
+import os
+from dataclasses import dataclass
+
+from bench.floors import best_of
+
+
+@dataclass
+class DecodeCount:
+    """What one decode pass delivered."""
+
+    chunks: int
+    can_frames: int  # every frame the CAN source read (StreamHealth.can_frames)
+    tooth_frames: int
+    status_frames: int
+    samples: int  # accelerometer samples, all sensors
+
+
+def _decode_once(rig, can_path: str, accel: dict[str, str]) -> DecodeCount:
+    from logger import stream
+
+    count = DecodeCount(0, 0, 0, 0, 0)
+    with stream.replay(rig, can_path, accel) as chunks:
+        for chunk in chunks:
+            count.chunks += 1
+            count.tooth_frames += len(chunk.teeth)
+            count.status_frames += len(chunk.status)
+            count.samples += sum(len(b) for b in chunk.accel.values())
+            count.can_frames = chunk.health.can_frames
+    return count
+
+
+def decode(rig, can_path: str | os.PathLike, accel: dict[str, str | os.PathLike] | None = None,
+           *, repeat: int = 1) -> tuple[float, DecodeCount]:
+    """Best wall time (s) of ``repeat`` decode passes, and what a pass delivered."""
+    acc = {k: os.fspath(v) for k, v in (accel or {}).items()}
+    return best_of(lambda: _decode_once(rig, os.fspath(can_path), acc), repeat=repeat)

@@ -1,0 +1,105 @@
+"""Bench helper: the analysing process of the live figure (run by bench/live.py).
+
+Usage: python scripts/bench_live.py --can LOG --port NAME=URL --store FILE --base T
+       [--rig m1] [--tail S]
+
+python-can's virtual bus joins buses of one process only, so the frames of the recorded ride
+are sent onto it from a feeder thread here, each at wall time ``t0 + (ts - base)``; the bus
+stamps them with ``time.time()`` as a real interface would. The accelerometer bytes come from
+the bench process through ``socket://``. Protocol on stdio: this prints ``READY`` when set up,
+reads ``t0`` (epoch seconds) from stdin, streams, and prints one JSON line at the end. The
+CPU figure covers t0 to the stop, with the feeder thread's own CPU reported apart.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import sys
+import threading
+import time
+from pathlib import Path
+
+
+def _cpu_self() -> float:
+    ru = resource.getrusage(resource.RUSAGE_SELF)
+    return ru.ru_utime + ru.ru_stime
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--rig", default="m1")
+    ap.add_argument("--can", required=True, type=Path)
+    ap.add_argument("--port", action="append", default=[], metavar="NAME=URL")
+    ap.add_argument("--store", required=True, type=Path)
+    ap.add_argument("--base", required=True, type=float, help="ride time that maps onto t0")
+    ap.add_argument("--tail", type=float, default=1.5, help="s after the last frame to stop")
+    args = ap.parse_args(argv)
+
+    import can
+
+    from dsp.errors import CrankbeatError
+    from logger.pipeline import analyse_live
+    from logger.rig import load_rig
+    from logger.rig.model import CanBus
+    from logger.store import Store
+
+    rig = load_rig(args.rig)
+    with can.LogReader(str(args.can)) as reader:
+        msgs = list(reader)
+    channel = f"crankbeat-bench-{os.getpid()}"
+    feeder_bus = can.Bus(interface="virtual", channel=channel)
+    ports = dict(spec.split("=", 1) for spec in args.port)
+    for suffix in ("", "-wal", "-shm"):
+        p = Path(str(args.store) + suffix)
+        if p.exists():
+            p.unlink()
+    store = Store.open(args.store, create=True)
+    stop = threading.Event()
+    figures: dict[str, float] = {}
+
+    print("READY", flush=True)
+    t0 = float(sys.stdin.readline())
+
+    def feed() -> None:
+        cpu_start = _cpu_self()
+        thread_start = time.thread_time()
+        late = 0.0
+        for msg in msgs:
+            due = t0 + (msg.timestamp - args.base)
+            wait = due - time.time()
+            if wait > 0.0005:
+                time.sleep(wait)
+            else:
+                late = max(late, -wait)
+            feeder_bus.send(msg)
+        figures["feeder_late_max_s"] = late
+        figures["last_send_wall"] = time.time()
+        time.sleep(args.tail)
+        figures["feeder_cpu_s"] = time.thread_time() - thread_start
+        figures["cpu_s"] = _cpu_self() - cpu_start
+        figures["stream_wall_s"] = time.time() - t0
+        stop.set()
+
+    feeder = threading.Thread(target=feed, name="bench-can-feeder", daemon=True)
+    feeder.start()
+    try:
+        result = analyse_live(rig, CanBus(interface="virtual", channel=channel), ports, store,
+                              stop_event=stop, label="bench-live")
+    except CrankbeatError as exc:
+        stop.set()
+        print(f"error: {exc}", file=sys.stderr)
+        return exc.exit_code
+    finally:
+        feeder.join(timeout=5.0)
+        feeder_bus.shutdown()
+        store.close()
+    figures.update(frames_sent=len(msgs), run_id=result.run_id)
+    print(json.dumps(figures))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
