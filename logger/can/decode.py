@@ -95,6 +95,7 @@ class FrameDecoder:
         self._period_stats = [0, 0, 0]  # periods judged, bad ratios, too short
         self._plausibility_noted = False
         self._no_match_noted = False
+        self._cur_data: dict[str, np.ndarray] = {}  # message name -> its frames' bytes
 
     # ----------------------------------------------------------------- notes
     def _note(self, kind: str, text: str) -> None:
@@ -126,6 +127,7 @@ class FrameDecoder:
             self._note("remote", f"{batch.where(int(i))}: remote frame id "
                        f"0x{int(batch.can_id[i]):X} (counted, skipped)")
 
+        self._cur_data = {}
         keys = _key(batch.can_id, batch.extended)
         known = np.zeros(m, bool)
         rows: dict[str, np.ndarray] = {}
@@ -196,6 +198,7 @@ class FrameDecoder:
                 self._note("jump", f"{batch.where(int(idx[j]))}: {msg.name} ({_id_text(msg)}, "
                            f"{msg.rate_hz:g} Hz) silent for {ts[j] - prev[j]:.3f} s")
         st.last_ts = float(ts[-1])
+        self._cur_data[msg.name] = batch.data[idx]  # gathered once, used by every signal
         if st.counter is None:
             return idx, None
         lost = self._lost(st, batch, idx)
@@ -205,7 +208,7 @@ class FrameDecoder:
     def _lost(self, st: _MsgState, batch: FrameBatch, idx: np.ndarray) -> np.ndarray:
         sig = st.counter
         assert sig is not None
-        c = decode_raw(batch.data[idx], sig).astype(np.int64)
+        c = decode_raw(self._cur_data[st.msg.name], sig).astype(np.int64)
         modulo = int(sig.modulo) if sig.modulo else 1 << sig.length
         prev = np.empty_like(c)
         prev[0] = c[0] - 1 if st.last_counter is None else st.last_counter
@@ -288,7 +291,8 @@ class FrameDecoder:
             return self.empty_teeth()
         assert self._teeth_sig is not None
         idx = rows[self._teeth.name]
-        periods = decode_signal(batch.data[idx], self._teeth_sig).reshape(len(idx), -1)
+        periods = decode_signal(self._cur_data[self._teeth.name], self._teeth_sig)
+        periods = periods.reshape(len(idx), -1)
         lt = lost.get(self._teeth.name)
         lost_before = np.zeros(len(idx), np.int32) if lt is None else lt.astype(np.int32)
         cam = self._cam_at(batch, rows, idx)
@@ -304,9 +308,9 @@ class FrameDecoder:
                     ) -> tuple[np.ndarray, np.ndarray]:
         assert self._cam_msg is not None and self._cam_sig is not None
         cidx = rows.get(self._cam_msg.name, np.zeros(0, np.int64))
-        vals = decode_raw(batch.data[cidx], self._cam_sig).astype(np.int8) if len(cidx) \
-            else np.zeros(0, np.int8)
-        return cidx, vals
+        if not len(cidx):
+            return cidx, np.zeros(0, np.int8)
+        return cidx, decode_raw(self._cur_data[self._cam_msg.name], self._cam_sig).astype(np.int8)
 
     def _cam_at(self, batch: FrameBatch, rows: dict[str, np.ndarray], idx: np.ndarray
                 ) -> np.ndarray:
@@ -341,7 +345,7 @@ class FrameDecoder:
             sig = msg.signal_for(role)
             assert sig is not None
             ridx = rows.get(msg.name, np.zeros(0, np.int64))
-            v = decode_signal(batch.data[ridx], sig) if len(ridx) else np.zeros(0)
+            v = decode_signal(self._cur_data[msg.name], sig) if len(ridx) else np.zeros(0)
             if len(present) == 1:
                 values[role] = v.astype(np.float64)
             else:

@@ -19,6 +19,7 @@ from __future__ import annotations
 import gzip
 import io
 import os
+from functools import lru_cache
 from collections.abc import Iterator
 from typing import BinaryIO
 
@@ -35,6 +36,8 @@ MAX_LINE_BYTES = 4096
 
 _CAN_ERR_FLAG = 0x20000000
 _CAN_ERR_BUSERROR = 0x00000080
+#: Padding after a block's bytes: the widest fixed-width window read from a line.
+_PAD = MAX_LINE_BYTES + 256
 _EXPECTED = "expected '(seconds) interface id#hexdata'"
 
 _HEX = np.full(256, 255, dtype=np.uint8)
@@ -46,8 +49,85 @@ _DIGIT = np.full(256, 255, dtype=np.uint8)
 for _i in range(10):
     _DIGIT[ord("0") + _i] = _i
 _POW10 = 10 ** np.arange(19, dtype=np.int64)
+_WS_CHARS = [9, 10, 11, 12, 13, 32]
 _WS = np.zeros(256, dtype=bool)
-_WS[[9, 10, 11, 12, 13, 32]] = True
+_WS[_WS_CHARS] = True
+
+
+# character classes as bit flags, for checking a whole line against a template at once
+_C_DIGIT, _C_HEX, _C_DOT, _C_CLOSE, _C_SPACE, _C_WORD, _C_OPEN, _C_ANY = 1, 2, 4, 8, 16, 32, 64, 128
+_CLASS = np.full(256, _C_ANY | _C_WORD, dtype=np.uint8)
+_CLASS[_WS_CHARS] &= ~np.uint8(_C_WORD)
+_CLASS[_HEX != 255] |= _C_HEX
+_CLASS[_DIGIT != 255] |= _C_DIGIT
+_CLASS[ord(".")] |= _C_DOT
+_CLASS[ord(")")] |= _C_CLOSE
+_CLASS[ord("(")] |= _C_OPEN
+_CLASS[ord(" ")] |= _C_SPACE
+
+
+@lru_cache(maxsize=256)
+def _template(tl: int, dp: int, cl: int, il: int, pl: int, tail: int) -> np.ndarray:
+    """Per column of a line of this shape, the character class it must have (any bit)."""
+    t = [_C_OPEN] + [_C_DIGIT] * (dp - 1) + [_C_DOT] + [_C_DIGIT] * (tl - dp)
+    t += [_C_CLOSE, _C_SPACE] + [_C_WORD] * cl + [_C_SPACE] + [_C_HEX] * il + [_C_ANY]
+    t += [_C_HEX] * pl + ([_C_SPACE, _C_ANY] if tail else [])  # direction: checked before
+    t += [_C_ANY] * (-len(t) % 8)  # whole uint64 words; the bytes after the line pass
+    return np.array(t, dtype=np.uint8)
+
+
+def _hex_value(c: np.ndarray) -> np.ndarray:
+    """Value of hex digit characters (0-9, A-F, a-f) by arithmetic; garbage elsewhere."""
+    return (c & np.uint8(0x0F)) + np.uint8(9) * (c >> np.uint8(6))
+
+
+def _landmarks(buf: np.ndarray, s: np.ndarray, e: np.ndarray, *, guesses: int = 4
+               ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Positions of ``)``, ``.`` and ``#`` in each line.
+
+    Lines of a log mostly share one layout, so the offsets of a sample line are tried on all
+    lines at once (three 1-D lookups instead of three passes over the block); up to
+    ``guesses`` layouts are tried, and lines fitting none are searched. A fitting guess need
+    not be the first occurrence of the character: the caller checks every column of the line
+    against its template anyway.
+    """
+    n = len(s)
+    close, dot, hsh = (np.full(n, len(buf), np.int64) for _ in range(3))
+    todo = np.arange(n)
+    for _ in range(guesses):
+        if not len(todo):
+            return close, dot, hsh
+        r = int(todo[0])
+        line = buf[s[r] : e[r]].tobytes()
+        oc = line.find(b")")
+        od, oh = line.find(b"."), line.find(b"#", oc + 1)
+        if min(oc, od, oh) < 0:
+            break
+        st = s[todo]
+        fit = ((buf[st + oc] == ord(")")) & (buf[st + od] == ord("."))
+               & (buf[st + oh] == ord("#")) & (st + oh < e[todo]))
+        hit = todo[fit]
+        close[hit], dot[hit], hsh[hit] = s[hit] + oc, s[hit] + od, s[hit] + oh
+        todo = todo[~fit]
+    if len(todo):
+        st, et = s[todo], e[todo]
+        close[todo] = _per_line(buf, ord(")"), st, et)
+        dot[todo] = _per_line(buf, ord("."), st, et)
+        hsh[todo] = _first_at_or_after(np.flatnonzero(buf == ord("#")), close[todo] + 1,
+                                       len(buf))
+    return close, dot, hsh
+
+
+def _per_line(buf: np.ndarray, char: int, s: np.ndarray, e: np.ndarray) -> np.ndarray:
+    """Position of the first ``char`` at or after each line start (``len(buf)`` if none).
+
+    Usually the character occurs once per line and its positions line up with the lines
+    directly; only otherwise is each line's first one searched for.
+    """
+    pos = np.flatnonzero(buf == char)
+    if len(pos) == len(s) and len(pos) and bool(np.all((pos >= s) & (pos < e))):
+        return pos
+    return _first_at_or_after(pos, s, len(buf))
 
 
 def _first_at_or_after(sorted_pos: np.ndarray, at: np.ndarray, sentinel: int) -> np.ndarray:
@@ -59,10 +139,18 @@ def _first_at_or_after(sorted_pos: np.ndarray, at: np.ndarray, sentinel: int) ->
     return out
 
 
+def _rows(buf: np.ndarray, first: np.ndarray, width: int) -> np.ndarray:
+    """``buf[first[i] : first[i] + width]`` for every i, as an (n, width) array.
+
+    Row-picking from a sliding-window view copies each row in one piece, far cheaper than an
+    element-wise gather; ``buf`` must carry ``width`` bytes of padding at its end.
+    """
+    windows = np.lib.stride_tricks.sliding_window_view(buf, width)
+    return windows[np.clip(first, 0, len(windows) - 1)]
+
+
 def _gather(buf: np.ndarray, first: np.ndarray, width: int) -> np.ndarray:
-    idx = first[:, None] + np.arange(width, dtype=np.int64)[None, :]
-    np.clip(idx, 0, len(buf) - 1, out=idx)
-    return buf[idx]
+    return _rows(buf, first, width)
 
 
 class _Parsed:
@@ -77,6 +165,83 @@ class _Parsed:
         self.is_error = np.zeros(n, bool)
         self.is_remote = np.zeros(n, bool)
         self.is_fd = np.zeros(n, bool)
+
+
+def _horner(digits: np.ndarray, base: int, dtype, start: np.ndarray | None = None
+            ) -> np.ndarray:
+    """Columns of digit values (most significant first) -> integers (continuing ``start``)."""
+    acc = np.zeros(digits.shape[0], dtype=dtype) if start is None else start
+    b = dtype(base)
+    for j in range(digits.shape[1]):
+        acc *= b
+        acc += digits[:, j]
+    return acc
+
+
+def _parse_uniform(buf: np.ndarray, s: np.ndarray, e: np.ndarray) -> tuple[np.ndarray, _Parsed]:
+    """The common case, fast: classic data or error frames, lines grouped by their shape.
+
+    Lines whose field offsets are all equal (same timestamp width and decimal point, channel
+    name, id width, data length, direction suffix) are gathered into one 2-D character array,
+    where every field sits in fixed columns. Anything else (remote, FD, odd shapes) is left
+    with ok=False for :func:`_parse_canonical`.
+    """
+    n = len(s)
+    end = len(buf)
+    cols = _Parsed(n, 8)
+    ok = np.zeros(n, bool)
+    close, dot, hsh = _landmarks(buf, s, e)
+    dot = dot - s
+    # the id is 3 or 8 hex digits after the channel's space; the direction, if any, is " R"
+    id_len = np.where(buf[np.maximum(hsh - 4, 0)] == ord(" "), 3,
+                      np.where(buf[np.maximum(hsh - 9, 0)] == ord(" "), 8, 0))
+    sp2 = hsh - id_len - 1
+    tail = np.where(buf[np.maximum(e - 2, 0)] == ord(" "), 2, 0)
+    t_len, ch_len, plen = close - s - 1, sp2 - close - 2, e - tail - hsh - 1
+    shaped = ((buf[s] == ord("(")) & (close < e) & (hsh < e) & (hsh > close) & (dot < t_len)
+              & (dot >= 2) & (t_len <= 18) & (ch_len >= 1) & (ch_len < 64) & (id_len > 0)
+              & (plen >= 0) & (plen <= 16) & (plen % 2 == 0)
+              & ((tail == 0) | ((buf[np.maximum(e - 1, 0)] | 0x20) == ord("r"))
+                 | ((buf[np.maximum(e - 1, 0)] | 0x20) == ord("t"))))
+    cand = np.flatnonzero(shaped)
+    if not len(cand):
+        return ok, cols
+    key = ((((t_len[cand] * 32 + dot[cand]) * 64 + ch_len[cand]) * 16 + id_len[cand]) * 32
+           + plen[cand]) * 2 + tail[cand] // 2
+    order = np.argsort(key, kind="stable")
+    ks = key[order]
+    bounds = np.flatnonzero(np.diff(ks)) + 1
+    for rows in np.split(cand[order], bounds):  # one group per line shape
+        r0 = rows[0]
+        tl, dp, cl = int(t_len[r0]), int(dot[r0]), int(ch_len[r0])
+        il, pl, tl2 = int(id_len[r0]), int(plen[r0]), int(tail[r0])
+        tpl = _template(tl, dp, cl, il, pl, tl2)
+        m = _rows(buf, s[rows], len(tpl))
+        h = tl + 4 + cl + il  # column of '#'
+        # every template entry is one class bit: compare 8 columns at a time as uint64
+        # (np.take is faster than fancy indexing for a byte lookup table)
+        good = ((np.take(_CLASS, m) & tpl).view(np.uint64) == tpl.view(np.uint64)).all(1)
+        v = _hex_value(m[:, : h + 1 + pl])
+        val = _horner(v[:, dp + 1 : tl + 1], 10, np.int64,
+                      start=_horner(v[:, 1:dp], 10, np.int64))
+        good &= val < 2**53  # beyond that float(val) is not exact; python-can's path takes it
+        ts = val.astype(np.float64) / float(10 ** (tl - dp))
+        raw_id = _horner(v[:, h - il : h], 16, np.uint32)
+        dn = v[:, h + 1 : h + 1 + pl]
+        data = (dn[:, 0::2] << 4) | dn[:, 1::2]
+        rows = rows[good]
+        raw_id = raw_id[good]
+        ok[rows] = True
+        cols.ts[rows] = ts[good]
+        err = ((raw_id & _CAN_ERR_FLAG) != 0) & ((raw_id & _CAN_ERR_BUSERROR) != 0)
+        cols.can_id[rows] = np.where(err, 0, raw_id & np.uint32(0x1FFFFFFF))
+        cols.extended[rows] = (il > 3) | err
+        cols.dlc[rows] = np.where(err, 0, pl // 2)
+        cols.is_error[rows] = err
+        if pl:
+            d = data[good]
+            cols.data[rows, : pl // 2] = np.where(err[:, None], 0, d) if err.any() else d
+    return ok, cols
 
 
 def _parse_canonical(buf: np.ndarray, s: np.ndarray, e: np.ndarray) -> tuple[np.ndarray, _Parsed]:
@@ -280,6 +445,8 @@ class CandumpFastSource(CanSource):
                 buf = np.frombuffer(body, dtype=np.uint8)
                 nl = np.flatnonzero(buf == 10)
                 ends = nl if body.endswith(b"\n") else np.append(nl, len(buf))
+                # padding: fixed-width windows may run past the last line
+                buf = np.concatenate((buf, np.full(_PAD, 10, np.uint8)))
                 starts = np.concatenate(([0], ends[:-1] + 1)).astype(np.int64)
                 yield buf, starts, ends.astype(np.int64), line_no, final
                 line_no += len(ends)
@@ -290,13 +457,20 @@ class CandumpFastSource(CanSource):
         for buf, s, e, first_line, _ in self._blocks():
             # python-can strips each line; strip the usual whitespace the same way
             for _ in range(4):
+                if not (_WS[buf[np.maximum(e - 1, 0)]].any() or _WS[buf[s]].any()):
+                    break
                 trail = (e > s) & _WS[buf[np.maximum(e - 1, 0)]]
                 e = e - trail
                 lead = (e > s) & _WS[buf[np.minimum(s, len(buf) - 1)]]
                 s = s + lead
             blank = e <= s
-            ok, cols = _parse_canonical(buf, s, e)
+            ok, cols = _parse_uniform(buf, s, e)
             ok &= ~blank
+            rest = np.flatnonzero(~ok & ~blank)
+            if len(rest):  # remote, FD, unusual widths: the general vectorised parser
+                ok2, cols2 = _parse_canonical(buf, s[rest], e[rest])
+                self._merge(cols, cols2, rest, ok2)
+                ok[rest[ok2]] = True
             odd = np.flatnonzero(~ok & ~blank)
             body = buf.tobytes() if len(odd) else b""
             for i in odd:
@@ -323,6 +497,16 @@ class CandumpFastSource(CanSource):
                     is_fd=cols.is_fd[sel], index=sel.astype(np.int64) + first_line,
                     origin=self.path, index_kind="line",
                 )
+
+    @staticmethod
+    def _merge(cols: _Parsed, sub: _Parsed, rows: np.ndarray, ok: np.ndarray) -> None:
+        rows, pick = rows[ok], np.flatnonzero(ok)
+        if sub.data.shape[1] > cols.data.shape[1]:
+            cols.data = np.pad(cols.data, ((0, 0), (0, sub.data.shape[1] - cols.data.shape[1])))
+        for name in ("ts", "can_id", "extended", "dlc", "is_error", "is_remote", "is_fd"):
+            getattr(cols, name)[rows] = getattr(sub, name)[pick]
+        cols.data[rows] = 0
+        cols.data[rows, : sub.data.shape[1]] = sub.data[pick]
 
     @staticmethod
     def _fill(cols: _Parsed, i: int, msg: can.Message) -> None:
