@@ -327,3 +327,17 @@ def test_a_store_locked_by_another_program(tmp_path):
         holder.rollback()
         holder.close()
     assert info.value.exit_code == 5
+
+
+def test_add_events_matches_fields_by_name(tmp_path):
+    ev = make_events(20)
+    names = list(reversed(EVENT_DTYPE.names))
+    shuffled = np.empty(len(ev), dtype=[(n, EVENT_DTYPE[n]) for n in names])
+    for n in names:
+        shuffled[n] = ev[n]
+    with Store.open(tmp_path / "p.db") as st:
+        run = st.begin_run(m1_like_rig())
+        st.add_events(run, shuffled)
+        back = st.events(run)
+    for n in EVENT_DTYPE.names:
+        np.testing.assert_array_equal(back[n], ev[n], err_msg=n)

@@ -316,7 +316,11 @@ class Store:
                 raise StoreError(
                     f"add_events: array lacks field(s) {sorted(missing)} of dsp.events.EVENT_DTYPE"
                 )
-            events = events.astype(EVENT_DTYPE)
+            # By name: numpy's structured astype would match the fields by position.
+            same = np.empty(len(events), dtype=EVENT_DTYPE)
+            for name in EVENT_DTYPE.names or ():
+                same[name] = events[name]
+            events = same
         if run_id not in self._seq:
             self._check_run(run_id)
             row = self.db.execute("SELECT MAX(seq) FROM events WHERE run = ?", (run_id,)).fetchone()
