@@ -121,7 +121,9 @@ class CrankAngles:
     tooth : (n,) int64
         Physical tooth number 0..real_teeth-1, -1 where not synced.
     valid : (n,) bool
-        Angle trustworthy: synced and no lost frames within the guard distance.
+        Angle trustworthy: synced, no lost frames within the guard distance, and the 720° phase
+        decided (while a cam or pattern decision is still pending, angles assume phase 0 and are
+        not valid; for even-firing layouts with no cam they stay valid modulo 360°).
     period : (n,) float64
         Period that ended at this edge, s (NaN: saturated or unknown).
     events : list of SyncEvent
@@ -222,7 +224,7 @@ class CrankTracker:
         max_lost_frames: int = 64,
         latency_floor_s: float = 0.0,
         anchor_frames: int = 320,
-        pattern_cycles: int = 4,
+        pattern_cycles: int = 6,
         phase_confidence: float = 0.95,
         max_slip_teeth: int = 3,
     ) -> None:
@@ -273,6 +275,7 @@ class CrankTracker:
         self.bad_off = 0  # bad edges (saturated, count reset) before buf[0]
         self.R = np.empty(0)  # revolution number of each buffered edge (NaN: unsynced)
         self.T = np.empty(0, np.int64)  # tooth number of each buffered edge (-1: unsynced)
+        self.PH = np.empty(0, bool)  # the edge's 720° phase is known (or not needed)
         self.finished = False
         # sync state
         self.cont: int | None = None  # start of the next revolution when a run goes on
@@ -329,6 +332,7 @@ class CrankTracker:
             self.buf = EdgeBatch.concat(self.buf, new)
             self.R = np.concatenate((self.R, np.full(len(new), np.nan)))
             self.T = np.concatenate((self.T, np.full(len(new), -1, np.int64)))
+            self.PH = np.concatenate((self.PH, np.zeros(len(new), bool)))
         n = len(self.buf)
         end = self.e0 + n
         if n == 0:
@@ -424,7 +428,7 @@ class CrankTracker:
         if m <= 0:
             return
         R = self.R_last + 1 + np.arange(m)
-        self.assigned.append((st[:m], R))
+        self.assigned.append((st[:m], R, np.ones(m, bool)))
         if self.mode == "cam" and np.any((v[:m] >= 0.75) | (v[:m] <= 0.25)):
             self.cam_against = 0
         last = int(st[m - 1])
@@ -550,11 +554,11 @@ class CrankTracker:
         if self.mode != "two-stroke" and (R % 2 == 0) != firing:
             R += 1
         R0 = R - qi
+        self.phase_state = "known"
         for i, s in enumerate(self.queue):
             self._assign(s, R0 + i)
         if how is not None:
             self._event(self.queue[0], "phase-set", f"720° phase set {how}")
-        self.phase_state = "known"
         self.queue = []
 
     def _provisional(self) -> None:
@@ -568,9 +572,9 @@ class CrankTracker:
             self.warned = True
         self._event(self.queue[0], "phase-unknown", msg)
         R0 = self.R_min + (self.R_min % 2)
+        self.phase_state = "provisional"
         for i, s in enumerate(self.queue):
             self._assign(s, R0 + i)
-        self.phase_state = "provisional"
         self.queue = []
 
     def _flush_queue(self, reason: str) -> None:
@@ -619,16 +623,20 @@ class CrankTracker:
                                 + ("; angle +360° from here" if off else ""))
 
     def _assign(self, s: int, R: int) -> None:
-        self.assigned.append((np.array([s]), np.array([R])))
+        # a guessed phase (pattern or cam still undecided) may be 360° off: not valid
+        ok = self.phase_state == "known" or self.mode in ("none", "two-stroke")
+        self.assigned.append((np.array([s]), np.array([R]), np.array([ok])))
         self.R_last = R
 
     # ------------------------------------------------------------------ output
     def _emit(self, limit: int) -> CrankAngles:
         if self.assigned:
-            st = np.concatenate([a for a, _ in self.assigned])
-            Rs = np.concatenate([b for _, b in self.assigned])
+            st = np.concatenate([a[0] for a in self.assigned])
+            Rs = np.concatenate([a[1] for a in self.assigned])
+            ok = np.concatenate([a[2] for a in self.assigned])
             rows = (st - self.e0)[:, None] + np.arange(self.L)
             self.R[rows] = np.broadcast_to(Rs[:, None], rows.shape)
+            self.PH[rows] = np.broadcast_to(ok[:, None], rows.shape)
             self.T[rows] = np.broadcast_to(np.arange(self.L), rows.shape)
             self.assigned = []
         lo, hi = self.emitted - self.e0, limit - self.e0
@@ -646,7 +654,7 @@ class CrankTracker:
             tooth = self.T[lo:hi].copy()
             angle = np.full(hi - lo, np.nan)
             angle[synced] = 360.0 * R[synced] + self.tooth_angle[tooth[synced]]
-            valid = synced & ~near & (kind[lo:hi] == NORMAL)
+            valid = synced & ~near & (kind[lo:hi] == NORMAL) & self.PH[lo:hi]
             keep = kind[lo:hi] != PLACEHOLDER
             ev = [e for i, e in self.events if i < limit]
             self.events = [(i, e) for i, e in self.events if i >= limit]
@@ -659,6 +667,7 @@ class CrankTracker:
             self.buf = b.take(slice(drop, None))
             self.R = self.R[drop:]
             self.T = self.T[drop:]
+            self.PH = self.PH[drop:]
             self.e0 += drop
         return out
 
