@@ -68,6 +68,9 @@ class MisfireSettings:
     closed_throttle_pct, fuel_cut_min_rpm, fuel_cut_work_bar : float
         Fuel-cut recognition: throttle at or below, rpm at or above, and mean window work of the
         events around below this (bar of swept volume).
+    fuel_cut_hold_s : float
+        For this long after the throttle was last seen closed (and within two cycles before
+        it), an event without combustion is still the ECU's cut (gear changes, cut exit).
     holdoff_events : int or None
         Events after a misfire during which a further misfire on another cylinder must clear
         the threshold by ``holdoff_margin`` of the way to 1 (None = 2 cycles).
@@ -96,6 +99,7 @@ class MisfireSettings:
     closed_throttle_pct: float = 2.0
     fuel_cut_min_rpm: float = 1600.0
     fuel_cut_work_bar: float = 1.0
+    fuel_cut_hold_s: float = 0.15
     holdoff_events: int | None = None
     holdoff_margin: float = 0.25
     block: int = 128
@@ -262,6 +266,7 @@ class MisfireDetector:
         self._origin = 0
         self._last_misfire = -(10**18)
         self._last_cyl = 0
+        self._last_closed_t = -np.inf
         self._prev: np.ndarray | None = None  # the last decided event (for intervals)
         self._prev_index = -1
         self._block_acc: list[np.ndarray] = []
@@ -402,6 +407,16 @@ class MisfireDetector:
         # fuel cut: closed (or unknown) throttle, rpm above the overrun limit, nothing fires
         tp = out["throttle"]
         closed = ~(tp > s.closed_throttle_pct)
+        # the ECU cuts and restores fuel around a closed throttle (gear changes, overrun entry
+        # and exit) faster than a 100 Hz status signal shows: a closed throttle within two
+        # cycles counts for an event that has no work
+        thr_nb = np.where(inb, self._thr_in[jc], np.nan)
+        closed_near = closed | (thr_nb <= s.closed_throttle_pct).any(axis=1)
+        t_closed = np.maximum.accumulate(
+            np.concatenate(([self._last_closed_t], np.where(closed, ev["t"], -np.inf)))
+        )
+        self._last_closed_t = float(t_closed[-1])
+        closed_near |= ev["t"] - t_closed[1:] <= s.fuel_cut_hold_s
         gi = idx[:, None] + np.arange(-n + 1, n)[None, :]
         gin = (gi >= 0) & (gi < raw.size)
         around = np.where(gin, w_all[np.clip(gi, 0, raw.size - 1)], np.nan)
@@ -413,7 +428,11 @@ class MisfireDetector:
         no_fire = (around_mean / self._vd / 1e5 < s.fuel_cut_work_bar) | (
             work / self._vd / 1e5 < s.fuel_cut_work_bar
         )
-        fuel_cut = closed & (ev["rpm"] >= s.fuel_cut_min_rpm) & no_fire & np.isfinite(around_mean)
+        # with the throttle closed (now or moments ago) above the cut speed no combustion is
+        # expected: an event without it is the ECU's cut, not a misfire
+        weak = ok & (metric > thr)
+        fuel_cut = (closed & no_fire) | (closed_near & (no_fire | weak))
+        fuel_cut &= (ev["rpm"] >= s.fuel_cut_min_rpm) & np.isfinite(around_mean)
         # only the part of the local spread beyond twice the cell's usual spread counts
         excess = np.sqrt(np.maximum(local_rel**2 - (3.0 * sigma) ** 2, 0.0))
         cand = ok & ~fuel_cut & (metric > thr) & (metric > s.z_local * excess)
