@@ -38,7 +38,8 @@ def _known_sections(summary: dict) -> list[str]:
                 f", worst 200-rev window {fmt(mis.pop('worst_rev200_pct', None))} %"
                 f", worst 1000-rev window {fmt(mis.pop('worst_rev1000_pct', None))} %")
         if limit is not None:
-            line += f"; alert level {fmt(limit, 'g')} %: " + ("EXCEEDED, stop and check the engine" if alert else "not reached")
+            verdict = "EXCEEDED, stop and check the engine" if alert else "not reached"
+            line += f"; alert level {fmt(limit, 'g')} %: {verdict}"
         out.append(line)
         patterns = mis.pop("patterns", None)
         if isinstance(patterns, dict) and patterns:
