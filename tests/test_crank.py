@@ -439,21 +439,27 @@ def sim_frames(ride, *, seed: int = 0, k: int = 3, latency=(0.1e-3, 1e-3)) -> Fr
                   Truth(t[e], ride.tooth_angle[e], truth.tooth[e], truth.rev[e]))
 
 
+def m1_scenario():
+    """An M1 ride: idle, a pull in 2nd, closed-throttle overrun (fuel cut), cruise in 3rd."""
+    from logger import sim
+
+    seg = sim.Segment
+    return sim.Scenario(
+        segments=(seg(0.7, 0, rpm=(1300, 1300), label="idle"),
+                  seg(1.3, 2, road_kmh=(20, 75), throttle=(40, 70), label="pull"),
+                  seg(2.0, 2, road_kmh=(75, 35), throttle=(0, 0), label="overrun"),
+                  seg(0.6, 3, road_kmh=(50, 50), throttle=(20, 20), label="cruise")),
+        seed=3, wheel=sim.WheelSpec(error_rms_deg=0.1),
+        faults=(sim.Fault("misfire", 2, probability=0.05),))
+
+
 @pytest.fixture(scope="module")
 def m1_ride():
     from logger import sim
     from logger.rig import load_rig
 
-    seg = sim.Segment
-    scn = sim.Scenario(
-        segments=(seg(1.0, 0, rpm=(1300, 1300), label="idle"),
-                  seg(2.0, 2, road_kmh=(20, 70), throttle=(40, 60), label="pull"),
-                  seg(2.0, 2, road_kmh=(70, 35), throttle=(0, 0), label="overrun"),
-                  seg(1.0, 3, road_kmh=(50, 50), throttle=(20, 20), label="cruise")),
-        seed=3, wheel=sim.WheelSpec(error_rms_deg=0.1),
-        faults=(sim.Fault("misfire", 2, probability=0.05),))
     rig = load_rig("m1")
-    return rig, sim.simulate(rig, scn)
+    return rig, sim.simulate(rig, m1_scenario())
 
 
 def test_simulated_m1_ride_angles_and_times(m1_ride):
@@ -494,7 +500,7 @@ def test_simulated_m1_ride_with_lost_frames_chunked(m1_ride):
     fr = sim_frames(ride, seed=22)
     keep = np.ones(len(fr.frame_time), bool)
     lost = np.zeros(len(keep), np.int32)
-    for j in (500, 2000, 5000, 7000):
+    for j in (500, 2000, 3500, 5000):
         keep[j:j + 2] = False
         lost[j + 2] = 2
     ek = np.repeat(keep, 3)
