@@ -26,7 +26,7 @@ JUMP_S = 0.5
 NOTES_PER_KIND = 5
 #: Frames after which a log with no frame of the rig is called out.
 NO_MATCH_AFTER = 1000
-#: Tooth periods needed before their plausibility is judged.
+#: Tooth frames needed before the plausibility of their periods is judged.
 PLAUSIBLE_AFTER = 200
 
 
@@ -92,7 +92,9 @@ class FrameDecoder:
         self._last_ts: float | None = None
         self._noted: dict[str, int] = {}
         self._unknown_ids: set[int] = set()
-        self._period_stats = [0, 0, 0]  # periods judged, bad ratios, too short
+        self._period_stats: list[float] = [0, 0.0, 0.0, 0]
+        self._last_tooth_t = np.nan
+        self._origin = ""
         self._plausibility_noted = False
         self._no_match_noted = False
         self._cur_data: dict[str, np.ndarray] = {}  # message name -> its frames' bytes
@@ -112,6 +114,7 @@ class FrameDecoder:
         base = self._frames_seen
         self._frames_seen += m
         h.can_frames += m
+        self._origin = batch.origin or self._origin
         if m == 0:
             return self.empty_teeth(), self.empty_status()
         self._check_backwards(batch)
@@ -152,15 +155,15 @@ class FrameDecoder:
         teeth = self._decode_teeth(batch, rows, lost, base)
         status = self._decode_status(batch, rows)
         if len(teeth):
-            self._judge_periods(teeth.periods, batch, rows[self._teeth.name])
+            self._judge_periods(teeth, batch, rows[self._teeth.name])
         return teeth, status
 
     def finish(self) -> None:
         """Call at the end of a stream: adds the notes that need the whole of it."""
         if not self._no_match_noted and self._known_seen == 0 and self._frames_seen > 0:
             self._note_no_match(None)
-        if not self._plausibility_noted and self._period_stats[0] > 0:
-            self._judge_periods(np.zeros((0, 1)), None, None, final=True)
+        if not self._plausibility_noted:
+            self._judge_periods(None, None, None, final=True)
 
     # -------------------------------------------------------------- checks
     def _check_backwards(self, batch: FrameBatch) -> None:
@@ -236,44 +239,51 @@ class FrameDecoder:
     def _note_no_match(self, batch: FrameBatch | None) -> None:
         self._no_match_noted = True
         ids = ", ".join(_id_text(s.msg) for s in self._states)
-        where = f"{batch.origin}: " if batch is not None and batch.origin else ""
+        origin = batch.origin if batch is not None and batch.origin else self._origin
+        where = f"{origin}: " if origin else ""
         self.health.notes.append(
             f"{where}none of the first {self._frames_seen} frames has an id of rig "
             f"{self.rig.name!r} (expected {ids}): is this the right rig for this log?")
 
-    def _judge_periods(self, periods: np.ndarray, batch: FrameBatch | None,
+    def _judge_periods(self, teeth: TeethBlock | None, batch: FrameBatch | None,
                        idx: np.ndarray | None, *, final: bool = False) -> None:
+        """Do the tooth periods describe a wheel turning in real time?
+
+        The periods a frame carries must add up to about the time since the previous frame
+        (one frame per ``count`` teeth; frames with a loss before them are left out), and no
+        tooth can be shorter than at twice the rev limit. A wrong byte order, scale or start
+        bit breaks both by far.
+        """
         if self._plausibility_noted:
             return
-        p = periods.ravel()
-        p = p[np.isfinite(p)]
-        stats = self._period_stats
-        if len(p) > 1:
-            ratio = p[1:] / np.where(p[:-1] > 0, p[:-1], np.nan)
-            stats[0] += len(p)
-            stats[1] += int(np.sum(~((ratio >= 0.25) & (ratio <= 4.0))))
-            # a tooth faster than at twice the rev limit cannot be a real tooth
+        stats = self._period_stats  # [pairs, sum of periods, sum of frame spacing, too short]
+        if teeth is not None and len(teeth):
+            t = np.concatenate(([self._last_tooth_t], teeth.frame_time))
+            dt = np.diff(t)
+            p = teeth.periods
+            fine = np.isfinite(p).all(1) & (teeth.lost_before == 0) & np.isfinite(dt) & (dt > 0)
+            stats[0] += int(fine.sum())
+            stats[1] += float(p[fine].sum())
+            stats[2] += float(dt[fine].sum())
             shortest = 60.0 / (2.0 * self.rig.limits.rev_limit_rpm * self.rig.wheel.teeth)
-            stats[2] += int(np.sum(p < shortest))
-        if stats[0] < PLAUSIBLE_AFTER and not final:
+            stats[3] += int(np.sum(p[np.isfinite(p)] < shortest))
+            self._last_tooth_t = float(teeth.frame_time[-1])
+        if stats[0] < PLAUSIBLE_AFTER and not (final and stats[0] > 0):
             return
-        if stats[0] == 0:
+        ratio = stats[1] / stats[2] if stats[2] > 0 else np.inf
+        n_periods = stats[0] * (self._teeth_sig.count if self._teeth_sig else 1)
+        too_short = stats[3] / max(n_periods, 1)
+        self._plausibility_noted = True  # judged once, on the first frames
+        if 0.5 <= ratio <= 2.0 and too_short <= 0.05:
             return
-        bad_ratio = stats[1] / stats[0]
-        too_short = stats[2] / stats[0]
-        # a real wheel: smooth periods, the gap ~3x once a revolution (common practice)
-        if bad_ratio > 0.05 or too_short > 0.05:
-            sig = self._teeth_sig
-            where = batch.where(int(idx[0])) if batch is not None and idx is not None and len(idx) \
-                else "stream"
-            self.health.notes.append(
-                f"{where}: tooth periods implausible ({100 * bad_ratio:.0f}% of successive "
-                f"ratios outside 1/4..4, {100 * too_short:.0f}% shorter than a tooth at twice "
-                f"the rev limit); expected a smooth {self.rig.wheel.teeth}-tooth wheel: check "
-                f"byte order, scale and start bit of signal {sig.name if sig else '?'!r}")
-            self._plausibility_noted = True
-        elif stats[0] >= PLAUSIBLE_AFTER:
-            self._plausibility_noted = True  # judged plausible once; stop judging
+        sig = self._teeth_sig
+        where = (batch.where(int(idx[0])) if batch is not None and idx is not None and len(idx)
+                 else (self._origin or "stream"))
+        self.health.notes.append(
+            f"{where}: tooth periods implausible: they add up to {ratio:.3g} times the time "
+            f"between their frames (expected about 1), {100 * too_short:.0f}% shorter than a "
+            f"tooth at twice the rev limit; check byte order, scale and start bit of signal "
+            f"{sig.name if sig else '?'!r}")
 
     # ------------------------------------------------------------- decoding
     def empty_teeth(self) -> TeethBlock:
