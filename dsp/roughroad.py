@@ -158,6 +158,11 @@ class RoughRoadDetector:
             return (np.empty(0),) * 4
         return tuple(np.concatenate(v) for v in (out_e, out_r, out_t0, out_t1))
 
+    @property
+    def open_since(self) -> float | None:
+        """Start of the span open now (None when none is open), s."""
+        return self._open
+
     # -- public -------------------------------------------------------------------------
     @property
     def open_since(self) -> float | None:

@@ -242,18 +242,26 @@ class VibrationAnalyzer:
     riding_hours : float
         Daily riding time the exposure A(8) is stated for, h.
     samples_per_rev, revs_per_block, rpm_floor
-        Order tracking (see :mod:`dsp.orders`).
+        Order tracking (see :mod:`dsp.orders`). ``samples_per_rev=None`` picks, per board, the
+        smallest even grid that runs at least at the fastest board's rate down to ``rpm_floor``
+        (120 for 2 kHz and 1000 rpm), so that no order-domain filter is needed.
     rough_options : dict, optional
         Keyword options of :class:`dsp.roughroad.RoughRoadDetector`.
     max_edge_gap_s : float
         Edges further apart than this give no rpm between them.
+    batch_s : float
+        Samples are processed once the crank has advanced this much (CAN time) since the last
+        time: pushes of 0.2 s would spend most of their time in per-call overheads. Results
+        (and rough-road spans) come at most this much later; ``VibrationStep.t_done`` says how
+        far each board has been accounted.
     """
 
     def __init__(
         self, engine: Engine, sensors: list[SensorSpec], *, rpm_band: float = 500.0,
         rpm_range: tuple[float, float] = (1000.0, 11000.0), riding_hours: float = 1.0,
-        samples_per_rev: int = 128, revs_per_block: int = 8, rpm_floor: float = 1000.0,
+        samples_per_rev: int | None = None, revs_per_block: int = 8, rpm_floor: float = 1000.0,
         rough_options: dict[str, Any] | None = None, max_edge_gap_s: float = 0.1,
+        batch_s: float = 1.0,
     ) -> None:
         lo, hi = rpm_range
         if not (rpm_band > 0 and 0 <= lo < hi):
@@ -267,8 +275,12 @@ class VibrationAnalyzer:
         self.edges = np.arange(lo, hi + 0.5 * rpm_band, rpm_band)
         self.riding_hours = float(riding_hours)
         self.max_edge_gap_s = float(max_edge_gap_s)
+        if samples_per_rev is None:  # one grid for all boards: one set of order lines
+            fs_max = max((s.fs for s in sensors), default=2000.0)
+            samples_per_rev = 2 * int(np.ceil(fs_max * 60.0 / rpm_floor / 2 - 1e-9))
+        self.samples_per_rev = int(samples_per_rev)
         self.boards = {
-            s.name: _Board(s, engine, self.edges, samples_per_rev=samples_per_rev,
+            s.name: _Board(s, engine, self.edges, samples_per_rev=self.samples_per_rev,
                            revs_per_block=revs_per_block, rpm_floor=rpm_floor,
                            rough_options=dict(rough_options or {}))
             for s in sensors
@@ -279,6 +291,9 @@ class VibrationAnalyzer:
         self._ok = np.empty(0, bool)
         self._unwrap = 0.0
         self._last_raw = np.nan
+        self.batch_s = float(batch_s)
+        self._last_flush = -np.inf
+        self._feed: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
 
     # -- crank --------------------------------------------------------------------------
     def _add_crank(self, te: np.ndarray, th: np.ndarray, ok: np.ndarray) -> np.ndarray:
@@ -336,19 +351,30 @@ class VibrationAnalyzer:
             raise InputError(
                 f"crank arrays must have equal lengths, got {len(te)}, {len(th)}, {len(ok)}"
             )
-        th_u = self._add_crank(te, th, ok)
-        step = VibrationStep()
-        for name, data in accel.items():
+        for name in accel:
             if name not in self.boards:
                 raise InputError(f"unknown sensor {name!r}; expected one of {sorted(self.boards)}")
+        th_u = self._add_crank(te, th, ok)
+        self._feed.append((te, th_u, ok))
+        for name, data in accel.items():
             self._queue(self.boards[name], data)
-        for name, board in self.boards.items():
-            angle = board.resampler.push(np.empty(0), np.empty((0, 3)), te, th_u, ok)
+        step = VibrationStep()
+        t_cover = self._te[-1] if len(self._te) else -np.inf
+        if t_cover - self._last_flush >= self.batch_s:
+            self._flush(t_cover, step)
+        return step
+
+    def _flush(self, t_cover: float, step: VibrationStep) -> None:
+        """Process every sample the crank covers (whole batches: numpy works per call)."""
+        feed = self._feed or [(np.empty(0), np.empty(0), np.empty(0, bool))]
+        te, th, ok = (np.concatenate([f[k] for f in feed]) for k in range(3))
+        self._feed = []
+        for board in self.boards.values():
+            angle = board.resampler.push(np.empty(0), np.empty((0, 3)), te, th, ok)
             self._orders(board, angle, step)
-            t_cover = self._te[-1] if len(self._te) else -np.inf
             self._process(board, t_cover, step)
         self._trim_crank()
-        return step
+        self._last_flush = t_cover
 
     def _queue(self, board: _Board, data: tuple) -> None:
         t = np.asarray(data[0], dtype=float).reshape(-1)
@@ -412,8 +438,8 @@ class VibrationAnalyzer:
     def finish(self) -> VibrationSummary:
         """Account the samples still waiting (rpm unknown past the last edge) and summarise."""
         step = VibrationStep()
+        self._flush(np.inf, step)
         for board in self.boards.values():
-            self._process(board, np.inf, step)
             self._orders(board, board.resampler.finish(), step)
             board.spans += board.rough.finish().closed
         return self._summary()
