@@ -324,11 +324,20 @@ class FluctuationStage:
         de = eb - ea
         off = n * h
         k = np.arange(idx.size) + off
-        d_tot = ea[k + n * h] - ea[k - n * h]
-        # sum of the 2hn window changes of the span, by a fixed-length gather
+        # energy trend over the widest symmetric span (h, h-1, ... cycles each side) whose ends
+        # are clean: a lost frame near one end does not cost the event
+        slope = np.full(idx.size, np.nan)
+        for hh in range(h, 0, -1):
+            d = (ea[k + n * hh] - ea[k - n * hh]) / (2 * hh * C)
+            slope = np.where(np.isfinite(slope), slope, d)
+        # sum of the 2hn window changes of the span, by a fixed-length gather; a window hit by
+        # bad edges is replaced by the mean of the same cylinder's other windows in the span
         g = (k - n * h)[:, None] + np.arange(2 * n * h)[None, :]
-        s_win = de[g].sum(axis=1)
-        slope = d_tot / (2 * h * C)
+        de_g = de[g].reshape(idx.size, 2 * h, n)
+        have = np.isfinite(de_g)
+        per_pos = np.where(have, de_g, 0.0).sum(axis=1) / np.maximum(have.sum(axis=1), 1)
+        per_pos = np.where(have.any(axis=1), per_pos, np.nan)
+        s_win = per_pos.sum(axis=1) * (2 * h)
         x = de[k] - slope * L
         sum_x = s_win - 2 * h * n * slope * L
         frac = L / C
