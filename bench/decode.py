@@ -24,9 +24,7 @@ class DecodeCount:
     samples: int  # accelerometer samples, all sensors
 
 
-def _decode_once(rig, can_path: str, accel: dict[str, str]) -> DecodeCount:
-    from logger import stream
-
+def _decode_once(stream, rig, can_path: str, accel: dict[str, str]) -> DecodeCount:
     count = DecodeCount(0, 0, 0, 0, 0)
     with stream.replay(rig, can_path, accel) as chunks:
         for chunk in chunks:
@@ -41,5 +39,7 @@ def _decode_once(rig, can_path: str, accel: dict[str, str]) -> DecodeCount:
 def decode(rig, can_path: str | os.PathLike, accel: dict[str, str | os.PathLike] | None = None,
            *, repeat: int = 1) -> tuple[float, DecodeCount]:
     """Best wall time (s) of ``repeat`` decode passes, and what a pass delivered."""
+    from logger import stream  # imported before the clock starts: a replay has it loaded
+
     acc = {k: os.fspath(v) for k, v in (accel or {}).items()}
-    return best_of(lambda: _decode_once(rig, os.fspath(can_path), acc), repeat=repeat)
+    return best_of(lambda: _decode_once(stream, rig, os.fspath(can_path), acc), repeat=repeat)

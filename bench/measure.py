@@ -1,0 +1,346 @@
+"""Every figure of ``make bench``, group by group, as rows of :mod:`bench.table`.
+
+Each group first checks that the parts it measures are importable; a missing part gives
+``NOT MEASURED`` rows naming it. The groups share the replays of one run (:class:`Bench`
+keeps them), so the 10-minute replay behind the floor ratios is also the one behind the memory
+and scaling figures.
+"""
+
+from __future__ import annotations
+
+import importlib
+import math
+import os
+import subprocess
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from bench.procs import ChildRun, run_child, script
+from bench.table import Row, missing
+
+#: Targets of issue 7.
+RTF_MIN = 300.0
+REPLAY_OVER_PYCAN_MAX = 1.0
+REPLAY_OVER_SPLIT_MAX = 20.0
+DECODE_SPEEDUP_MIN = 5.0
+P99_MAX_MS = 250.0
+CPU_MAX_PCT = 30.0
+RSS_MAX_MB = 300.0
+RSS_GROWTH_MAX = 1.10
+#: Linear cost: the time per ride-minute of a long ride may exceed a shorter one's by this much.
+PER_MINUTE_GROWTH_MAX = 1.20
+
+PARTS = {
+    "sim": ("logger.sim", ("simulate", "write_ride")),
+    "stream": ("logger.stream", ("replay",)),
+    "pipeline": ("logger.pipeline", ("analyse_replay",)),
+    "live": ("logger.pipeline", ("analyse_live",)),
+    "store": ("logger.store", ("Store",)),
+}
+
+
+def part_missing(*names: str) -> str:
+    """'' when every named part imports with its attributes, else 'logger.x missing'."""
+    for name in names:
+        module, attrs = PARTS[name]
+        try:
+            mod = importlib.import_module(module)
+        except ImportError as exc:
+            return f"{module} missing ({exc.name or exc})"
+        for a in attrs:
+            if not hasattr(mod, a):
+                return f"{module}.{a} missing"
+    return ""
+
+
+@dataclass
+class Bench:
+    """Settings and shared results of one bench run."""
+
+    out: Path
+    say: Callable[[str], None] = lambda text: None
+    repeat: int = 2
+    minutes: tuple[int, ...] = (1, 10, 60)
+    main_minutes: int = 10
+    live_seconds: float = 25.0
+    profile_minutes: int = 2
+    rig: str = "m1"
+    cpu: int | None = None
+    rides: dict = field(default_factory=dict)  # key -> RideFiles
+    replays: dict[int, list[ChildRun]] = field(default_factory=dict)
+    pycan_s: float | None = None
+    raw: dict = field(default_factory=dict)  # every number behind the rows, for results.json
+
+    def __post_init__(self) -> None:
+        if self.cpu is None:
+            self.cpu = max(os.sched_getaffinity(0))
+
+    @property
+    def ride_root(self) -> Path:
+        return self.out / "rides"
+
+    # -- rides ---------------------------------------------------------------------------
+    def ride(self, key: str):
+        """The cached ride for ``key`` ("lap-10", "live"), generated on first use."""
+        if key in self.rides:
+            return self.rides[key]
+        from bench.rides import ensure_ride, lap_scenario, live_scenario
+
+        if key == "live":
+            sc = live_scenario(self.live_seconds)
+        else:
+            sc = lap_scenario(int(key.split("-")[1]))
+        self.say(f"ride {sc.name}: looking in the cache")
+        files = ensure_ride(sc, self.ride_root, rig=self.rig)
+        if files.generated_s:
+            self.say(f"ride {sc.name}: generated in {files.generated_s:.0f} s (not timed)")
+        self.rides[key] = files
+        return files
+
+    # -- replays -------------------------------------------------------------------------
+    def replay(self, minutes: int, *, runs: int = 1) -> list[ChildRun]:
+        """``runs`` replays of the ``minutes`` ride, each in a fresh process and store."""
+        have = self.replays.setdefault(minutes, [])
+        ride = self.ride(f"lap-{minutes}")
+        while len(have) < runs:
+            store = self.out / f"replay-{minutes}min.db"
+            argv = [script("bench_replay.py"), "--rig", self.rig, "--can", str(ride.can),
+                    "--store", str(store), "--cpu", str(self.cpu)]
+            for name, p in ride.captures.items():
+                argv += ["--accel", f"{name}={p}"]
+            self.say(f"replay {minutes} min ride ({len(have) + 1}/{runs}), fresh process "
+                     f"pinned to cpu {self.cpu}")
+            run = run_child(argv)
+            if not run.ok:
+                raise RuntimeError(f"replay of the {minutes} min ride failed: {run.error}")
+            self.say(f"  {run.result['seconds']:.2f} s, {run.result['events']} events, "
+                     f"peak {run.peak_rss_mb:.0f} MB")
+            have.append(run)
+            _remove_store(store)
+        return have
+
+    def best_replay_s(self, minutes: int) -> float:
+        return min(r.result["seconds"] for r in self.replays[minutes])
+
+
+def _remove_store(path: Path) -> None:
+    for suffix in ("", "-wal", "-shm"):
+        p = Path(str(path) + suffix)
+        if p.exists():
+            p.unlink()
+
+
+def _guard(rows_fn: Callable[[], list[Row]], figures: list[tuple[str, str | None, float | None,
+                                                                    str]], reason: str
+           ) -> list[Row]:
+    """Rows of ``rows_fn``, or NOT MEASURED rows for ``figures`` when ``reason`` is given or the
+    measurement fails (the failure's one line becomes the reason)."""
+    if not reason:
+        try:
+            return rows_fn()
+        except (RuntimeError, OSError, subprocess.SubprocessError) as exc:
+            reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+    return [missing(f, reason, op=op, limit=lim, unit=u) for f, op, lim, u in figures]
+
+
+# ---------------------------------------------------------------------------- groups
+def replay_rows(b: Bench) -> list[Row]:
+    """Floors, the whole replay against them, and the decode-only pass."""
+    m = b.main_minutes
+    figures = [
+        (f"replay {m} min: real-time factor, 1 core", ">=", RTF_MIN, "x"),
+        (f"replay {m} min ÷ python-can bare iteration", "<", REPLAY_OVER_PYCAN_MAX, ""),
+        (f"replay {m} min ÷ read-and-split floor", "<=", REPLAY_OVER_SPLIT_MAX, ""),
+    ]
+    return _guard(lambda: _replay_rows(b), figures, part_missing("sim", "pipeline", "store"))
+
+
+def _floors(b: Bench) -> tuple[float, float, object]:
+    from bench.floors import pycan_iteration, read_split, warm_cache
+
+    ride = b.ride(f"lap-{b.main_minutes}")
+    caps = list(ride.captures.values())
+    warm_cache([ride.can, *caps])
+    if b.pycan_s is None:
+        b.say(f"floor: python-can LogReader iteration of the {b.main_minutes} min log "
+              f"(best of {b.repeat})")
+        pc = pycan_iteration(ride.can, repeat=b.repeat)
+        b.say(f"  {pc.seconds:.2f} s for {pc.count} frames ({pc.count / pc.seconds / 1e3:.0f} k/s)")
+        b.say(f"floor: read and split the log lines + read the capture (best of {b.repeat})")
+        sp = read_split(ride.can, caps, repeat=b.repeat)
+        b.say(f"  {sp.seconds:.3f} s for {sp.count} lines")
+        b.pycan_s = pc.seconds
+        b.raw["floors"] = {"pycan_s": pc.seconds, "pycan_frames": pc.count,
+                           "split_s": sp.seconds, "split_lines": sp.count,
+                           "can_bytes": os.path.getsize(ride.can),
+                           "capture_bytes": sum(os.path.getsize(p) for p in caps)}
+    f = b.raw["floors"]
+    return f["pycan_s"], f["split_s"], ride
+
+
+def _replay_rows(b: Bench) -> list[Row]:
+    m = b.main_minutes
+    pycan_s, split_s, ride = _floors(b)
+    f = b.raw["floors"]
+    runs = b.replay(m, runs=b.repeat)
+    rep = b.best_replay_s(m)
+    outer = min(runs, key=lambda r: r.result["seconds"])
+    b.raw[f"replay_{m}min"] = {"seconds": [r.result["seconds"] for r in runs],
+                               "events": outer.result["events"], "process_wall_s": outer.wall_s,
+                               "process_cpu_s": outer.cpu_s, "duration_s": ride.duration_s}
+    return [
+        Row("python-can bare iteration (floor)",
+            f"{pycan_s:.2f} s, {f['pycan_frames']:,} frames, "
+            f"{f['pycan_frames'] / pycan_s / 1e3:.0f} k frames/s", value=pycan_s),
+        Row("read-and-split floor (log lines + capture)",
+            f"{split_s:.3f} s, {f['split_lines']:,} lines, "
+            f"{(f['can_bytes'] + f['capture_bytes']) / 2**20:.0f} MiB", value=split_s),
+        Row(f"replay {m} min: real-time factor, 1 core",
+            f"{ride.duration_s:.0f} s of ride in {rep:.2f} s", value=ride.duration_s / rep,
+            op=">=", limit=RTF_MIN, unit="x"),
+        Row(f"replay {m} min ÷ python-can bare iteration", f"{rep:.2f} s / {pycan_s:.2f} s",
+            value=rep / pycan_s, op="<", limit=REPLAY_OVER_PYCAN_MAX),
+        Row(f"replay {m} min ÷ read-and-split floor", f"{rep:.2f} s / {split_s:.3f} s",
+            value=rep / split_s, op="<=", limit=REPLAY_OVER_SPLIT_MAX),
+        Row(f"replay {m} min process, seen from outside",
+            f"wall {outer.wall_s:.1f} s, CPU {outer.cpu_s:.1f} s (imports included), "
+            f"{outer.result['events']:,} events", value=outer.wall_s),
+    ]
+
+
+def decode_rows(b: Bench) -> list[Row]:
+    fig = [("decode CAN log + capture: speed-up over python-can iteration", ">=",
+            DECODE_SPEEDUP_MIN, "x")]
+    return _guard(lambda: _decode_rows(b), fig, part_missing("sim", "stream"))
+
+
+def _decode_rows(b: Bench) -> list[Row]:
+    from bench.decode import decode
+    from logger.rig import load_rig
+
+    pycan_s, _split_s, ride = _floors(b)
+    b.say(f"decode only: stream.replay of the {b.main_minutes} min ride, no analysis "
+          f"(best of {b.repeat})")
+    seconds, count = decode(load_rig(b.rig), ride.can, ride.captures, repeat=b.repeat)
+    b.say(f"  {seconds:.2f} s: {count.can_frames:,} CAN frames, {count.samples:,} samples")
+    b.raw["decode"] = {"seconds": seconds, **count.__dict__}
+    return [Row("decode CAN log + capture: speed-up over python-can iteration",
+                f"{pycan_s:.2f} s / {seconds:.2f} s ({count.can_frames:,} frames, "
+                f"{count.samples:,} samples)", value=pycan_s / seconds, op=">=",
+                limit=DECODE_SPEEDUP_MIN, unit="x")]
+
+
+def memory_rows(b: Bench) -> list[Row]:
+    short, long_ = b.main_minutes, max(b.minutes)
+    figs = [(f"peak RSS, {short} min replay", "<", RSS_MAX_MB, " MB"),
+            (f"peak RSS, {long_} min replay", "<", RSS_MAX_MB, " MB"),
+            (f"peak RSS {long_} min ÷ {short} min", "<=", RSS_GROWTH_MAX, "")]
+    return _guard(lambda: _memory_rows(b, short, long_), figs,
+                  part_missing("sim", "pipeline", "store"))
+
+
+def _memory_rows(b: Bench, short: int, long_: int) -> list[Row]:
+    rss = {m: max(r.peak_rss_mb for r in b.replay(m, runs=1)) for m in (short, long_)}
+    b.raw["peak_rss_mb"] = {str(k): v for k, v in rss.items()}
+    return [
+        Row(f"peak RSS, {short} min replay", f"{rss[short]:.0f} MB (ru_maxrss of a fresh process)",
+            value=rss[short], op="<", limit=RSS_MAX_MB, unit=" MB"),
+        Row(f"peak RSS, {long_} min replay", f"{rss[long_]:.0f} MB", value=rss[long_], op="<",
+            limit=RSS_MAX_MB, unit=" MB"),
+        Row(f"peak RSS {long_} min ÷ {short} min", f"{rss[long_]:.0f} MB / {rss[short]:.0f} MB",
+            value=rss[long_] / rss[short], op="<=", limit=RSS_GROWTH_MAX),
+    ]
+
+
+def scaling_rows(b: Bench) -> list[Row]:
+    lo, hi = min(b.minutes), max(b.minutes)
+    figs = [(f"time per ride-minute, {hi} min ÷ {m} min", "<=", PER_MINUTE_GROWTH_MAX, "")
+            for m in b.minutes if m != hi]
+    return _guard(lambda: _scaling_rows(b), figs if lo != hi else [],
+                  part_missing("sim", "pipeline", "store"))
+
+
+def _scaling_rows(b: Bench) -> list[Row]:
+    per_min = {}
+    for m in sorted(b.minutes):
+        b.replay(m, runs=b.repeat if m < max(b.minutes) else 1)
+        per_min[m] = b.best_replay_s(m) / m
+    b.raw["seconds_per_ride_minute"] = {str(k): v for k, v in per_min.items()}
+    hi = max(b.minutes)
+    rows = [Row(f"replay time per ride-minute, {m} min ride",
+                f"{per_min[m]:.3f} s/min ({b.best_replay_s(m):.2f} s)", value=per_min[m])
+            for m in sorted(b.minutes)]
+    rows += [Row(f"time per ride-minute, {hi} min ÷ {m} min",
+                 f"{per_min[hi]:.3f} / {per_min[m]:.3f} s/min", value=per_min[hi] / per_min[m],
+                 op="<=", limit=PER_MINUTE_GROWTH_MAX)
+             for m in sorted(b.minutes) if m != hi]
+    return rows
+
+
+def live_rows(b: Bench) -> list[Row]:
+    rpm = "10 500 rpm"
+    figs = [(f"live {rpm}: p99 latency, frame to store", "<", P99_MAX_MS, " ms"),
+            (f"live {rpm}: CPU of the analysing process", "<", CPU_MAX_PCT, " %")]
+    return _guard(lambda: _live_rows(b), figs, part_missing("sim", "live", "store"))
+
+
+def _live_rows(b: Bench) -> list[Row]:
+    from bench.live import run_live
+    from bench.rides import START_TIME
+    from logger.rig import load_rig
+
+    ride = b.ride("live")
+    store = b.out / "live.db"
+    b.say(f"live: {ride.duration_s:.0f} s at 10 500 rpm in real time (virtual CAN bus + "
+          "socket:// serial)")
+    figs = run_live(ride.can, ride.captures, store, base=START_TIME, rig=b.rig)
+    _remove_store(store)
+    if not figs.child.ok:
+        raise RuntimeError(f"live run failed: {figs.child.error}")
+    for note in figs.notes:
+        b.say(f"  note: {note}")
+    n_cyl = load_rig(b.rig).engine.n_cylinders
+    expected = ride.duration_s * 10500.0 / 120.0 * n_cyl  # 4-stroke: one firing per 2 revs
+    p50, p99, cpu = figs.percentile_ms(50), figs.percentile_ms(99), figs.cpu_pct
+    b.say(f"  {figs.events} events, p50 {p50:.0f} ms, p99 {p99:.0f} ms, CPU {cpu:.1f} %")
+    r = figs.child.result
+    b.raw["live"] = {"events": figs.events, "expected_events": expected, "p50_ms": p50,
+                     "p99_ms": p99, "max_ms": float(figs.latency_s.max() * 1e3)
+                     if figs.latency_s.size else math.nan,
+                     "cpu_pct": cpu, "notes": figs.notes, **r}
+    return [
+        Row("live 10 500 rpm: events in the store", f"{figs.events:,} of ~{expected:,.0f} "
+            "firing events", value=float(figs.events)),
+        Row("live 10 500 rpm: p50 latency, frame to store",
+            f"{p50:.0f} ms over {figs.latency_s.size:,} events", value=p50),
+        Row("live 10 500 rpm: p99 latency, frame to store", f"{p99:.0f} ms", value=p99,
+            op="<", limit=P99_MAX_MS, unit=" ms"),
+        Row("live 10 500 rpm: CPU of the analysing process",
+            f"{cpu:.1f} % of a core ({r['cpu_s'] - r['feeder_cpu_s']:.1f} s CPU in "
+            f"{r['stream_wall_s']:.1f} s; CAN feeder thread's {r['feeder_cpu_s']:.1f} s left out)",
+            value=cpu, op="<", limit=CPU_MAX_PCT, unit=" %"),
+    ]
+
+
+def profile_text(b: Bench) -> str:
+    """The cProfile table of a replay of the ``profile_minutes`` ride ('' when not possible)."""
+    reason = part_missing("sim", "pipeline", "store")
+    if reason:
+        return f"profile not made: {reason}"
+    from bench import profiling
+
+    ride = b.ride(f"lap-{b.profile_minutes}")
+    stats = b.out / "profile.pstats"
+    store = b.out / "profile.db"
+    argv = [script("bench_replay.py"), "--rig", b.rig, "--can", str(ride.can), "--store",
+            str(store), "--cpu", str(b.cpu), "--profile", str(stats)]
+    for name, p in ride.captures.items():
+        argv += ["--accel", f"{name}={p}"]
+    b.say(f"profile: cProfile of the {b.profile_minutes} min replay")
+    run = run_child(argv)
+    _remove_store(store)
+    if not run.ok:
+        return f"profile not made: {run.error}"
+    return (f"Profile of the replay of a {b.profile_minutes}-minute ride "
+            f"({stats.name}; `python -m pstats` opens it)\n" + profiling.render(stats))
