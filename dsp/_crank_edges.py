@@ -96,6 +96,9 @@ class EdgeStage:
     def _arrive(self, ft, periods, cam, lost) -> None:
         m, k = periods.shape
         fin = np.isfinite(periods)
+        if not lost.any() and fin.all():
+            self._arrive_plain(ft, periods, cam)
+            return
         cnt = fin.sum(axis=1)
         pmean = np.where(cnt > 0, np.where(fin, periods, 0.0).sum(axis=1) / np.maximum(cnt, 1),
                          np.nan)
@@ -147,6 +150,31 @@ class EdgeStage:
         self.pending = new if self.pending is None else tuple(
             np.concatenate((a, b)) for a, b in zip(self.pending, new))
         self.f_seg = np.concatenate((self.f_seg, fseg))
+        self.f_d = np.concatenate((self.f_d, d))
+        self.n_frames += m
+
+    def _arrive_plain(self, ft, periods, cam) -> None:
+        """The common case (no loss, no saturated period): the same numbers, fewer steps."""
+        m, k = periods.shape
+        n = m * k
+        last = periods[-1:]
+        self.prev_ft = float(ft[-1])
+        self.prev_pmean = float((np.where(np.isfinite(last), last, 0.0).sum(axis=1) / k)[0])
+        p = periods.reshape(-1)
+        c = np.add.accumulate(np.concatenate(([self.c_last], p)))[1:]
+        S = c - self.base
+        self.c_last = float(c[-1])
+        last_edge = np.arange(k - 1, n, k)
+        d = ft - S[last_edge]
+        frame_of = np.repeat(np.arange(m), k)
+        fallback = ft[frame_of] - (c[last_edge][frame_of] - c)
+        cam_e = np.full(n, -2, np.int8)
+        cam_e[last_edge] = cam
+        new = (p.copy(), np.zeros(n, np.int8), np.zeros(n, bool), cam_e, self.n_frames + frame_of,
+               np.full(n, self.seg, np.int64), S, fallback)
+        self.pending = new if self.pending is None else tuple(
+            np.concatenate((a, b)) for a, b in zip(self.pending, new))
+        self.f_seg = np.concatenate((self.f_seg, np.full(m, self.seg, np.int64)))
         self.f_d = np.concatenate((self.f_d, d))
         self.n_frames += m
 

@@ -450,14 +450,22 @@ class CrankTracker:
         """1 gap, 0 tooth, -1 unknown, from the ratio to the median of four neighbours."""
         n = len(p)
         pad = np.concatenate((np.full(2, np.nan), p, np.full(2, np.nan)))
-        nb = np.stack((pad[0:n], pad[1:n + 1], pad[3:n + 3], pad[4:n + 4]), axis=1)
-        nf = np.isfinite(nb).sum(axis=1)
-        nb_sorted = np.sort(np.where(np.isfinite(nb), nb, np.inf), axis=1)
-        # median of the finite neighbours (sorted first; inf marks the missing ones)
-        med = np.where(nf == 4, 0.5 * (nb_sorted[:, 1] + nb_sorted[:, 2]),
-                       np.where(nf == 3, nb_sorted[:, 1],
-                                0.5 * (nb_sorted[:, 0] + np.take_along_axis(
-                                    nb_sorted, np.clip(nf - 1, 0, 3)[:, None], axis=1)[:, 0])))
+        a, b, c, d = pad[0:n], pad[1:n + 1], pad[3:n + 3], pad[4:n + 4]
+        # median of four: the two middle values are the sum less the largest and the smallest
+        hi = np.maximum(np.maximum(a, b), np.maximum(c, d))
+        lo = np.minimum(np.minimum(a, b), np.minimum(c, d))
+        med = 0.5 * (a + b + c + d - hi - lo)
+        part = np.flatnonzero(np.isnan(med))
+        nf = np.full(n, 4)
+        if len(part):
+            # fewer finite neighbours (next to a hole or a saturated period): sort those rows
+            nb = np.stack((a[part], b[part], c[part], d[part]), axis=1)
+            fin = np.isfinite(nb)
+            k = fin.sum(axis=1)
+            nf[part] = k
+            srt = np.sort(np.where(fin, nb, np.inf), axis=1)
+            med[part] = np.where(k == 3, srt[:, 1], 0.5 * (srt[:, 0] + np.take_along_axis(
+                srt, np.clip(k - 1, 0, 3)[:, None], axis=1)[:, 0]))
         ok = np.isfinite(p) & (nf >= 2)
         with np.errstate(invalid="ignore", divide="ignore"):
             ratio = p / med
@@ -644,11 +652,14 @@ class CrankTracker:
         out = CrankAngles.empty()
         if hi > lo:
             kind = b.kind
-            ph = (kind == PLACEHOLDER).astype(np.int64)
-            cph = np.concatenate(([0], np.cumsum(ph)))
-            g = self.guard
-            idx = np.arange(lo, hi)
-            near = cph[np.minimum(idx + g + 1, len(b))] - cph[np.maximum(idx - g, 0)] > 0
+            ph = kind == PLACEHOLDER
+            if ph.any():
+                cph = np.concatenate(([0], np.cumsum(ph)))
+                g = self.guard
+                idx = np.arange(lo, hi)
+                near = cph[np.minimum(idx + g + 1, len(b))] - cph[np.maximum(idx - g, 0)] > 0
+            else:
+                near = np.zeros(hi - lo, bool)
             R = self.R[lo:hi]
             synced = np.isfinite(R)
             tooth = self.T[lo:hi].copy()
