@@ -11,8 +11,11 @@ Per accelerometer board it keeps, in bounded memory:
 * rough-road spans (:mod:`dsp.roughroad`).
 
 Accelerometer samples wait until the crank edges cover their time (the crank stage may run a
-little behind); :meth:`VibrationAnalyzer.finish` takes the rest with an unknown rpm. Input is in
-g (as sources yield it); every output is in m/s².
+little behind) and are then processed in batches of about ``batch_s`` of crank time;
+:meth:`VibrationAnalyzer.finish` takes the rest with an unknown rpm. Input is in g (as sources
+yield it); every output is in m/s². Streaming and one push of everything give the same samples
+in the same bands, the same order maps and spans bit for bit; the r.m.s. values agree to
+rounding (sums of squares accumulated batch by batch).
 """
 
 from __future__ import annotations
