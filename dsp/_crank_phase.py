@@ -78,7 +78,8 @@ def phase_from_pattern(
     a = np.asarray(angles, dtype=float)
     p = np.asarray(periods, dtype=float)
     if a.shape != p.shape or a.ndim != 1:
-        raise InputError(f"angles and periods must be 1-d of equal length, got {a.shape}, {p.shape}")
+        raise InputError(
+            f"angles and periods must be 1-d of equal length, got shapes {a.shape}, {p.shape}")
     if engine.stroke_cycle != 4 or not phase_distinguishable(engine):
         return 0.0, 0.0
     da = np.diff(a)
@@ -115,10 +116,3 @@ def phase_from_pattern(
     conf = 1.0 - 2.0 * float(stdtr(len(scores) - 1, -tstat))
     return offset, conf
 
-
-def cam_vote(cam_samples: np.ndarray, active: int) -> float:
-    """Share of the cam samples of one revolution that show the active level (NaN if none)."""
-    c = cam_samples[cam_samples >= 0]
-    if len(c) == 0:
-        return np.nan
-    return float(np.mean(c == active))

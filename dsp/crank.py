@@ -24,7 +24,7 @@ from __future__ import annotations
 
 import warnings
 from dataclasses import dataclass, field
-from typing import Literal
+from typing import Any, Literal
 
 import numpy as np
 
@@ -94,8 +94,9 @@ class ToothWheel:
     @classmethod
     def like(cls, wheel: object) -> "ToothWheel":
         """Copy any object with the same attribute names (such as the rig's wheel)."""
-        return cls(int(wheel.teeth), int(wheel.missing), float(wheel.tdc_offset_deg),  # type: ignore[attr-defined]
-                   wheel.cam, int(wheel.cam_active_level))  # type: ignore[attr-defined]
+        w: Any = wheel
+        return cls(int(w.teeth), int(w.missing), float(w.tdc_offset_deg), w.cam,
+                   int(w.cam_active_level))
 
 
 @dataclass(frozen=True)

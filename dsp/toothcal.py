@@ -14,7 +14,8 @@ Tooth errors are fixed in angle and the same every revolution. For each revoluti
 the period ending at tooth ``n`` the model is, with ``s_n`` the true spacing and ``s0_n`` the
 nominal one::
 
-    log p[r, n] - log s0_n - ½ log J(θ) + g_r u_n = z_n + c_r + Σ_h (a_h, b_h)·(cos, sin)(hθ/2) / ω̄_r²
+    log p[r,n] - log s0_n - ½ log J(θ) + g_r u_n
+        = z_n + c_r + Σ_h (a_h cos(hθ/2) + b_h sin(hθ/2)) / ω̄_r²
 
 with ``z_n = log(s_n / s0_n)``, a per-revolution level ``c_r``, the speed trend ``g_r`` (log
 speed change per revolution, from the two neighbouring revolutions; ``u`` is the angle from the
@@ -118,7 +119,6 @@ class ToothErrorLearner:
         self.yty = 0.0
         self.n_rows = 0
         self.n_revs = 0
-        self.inv_w2: list[float] = []  # per revolution 1/ω̄², for the speed spread (bounded below)
         self.w_ref: float | None = None
         self.rpm_lo, self.rpm_hi = np.inf, -np.inf
         self.s_sum = 0.0

@@ -1,4 +1,4 @@
-"""Tooth-error learning checked on wheels with known errors, driven by an independent motoring model.
+"""Tooth-error learning on wheels with known errors, driven by an independent motoring model.
 
 The reference here is mechanics: on fuel cut the crank's energy obeys
     1/2 J(theta) omega^2 = E0 - F (theta - theta0) - W_air(theta)
