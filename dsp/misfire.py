@@ -77,6 +77,9 @@ class MisfireSettings:
     holdoff_margin : float
     block : int
         Events per statistics update.
+    warmup_events : int
+        Events at the start of a run that get no decision (UNUSABLE): the monitor's enable
+        condition, until the first statistics block is in.
     learn_below : float
         Events with a metric below this feed the fired statistics even if they were called
         misfires (so that a steady weak pattern is learnt, while complete misfires are not).
@@ -106,6 +109,7 @@ class MisfireSettings:
     min_misfires: int = 5
     z_local: float = 0.0
     learn_below: float = 0.8
+    warmup_events: int = 16
     misfire_history: int = 16
 
     def __post_init__(self) -> None:
@@ -402,7 +406,8 @@ class MisfireDetector:
         else:
             learnt = cells.fill[cyl0, rc, lc] >= s.min_cell_events
             thr = np.where(learnt, cells.thr[cyl0, rc, lc], cells.cyl_thr[cyl0])
-        ok = np.isfinite(metric)
+        # enable condition: no decision before the run has shown its first statistics block
+        ok = np.isfinite(metric) & (ev["index"] - self._origin >= s.warmup_events)
         verdict = np.where(ok, FIRED, UNUSABLE).astype(np.int8)
         # fuel cut: closed (or unknown) throttle, rpm above the overrun limit, nothing fires
         tp = out["throttle"]
@@ -465,8 +470,8 @@ class MisfireDetector:
         self._intervals(out, ev)
         # statistics from fired, usable events of this segment (applied when the block closes)
         # a steady pattern that makes one cylinder look weak (a driveline resonance, a weak
-        # cylinder) is learnt too: events below ``learn_below`` feed the statistics even when
-        # the current threshold calls them misfires; complete misfires never do
+        # cylinder) is learnt too: events below ``learn_below`` feed the cylinder factor even
+        # when the current threshold calls them misfires; complete misfires never do ...
         fired = ((verdict == FIRED) | ((verdict == MISFIRE) & (metric < s.learn_below)))
         fired &= np.isfinite(base)
         acc = np.zeros(
@@ -474,7 +479,9 @@ class MisfireDetector:
             dtype=[("c", "i8"), ("r", "i8"), ("l", "i8"), ("m", "f8"), ("q", "f8")],
         )
         acc["c"], acc["r"], acc["l"] = cyl0[fired], rc[fired], lc[fired]
-        acc["m"] = metric[fired]
+        # ... but only into the cylinder factor: the spread (and so the threshold) is learnt from
+        # events called fired, so that a burst of misfires cannot widen it and hide itself
+        acc["m"] = np.where(verdict == FIRED, metric, np.nan)[fired]
         acc["q"] = (work / base)[fired]
         self._block_acc.append(acc)
         clear = (verdict == MISFIRE) & (conf >= 0.5) & np.isfinite(base)
