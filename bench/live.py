@@ -112,7 +112,8 @@ class StorePoller:
                         continue
                     db = sqlite3.connect(f"file:{self.path}?mode=ro", uri=True, timeout=1.0)
                 try:
-                    rows = db.execute("SELECT seq, t FROM events WHERE seq > ? ORDER BY seq",
+                    rows = db.execute("SELECT seq, t FROM events WHERE run = (SELECT MAX(id) FROM runs) "
+                                      "AND seq > ? ORDER BY seq",
                                       (last,)).fetchall()
                 except sqlite3.OperationalError:  # tables not made yet, or a busy moment
                     rows = []
@@ -147,6 +148,7 @@ class LiveFigures:
     child: ChildRun
     latency_s: np.ndarray = field(default_factory=lambda: np.zeros(0))
     events: int = 0
+    serial_bytes: dict[str, int] = field(default_factory=dict)  # sent by each server
     notes: list[str] = field(default_factory=list)
 
     def percentile_ms(self, q: float) -> float:
@@ -163,7 +165,7 @@ class LiveFigures:
 
 def run_live(can_log: Path, captures: dict[str, Path], store: Path, *, base: float,
              rig: str = "m1", start_margin_s: float = 0.5, end_settle_s: float = 1.0,
-             timeout_s: float = 600.0) -> LiveFigures:
+             tail_s: float = 1.5, timeout_s: float = 600.0) -> LiveFigures:
     """Stream a recorded ride in real time into a fresh store and measure latency and CPU.
 
     Events whose TDC lies within ``end_settle_s`` of the last frame sent are left out of the
@@ -176,7 +178,7 @@ def run_live(can_log: Path, captures: dict[str, Path], store: Path, *, base: flo
         with CaptureReader(path) as reader:
             servers[name] = SerialServer(reader.read(), base)
     argv = [script("bench_live.py"), "--rig", rig, "--can", str(can_log), "--store", str(store),
-            "--base", repr(base)]
+            "--base", repr(base), "--tail", repr(tail_s)]
     for name, srv in servers.items():
         argv += ["--port", f"{name}={srv.url}"]
     poller: StorePoller | None = None
@@ -216,7 +218,7 @@ def run_live(can_log: Path, captures: dict[str, Path], store: Path, *, base: flo
                 f.close()
     child = finish(code, usage, time.perf_counter() - t_start, "\n".join(out_lines),
                    "".join(err_lines))
-    figs = LiveFigures(child)
+    figs = LiveFigures(child, serial_bytes={n: s.sent_bytes for n, s in servers.items()})
     if poller is not None:
         lat = poller.latencies()
         t_ev = np.asarray(poller.t)
