@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import binascii
 import hashlib
+from pathlib import Path
 
 import can
 import cantools
@@ -257,3 +258,40 @@ def test_any_rig_big_endian_extended_ids_36_minus_1(tmp_path):
     with CaptureReader(paths.captures["seat"]) as r:
         parsed = parser.push_records(list(r))
     assert len(parsed) == len(ride.accel["seat"].t)
+
+
+def test_status_roles_split_over_messages_at_their_own_rates(tmp_path):
+    # Any rig: here coolant moves to its own 10 Hz message (29-bit id, big-endian).
+    text = (Path(__file__).resolve().parent.parent / "logger/presets/m1.toml").read_text()
+    block = text[text.index('  [[can.message.signal]]\n  name = "coolant"'):
+                 text.index('  [[can.message.signal]]\n  name = "road_speed"')]
+    text = text.replace(block, "")
+    text = text.replace("[[serial]]", '''[[can.message]]
+name = "temps"
+id = 0x18FF2001
+extended = true
+length = 8
+rate_hz = 10
+
+  [[can.message.signal]]
+  name = "coolant"
+  start_bit = 7
+  length = 8
+  byte_order = "big"
+  offset = -40.0
+  role = "coolant"
+
+[[serial]]''', 1)
+    path = tmp_path / "split.toml"
+    path.write_text(text)
+    rig = load_rig(path)
+    ride = simulate(rig, Scenario(segments=(Segment(1.0, gear=0, rpm=(1500, 1500),
+                                                    throttle=(2, 2)),), seed=1))
+    fr = build_frames(ride)
+    temps = fr.can_id == 0x18FF2001
+    assert temps.sum() == 10 and np.all(fr.extended[temps])
+    assert (fr.can_id == 0x100).sum() == 100
+    ref = _cantools_message(rig.message_for("coolant"))
+    c = [ref.decode(fr.data[i, :8].tobytes())["coolant"] for i in np.flatnonzero(temps)]
+    assert np.allclose(c, np.interp(fr.t[temps], ride.status_t, ride.status["coolant"]),
+                       atol=1.0)

@@ -27,7 +27,7 @@ class CanFrames:
     can_id: np.ndarray  # (n,) int64
     extended: np.ndarray  # (n,) bool
     dlc: np.ndarray  # (n,) int64
-    data: np.ndarray  # (n, 8) uint8 (bytes beyond dlc are zero)
+    data: np.ndarray  # (n, width) uint8, width = the longest frame (bytes beyond dlc are zero)
     kind: np.ndarray  # (n,) int8: 0 teeth, 1 status, 2 unknown id
 
     def __len__(self) -> int:
@@ -71,17 +71,34 @@ def teeth_frames(ride) -> tuple[np.ndarray, np.ndarray, object]:
     return t, data, msg
 
 
-def status_frames(ride) -> tuple[np.ndarray, np.ndarray, object] | None:
+def status_frames(ride) -> list[tuple[np.ndarray, np.ndarray, object]]:
+    """(times, payloads, message) of every message carrying status roles, each at its rate."""
     rig = ride.rig
-    msg = next((rig.message_for(r) for r in ride.status if rig.message_for(r) is not None), None)
-    if msg is None or len(ride.status_t) == 0:
-        return None
-    data = np.zeros((len(ride.status_t), msg.length), dtype=np.uint8)
-    for sig in msg.signals:
-        if sig.role in ride.status:
-            encode_signal(ride.status[sig.role], sig, data)
-    _counter(msg, np.arange(len(data)), data)
-    return ride.status_t.copy(), data, msg
+    teeth = rig.message_for("tooth_periods")
+    out = []
+    if len(ride.status_t) == 0:
+        return out
+    t_rel = ride.status_t - ride.start_time
+    for msg in rig.messages:
+        roles = [s.role for s in msg.signals if s.role in ride.status]
+        if msg is teeth or not roles:
+            continue
+        rate = msg.rate_hz or 100.0
+        t = np.arange(1, int(np.floor(ride.scenario.duration * rate)) + 1) / rate
+        data = np.zeros((len(t), msg.length), dtype=np.uint8)
+        for sig in msg.signals:
+            if sig.role not in ride.status:
+                continue
+            values = ride.status[sig.role]
+            if sig.role == "gear":  # a gear is never between two gears
+                i = np.clip(np.searchsorted(t_rel, t, side="right") - 1, 0, len(values) - 1)
+                v = values[i]
+            else:
+                v = np.interp(t, t_rel, values)
+            encode_signal(v, sig, data)
+        _counter(msg, np.arange(len(data)), data)
+        out.append((t + ride.start_time, data, msg))
+    return out
 
 
 def _monotonic(t: np.ndarray, gap: float) -> np.ndarray:
@@ -100,9 +117,8 @@ def build_frames(ride) -> CanFrames:
     parts = []
     tt, td, tmsg = teeth_frames(ride)
     parts.append((tt, td, tmsg.can_id, tmsg.extended, tmsg.length, 0))
-    st = status_frames(ride)
-    if st is not None:
-        parts.append((st[0], st[1], st[2].can_id, st[2].extended, st[2].length, 1))
+    for st_t, st_data, st_msg in status_frames(ride):
+        parts.append((st_t, st_data, st_msg.can_id, st_msg.extended, st_msg.length, 1))
     if spec.unknown_ids:
         n = int(ride.scenario.duration * spec.unknown_rate_hz)
         ut = ride.start_time + np.sort(rng.random(n)) * ride.scenario.duration
@@ -112,6 +128,7 @@ def build_frames(ride) -> CanFrames:
             sel = ids == cid
             parts.append((ut[sel], ud[sel], int(cid), int(cid) > 0x7FF, 8, 2))
     cols: dict[str, list[np.ndarray]] = {k: [] for k in ("t", "id", "ext", "dlc", "data", "kind")}
+    width = max([8] + [p[4] for p in parts])  # CAN FD rigs carry up to 64 bytes
     for t, data, cid, ext, dlc, kind in parts:
         n = len(t)
         # Latency with jitter; one id's frames keep their order (a node sends them in turn).
@@ -120,7 +137,7 @@ def build_frames(ride) -> CanFrames:
         keep = np.ones(n, bool)
         if spec.drop_probability > 0:
             keep = rng.random(n) >= spec.drop_probability
-        padded = np.zeros((n, 8), dtype=np.uint8)
+        padded = np.zeros((n, width), dtype=np.uint8)
         padded[:, : data.shape[1]] = data
         cols["t"].append(recv[keep])
         cols["id"].append(np.full(int(keep.sum()), cid, dtype=np.int64))

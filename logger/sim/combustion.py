@@ -189,7 +189,6 @@ class PressureKernel:
         self.blow = np.exp(-np.clip(self.phi - EVO_DEG, 0.0, None) / BLOWDOWN_DEG)
         self.ease = np.clip((self.phi + 360.0) / 40.0, 0.0, 1.0)
         self.ramp = np.clip((self.phi - (IVC_DEG - 40.0)) / 40.0, 0.0, 1.0)
-        self.region = np.where(self.phi < IVC_DEG, 0, np.where(self.phi < EVO_DEG, 1, 2))
         self.x50 = wiebe_50_offset(a=a, m=m)
 
     def event_constants(self, *, p_ivc, heat_j, start_deg, duration_deg):
@@ -212,12 +211,23 @@ class PressureKernel:
         ``k_fired`` and ``p_evo`` come from :meth:`event_constants`.
         """
         phi = self.phi[cols]
-        z = np.clip((phi - start_deg) / duration_deg, 0.0, None)
-        x = 1.0 - np.exp(-self.a * z ** (self.m + 1.0))
-        motored = p_ivc * self.shape_mot[cols]
-        closed = motored + x * (k_fired * self.vol_ne[cols] - motored)
-        blow = P_EXHAUST + (p_evo - P_EXHAUST) * self.blow[cols]
-        intake = P_EXHAUST + (p_manifold - P_EXHAUST) * self.ease[cols]
-        intake = intake + (p_ivc - intake) * self.ramp[cols]
-        region = self.region[cols]
-        return np.where(region == 0, intake, np.where(region == 1, closed, blow))
+        idx = np.arange(len(self.phi))[cols]
+        # Local angles rise along the columns, so the three regions are contiguous slices.
+        i1, i2 = np.searchsorted(phi, [IVC_DEG, EVO_DEG], side="left")
+        shape = np.broadcast_shapes(np.shape(p_ivc), np.shape(start_deg), (len(phi),))
+        out = np.empty(shape)
+        if i1 > 0:
+            c = idx[:i1]
+            intake = P_EXHAUST + (p_manifold - P_EXHAUST) * self.ease[c]
+            out[..., :i1] = intake + (p_ivc - intake) * self.ramp[c]
+        if i2 > i1:
+            c = idx[i1:i2]
+            z = np.clip((self.phi[c] - start_deg) / duration_deg, 0.0, None)
+            zp = z * z * z if self.m == 2.0 else z ** (self.m + 1.0)
+            x = 1.0 - np.exp(-self.a * zp)
+            motored = p_ivc * self.shape_mot[c]
+            out[..., i1:i2] = motored + x * (k_fired * self.vol_ne[c] - motored)
+        if len(phi) > i2:
+            c = idx[i2:]
+            out[..., i2:] = P_EXHAUST + (p_evo - P_EXHAUST) * self.blow[c]
+        return out

@@ -142,7 +142,9 @@ def slow_loop(
             energy = 0.5 * j_mean * omega**2 - shape
         half = H_RAD * (N_GRID - 1) / 2.0
         load = tf_prev + ts_prev
+        w_start = profile.at_scalar(t)[0]
         for it in range(4):
+            load_in = load
             # The cycle's mean speed depends on its own load, which depends on the mean speed:
             # a few fixed-point rounds settle it (the load is smooth, two or three suffice).
             e_mean = energy + m_c - load * half
@@ -159,7 +161,7 @@ def slow_loop(
             w_ref, _, thr, gear, engaged, rough = profile.at_scalar(t + 0.5 * dt)
             # The target's mean slope over this cycle (a long idle cycle may outlast a ramp).
             w_end = profile.at_scalar(t + dt)[0]
-            rate = (w_end - profile.at_scalar(t)[0]) / dt
+            rate = (w_end - w_start) / dt
             krpm = omega * 30.0 / math.pi / 1000.0
             tf = (fa + fb * krpm + fc * krpm * krpm) * fric_k
             if engaged:
@@ -188,6 +190,8 @@ def slow_loop(
             if energy + w_c - four_pi * (tf + ts) < floor:
                 ts = (energy + w_c - floor) / four_pi - tf
             load = tf + ts
+            if abs(load - load_in) <= 1e-9 * (1.0 + abs(load)):
+                break
         integ, v, prev_state = integ_new, v_new, (gear, engaged)
         out["t"][c], out["omega"][c], out["energy"][c] = t, omega, energy
         out["friction"][c], out["shaft"][c], out["v"][c] = tf, ts, v

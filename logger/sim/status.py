@@ -11,12 +11,14 @@ COOLANT_TAU_S = 240.0
 
 
 def status_rate(rig) -> float | None:
-    """Rate of the message that carries the status roles (None when the rig has none)."""
-    for role in STATUS_ROLES:
-        msg = rig.message_for(role)
-        if msg is not None:
-            return msg.rate_hz or 100.0
-    return None
+    """Fastest rate of the messages carrying status roles (None when the rig has none).
+
+    The signals are computed at this rate; :mod:`logger.sim.canframes` resamples them for each
+    message at its own rate.
+    """
+    rates = [msg.rate_hz or 100.0 for msg in rig.messages
+             if any(s.role in STATUS_ROLES for s in msg.signals)]
+    return max(rates) if rates else None
 
 
 def fill(ride, track: SlowTrack, cycle_t: np.ndarray) -> None:

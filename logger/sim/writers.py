@@ -60,20 +60,20 @@ class _FixedDateASCWriter(can.ASCWriter):
         return super()._format_header_datetime(self._header_dt)
 
 
-def _messages(frames: CanFrames, channel: str) -> Iterator[can.Message]:
+def _messages(frames: CanFrames, channel: str, fd: bool = False) -> Iterator[can.Message]:
     data = frames.data
     for i in range(len(frames)):
         n = int(frames.dlc[i])
         yield can.Message(
             timestamp=float(frames.t[i]), arbitration_id=int(frames.can_id[i]),
             is_extended_id=bool(frames.extended[i]), dlc=n, data=data[i, :n].tobytes(),
-            channel=channel,
+            channel=channel, is_fd=fd or n > 8,
         )
 
 
 def can_messages(ride) -> Iterator[can.Message]:
     """Every CAN frame of the ride as ``can.Message`` in receive order (for live tests)."""
-    return _messages(build_frames(ride), ride.rig.can_bus.channel)
+    return _messages(build_frames(ride), ride.rig.can_bus.channel, ride.rig.can_bus.fd)
 
 
 def serial_chunks(ride, sensor: str) -> Iterator[tuple[float, bytes]]:
@@ -128,7 +128,7 @@ def write_can(ride, path: str | os.PathLike, *, frames: CanFrames | None = None)
     frames = build_frames(ride) if frames is None else frames
     writer, raw = _open_writer(path, base, gz, ride.start_time)
     try:
-        for msg in _messages(frames, ride.rig.can_bus.channel):
+        for msg in _messages(frames, ride.rig.can_bus.channel, ride.rig.can_bus.fd):
             writer.on_message_received(msg)
     finally:
         writer.stop()
