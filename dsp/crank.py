@@ -264,6 +264,8 @@ class CrankTracker:
         else:
             self.mode = "none"
         self.hold_revs = 2 * self.P if self.mode == "pattern" else 4
+        # "auto" with a cam window that the frames never fill (-1): fall back to the pattern
+        self.cam_fallback = phase == "auto" and self.mode == "cam"
         ahead = max(anchor_frames * 2 // 5, 1)
         back = anchor_frames - ahead
         back += (ahead + back) % 2  # an odd window, centred as minimum_filter1d defines it
@@ -542,6 +544,12 @@ class CrankTracker:
             return
         if self.mode == "cam":
             v = self._vote(q[-1])
+            if np.isnan(v) and self.cam_fallback:
+                self.mode = "pattern" if phase_distinguishable(self.engine) else "none"
+                self.hold_revs = 2 * self.P
+                self.cam_fallback = False
+                self._try_resolve()
+                return
             if v >= 0.75 or v <= 0.25:
                 self._resolve(len(q) - 1, v >= 0.75, "from the cam window")
                 return

@@ -197,7 +197,7 @@ def test_speed_sweep_idle_to_rev_limit():
     # M1: idle 1300 rpm, rev limit 10 500 rpm (RIG.md); speed linear in angle over 600 revs
     phi_end = 360.0 * 600
     base = lambda phi: 1300.0 + (10500.0 - 1300.0) * np.clip((phi + 300) / (phi_end + 300), 0, 1)
-    tr = tooth_edges(firing_speed(base), phi_end, M1_WHEEL, step_deg=0.02)
+    tr = tooth_edges(firing_speed(base), phi_end, M1_WHEEL, step_deg=0.05)
     fr = make_frames(tr, M1_WHEEL, seed=3)
     out = run(fr, latency_floor_s=0.1e-3)
     off, amax, tmax = angle_errors(out, fr)
@@ -519,3 +519,42 @@ def test_simulated_m1_ride_with_lost_frames_chunked(m1_ride):
     got = CrankAngles.concat(parts + [trk.finish()])
     np.testing.assert_array_equal(got.angle, whole.angle)
     np.testing.assert_array_equal(got.t, whole.t)
+
+
+def test_cam_that_contradicts_the_count_moves_the_phase_forward():
+    # the cam polarity flips half way (as if the count had slipped a revolution unseen): after
+    # two contradicting revolutions the tracker follows the cam, always moving the angle forward
+    tr = tooth_edges(firing_speed(3000.0), 360.0 * 40, M1_WHEEL)
+    fr = make_frames(tr, M1_WHEEL, seed=17)
+    half = len(fr.cam) // 2
+    fr.cam[half:] = 1 - fr.cam[half:]
+    out = run(fr)
+    ev = [e for e in out.events if e.kind == "phase-set"]
+    assert len(ev) == 2 and "+360" in ev[1].message
+    fin = np.isfinite(out.angle)
+    assert np.all(np.diff(out.angle[fin]) > 0)
+    d = out.angle[out.valid] - fr.truth.phi[out.valid]
+    # before the flip the cam and the truth agree; after it the angles follow the flipped cam
+    assert set(np.round(np.mod(d, 720.0) / 360.0) % 2) == {0.0, 1.0}
+    assert np.all(np.abs(d - 360.0 * np.round(d / 360.0)) < 1e-9)
+
+
+def test_angles_always_increase():
+    tr = tooth_edges(firing_speed(2500.0), 360.0 * 80, M1_WHEEL)
+    tr = _insert_edge(tr, 2000, 0.4)
+    fr = make_frames(tr, M1_WHEEL, seed=18, lost={100: 1, 300: 290, 500: 2})
+    fr.lost_before[fr.lost_before == 290] = 290 % 256
+    out = run(fr)
+    fin = np.isfinite(out.angle)
+    assert fin.sum() > 0.8 * len(out)
+    assert np.all(np.diff(out.angle[fin]) > 0)  # downstream stages rely on it
+    assert np.all(np.diff(out.t) >= 0)
+
+
+def test_auto_phase_falls_back_to_the_pattern_when_the_frames_carry_no_cam():
+    tr = tooth_edges(firing_speed(3500.0), 360.0 * 40, M1_WHEEL)
+    fr = make_frames(tr, M1_WHEEL, seed=19, cam=False)  # the rig says "window", frames say -1
+    out = run(fr)
+    off, amax, _ = angle_errors(out, fr)
+    assert off % 720 == 0 and amax < 1e-9
+    assert any(e.kind == "phase-set" and "pattern" in e.message for e in out.events)
