@@ -171,6 +171,8 @@ def test_wheel_errors_are_seeded_and_move_the_edges():
     a = simulate(M1, _steady(wheel=WheelSpec(error_rms_deg=0.1)))
     b = simulate(M1, _steady(wheel=WheelSpec(error_rms_deg=0.1)))
     assert np.array_equal(a.tooth_error_deg, b.tooth_error_deg)
+    # 58 draws of N(0, 0.1°): the sample std has a relative standard error 1/√(2·57) ≈ 9 %,
+    # so ±35 % is about 3.7 standard errors (χ² statistics)
     assert a.tooth_error_deg.std() == pytest.approx(0.1, rel=0.35)
     assert abs(a.tooth_error_deg.sum()) < 1e-9
     expect = -96.0 + 6.0 * a.tooth_number + a.tooth_error_deg[a.tooth_number]
