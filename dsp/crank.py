@@ -17,7 +17,22 @@ Stages
 
 Angle convention: ``angle = 360 * R + tooth_angle - tdc_offset`` with ``R`` the revolution
 count; for a 4-stroke, cylinder 1 fires in the revolutions with even ``R``, so its firing TDCs
-lie at multiples of 720°. The first revolution synced has ``R`` of 0 or -1.
+lie at multiples of 720°. The first revolution synced has ``R`` of 0 or -1. After a loss of sync
+the count goes on when the next good gap sits a whole number of revolutions (within
+``max_slip_teeth``) after the last good one with nothing but a trusted count in between;
+otherwise the phase is found afresh and ``R`` jumps forward by the revolutions the elapsed time
+suggests. Angles and times never decrease; a phase correction moves the angle forward by 360°.
+
+Loss policy: a loss of ``lost_before`` frames is trusted when it is at most ``max_lost_frames``
+and the receive-time gap agrees with that many periods (35 % plus 2 ms of latency slack; an
+8-bit counter that wrapped is far off); a trusted loss keeps the tooth count and invalidates
+``loss_guard`` edges each side, an untrusted one breaks the count (sync lost, found again at the
+next two gaps).
+
+Hold-back: ``anchor_frames * 2 // 5`` frames for the anchor's look-ahead, plus one revolution
+(until its closing gap is seen), plus up to ``2 * pattern_cycles`` revolutions while a phase is
+being found from the pattern. Edge times are the receive times' lower envelope, i.e. they
+include the smallest latency of the bus unless ``latency_floor_s`` says what it is.
 """
 
 from __future__ import annotations
