@@ -301,7 +301,8 @@ def window_rates(
     out["counted"] = np.bincount(inv, counted, minlength=uw.size)
     out["misfires"] = np.bincount(inv, mis, minlength=uw.size)
     with np.errstate(invalid="ignore", divide="ignore"):
-        out["rate_pct"] = np.where(out["counted"] > 0, 100.0 * out["misfires"] / out["counted"], np.nan)
+        rate = 100.0 * out["misfires"] / out["counted"]
+        out["rate_pct"] = np.where(out["counted"] > 0, rate, np.nan)
     t = events["t"]
     out["t_start"] = [np.nanmin(t[inv == i]) if np.isfinite(t[inv == i]).any() else np.nan
                       for i in range(uw.size)]

@@ -263,7 +263,8 @@ class FluctuationStage:
         dt = np.where(np.isfinite(per[1:]) & (per[1:] > 0), per[1:], np.diff(t))
         mid = 0.5 * (a[1:] + a[:-1])
         # an interval longer than a gap plus a tooth means edges are missing in between
-        good = ok[1:] & ok[:-1] & (dt > 0) & (da > 0) & (da < (self._gap_teeth() + 0.5) * self.pitch)
+        wide = (self._gap_teeth() + 0.5) * self.pitch
+        good = ok[1:] & ok[:-1] & (dt > 0) & (da > 0) & (da < wide)
         omega = np.deg2rad(np.where(good, da / np.where(dt > 0, dt, 1.0), 0.0))
         J = equivalent_inertia(np.mod(mid, self._C), self.engine)
         energy = np.where(good, 0.5 * J * omega**2, 0.0)

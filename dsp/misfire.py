@@ -40,7 +40,7 @@ from scipy.special import ndtri
 
 from dsp.engine import Engine
 from dsp.errors import InputError
-from dsp.events import EVENT_DTYPE, FIRED, FUEL_CUT, MISFIRE, UNUSABLE, empty_events
+from dsp.events import FIRED, FUEL_CUT, MISFIRE, UNUSABLE, empty_events
 from dsp.fluctuation import RAW_EVENT_DTYPE
 from dsp.layout import firing_sequence
 
@@ -284,7 +284,9 @@ class MisfireDetector:
             raise InputError(f"raw events must have RAW_EVENT_DTYPE, got dtype {raw.dtype}")
         thr = np.full(raw.size, np.nan) if throttle is None else np.asarray(throttle, float)
         if thr.shape != raw.shape:
-            raise InputError(f"throttle has shape {thr.shape}, expected {raw.shape} (one per event)")
+            raise InputError(
+                f"throttle has shape {thr.shape}, expected {raw.shape} (one per event)"
+            )
         if raw.size and self._raw.size and raw["index"][0] != self._raw["index"][-1] + 1:
             raise InputError(
                 f"raw event {raw['index'][0]} does not follow event {self._raw['index'][-1]}"
@@ -417,26 +419,28 @@ class MisfireDetector:
         # cycles counts for an event that has no work
         thr_nb = np.where(inb, self._thr_in[jc], np.nan)
         closed_near = closed | (thr_nb <= s.closed_throttle_pct).any(axis=1)
-        t_closed = np.maximum.accumulate(
-            np.concatenate(([self._last_closed_t], np.where(closed, ev["t"], -np.inf)))
-        )
+        seen_closed = np.where(tp <= s.closed_throttle_pct, ev["t"], -np.inf)
+        t_closed = np.maximum.accumulate(np.concatenate(([self._last_closed_t], seen_closed)))
         self._last_closed_t = float(t_closed[-1])
         closed_near |= ev["t"] - t_closed[1:] <= s.fuel_cut_hold_s
         gi = idx[:, None] + np.arange(-n + 1, n)[None, :]
         gin = (gi >= 0) & (gi < raw.size)
         around = np.where(gin, w_all[np.clip(gi, 0, raw.size - 1)], np.nan)
         n_around = np.isfinite(around).sum(axis=1)
-        around_mean = np.where(np.isfinite(around), around, 0.0).sum(axis=1) / np.maximum(n_around, 1)
+        around_sum = np.where(np.isfinite(around), around, 0.0).sum(axis=1)
+        around_mean = around_sum / np.maximum(n_around, 1)
         around_mean = np.where(n_around > 0, around_mean, np.nan)
         # with the throttle closed above the cut speed, an event without work is the ECU's
         # overrun cut (alone at the start and end of a cut, or with its neighbours in it)
-        no_fire = (around_mean / self._vd / 1e5 < s.fuel_cut_work_bar) | (
-            work / self._vd / 1e5 < s.fuel_cut_work_bar
-        )
-        # with the throttle closed (now or moments ago) above the cut speed no combustion is
-        # expected: an event without it is the ECU's cut, not a misfire
+        none_fire = around_mean / self._vd / 1e5 < s.fuel_cut_work_bar
+        no_fire = none_fire | (work / self._vd / 1e5 < s.fuel_cut_work_bar)
+        # with the throttle seen closed (now or moments ago) above the cut speed no combustion
+        # is expected: an event without it is the ECU's cut, not a misfire. With no throttle
+        # signal only "no cylinder fires" tells a cut.
+        known_closed = tp <= s.closed_throttle_pct
         weak = ok & (metric > thr)
-        fuel_cut = (closed & no_fire) | (closed_near & (no_fire | weak))
+        fuel_cut = (closed & none_fire) | (known_closed & no_fire)
+        fuel_cut |= closed_near & (no_fire | weak) & ~np.isnan(tp)
         fuel_cut &= (ev["rpm"] >= s.fuel_cut_min_rpm) & np.isfinite(around_mean)
         # only the part of the local spread beyond twice the cell's usual spread counts
         excess = np.sqrt(np.maximum(local_rel**2 - (3.0 * sigma) ** 2, 0.0))
@@ -485,8 +489,10 @@ class MisfireDetector:
         acc["q"] = (work / base)[fired]
         self._block_acc.append(acc)
         clear = (verdict == MISFIRE) & (conf >= 0.5) & np.isfinite(base)
-        macc = np.zeros(int(clear.sum()), dtype=[("c", "i8"), ("r", "i8"), ("l", "i8"), ("m", "f8")])
-        macc["c"], macc["r"], macc["l"], macc["m"] = cyl0[clear], rc[clear], lc[clear], metric[clear]
+        mdt = [("c", "i8"), ("r", "i8"), ("l", "i8"), ("m", "f8")]
+        macc = np.zeros(int(clear.sum()), dtype=mdt)
+        macc["c"], macc["r"], macc["l"] = cyl0[clear], rc[clear], lc[clear]
+        macc["m"] = metric[clear]
         self._mis_acc.append(macc)
         return out
 
@@ -534,4 +540,4 @@ def detect_misfires(
     return np.concatenate((det.push(raw, throttle), det.finish()))
 
 
-__all__ = ["MisfireSettings", "MisfireDetector", "detect_misfires", "EVENT_DTYPE", "MISFIRE"]
+__all__ = ["MisfireSettings", "MisfireDetector", "detect_misfires"]

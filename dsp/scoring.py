@@ -42,7 +42,8 @@ class Score:
     def summary(self) -> str:
         """One line for a report or a script."""
         return (
-            f"detection {_pct(self.detection_rate)} ({self.detected_misfires}/{self.true_misfires}), "
+            f"detection {_pct(self.detection_rate)} "
+            f"({self.detected_misfires}/{self.true_misfires}), "
             f"false alarms {_pct(self.false_alarm_rate)} ({self.false_alarms}/{self.true_fired}), "
             f"unmatched {self.unmatched_detected} detected / {self.unmatched_truth} truth, "
             f"excluded {self.excluded}"
@@ -86,7 +87,8 @@ def score_misfire(detected, truth, *, tolerance_s: float | None = None) -> Score
     ----------
     detected : tuple ``(t, cylinder, misfire[, verdict])``, dict or structured array
         Detected events: time (s), cylinder (1-based), misfire flag (0/1, or None to take it from
-        the verdict) and optionally the verdict (code or name) for exclusions. A :data:`dsp.events.EVENT_DTYPE` array works too
+        the verdict) and optionally the verdict (code or name) for exclusions. A
+        :data:`dsp.events.EVENT_DTYPE` array works too
         (its ``verdict`` gives the misfire flag).
     truth : tuple ``(t, cylinder, fired[, fuel_cut])``, dict or structured array
         Ground truth per firing event, as the simulator's truth file.

@@ -40,6 +40,8 @@ from dsp.weighting import (
 )
 
 HAND_ARM = ("bar", "footpeg")
+#: Crank time kept behind the newest edge for accelerometer samples still on their way, s.
+EDGE_KEEP_S = 10.0
 DIRECTIONS = ("forward", "back", "left", "right", "up", "down")
 AXIS_NAMES = ("x", "y", "z")
 
@@ -433,7 +435,12 @@ class VibrationAnalyzer:
             step.order_blocks[name] = step.order_blocks.get(name, 0) + len(ids)
 
     def _trim_crank(self) -> None:
-        t_need = min((b.t[0] for b in self.boards.values() if len(b.t)), default=np.inf)
+        # Samples reach us later than the crank (the serial clock fit looks ahead by a second or
+        # two), so keep a margin of edges for those still on their way, not only for the waiting.
+        newest = self._te[-1] if len(self._te) else np.inf
+        t_need = min((b.t[0] for b in self.boards.values() if len(b.t)),
+                     default=newest - EDGE_KEEP_S)
+        t_need = min(t_need, newest - EDGE_KEEP_S)
         keep_from = int(np.searchsorted(self._te, t_need, side="right")) - 2
         keep_from = min(max(keep_from, 0), max(len(self._te) - 2, 0))
         self._te, self._th, self._ok = (a[keep_from:] for a in (self._te, self._th, self._ok))

@@ -112,7 +112,8 @@ def test_closed_throttle_overrun_is_fuel_cut_not_misfire(overrun_ride):
     assert score.excluded_by_verdict["fuel_cut"] >= 0.9 * tr["fuel_cut"].sum()
     # each one at a closed throttle, or just after it closed (the cut's exit, fuel_cut_hold_s)
     closed_t = ev["t"][ev["throttle"] <= 2.0]
-    last_closed = closed_t[np.clip(np.searchsorted(closed_t, ev["t"][fc], side="right") - 1, 0, None)]
+    at = np.searchsorted(closed_t, ev["t"][fc], side="right") - 1
+    last_closed = closed_t[np.clip(at, 0, None)]
     assert np.all(ev["t"][fc] - last_closed <= 0.15 + 1e-9)
     assert score.false_alarms == 0
     assert score.detected_misfires == score.true_misfires

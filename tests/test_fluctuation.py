@@ -77,7 +77,8 @@ def synth_ride(
     for k in range(n):
         local = theta - fa[k]
         cyc_k = np.floor(local / 720.0).astype(int)
-        burn = np.where((cyc_k >= 0) & (cyc_k < cycles), fired[np.clip(cyc_k, 0, cycles - 1), k], 1.0)
+        inside = (cyc_k >= 0) & (cyc_k < cycles)
+        burn = np.where(inside, fired[np.clip(cyc_k, 0, cycles - 1), k], 1.0)
         p = _pressure(np.mod(local, 720.0), burn.astype(float), p_ivc, retard=retard[k])
         torque += (p - 1e5) * area * gas_torque_factor(np.mod(local, 720.0), r=r, l=l)
     mean_t = torque[theta >= 0].mean()
@@ -186,7 +187,8 @@ def test_streaming_equals_whole_array_on_random_chunks():
     rng = np.random.default_rng(3)
     cuts = np.sort(rng.choice(np.arange(1, t.size), size=40, replace=False))
     stage = FluctuationStage(M1, 6.0)
-    parts = [stage.push(t[i0:i1], a[i0:i1], v[i0:i1], p[i0:i1]) for i0, i1 in zip(np.r_[0, cuts], np.r_[cuts, t.size])]
+    bounds = zip(np.r_[0, cuts], np.r_[cuts, t.size])
+    parts = [stage.push(t[i0:i1], a[i0:i1], v[i0:i1], p[i0:i1]) for i0, i1 in bounds]
     parts.append(stage.finish())
     streamed = np.concatenate(parts)
     assert streamed.size == whole.size

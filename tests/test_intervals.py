@@ -104,7 +104,8 @@ def _events(iv_12, iv_21, n=200, scatter=2.0, seed=0):
     ev["cylinder"] = np.tile([1, 2], n // 2)
     ev["verdict"] = FIRED
     ev["rpm"] = 4000.0
-    ev["interval_deg"] = np.where(ev["cylinder"] == 2, iv_12, iv_21) + scatter * rng.standard_normal(n)
+    base = np.where(ev["cylinder"] == 2, iv_12, iv_21)
+    ev["interval_deg"] = base + scatter * rng.standard_normal(n)
     return ev
 
 
