@@ -204,20 +204,27 @@ class ToothErrorLearner:
         self.rpm_lo, self.rpm_hi = min(self.rpm_lo, rpm.min()), max(self.rpm_hi, rpm.max())
         self.s_sum += float(scale.sum())
         self.s_sq += float((scale**2).sum())
-        X = np.zeros((m, L, self.K))
-        X[:, np.arange(L), np.arange(L)] = 1.0
-        if H:
-            h = np.arange(1, H + 1)
-            arg = np.deg2rad(theta)[..., None] * h / 2.0
-            X[:, :, L:L + H] = np.cos(arg) * scale[:, None, None]
-            X[:, :, L + H:] = np.sin(arg) * scale[:, None, None]
-        # project out each revolution's level
-        X -= X.mean(axis=1, keepdims=True)
+        # project out each revolution's level; the tooth columns are one-hot, so their blocks of
+        # the normal equations are known in closed form and only the harmonics need products
         y = y - y.mean(axis=1, keepdims=True)
-        Xf = X.reshape(-1, self.K)
+        XtX = np.zeros((self.K, self.K))
+        Xty = np.zeros(self.K)
+        XtX[:L, :L] = m * (np.eye(L) - 1.0 / L)
+        Xty[:L] = y.sum(axis=0)
+        if H:
+            # cos and sin of h·θ/2 for h = 1..H as powers of one complex exponential
+            e1 = np.exp(0.5j * np.deg2rad(theta))
+            eh = np.cumprod(np.broadcast_to(e1[..., None], e1.shape + (H,)), axis=2)
+            Hm = np.concatenate((eh.real, eh.imag), axis=2) * scale[:, None, None]
+            Hm -= Hm.mean(axis=1, keepdims=True)
+            Hf = Hm.reshape(-1, 2 * H)
+            XtX[:L, L:] = Hm.sum(axis=0)
+            XtX[L:, :L] = XtX[:L, L:].T
+            XtX[L:, L:] = Hf.T @ Hf
+            Xty[L:] = Hf.T @ y.reshape(-1)
+        self.XtX += XtX
+        self.Xty += Xty
         yf = y.reshape(-1)
-        self.XtX += Xf.T @ Xf
-        self.Xty += Xf.T @ yf
         self.yty += float(yf @ yf)
         self.n_rows += len(yf)
         self.n_revs += m
