@@ -33,7 +33,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                        help="chance per firing event of that cylinder (default 0.02)")
     quick.add_argument("--rough", type=float, default=0.0, help="road roughness (0 smooth)")
     parser.add_argument("--seed", type=int, default=None, help="random seed (overrides the file's)")
-    parser.add_argument("--quiet", action="store_true", help="no progress on stderr")
+    parser.add_argument("--quiet", action="store_true",
+                        help="no progress on stderr (shown only on a terminal anyway)")
     parser.epilog = (
         "examples:\n"
         "  crankbeat synth --rig m1 --duration 20 --rpm 3000:7000 --throttle 40 "
@@ -103,7 +104,7 @@ def run(args: argparse.Namespace) -> int:
     rig_spec = args.rig or sc.rig or "m1"
     rig = load_rig(rig_spec)
     sc = replace(sc, rig=rig_spec)
-    progress = _Progress(not args.quiet)
+    progress = _Progress(not args.quiet and sys.stderr.isatty())
     ride = simulate(rig, sc, progress=progress)
     progress("writing", 1.0)
     paths = write_ride(ride, args.out, can_format=args.can_format, stem=args.stem)

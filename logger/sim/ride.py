@@ -226,6 +226,13 @@ def simulate(
     Returns
     -------
     SimRide
+
+    Notes
+    -----
+    The engine is running at the first segment's target from the first instant (no cranking
+    or stall); 4-stroke engines only. Method and approximations: :mod:`logger.sim.crank`
+    (angle-domain energy solution, per-cycle controller) and :mod:`logger.sim.driveline`
+    (first-order time correction for the torsional mode and the road input).
     """
     from logger.sim import accel, status
 
