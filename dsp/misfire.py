@@ -170,8 +170,8 @@ class _Cells:
             self.cyl_fill[c] = k + vals.size
             self.cyl_factor[c] = float(np.nanmedian(self.cyl_ratio[c]))
             self.cyl_metric[c, pos[-h:]] = metric[sel][-h:]
-            if self.cyl_fill[c] >= max(8, self.s.min_cell_events // 3):
-                hist = self.cyl_metric[c]
+            hist = self.cyl_metric[c]
+            if np.isfinite(hist).sum() >= max(8, self.s.min_cell_events // 3):
                 med = float(np.nanmedian(hist))
                 sig = max(1.4826 * float(np.nanmedian(np.abs(hist - med))), 0.01)
                 thr = med + max(self.s.spread_k * sig, 0.5 * (1.0 - med))
@@ -192,17 +192,19 @@ class _Cells:
             self.metric[c, r, ld, pos] = m
             self.ratio[c, r, ld, pos] = q
             self.fill[c, r, ld] = k + int(sel.sum())
-            if self.fill[c, r, ld] >= self.s.min_cell_events:
-                hist = self.metric[c, r, ld]
+            if self.fill[c, r, ld] < self.s.min_cell_events:
+                continue
+            self.factor[c, r, ld] = float(np.nanmedian(self.ratio[c, r, ld]))
+            hist = self.metric[c, r, ld]
+            if np.isfinite(hist).sum() >= 8:
                 med = float(np.nanmedian(hist))
                 sig = 1.4826 * float(np.nanmedian(np.abs(hist - med)))
                 self.med[c, r, ld] = med
                 self.sigma[c, r, ld] = max(sig, 0.01)
-                self.factor[c, r, ld] = float(np.nanmedian(self.ratio[c, r, ld]))
                 self._threshold(c, r, ld)
 
     def update_misfires(self, cyl0, rc, lc, metric) -> None:
-        """Learn the metric of clear misfires per cell (it sets how far the threshold may go)."""
+        """Keep the metric of clear misfires per cell (for the hold-off and reports)."""
         hm = self.s.misfire_history
         key = (cyl0 * self.n_rpm + rc) * self.n_load + lc
         for u in np.unique(key):
@@ -409,7 +411,8 @@ class MisfireDetector:
             learnt = cells.fill[cyl0, rc, lc] >= s.min_cell_events
             thr = np.where(learnt, cells.thr[cyl0, rc, lc], cells.cyl_thr[cyl0])
         # enable condition: no decision before the run has shown its first statistics block
-        ok = np.isfinite(metric) & (ev["index"] - self._origin >= s.warmup_events)
+        warm = np.isfinite(metric) & (ev["index"] - self._origin < s.warmup_events)
+        ok = np.isfinite(metric) & ~warm
         verdict = np.where(ok, FIRED, UNUSABLE).astype(np.int8)
         # fuel cut: closed (or unknown) throttle, rpm above the overrun limit, nothing fires
         tp = out["throttle"]
@@ -476,7 +479,7 @@ class MisfireDetector:
         # a steady pattern that makes one cylinder look weak (a driveline resonance, a weak
         # cylinder) is learnt too: events below ``learn_below`` feed the cylinder factor even
         # when the current threshold calls them misfires; complete misfires never do ...
-        fired = ((verdict == FIRED) | ((verdict == MISFIRE) & (metric < s.learn_below)))
+        fired = (verdict == FIRED) | (((verdict == MISFIRE) | warm) & (metric < s.learn_below))
         fired &= np.isfinite(base)
         acc = np.zeros(
             int(fired.sum()),
@@ -485,7 +488,7 @@ class MisfireDetector:
         acc["c"], acc["r"], acc["l"] = cyl0[fired], rc[fired], lc[fired]
         # ... but only into the cylinder factor: the spread (and so the threshold) is learnt from
         # events called fired, so that a burst of misfires cannot widen it and hide itself
-        acc["m"] = np.where(verdict == FIRED, metric, np.nan)[fired]
+        acc["m"] = np.where((verdict == FIRED) | warm, metric, np.nan)[fired]
         acc["q"] = (work / base)[fired]
         self._block_acc.append(acc)
         clear = (verdict == MISFIRE) & (conf >= 0.5) & np.isfinite(base)
