@@ -196,12 +196,15 @@ class EdgeStage:
             anchor[a:b] = minimum_filter1d(fd[a:b], W, mode="constant", cval=np.inf,
                                            origin=W // 2 - self.A)
         row = fidx - self.f_first
-        same = fs[row] == seg
-        prev = np.maximum(row - 1, 0)
-        # edges of a frame that still belong to the segment before (a NaN later in the frame)
-        use_prev = ~same & (row > 0) & (fs[prev] == seg)
-        a_e = np.where(same, anchor[row], np.where(use_prev, anchor[prev], np.inf))
-        t = np.where(np.isfinite(a_e), a_e + S, fb) - self.floor
+        if len(bounds) == 0 and seg[0] == fs[0] and seg[-1] == fs[0]:
+            t = anchor[row] + S - self.floor  # one time segment throughout: every edge anchored
+        else:
+            same = fs[row] == seg
+            prev = np.maximum(row - 1, 0)
+            # edges of a frame that still belong to the segment before (a NaN later in it)
+            use_prev = ~same & (row > 0) & (fs[prev] == seg)
+            a_e = np.where(same, anchor[row], np.where(use_prev, anchor[prev], np.inf))
+            t = np.where(np.isfinite(a_e), a_e + S, fb) - self.floor
         t[kind == PLACEHOLDER] = np.nan
         # keep the last B final frames as history for later anchors
         keep_from = max(self.f_hist + n_rel - self.B, 0)
