@@ -4,7 +4,7 @@ Frames are laid out exactly as the rig file says (any rig: the messages and role
 bit layouts through :func:`logger.can.bits.encode_signal`). A tooth frame carries ``count``
 consecutive tooth periods, oldest first; its timestamp is the last edge in it plus the
 interface's latency and jitter. Receive times are rounded to the microsecond (candump's
-resolution), never go backwards, and keep one frame time apart on the bus.
+resolution), never go backwards, and keep one frame time apart at the rig's bit rate.
 """
 
 from __future__ import annotations
@@ -16,7 +16,7 @@ import numpy as np
 from dsp.errors import InputError
 from logger.can.bits import encode_signal
 
-FRAME_TIME_S = 130e-6  # an 8-byte classic frame at 1 Mbit/s, stuffing included (about)
+FRAME_BITS = 130  # an 8-byte classic frame with an 11-bit id, bit stuffing included (about)
 
 
 @dataclass
@@ -147,7 +147,8 @@ def build_frames(ride) -> CanFrames:
         cols["kind"].append(np.full(int(keep.sum()), kind, dtype=np.int8))
     t = np.concatenate(cols["t"])
     order = np.argsort(t, kind="stable")
-    t = np.round(_monotonic(t[order], FRAME_TIME_S), 6)
+    gap = FRAME_BITS / float(ride.rig.can_bus.bitrate or 1_000_000)
+    t = np.round(_monotonic(t[order], gap), 6)
     return CanFrames(
         t=t, can_id=np.concatenate(cols["id"])[order], extended=np.concatenate(cols["ext"])[order],
         dlc=np.concatenate(cols["dlc"])[order], data=np.concatenate(cols["data"])[order],
