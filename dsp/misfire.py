@@ -127,6 +127,12 @@ class MisfireSettings:
             raise InputError(f"rpm_bin must be > 0, got {self.rpm_bin!r}")
 
 
+def _fmedian(x: np.ndarray) -> float:
+    """Median of the finite values (NaN when there are none)."""
+    v = x[np.isfinite(x)]
+    return float(np.median(v)) if v.size else float("nan")
+
+
 class _Cells:
     """Per (cylinder, rpm cell, load cell) history of fired events: metric and work ratio."""
 
@@ -168,12 +174,12 @@ class _Cells:
             pos = (k + np.arange(vals.size)) % h
             self.cyl_ratio[c, pos[-h:]] = vals[-h:]
             self.cyl_fill[c] = k + vals.size
-            self.cyl_factor[c] = float(np.nanmedian(self.cyl_ratio[c]))
+            self.cyl_factor[c] = float(_fmedian(self.cyl_ratio[c]))
             self.cyl_metric[c, pos[-h:]] = metric[sel][-h:]
             hist = self.cyl_metric[c]
             if np.isfinite(hist).sum() >= max(8, self.s.min_cell_events // 3):
-                med = float(np.nanmedian(hist))
-                sig = max(1.4826 * float(np.nanmedian(np.abs(hist - med))), 0.01)
+                med = float(_fmedian(hist))
+                sig = max(1.4826 * float(_fmedian(np.abs(hist - med))), 0.01)
                 thr = med + max(self.s.spread_k * sig, 0.5 * (1.0 - med))
                 self.cyl_sigma[c] = sig
                 self.cyl_thr[c] = float(
@@ -194,11 +200,11 @@ class _Cells:
             self.fill[c, r, ld] = k + int(sel.sum())
             if self.fill[c, r, ld] < self.s.min_cell_events:
                 continue
-            self.factor[c, r, ld] = float(np.nanmedian(self.ratio[c, r, ld]))
+            self.factor[c, r, ld] = float(_fmedian(self.ratio[c, r, ld]))
             hist = self.metric[c, r, ld]
             if np.isfinite(hist).sum() >= 8:
-                med = float(np.nanmedian(hist))
-                sig = 1.4826 * float(np.nanmedian(np.abs(hist - med)))
+                med = float(_fmedian(hist))
+                sig = 1.4826 * float(_fmedian(np.abs(hist - med)))
                 self.med[c, r, ld] = med
                 self.sigma[c, r, ld] = max(sig, 0.01)
                 self._threshold(c, r, ld)
@@ -224,7 +230,7 @@ class _Cells:
             return
         med, sig = self.med[c, r, ld], self.sigma[c, r, ld]
         if self.mis_fill[c, r, ld] >= s.min_misfires:
-            self.mis[c, r, ld] = float(np.nanmedian(self.mis_metric[c, r, ld]))
+            self.mis[c, r, ld] = float(_fmedian(self.mis_metric[c, r, ld]))
         # far enough above the fired spread (false alarms) and at least half-way to a complete
         # misfire (1: partial burns and disturbances); where the spread is wide the first term
         # wins. The misfire level seen in the run is kept for reports, not for the threshold:
