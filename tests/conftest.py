@@ -6,12 +6,13 @@ from __future__ import annotations
 import gc
 import sqlite3
 import threading
-import warnings
+import weakref
 
 import can
 import numpy as np
 import pytest
 import serial
+from serial.urlhandler import protocol_loop, protocol_socket
 
 _open_buses: set[int] = set()
 _orig_bus_init = can.BusABC.__init__
@@ -31,26 +32,66 @@ def _tracking_shutdown(self):
 can.BusABC.__init__ = _tracking_init
 can.BusABC.shutdown = _tracking_shutdown
 
-
-def _open_serials() -> list[serial.SerialBase]:
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        return [o for o in gc.get_objects()
-                if isinstance(o, serial.SerialBase) and getattr(o, "is_open", False)]
+# Serial ports and sqlite connections opened by the code under test, held weakly: an object
+# dropped without close() is freed (and closed) by CPython, which is not a leak.
+_serials: weakref.WeakSet = weakref.WeakSet()
 
 
-def _open_sqlite() -> int:
-    n = 0
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        for o in gc.get_objects():
-            if isinstance(o, sqlite3.Connection):
-                try:
-                    o.total_changes  # noqa: B018 - raises on a closed connection
-                    n += 1
-                except sqlite3.ProgrammingError:
-                    pass
-    return n
+def _track_serial_open(cls):
+    orig = cls.open
+
+    def open_(self, *a, **k):
+        _serials.add(self)
+        return orig(self, *a, **k)
+
+    cls.open = open_
+
+
+for _cls in {protocol_loop.Serial, protocol_socket.Serial, serial.Serial}:
+    _track_serial_open(_cls)
+
+
+class _TrackedConnection(sqlite3.Connection):
+    """sqlite3.Connection itself takes no weak references; a subclass does."""
+
+
+_dbs: weakref.WeakSet = weakref.WeakSet()
+_orig_connect = sqlite3.connect
+
+
+def _tracking_connect(*args, **kwargs):
+    kwargs.setdefault("factory", _TrackedConnection)
+    conn = _orig_connect(*args, **kwargs)
+    if isinstance(conn, _TrackedConnection):
+        _dbs.add(conn)
+    return conn
+
+
+sqlite3.connect = _tracking_connect
+
+
+def _db_open(conn) -> bool:
+    try:
+        conn.total_changes  # noqa: B018 - raises on a closed connection
+        return True
+    except sqlite3.ProgrammingError:
+        return False
+
+
+def _leaks(buses, serials, dbs, threads) -> list[str]:
+    out = []
+    if _open_buses - buses:
+        out.append(f"{len(_open_buses - buses)} python-can bus(es) not shut down")
+    ports = [p for p in _serials if p not in serials and p.is_open]
+    if ports:
+        out.append(f"serial port(s) left open: {[p.portstr for p in ports]}")
+    conns = [c for c in _dbs if c not in dbs and _db_open(c)]
+    if conns:
+        out.append(f"{len(conns)} sqlite connection(s) left open")
+    extra = [t for t in threading.enumerate() if t not in threads and t.is_alive()]
+    if extra:
+        out.append(f"threads still running: {[t.name for t in extra]}")
+    return out
 
 
 @pytest.fixture(autouse=True)
@@ -60,21 +101,16 @@ def no_leaks(request):
     if "allow_leaks" in request.keywords:
         yield
         return
-    buses = set(_open_buses)
+    buses, serials, dbs = set(_open_buses), set(_serials), set(_dbs)
     threads = set(threading.enumerate())
-    dbs = _open_sqlite()
     yield
-    gc.collect()
-    leaked = []
-    if _open_buses - buses:
-        leaked.append(f"{len(_open_buses - buses)} python-can bus(es) not shut down")
-    extra = [t for t in threading.enumerate() if t not in threads and t.is_alive()]
-    if extra:
-        leaked.append(f"threads still running: {[t.name for t in extra]}")
-    if _open_serials():
-        leaked.append(f"{len(_open_serials())} serial port(s) left open")
-    if _open_sqlite() > dbs:
-        leaked.append(f"{_open_sqlite() - dbs} sqlite connection(s) left open")
+    leaked = _leaks(buses, serials, dbs, threads)
+    if leaked:  # give objects dropped without close() and ending threads a moment
+        gc.collect()
+        for t in threading.enumerate():
+            if t not in threads:
+                t.join(timeout=1.0)
+        leaked = _leaks(buses, serials, dbs, threads)
     if leaked:
         pytest.fail("resource leak: " + "; ".join(leaked), pytrace=False)
 
@@ -127,8 +163,8 @@ def m1_frames(rig, *, seconds: float = 1.0, rpm: float = 3000.0, t0: float = 1_7
     if extra_ids:
         msgs += [(t, 0x555, b"\x01\x02") for t in t_status[::10]]
     msgs.sort(key=lambda m: m[0])
-    return [can.Message(timestamp=round(t, 6), arbitration_id=i, is_extended_id=False, data=d)
-            for t, i, d in msgs]
+    return [can.Message(timestamp=round(float(t), 6), arbitration_id=i, is_extended_id=False,
+                        data=d) for t, i, d in msgs]
 
 
 def m1_serial(rig, *, seconds: float = 1.0, t0: float = 1_767_225_600.0,
@@ -147,5 +183,5 @@ def m1_serial(rig, *, seconds: float = 1.0, t0: float = 1_767_225_600.0,
     out = []
     for a in range(0, n, per_read):
         z = min(a + per_read, n)
-        out.append((round(t0 + t[z - 1] + 0.002, 6), raw[a * fl : z * fl]))
+        out.append((round(float(t0 + t[z - 1] + 0.002), 6), raw[a * fl : z * fl]))
     return out
