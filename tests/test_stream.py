@@ -216,10 +216,14 @@ def _feed(bus_channel, server, msgs, reads, t_base, done, errors):
 def test_live_recorded_then_replayed_gives_identical_chunks(tmp_path, m1, monkeypatch):
     # under load a serial read may reach the queue late; widen the margin for the test
     monkeypatch.setattr(stream_mod, "LIVE_SERIAL_MARGIN_S", 0.3)
+    from logger.sim import Scenario, Segment, can_messages, serial_chunks, simulate
+
     seconds = 1.2
-    msgs = m1_frames(m1, seconds=seconds, extra_ids=True)
-    t_base = msgs[0].timestamp
-    reads = m1_serial(m1, seconds=seconds, t0=t_base)
+    ride = simulate(m1, Scenario(segments=(Segment(seconds, gear=2, rpm=(3000, 3500),
+                                                   throttle=(20, 30)),), seed=3))
+    msgs = list(can_messages(ride))
+    reads = list(serial_chunks(ride, "bar_left"))
+    t_base = min(msgs[0].timestamp, reads[0][0])
     channel = f"crankbeat-live-{id(tmp_path)}"
     server = _SerialServer()
     done, errors = threading.Event(), []
@@ -246,7 +250,8 @@ def test_live_recorded_then_replayed_gives_identical_chunks(tmp_path, m1, monkey
     np.testing.assert_array_equal(
         _cat(live_chunks, "teeth", "periods"),
         np.concatenate([FrameDecoder(m1).push(_frames_batch(msgs))[0].periods]))
-    assert live_chunks[-1].health.serial_good["bar_left"] >= 0.95 * seconds * 2000
+    # (the simulated capture may start mid-frame and carry a corrupt frame or two)
+    assert live_chunks[-1].health.serial_good["bar_left"] >= 0.9 * seconds * 2000
 
 
 def _frames_batch(msgs):
