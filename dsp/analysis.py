@@ -21,6 +21,7 @@ from dsp.engine import Engine
 from dsp.errors import InputError
 from dsp.events import FIRED, MISFIRE, VERDICT_NAMES, empty_events
 from dsp.fluctuation import RAW_EVENT_DTYPE, FluctuationStage, WindowSpec
+from dsp.intervals import SpeedProfile
 from dsp.misfire import MisfireDetector, MisfireSettings
 
 
@@ -84,6 +85,9 @@ class EventAnalyzer:
         self.fluct = FluctuationStage(engine, wheel.pitch_deg, window=window)
         self.detector = MisfireDetector(engine, settings=self.settings)
         self.max_age = float(max_status_age_s)
+        #: running crank-speed profile of the cycle, for :func:`dsp.intervals.identify_layout`
+        self.profile = SpeedProfile(engine.cycle_deg if engine.stroke_cycle == 4 else 720.0,
+                                    wheel.pitch_deg)
         self._st_t = np.empty(0)
         self._st_v = np.empty(0)
         self._has_status = False
@@ -129,6 +133,7 @@ class EventAnalyzer:
 
     def _step(self, crank: CrankAngles, *, final: bool) -> AnalyzerStep:
         notes = [e.message for e in crank.events]
+        self.profile.add(crank)
         raw = self.fluct.push(crank.t, crank.angle, crank.valid, crank.period)
         if final:
             raw = np.concatenate((raw, self.fluct.finish()))

@@ -124,32 +124,51 @@ def interval_check(
 # --- layout identification --------------------------------------------------------------------
 
 
-def _speed_profile(crank, cycle_deg: float, bin_deg: float) -> tuple[np.ndarray, np.ndarray]:
-    """Mean ω² (rad²/s²) per angle bin of the cycle, normalised by each cycle's mean ω²."""
-    a = np.asarray(crank.angle, float)
-    t = np.asarray(crank.t, float)
-    ok = np.asarray(crank.valid, bool) & np.isfinite(a)
-    good = ok[1:] & ok[:-1] & (np.diff(a) > 0) & (np.diff(t) > 0)
-    da, dt = np.diff(a)[good], np.diff(t)[good]
-    mid = 0.5 * (a[1:] + a[:-1])[good]
-    w2 = np.deg2rad(da / dt) ** 2
-    cyc = np.floor(mid / cycle_deg)
-    # normalise per cycle so that speed changes over the run weigh each cycle alike
-    uc, inv = np.unique(cyc, return_inverse=True)
-    mean_c = np.bincount(inv, w2) / np.bincount(inv)
-    w2n = w2 / mean_c[inv]
-    nb = int(round(cycle_deg / bin_deg))
-    b = np.clip((np.mod(mid, cycle_deg) / bin_deg).astype(int), 0, nb - 1)
-    cnt = np.bincount(b, minlength=nb)
-    prof = np.bincount(b, w2n, minlength=nb) / np.maximum(cnt, 1)
-    centres = (np.arange(nb) + 0.5) * bin_deg
-    have = cnt > 0
-    if have.sum() < nb // 2:
-        raise InputError(
-            f"too little synced crank data for a layout check: {int(have.sum())} of {nb} angle bins"
-        )
-    prof = np.interp(centres, centres[have], prof[have], period=cycle_deg)
-    return centres, prof
+class SpeedProfile:
+    """Running cycle profile of the crank speed (for :func:`identify_layout`), bounded memory.
+
+    ``add(crank)`` takes the edges of a push (``t``, ``angle``, ``valid``); each tooth interval's
+    ω² is divided by the mean ω² of its working cycle within the push (so that speed changes over
+    the run weigh each cycle alike) and summed into angle bins over the cycle.
+    """
+
+    def __init__(self, cycle_deg: float = 720.0, bin_deg: float = 6.0):
+        if not 0 < bin_deg <= cycle_deg / 8:
+            raise InputError(f"bin_deg must be in (0, {cycle_deg / 8}], got {bin_deg!r}")
+        self.cycle_deg, self.bin_deg = float(cycle_deg), float(bin_deg)
+        self.nb = int(round(cycle_deg / bin_deg))
+        self.sums = np.zeros(self.nb)
+        self.counts = np.zeros(self.nb, dtype=np.int64)
+
+    def add(self, crank) -> None:
+        a = np.asarray(crank.angle, float)
+        t = np.asarray(crank.t, float)
+        if a.size < 2:
+            return
+        ok = np.asarray(crank.valid, bool) & np.isfinite(a)
+        good = ok[1:] & ok[:-1] & (np.diff(a) > 0) & (np.diff(t) > 0)
+        if not good.any():
+            return
+        da, dt = np.diff(a)[good], np.diff(t)[good]
+        mid = 0.5 * (a[1:] + a[:-1])[good]
+        w2 = np.deg2rad(da / dt) ** 2
+        _, inv = np.unique(np.floor(mid / self.cycle_deg), return_inverse=True)
+        w2n = w2 / (np.bincount(inv, w2) / np.bincount(inv))[inv]
+        b = np.clip((np.mod(mid, self.cycle_deg) / self.bin_deg).astype(int), 0, self.nb - 1)
+        self.sums += np.bincount(b, w2n, minlength=self.nb)
+        self.counts += np.bincount(b, minlength=self.nb)
+
+    def profile(self) -> tuple[np.ndarray, np.ndarray]:
+        """Bin centres (deg) and mean normalised ω² per bin (gaps filled by interpolation)."""
+        centres = (np.arange(self.nb) + 0.5) * self.bin_deg
+        have = self.counts > 0
+        if have.sum() < self.nb // 2:
+            raise InputError(
+                f"too little synced crank data for a layout check: {int(have.sum())} of "
+                f"{self.nb} angle bins"
+            )
+        prof = self.sums[have] / self.counts[have]
+        return centres, np.interp(centres, centres[have], prof, period=self.cycle_deg)
 
 
 def identify_layout(
@@ -163,9 +182,11 @@ def identify_layout(
 
     Parameters
     ----------
-    data : CrankAngles-like (``t``, ``angle``, ``valid``) or an EVENT_DTYPE array
-        Crank angles of the run (preferred), or events, whose fired intervals are compared with
-        each candidate's intervals.
+    data : SpeedProfile, CrankAngles-like (``t``, ``angle``, ``valid``) or an EVENT_DTYPE array
+        The run's speed profile (:attr:`dsp.analysis.EventAnalyzer.profile`) or crank angles
+        (preferred), or events, whose fired intervals are compared with each candidate's
+        intervals. Events only work when the rig's layout is nearly right: with a wrong one the
+        events' windows miss the combustion and there is little left to compare.
     candidates : dict name -> Engine
     expected : str or None, keyword-only
         The rig's layout name: a :class:`dsp.errors.LayoutMismatchWarning` is issued when another
@@ -182,13 +203,20 @@ def identify_layout(
     if expected is not None and expected not in candidates:
         raise InputError(f"expected layout {expected!r} is not among {sorted(candidates)}")
     scores: dict[str, float] = {}
+    cycle = max(e.cycle_deg for e in candidates.values())
     if isinstance(data, np.ndarray) and data.dtype.names:
         scores = _scores_from_events(data, candidates)
     else:
-        cycle = max(e.cycle_deg for e in candidates.values())
-        centres, w2 = _speed_profile(data, cycle, bin_deg)
+        if isinstance(data, SpeedProfile):
+            prof = data
+            if prof.cycle_deg != cycle:
+                raise InputError(f"profile covers {prof.cycle_deg} deg, candidates need {cycle}")
+        else:
+            prof = SpeedProfile(cycle, bin_deg)
+            prof.add(data)
+        centres, w2 = prof.profile()
         for name, eng in candidates.items():
-            scores[name] = _profile_score(centres, w2, eng, cycle, bin_deg)
+            scores[name] = _profile_score(centres, w2, eng, cycle, prof.bin_deg)
     ranked = sorted(scores.items(), key=lambda kv: (-kv[1], kv[0]))
     if expected is not None and ranked[0][0] != expected:
         warnings.warn(

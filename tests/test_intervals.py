@@ -129,3 +129,20 @@ def test_bad_arguments():
         interval_check(_events(270, 450), TWIN, tolerance_deg=0)
     with pytest.raises(InputError, match="expected layout"):
         identify_layout(_events(270, 450), {"a": TWIN}, expected="b")
+
+
+def test_analyzer_profile_warns_of_a_mismatch_while_streaming(candidates):
+    from dsp.analysis import EventAnalyzer
+
+    rig = rig_mod.load_rig("m1")
+    scn = sim.Scenario(segments=_steady(5000, 40), seed=6,
+                       engine=sim.EngineSpec(true_layout="twin-360"))
+    ride = sim.simulate(rig, scn)
+    ft, per, cam, lost = ride_frames(ride)
+    an = EventAnalyzer(rig.engine, ToothWheel.like(rig.wheel))
+    for i in range(0, ft.size, 500):
+        an.push(ft[i:i + 500], per[i:i + 500], cam[i:i + 500], lost[i:i + 500])
+    an.finish()
+    with pytest.warns(LayoutMismatchWarning):
+        ranked = identify_layout(an.profile, candidates, expected="twin-270")
+    assert ranked[0][0] == "twin-360"
