@@ -5,30 +5,35 @@ Metric
 ``metric_k = 1 − W_k / ref_k``: 0 for a typical fired event, near 1 for a complete misfire
 (the window keeps only the compression work that comes back, a small fraction). ``W_k`` is the
 indicated-work estimate of :mod:`dsp.fluctuation`. ``ref_k`` is what this cylinder should have
-delivered *now*: the mean of the upper half of the ``2n`` events around it (``n`` before, ``n``
-after, ``n`` cylinders), each divided by its cylinder's factor, times this cylinder's factor.
-Taking the neighbours tracks load and rpm changes at once (a throttle snap changes every
-cylinder together), and taking their upper half keeps a neighbouring misfire, or a burst on one
-cylinder, out of the reference. A disturbance that hits all cylinders (a road bump through the
-driveline) lowers the reference with the event and does not make a misfire; a misfire is low
-against both its neighbours (the second-difference idea of the classic monitors).
+delivered *now*: the mean of the upper half of the ``4n`` events around it (two cycles before,
+two after), times this cylinder's factor (its typical share, learnt per cell). Taking the
+neighbours tracks load and rpm changes at once (a throttle snap changes every cylinder
+together), and taking their upper half keeps a neighbouring misfire, or a burst on one cylinder,
+out of the reference. A disturbance that hits all cylinders (a road bump through the driveline)
+lowers the reference with the event and does not make a misfire; a misfire is low against its
+neighbours on both sides (the second-difference idea of the classic monitors).
 
 Decision
 --------
 ``MISFIRE`` when ``metric > threshold``. The threshold is learnt per cylinder and per cell of
 rpm and load (load from the reference work itself, in bar of the swept volume, so it needs no
-throttle signal): the fired events' median plus ``spread_k`` robust standard deviations (MAD),
-clipped to ``[threshold_min, threshold_max]``, ``default_threshold`` until a cell has
-``min_cell_events``. Statistics are updated per block of ``block`` events (counted from the run's
-first event), and every event uses the statistics of the blocks before its own: the decision is
-causal with a look-ahead of ``n`` events, and it does not depend on how the stream was chunked.
-After a misfire the driveline rings for a few events; during ``holdoff_events`` events after one
-a further misfire needs ``metric > holdoff_threshold`` (a real burst clears it, the ring-down
-does not).
+throttle signal): the fired events' median plus the larger of ``spread_k`` robust standard
+deviations (MAD) and half the way to a complete misfire (1), clipped to
+``[threshold_min, threshold_max]``; a cell not learnt yet uses its cylinder's pooled threshold,
+and ``default_threshold`` before that. Statistics are updated per block of events counted from
+the run's first event (16, 32, 64, then ``block``), and every event uses the statistics of the
+blocks before its own: the decision is causal with a look-ahead of two cycles plus the window's,
+and it does not depend on how the stream was chunked. The first ``warmup_events`` events get no
+decision (the monitor's enable condition). After a misfire the driveline rings for a few events:
+during ``holdoff_events`` events after one, a misfire on another cylinder must clear the
+threshold by ``holdoff_margin`` of the way to 1 (a burst on one cylinder is not held off).
+``z_local`` (off by default) also asks a misfire to stand out of the current spread of its
+neighbours.
 
-``FUEL_CUT`` when the throttle is closed (or unknown), the rpm is at least ``fuel_cut_min_rpm``
-and the work around the event says that no cylinder fires. ``UNUSABLE`` when the crank data did
-not allow a metric.
+``FUEL_CUT`` when the rpm is at least ``fuel_cut_min_rpm`` and either the throttle is closed (or
+unknown) and no cylinder around fires, or the throttle is (or was within ``fuel_cut_hold_s``)
+seen closed and the event has no combustion: the ECU's overrun cut, gear changes. ``UNUSABLE``
+when the crank data did not allow a metric, and during the warm-up.
 """
 
 from __future__ import annotations
