@@ -29,11 +29,12 @@ from pathlib import Path
 import numpy as np
 
 from dsp.analysis import EventAnalyzer
-from dsp.crank import ToothWheel
+from dsp.crank import CrankAngles, ToothWheel
 from dsp.engine import Engine
 from dsp.errors import CrankbeatWarning, DuplicateRunError
-from dsp.events import FIRED, MASKED, MISFIRE
+from dsp.events import FIRED, FUEL_CUT, MASKED, MISFIRE
 from dsp.misfire import MisfireSettings
+from dsp.toothcal import ToothErrorLearner
 from dsp.vibration import SensorSpec, VibrationAnalyzer, merge_spans
 from logger import stream
 from logger.chunks import Chunk, StreamHealth
@@ -46,6 +47,8 @@ COMMIT_EVERY_S = 0.5
 #: How long events wait for the rough-road verdict before they are summarised without it, s
 #: of CAN time (a board that fell silent must not hold the summaries back for ever).
 MASK_WAIT_LIMIT_S = 5.0
+#: Learnt tooth errors are kept for later runs when the fit is at least this confident (0..1).
+TOOTH_CONFIDENCE_MIN = 0.5
 #: Longest rough-road span whose events are held back for the summaries, s (the store's events
 #: are masked however long the span lasts).
 OPEN_SPAN_LIMIT_S = 300.0
@@ -124,6 +127,8 @@ class RunAnalysis:
         self._accel_seen = {s.name: False for s in specs}
         self._last_event_t = -np.inf
         self.rough_spans: list[tuple[float, float]] = []
+        self.tooth_correction_applied = tooth_correction_deg is not None
+        self.teeth = _FuelCutLearner(ToothErrorLearner(ToothWheel.like(rig.wheel), engine))
 
     # -- per chunk -----------------------------------------------------------------------
     def push(self, chunk: Chunk) -> StepOutput:
@@ -133,6 +138,7 @@ class RunAnalysis:
         step = self.events.push(te.frame_time, te.periods, te.cam, te.lost_before,
                                 status_t=status_t, throttle=throttle)
         self.health = chunk.health
+        self.teeth.push(step.crank, step.events)
         out = StepOutput(step.events, notes=list(step.notes))
         new_spans = []
         if self.vibration is not None:
@@ -151,6 +157,7 @@ class RunAnalysis:
 
     def finish(self) -> StepOutput:
         step = self.events.finish()
+        self.teeth.push(step.crank, step.events, final=True)
         out = StepOutput(step.events, notes=list(step.notes))
         new_spans = []
         if self.vibration is not None:
@@ -202,6 +209,65 @@ class RunAnalysis:
         if open_since:  # an open span already holds its start (one window before it opened)
             decided = min(decided, max(min(open_since), end_time - OPEN_SPAN_LIMIT_S))
         return decided
+
+
+class _FuelCutLearner:
+    """Feeds the tooth-error learner the crank edges of the fuel-cut stretches.
+
+    Fuel cut is known per event (verdict FUEL_CUT: the throttle is closed and no cylinder
+    fires), and events are decided a few cycles after their edges: edges wait here until the
+    events around them are decided, so the learner sees each edge once, in order.
+    """
+
+    def __init__(self, learner: ToothErrorLearner) -> None:
+        self.learner = learner
+        self._parts: list[CrankAngles] = []
+        self._spans: list[tuple[float, float]] = []  # closed fuel-cut stretches (TDC times)
+        self._open: float | None = None  # start of a stretch still going on
+        self._last: float = -np.inf  # TDC time of the last fuel-cut event seen
+        self._decided: float = -np.inf  # events are decided up to this time
+
+    def push(self, crank: CrankAngles, events: np.ndarray, *, final: bool = False) -> None:
+        if len(events):
+            self._take_events(events)
+        if len(crank):
+            self._parts.append(crank)
+        if not self._parts:
+            return
+        edges = CrankAngles.concat(self._parts)
+        cut = len(edges) if final else int(np.searchsorted(edges.t, self._decided, side="right"))
+        spans = list(self._spans)
+        if self._open is not None:
+            spans.append((self._open, self._last))
+        if cut:
+            self.learner.push(_take(edges, 0, cut), np.array(spans, float).reshape(-1, 2))
+        self._parts = [_take(edges, cut, len(edges))] if cut < len(edges) else []
+        oldest = self._parts[0].t[0] if self._parts else self._decided
+        self._spans = [s for s in self._spans if s[1] >= oldest]
+
+    def _take_events(self, events: np.ndarray) -> None:
+        t = events["t"]
+        cut = events["verdict"] == FUEL_CUT
+        for ti, is_cut in zip(t, cut):
+            if not np.isfinite(ti):
+                continue
+            if is_cut:
+                if self._open is None:
+                    self._open = float(ti)
+                self._last = float(ti)
+            elif self._open is not None:
+                self._spans.append((self._open, self._last))
+                self._open = None
+        finite = t[np.isfinite(t)]
+        if finite.size:
+            self._decided = max(self._decided, float(finite.max()))
+
+    def result(self):
+        return self.learner.result()
+
+
+def _take(c: CrankAngles, a: int, b: int) -> CrankAngles:
+    return CrankAngles(c.t[a:b], c.angle[a:b], c.tooth[a:b], c.valid[a:b], c.period[a:b], [])
 
 
 def _mask(events: np.ndarray, spans: list[tuple[float, float]]) -> np.ndarray:
@@ -260,10 +326,16 @@ def _finish(analysis: RunAnalysis, store: Store, run_id: int, *, status: str = "
                                         amplitude=amp[:, a, :], axis=axis)
                 store.add_order_map(run_id, sensor=name, rpm_lo=vib.order_rpm_lo,
                                     rpm_hi=vib.order_rpm_hi, orders=vib.orders,
-                                    amplitude=np.sqrt(np.nansum(amp**2, axis=1))
-                                    if np.isfinite(amp).any() else amp[:, 0, :], axis="sum")
+                                    amplitude=np.sqrt(np.sum(amp**2, axis=1)), axis="sum")
         summary["vibration_exposure"] = {
             "riding_hours": vib.riding_hours, "a8_m_s2": vib.exposure}
+    summary["tooth_errors"] = teeth = _save_tooth_errors(analysis, store, run_id)
+    if teeth["kept_for_next_runs"] and not teeth["applied_from_earlier_run"]:
+        analysis.notes.insert(0,
+            f"tooth spacing errors of {teeth['learnt_rms_deg']:.3f} deg rms were learnt on this "
+            "run's fuel cut and kept for the next runs of this rig; this run is not corrected "
+            "(its firing intervals may be off by several degrees): replay it again with --force "
+            "to apply them")
     summary["rough_road"] = {"spans": len(analysis.rough_spans),
                              "seconds": float(sum(b - a for a, b in analysis.rough_spans))}
     summary["stream"] = _health_dict(analysis.health)
@@ -274,6 +346,22 @@ def _finish(analysis: RunAnalysis, store: Store, run_id: int, *, status: str = "
     summary["misfire"]["alert_limit_pct"] = limit
     store.finish_run(run_id, summary, status=status)
     return summary
+
+
+def _save_tooth_errors(analysis: RunAnalysis, store: Store, run_id: int) -> dict:
+    """Keep the tooth errors learnt on this run's fuel cuts for the next runs of the rig."""
+    learnt = analysis.teeth.result()
+    keep = learnt.n_revolutions > 0 and learnt.confidence >= TOOTH_CONFIDENCE_MIN
+    if keep:
+        store.save_tooth_errors(analysis.rig.name, wheel_key(analysis.rig), learnt.error_deg,
+                                run_id=run_id, n_revs=learnt.n_revolutions)
+    return {
+        "applied_from_earlier_run": analysis.tooth_correction_applied,
+        "learnt_revolutions": int(learnt.n_revolutions),
+        "learnt_rms_deg": float(learnt.rms_deg) if learnt.n_revolutions else None,
+        "confidence": float(learnt.confidence),
+        "kept_for_next_runs": bool(keep),
+    }
 
 
 def _vibration_rows(vib) -> list[dict]:
