@@ -98,7 +98,7 @@ class Recorder:
         for msg in msgs:
             self._can.on_message_received(msg)
         self.frames += len(msgs)
-        self._maybe_flush()
+        self.maybe_flush()
 
     def write_serial(self, sensor: str, records: list[tuple[float, bytes]]) -> None:
         """Append serial reads ``(host_time, bytes)`` of one sensor (zero length = link break)."""
@@ -109,9 +109,12 @@ class Recorder:
         for t, data in records:
             w.write(t, data)
         self.serial_records[sensor] += len(records)
-        self._maybe_flush()
+        self.maybe_flush()
 
-    def _maybe_flush(self) -> None:
+    def maybe_flush(self) -> None:
+        """Flush if the last flush is :data:`FLUSH_EVERY_S` old (call it while idle, too)."""
+        if self._closed:
+            return
         if time.monotonic() - self._last_flush >= FLUSH_EVERY_S:
             self.flush()
 

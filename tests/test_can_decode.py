@@ -13,7 +13,7 @@ from cantools.database.conversion import BaseConversion
 from conftest import m1_frames
 
 from logger.can.decode import FrameDecoder
-from logger.can.sources.base import FrameBatch, concat
+from logger.can.sources.base import FrameBatch
 from logger.rig.model import CanMessage
 
 T0 = 1_767_225_600.0
@@ -85,7 +85,8 @@ def test_counter_gaps_are_lost_frames_and_wrap_is_not(m1):
     teeth, _ = dec.push(_batch(msgs, first_line=10))
     assert teeth.lost_before.tolist() == [0, 0, 0, 2, 0, 0, 3]
     assert dec.health.can_lost_frames == 5
-    assert dec.health.notes[0] == "ride.log line 13: crank_teeth counter 252 -> 255: 2 frame(s) lost"
+    assert dec.health.notes[0] == (
+        "ride.log line 13: crank_teeth counter 252 -> 255: 2 frame(s) lost")
 
 
 def test_state_carries_across_batches_identically(m1):

@@ -116,7 +116,8 @@ frames = st.builds(
 )
 
 
-@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(max_examples=60, deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(msgs=st.lists(frames, min_size=1, max_size=30))
 def test_random_logs_fast_equals_python_can(tmp_path, msgs):
     msgs.sort(key=lambda m: m.timestamp)

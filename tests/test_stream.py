@@ -153,7 +153,8 @@ def test_random_bytes_log_fails_in_one_line_and_closes(tmp_path, m1):
     junk.write_bytes(np.random.default_rng(7).integers(0, 256, 3000, dtype=np.uint8).tobytes())
     with pytest.raises(FormatError) as e:
         _replay(m1, junk)
-    assert str(e.value).startswith(f"{junk}: line 1: not a candump log") and "\n" not in str(e.value)
+    msg = str(e.value)
+    assert msg.startswith(f"{junk}: line 1: not a candump log") and "\n" not in msg
 
 
 def test_a_log_of_another_rig_is_noted(tmp_path, m1):

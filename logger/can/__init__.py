@@ -1,1 +1,13 @@
-"""CAN acquisition: bit layouts, frame decoding and the sources (log files, live buses)."""
+"""CAN acquisition: bit layouts, frame decoding and the sources (log files, live buses).
+
+Public surface: :func:`decode_signal`, :func:`decode_raw`, :func:`encode_signal`,
+:func:`signal_bits` (bit layouts); :class:`FrameDecoder` (frames -> teeth and status blocks);
+:func:`open_log`, :class:`BusSource`, :class:`CanSource`, :class:`FrameBatch` (sources).
+"""
+
+from logger.can.bits import decode_raw, decode_signal, encode_signal, signal_bits
+from logger.can.decode import FrameDecoder
+from logger.can.sources import BusSource, CanSource, FrameBatch, open_log
+
+__all__ = ["BusSource", "CanSource", "FrameBatch", "FrameDecoder", "decode_raw",
+           "decode_signal", "encode_signal", "open_log", "signal_bits"]
