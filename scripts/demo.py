@@ -32,10 +32,16 @@ def main() -> int:
     print(f"crankbeat demo: replaying {can_log.relative_to(ROOT)} "
           f"(+ {len(captures)} accelerometer capture) of the invented M1 test mule\n")
     argv = ["replay", "--rig", "m1", "--can", str(can_log), "--store", str(store),
-            "--label", "demo-loop", "--odometer", "1520", "--notes", "demo ride on the test loop"]
+            "--odometer", "1520", "--notes", "demo ride on the test loop"]
     for cap in captures:
         argv += ["--accel", str(cap)]
-    rc = crankbeat(argv)
+    rc = crankbeat(argv + ["--label", "demo-loop-new-wheel"])
+    if rc != 0:
+        return rc
+    print("\n--- The first run learnt the trigger wheel's tooth spacing errors on its overrun fuel "
+          "cut.\n--- Replaying the same ride again applies them (as any later ride of this rig "
+          "would):\n")
+    rc = crankbeat(argv + ["--label", "demo-loop", "--force"])
     if rc != 0:
         return rc
     report_dir = OUT / "report"
