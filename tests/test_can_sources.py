@@ -196,6 +196,20 @@ def test_random_bytes_as_blf_is_one_clear_error(tmp_path):
     assert "\n" not in str(e.value) and str(p) in str(e.value) and "offset 0" in str(e.value)
 
 
+def test_blf_cut_short_keeps_the_frames_before_with_a_note(tmp_path):
+    msgs = _variety()[:-2] * 40  # several BLF containers
+    p = _write(tmp_path / "c.blf", msgs)
+    whole = p.read_bytes()
+    p.write_bytes(whole[: len(whole) // 2])
+    src = open_log(p)
+    got = _read(src)
+    assert 0 < len(got) < len(msgs)
+    assert bytes(got.data[5, : got.dlc[5]]) == bytes(msgs[5].data)
+    assert src.notes == [f"{p} offset {len(whole) // 2}: file ends before the {len(whole)} "
+                         f"bytes its header gives (cut short?); the {len(got)} frames before "
+                         "the cut were kept"]
+
+
 def test_missing_file(tmp_path):
     with pytest.raises(SourceError, match="cannot open"):
         open_log(tmp_path / "nope.log")

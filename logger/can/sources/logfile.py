@@ -123,7 +123,20 @@ class LogFileSource(CanSource):
                                                origin=self.path, index_kind="frame")
             if failed is not None or len(msgs) < max_frames:
                 self._done = True
+                self._check_count()
                 return
+
+    def _check_count(self) -> None:
+        """Binary logs whose header counts the objects (BLF): say when the file was cut."""
+        claimed = getattr(self._reader, "file_size", None)
+        objects = getattr(self._reader, "object_count", None)
+        if not isinstance(claimed, int) or not isinstance(objects, int) or claimed <= 0:
+            return
+        if self.size < claimed:
+            self.bad_records += 1
+            self.note(f"{self.path} offset {self.size}: file ends before the {claimed} bytes "
+                      f"its header gives (cut short?); the {self.frames_read} frames before "
+                      "the cut were kept")
 
     def close(self) -> None:
         stop = getattr(self._reader, "stop", None)
