@@ -105,14 +105,22 @@ def test_hand_written_lines_python_can_accepts(tmp_path):
     assert fast.extended.tolist() == [False, True, False, False, True, False]
 
 
+def _frame(t, i, ext, d, kind):
+    if kind == "error":
+        return can.Message(timestamp=t, is_error_frame=True)
+    if kind == "remote":
+        return can.Message(timestamp=t, arbitration_id=i & (0x1FFFFFFF if ext else 0x7FF),
+                           is_extended_id=ext, is_remote_frame=True, dlc=min(len(d), 8))
+    return can.Message(timestamp=t, arbitration_id=i & (0x1FFFFFFF if ext else 0x7FF),
+                       is_extended_id=ext, is_fd=kind == "fd", bitrate_switch=kind == "fd",
+                       data=d if kind == "fd" else d[:8])
+
+
 frames = st.builds(
-    lambda t, i, ext, d, kind: can.Message(
-        timestamp=t, arbitration_id=i & (0x1FFFFFFF if ext else 0x7FF), is_extended_id=ext,
-        data=None if kind == "remote" else d, is_remote_frame=kind == "remote",
-        dlc=len(d) if kind == "remote" else None),
+    _frame,
     st.floats(0, 2e9, allow_nan=False).map(lambda x: round(x, 6)),
-    st.integers(0, 2**29 - 1), st.booleans(), st.binary(max_size=8),
-    st.sampled_from(["data", "data", "remote"]),
+    st.integers(0, 2**29 - 1), st.booleans(), st.binary(max_size=64),
+    st.sampled_from(["data", "data", "data", "remote", "error", "fd"]),
 )
 
 
