@@ -37,8 +37,8 @@ def _decode_once(stream, rig, can_path: str, accel: dict[str, str]) -> DecodeCou
 
 
 def decode(rig, can_path: str | os.PathLike, accel: dict[str, str | os.PathLike] | None = None,
-           *, repeat: int = 1) -> tuple[float, DecodeCount]:
-    """Best wall time (s) of ``repeat`` decode passes, and what a pass delivered."""
+           *, repeat: int = 1) -> tuple[float, float, DecodeCount]:
+    """Best wall and CPU times (s) of ``repeat`` decode passes, and what a pass delivered."""
     from logger import stream  # imported before the clock starts: a replay has it loaded
 
     acc = {k: os.fspath(v) for k, v in (accel or {}).items()}

@@ -1,8 +1,12 @@
-"""Run a bench helper in a fresh process and collect what the kernel says it used.
+"""Run a bench helper in a fresh process and collect what it and the kernel say it used.
 
-``os.wait4`` returns the resource usage of exactly that child (peak resident set
-``ru_maxrss``, user and system CPU), unlike ``RUSAGE_CHILDREN``, which mixes every child the
-bench has waited for. The helper prints one JSON object as the last line of its stdout.
+``os.wait4`` returns the resource usage of exactly that child (user and system CPU), unlike
+``RUSAGE_CHILDREN``, which mixes every child the bench has waited for. Its ``ru_maxrss`` is no
+good for peak memory, though: Linux carries the parent's resident set at ``fork`` into the
+child's high-water mark across ``exec``, so a child of a 300 MB bench reports 300 MB even if it
+never used more than 10. The helper therefore reads its own ``VmHWM`` (peak resident set of its
+own address space, reset at exec) from ``/proc/self/status`` when its work is done and reports
+it with its results: one JSON object on the last line of its stdout.
 """
 
 from __future__ import annotations
@@ -29,7 +33,8 @@ class ChildRun:
 
     returncode: int
     result: dict = field(default_factory=dict)  # its last stdout line, parsed
-    peak_rss_mb: float = 0.0  # ru_maxrss, MiB
+    peak_rss_mb: float = 0.0  # the child's own VmHWM, MiB (ru_maxrss when it gave none)
+    ru_maxrss_mb: float = 0.0  # kernel's figure, at least the parent's RSS at fork
     cpu_s: float = 0.0  # user + system
     wall_s: float = 0.0  # process start to exit, seen from outside
     error: str = ""  # last stderr lines when it failed
@@ -37,6 +42,18 @@ class ChildRun:
     @property
     def ok(self) -> bool:
         return self.returncode == 0 and not self.error
+
+
+def own_peak_mb() -> float:
+    """This process's peak resident set so far (VmHWM), MiB; NaN where /proc has none."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as f:
+            for line in f:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) / 1024.0  # kB
+    except OSError:
+        pass
+    return float("nan")
 
 
 def script(name: str) -> str:
@@ -91,7 +108,7 @@ def _exited(pid: int) -> bool:
 def finish(code: int, usage, wall: float, stdout: str, stderr: str) -> ChildRun:
     run = ChildRun(returncode=code, wall_s=wall)
     if usage is not None:
-        run.peak_rss_mb = usage.ru_maxrss / 1024.0  # Linux: KiB
+        run.ru_maxrss_mb = usage.ru_maxrss / 1024.0  # Linux: KiB
         run.cpu_s = usage.ru_utime + usage.ru_stime
     lines = [ln for ln in stdout.strip().splitlines() if ln.strip()]
     if lines:
@@ -99,6 +116,8 @@ def finish(code: int, usage, wall: float, stdout: str, stderr: str) -> ChildRun:
             run.result = json.loads(lines[-1])
         except json.JSONDecodeError:
             run.result = {}
+    own = run.result.get("vm_hwm_mb")
+    run.peak_rss_mb = float(own) if isinstance(own, int | float) else run.ru_maxrss_mb
     if code != 0 or not run.result:
         tail = [ln for ln in stderr.strip().splitlines() if ln.strip()][-3:]
         run.error = " | ".join(tail) or f"exit code {code}, no result line"

@@ -6,7 +6,8 @@ so every ride has the same content per minute and the scaling figures compare li
 The live ride holds the reference rig at 10 500 rpm.
 
 Cache: ``<root>/<name>-seed<seed>-<key>/`` where the key hashes the rig spec, the scenario file
-text and the simulator's source, so a changed simulator regenerates its rides. A ride is
+text and the simulator's source, so a changed simulator regenerates its rides (and the older
+copies of the same scenario are removed: an hour-long ride is a third of a GB). A ride is
 written into a temporary folder by a child process (``scripts/bench_ride.py``; the simulator
 holds the whole ride in memory, several GB for an hour) and renamed when complete, so an
 interrupted generation never leaves a half ride in the cache.
@@ -18,12 +19,11 @@ import hashlib
 import json
 import os
 import shutil
-import subprocess
-import sys
-import time
 from dataclasses import dataclass
 from pathlib import Path
 
+from bench.procs import run_child, script
+from dsp.errors import CrankbeatError, InputError
 from logger.sim import Fault, Scenario, Segment, scenario_to_toml
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -50,7 +50,7 @@ def _lap() -> tuple[Segment, ...]:
 def lap_scenario(minutes: int, *, seed: int = 4242) -> Scenario:
     """``minutes`` laps of the one-minute bench lap, with a misfiring spell in every lap."""
     if minutes < 1:
-        raise ValueError(f"minutes must be >= 1, got {minutes!r}")
+        raise InputError(f"minutes must be >= 1, got {minutes!r}")
     lap = _lap()
     assert abs(sum(x.duration for x in lap) - LAP_S) < 1e-9
     spell = sum(x.duration for x in lap[:6])
@@ -79,6 +79,7 @@ class RideFiles:
     captures: dict[str, Path]
     duration_s: float
     generated_s: float  # how long the generation took (0 when it came from the cache)
+    generated_peak_mb: float = 0.0  # peak RSS of the generating process
 
 
 def _sim_source_digest() -> str:
@@ -117,7 +118,7 @@ def ensure_ride(scenario: Scenario, root: Path, *, rig: str = "m1",
 
     Raises
     ------
-    RuntimeError
+    CrankbeatError
         The generating child failed (its last stderr lines are in the message).
     """
     folder = root / f"{scenario.name}-seed{scenario.seed}-{ride_key(rig, scenario)}"
@@ -131,20 +132,20 @@ def ensure_ride(scenario: Scenario, root: Path, *, rig: str = "m1",
     tmp.mkdir()
     spec = tmp / "request.scenario.toml"
     spec.write_text(scenario_to_toml(scenario), encoding="utf-8")
-    script = ROOT / "scripts" / "bench_ride.py"
-    t0 = time.perf_counter()
-    proc = subprocess.run([sys.executable, str(script), "--rig", rig, "--scenario", str(spec),
-                           "--out", str(tmp)], capture_output=True, text=True, timeout=timeout_s)
-    took = time.perf_counter() - t0
-    if proc.returncode != 0:
-        tail = " | ".join(proc.stderr.strip().splitlines()[-3:])
+    run = run_child([script("bench_ride.py"), "--rig", rig, "--scenario", str(spec),
+                     "--out", str(tmp)], timeout_s=timeout_s)
+    if not run.ok:
         shutil.rmtree(tmp, ignore_errors=True)
-        raise RuntimeError(f"generating ride {scenario.name!r} failed: {tail}")
+        raise CrankbeatError(f"generating ride {scenario.name!r} failed: {run.error}")
     if folder.exists():
         shutil.rmtree(folder)
     tmp.rename(folder)
+    for stale in root.glob(f"{scenario.name}-seed{scenario.seed}-*"):
+        if stale != folder and stale.is_dir():  # made by an older simulator: never read again
+            shutil.rmtree(stale, ignore_errors=True)
     files = _load(folder)
     if files is None:
-        raise RuntimeError(f"generating ride {scenario.name!r} left no manifest in {folder}")
-    files.generated_s = took
+        raise CrankbeatError(f"generating ride {scenario.name!r} left no manifest in {folder}")
+    files.generated_s = run.wall_s
+    files.generated_peak_mb = run.peak_rss_mb
     return files

@@ -22,6 +22,9 @@ import threading
 import time
 from pathlib import Path
 
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+from bench.procs import own_peak_mb  # noqa: E402
+
 
 def _cpu_self() -> float:
     ru = resource.getrusage(resource.RUSAGE_SELF)
@@ -97,7 +100,7 @@ def main(argv: list[str] | None = None) -> int:
         feeder.join(timeout=5.0)
         feeder_bus.shutdown()
         store.close()
-    figures.update(frames_sent=len(msgs), run_id=result.run_id)
+    figures.update(frames_sent=len(msgs), run_id=result.run_id, vm_hwm_mb=own_peak_mb())
     print(json.dumps(figures))
     return 0
 

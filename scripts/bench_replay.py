@@ -6,7 +6,8 @@ Usage: python scripts/bench_replay.py --can LOG [--accel NAME=CAPTURE ...] --sto
 The timed span is everything ``crankbeat replay`` does with the files: open (create) the store,
 hash the sources, stream, analyse, write and close. Imports and the interpreter start are
 outside it (bench.py sees them in the process's wall time). ``--cpu`` pins the process to one
-core, so the figure is for one core whatever else runs. Prints one JSON line.
+core, so the figure is for one core whatever else runs. Prints one JSON line: wall and CPU
+seconds of the span, events stored, and the process's own peak memory (VmHWM).
 """
 
 from __future__ import annotations
@@ -18,6 +19,9 @@ import sqlite3
 import sys
 import time
 from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+from bench.procs import own_peak_mb  # noqa: E402
 
 
 def _fresh(path: Path) -> None:
@@ -57,14 +61,14 @@ def main(argv: list[str] | None = None) -> int:
             import cProfile
 
             prof = cProfile.Profile()
-            t0 = time.perf_counter()
+            c0, t0 = time.process_time(), time.perf_counter()
             run_id = prof.runcall(whole)
-            seconds = time.perf_counter() - t0
+            seconds, cpu_s = time.perf_counter() - t0, time.process_time() - c0
             prof.dump_stats(str(args.profile))
         else:
-            t0 = time.perf_counter()
+            c0, t0 = time.process_time(), time.perf_counter()
             run_id = whole()
-            seconds = time.perf_counter() - t0
+            seconds, cpu_s = time.perf_counter() - t0, time.process_time() - c0
     except CrankbeatError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return exc.exit_code
@@ -72,7 +76,8 @@ def main(argv: list[str] | None = None) -> int:
         events = db.execute("SELECT COUNT(*) FROM events WHERE run = ?", (run_id,)).fetchone()[0]
         status = db.execute("SELECT status FROM runs WHERE id = ?", (run_id,)).fetchone()[0]
     db.close()
-    print(json.dumps({"seconds": seconds, "run_id": run_id, "events": events, "status": status}))
+    print(json.dumps({"seconds": seconds, "cpu_s": cpu_s, "run_id": run_id, "events": events,
+                      "status": status, "vm_hwm_mb": own_peak_mb()}))
     return 0
 
 

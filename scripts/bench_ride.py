@@ -3,7 +3,8 @@
 Usage: python scripts/bench_ride.py --rig m1 --scenario FILE.toml --out FOLDER
 
 Runs in its own process because the simulator holds the whole ride in memory; the folder gets
-the ride's files and ``bench-ride.json`` naming them (written last: the ride is complete).
+the ride's files and ``bench-ride.json`` naming them (written last: the ride is complete), and
+the same JSON is printed as the last line.
 """
 
 from __future__ import annotations
@@ -13,9 +14,11 @@ import json
 import sys
 from pathlib import Path
 
-from dsp.errors import CrankbeatError
-from logger.rig import load_rig
-from logger.sim import load_scenario, simulate, write_ride
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+from bench.procs import own_peak_mb  # noqa: E402
+from dsp.errors import CrankbeatError  # noqa: E402
+from logger.rig import load_rig  # noqa: E402
+from logger.sim import load_scenario, simulate, write_ride  # noqa: E402
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -40,6 +43,7 @@ def main(argv: list[str] | None = None) -> int:
         "seed": scenario.seed,
     }
     (args.out / "bench-ride.json").write_text(json.dumps(doc, indent=1), encoding="utf-8")
+    print(json.dumps({**doc, "vm_hwm_mb": own_peak_mb()}))
     return 0
 
 
