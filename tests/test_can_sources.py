@@ -133,6 +133,27 @@ def test_random_logs_fast_equals_python_can(tmp_path, msgs):
     assert_same_frames(_read(CandumpFastSource(p, block_bytes=211)), _read(LogFileSource(p)))
 
 
+@settings(max_examples=40, deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(msgs=st.lists(frames, min_size=1, max_size=20),
+       junk=st.lists(st.tuples(st.integers(0, 40), st.binary(min_size=1, max_size=60)),
+                     max_size=6))
+def test_junk_lines_are_skipped_and_nothing_good_is_lost(tmp_path, msgs, junk):
+    msgs.sort(key=lambda m: m.timestamp)
+    clean = _write(tmp_path / "clean.log", msgs)
+    lines = clean.read_bytes().splitlines(keepends=True)
+    inserted = 0
+    for pos, text in sorted(junk, reverse=True):
+        text = b"#" + text.replace(b"\n", b"").replace(b"\r", b"")  # never a frame
+        lines.insert(min(pos, len(lines)), text + b"\n")
+        inserted += 1
+    dirty = tmp_path / "dirty.log"
+    dirty.write_bytes(b"".join(lines))
+    src = CandumpFastSource(dirty, block_bytes=128)
+    assert_same_frames(_read(src), _read(LogFileSource(clean)))
+    assert src.bad_records == inserted
+
+
 @pytest.mark.parametrize("log", sorted(FIXTURES.rglob("*.log")), ids=lambda p: p.name)
 def test_fixture_logs_fast_equals_python_can(log):
     assert_same_frames(_read(CandumpFastSource(log)), _read(LogFileSource(log)))
@@ -194,6 +215,17 @@ def test_random_bytes_as_log_is_one_clear_error(tmp_path):
         msg = str(e.value)
         assert "\n" not in msg and str(p) in msg
         assert ("line 1" if fast else "frame 0") in msg
+
+
+def test_a_few_junk_lines_then_frames_are_skipped_but_only_junk_is_an_error(tmp_path):
+    p = tmp_path / "j.log"
+    good = _write(tmp_path / "g.log", _variety()[:5]).read_bytes()
+    p.write_bytes(b"junk one\njunk two\n" + good)
+    src = CandumpFastSource(p, block_bytes=16)
+    assert len(_read(src)) == 5 and src.bad_records == 2
+    p.write_bytes(b"junk one\njunk two\n")
+    with pytest.raises(FormatError, match="line 1: not a candump log"):
+        _read(CandumpFastSource(p))
 
 
 def test_random_bytes_as_blf_is_one_clear_error(tmp_path):

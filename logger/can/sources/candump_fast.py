@@ -31,6 +31,8 @@ from logger.can.sources.base import CanSource, FrameBatch
 
 #: Bytes read per block; a block's lines are parsed together.
 BLOCK_BYTES = 4 * 1024 * 1024
+#: Unreadable lines before the first frame that make a file "not a candump log".
+NOT_CANDUMP_AFTER = 20
 #: A "line" longer than this without a newline is junk, not a frame.
 MAX_LINE_BYTES = 4096
 
@@ -399,6 +401,8 @@ class CandumpFastSource(CanSource):
         self._raw = raw
         self._f: BinaryIO = gzip.GzipFile(fileobj=raw) if self.path.lower().endswith(".gz") else raw
         self.frames_read = 0
+        self._bad_before_first = 0
+        self._first_bad_line: int | None = None
 
     def progress(self) -> tuple[float, float | None]:
         try:
@@ -481,9 +485,8 @@ class CandumpFastSource(CanSource):
                 self._fill(cols, int(i), msg)
                 ok[i] = True
             good = np.flatnonzero(ok)
-            if self.frames_read == 0 and len(good) == 0 and len(odd):
-                raise FormatError(f"{self.path}: line {first_line + int(odd[0])}: not a candump "
-                                  f"log ({_EXPECTED})")
+            if self.frames_read == 0:
+                self._check_is_candump(first_line, ok, blank)
             self.frames_read += len(good)
             for a in range(0, len(good), max_frames):
                 sel = good[a : a + max_frames]
@@ -497,6 +500,25 @@ class CandumpFastSource(CanSource):
                     is_fd=cols.is_fd[sel], index=sel.astype(np.int64) + first_line,
                     origin=self.path, index_kind="line",
                 )
+        if self.frames_read == 0 and self._bad_before_first:
+            raise FormatError(f"{self.path}: line {self._first_bad_line}: not a candump log "
+                              f"({_EXPECTED})")
+
+    def _check_is_candump(self, first_line: int, ok: np.ndarray, blank: np.ndarray) -> None:
+        """Before the first frame: give up on a file whose first lines are all unreadable.
+
+        :data:`NOT_CANDUMP_AFTER` bad lines before any good one (or a whole file of them) make
+        it "not a candump log"; fewer are skipped like any bad line. The rule depends on the
+        lines only, never on the block size.
+        """
+        first_good = int(np.argmax(ok)) if ok.any() else len(ok)
+        bad_before = np.flatnonzero(~ok[:first_good] & ~blank[:first_good])
+        if self._first_bad_line is None and len(bad_before):
+            self._first_bad_line = first_line + int(bad_before[0])
+        self._bad_before_first += len(bad_before)
+        if self._bad_before_first >= NOT_CANDUMP_AFTER:
+            raise FormatError(f"{self.path}: line {self._first_bad_line}: not a candump log "
+                              f"({_EXPECTED})")
 
     @staticmethod
     def _merge(cols: _Parsed, sub: _Parsed, rows: np.ndarray, ok: np.ndarray) -> None:
