@@ -18,7 +18,7 @@ Decision
 ``MISFIRE`` when ``metric > threshold``. The threshold is learnt per cylinder and per cell of
 rpm and load (load from the reference work itself, in bar of the swept volume, so it needs no
 throttle signal): the fired events' median plus the larger of ``spread_k`` robust standard
-deviations (MAD) and half the way to a complete misfire (1), clipped to
+deviations (MAD) and ``misfire_share`` of the way to a complete misfire (1), clipped to
 ``[threshold_min, threshold_max]``; a cell not learnt yet uses its cylinder's pooled threshold,
 and ``default_threshold`` before that. Statistics are updated per block of events counted from
 the run's first event (16, 32, 64, then ``block``), and every event uses the statistics of the
@@ -64,6 +64,10 @@ class MisfireSettings:
         Bounds of a learnt threshold.
     spread_k : float
         Robust standard deviations of the fired metric above its median.
+    misfire_share : float
+        The threshold lies at least this share of the way from the fired median to a complete
+        misfire (metric 1): a partial burn that still delivers more than about this share of
+        the work counts as fired (a weak cylinder, seen in the contribution), not as a misfire.
     min_cell_events, history : int
         Fired events a cell needs before its own threshold is used; events it keeps.
     rpm_bin : float
@@ -100,6 +104,7 @@ class MisfireSettings:
     threshold_min: float = 0.35
     threshold_max: float = 20.0
     spread_k: float = 4.5
+    misfire_share: float = 0.6
     min_cell_events: int = 24
     history: int = 96
     rpm_bin: float = 1000.0
@@ -185,7 +190,7 @@ class _Cells:
             if np.isfinite(hist).sum() >= max(8, self.s.min_cell_events // 3):
                 med = float(_fmedian(hist))
                 sig = max(1.4826 * float(_fmedian(np.abs(hist - med))), 0.01)
-                thr = med + max(self.s.spread_k * sig, 0.5 * (1.0 - med))
+                thr = med + max(self.s.spread_k * sig, self.s.misfire_share * (1.0 - med))
                 self.cyl_sigma[c] = sig
                 self.cyl_thr[c] = float(
                     np.clip(thr, max(self.s.threshold_min, self.s.default_threshold),
@@ -236,12 +241,12 @@ class _Cells:
         med, sig = self.med[c, r, ld], self.sigma[c, r, ld]
         if self.mis_fill[c, r, ld] >= s.min_misfires:
             self.mis[c, r, ld] = float(_fmedian(self.mis_metric[c, r, ld]))
-        # far enough above the fired spread (false alarms) and at least half-way to a complete
-        # misfire (1: partial burns and disturbances); where the spread is wide the first term
+        # far enough above the fired spread (false alarms) and at least misfire_share of the way
+        # to a complete misfire (1: partial burns and disturbances); where the spread is wide the first term
         # wins. The misfire level seen in the run is kept for reports, not for the threshold:
         # misfires scatter widely (a second one in a row keeps more work) and a threshold
         # pushed up by the clear ones would miss the others.
-        thr = med + max(s.spread_k * sig, 0.5 * (1.0 - med))
+        thr = med + max(s.spread_k * sig, s.misfire_share * (1.0 - med))
         self.thr[c, r, ld] = float(np.clip(thr, s.threshold_min, s.threshold_max))
 
 

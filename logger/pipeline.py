@@ -311,6 +311,7 @@ def _write(store: Store, run_id: int, out: StepOutput) -> None:
 def _finish(analysis: RunAnalysis, store: Store, run_id: int, *, status: str = "complete"
             ) -> dict:
     s = analysis.summary
+    analysis.notes += s.score_layouts(analysis.events.profile)
     for kind in ("rev200", "rev1000"):
         store.add_windows(run_id, s.windows(kind), kind=kind)
     store.add_intervals(run_id, s.interval_rows())

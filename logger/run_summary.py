@@ -8,7 +8,8 @@ complete and its events are dropped; the blocks' results are merged at the end:
 
 * counts per cylinder and verdict, and the windows: exact;
 * firing intervals: the blocks' means weighted by their pair counts, standard errors combined;
-* contribution and the layout scores: weighted by the fired events behind them;
+* contribution: weighted by the fired events behind it;
+* the layout check: from the analyzer's running speed profile of the whole run;
 * misfire patterns: summed (a pattern crossing a block edge is classified within each block).
 """
 
@@ -22,8 +23,8 @@ import numpy as np
 
 from dsp.analysis import cylinder_contribution, misfire_counts, misfire_patterns, window_rates
 from dsp.engine import Engine
-from dsp.errors import LayoutMismatchWarning
-from dsp.events import EVENT_DTYPE, FIRED, MISFIRE
+from dsp.errors import InputError, LayoutMismatchWarning
+from dsp.events import MISFIRE
 from dsp.intervals import IntervalResult, identify_layout, interval_check
 from dsp.layout import firing_sequence, layout_signature
 
@@ -86,7 +87,7 @@ class RunSummary:
     _windows: dict[str, list[dict]] = field(default_factory=lambda: {k: [] for k in WINDOW_KINDS})
     _intervals: dict[int, _IntervalSum] = field(default_factory=dict)
     _contrib: dict[int, list[float]] = field(default_factory=dict)
-    _scores: dict[str, list[float]] = field(default_factory=dict)
+    _scores: list[tuple[str, float]] = field(default_factory=list)
     _patterns: dict[str, int] = field(default_factory=dict)
     _rpm: list[float] = field(default_factory=lambda: [math.inf, -math.inf, 0.0, 0.0])
     _t: list[float] = field(default_factory=lambda: [math.inf, -math.inf])
@@ -143,14 +144,6 @@ class RunSummary:
                 acc_c = self._contrib.setdefault(cyl, [0.0, 0.0])
                 acc_c[0] += c["n"] * c["median"]
                 acc_c[1] += c["n"]
-        n_fired = int(np.sum(ev["verdict"] == FIRED))
-        if self.candidates and n_fired:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore", LayoutMismatchWarning)
-                for name, score in identify_layout(ev, self.candidates):
-                    acc_s = self._scores.setdefault(name, [0.0, 0.0])
-                    acc_s[0] += n_fired * score
-                    acc_s[1] += n_fired
         if np.any(ev["verdict"] == MISFIRE):
             for label, count in misfire_patterns(ev)["counts"].items():
                 self._patterns[label] = self._patterns.get(label, 0) + int(count)
@@ -183,9 +176,25 @@ class RunSummary:
     def _firing_order(self) -> tuple[int, ...]:
         return tuple(int(c) for c in firing_sequence(self.engine)[0])
 
+    def score_layouts(self, profile) -> list[str]:
+        """Score the candidate layouts against the run's crank-speed profile.
+
+        ``profile`` is the analyzer's running :class:`dsp.intervals.SpeedProfile` (events alone
+        cannot see a wrong layout: their windows sit where the rig file says). Returns the
+        warnings raised, as one-line notes.
+        """
+        if not self.candidates:
+            return []
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", LayoutMismatchWarning)
+            try:
+                self._scores = identify_layout(profile, self.candidates, expected=self.layout_name)
+            except InputError as exc:  # no usable crank data at all
+                return [f"layout check not possible: {exc}"]
+        return [str(w.message) for w in caught]
+
     def layout_scores(self) -> list[tuple[str, float]]:
-        scores = {k: v[0] / v[1] for k, v in self._scores.items() if v[1]}
-        return sorted(scores.items(), key=lambda kv: (-kv[1], kv[0]))
+        return list(self._scores)
 
     def as_dict(self) -> dict:
         """The run's summary as plain JSON-able values."""
@@ -234,6 +243,3 @@ class RunSummary:
             },
         }
 
-
-def empty_events() -> np.ndarray:
-    return np.zeros(0, EVENT_DTYPE)
