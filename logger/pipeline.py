@@ -47,6 +47,8 @@ COMMIT_EVERY_S = 0.5
 #: How long events wait for the rough-road verdict before they are summarised without it, s
 #: of CAN time (a board that fell silent must not hold the summaries back for ever).
 MASK_WAIT_LIMIT_S = 5.0
+#: Fuel cut is looked for above this multiple of the rig's idle speed.
+FUEL_CUT_OVER_IDLE = 1.25
 #: Learnt tooth errors are kept for later runs when the fit is at least this confident (0..1).
 TOOTH_CONFIDENCE_MIN = 0.5
 #: Longest rough-road span whose events are held back for the summaries, s (the store's events
@@ -83,10 +85,15 @@ def layout_candidates(engine: Engine) -> dict[str, Engine]:
 
 
 def misfire_settings(rig: Rig) -> MisfireSettings:
-    """Detector settings: the defaults, with the rig file's overrides."""
+    """Detector settings: the defaults, with what the rig file says about this engine.
+
+    The overrun fuel cut is looked for only clearly above the rig's idle speed (an ECU cuts fuel
+    on a closed throttle above idle and resumes near it, common practice).
+    """
+    options: dict = {"fuel_cut_min_rpm": FUEL_CUT_OVER_IDLE * rig.limits.idle_rpm}
     if rig.limits.misfire_threshold is not None:
-        return MisfireSettings(threshold=rig.limits.misfire_threshold)
-    return MisfireSettings()
+        options["threshold"] = rig.limits.misfire_threshold
+    return MisfireSettings(**options)
 
 
 @dataclass
