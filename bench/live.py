@@ -87,6 +87,10 @@ class SerialServer:
         self._sock.close()
 
 
+_NEW_EVENTS = ("SELECT seq, t FROM events WHERE run = (SELECT MAX(id) FROM runs) AND seq > ? "
+               "ORDER BY seq")
+
+
 class StorePoller:
     """Polls a store's ``events`` table; remembers when each event row was first seen."""
 
@@ -112,9 +116,7 @@ class StorePoller:
                         continue
                     db = sqlite3.connect(f"file:{self.path}?mode=ro", uri=True, timeout=1.0)
                 try:
-                    rows = db.execute("SELECT seq, t FROM events WHERE run = (SELECT MAX(id) FROM runs) "
-                                      "AND seq > ? ORDER BY seq",
-                                      (last,)).fetchall()
+                    rows = db.execute(_NEW_EVENTS, (last,)).fetchall()
                 except sqlite3.OperationalError:  # tables not made yet, or a busy moment
                     rows = []
                 now = time.time()
@@ -178,7 +180,7 @@ def run_live(can_log: Path, captures: dict[str, Path], store: Path, *, base: flo
         with CaptureReader(path) as reader:
             servers[name] = SerialServer(reader.read(), base)
     argv = [script("bench_live.py"), "--rig", rig, "--can", str(can_log), "--store", str(store),
-            "--base", repr(base), "--tail", repr(tail_s)]
+            "--base", repr(base), "--tail", repr(tail_s), "--settle", repr(end_settle_s)]
     for name, srv in servers.items():
         argv += ["--port", f"{name}={srv.url}"]
     poller: StorePoller | None = None

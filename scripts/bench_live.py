@@ -9,6 +9,10 @@ stamps them with ``time.time()`` as a real interface would. The accelerometer by
 the bench process through ``socket://``. Protocol on stdio: this prints ``READY`` when set up,
 reads ``t0`` (epoch seconds) from stdin, streams, and prints one JSON line at the end. The
 CPU figure covers t0 to the last frame sent, with the feeder thread's own CPU reported apart.
+
+The store's ``add_events`` is wrapped (the real method still does the work) to note when each
+event was handed to the store: with the bench's view of when it became visible (committed),
+that splits the latency into analysis and commit.
 """
 
 from __future__ import annotations
@@ -39,6 +43,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--store", required=True, type=Path)
     ap.add_argument("--base", required=True, type=float, help="ride time that maps onto t0")
     ap.add_argument("--tail", type=float, default=1.5, help="s after the last frame to stop")
+    ap.add_argument("--settle", type=float, default=1.0,
+                    help="events within this many s of the last frame are left out of latency")
     args = ap.parse_args(argv)
 
     import can
@@ -60,6 +66,14 @@ def main(argv: list[str] | None = None) -> int:
         if p.exists():
             p.unlink()
     store = Store.open(args.store, create=True)
+    handed: list[tuple[float, object]] = []  # (wall time, event times) per add_events call
+    add_events = store.add_events
+
+    def noting_add_events(run_id, events):
+        handed.append((time.time(), events["t"].copy()))
+        return add_events(run_id, events)
+
+    store.add_events = noting_add_events  # type: ignore[method-assign]
     stop = threading.Event()
     figures: dict[str, float] = {}
 
@@ -101,6 +115,16 @@ def main(argv: list[str] | None = None) -> int:
         feeder_bus.shutdown()
         store.close()
     figures.update(frames_sent=len(msgs), run_id=result.run_id, vm_hwm_mb=own_peak_mb())
+    if handed and "last_send_wall" in figures:
+        import numpy as np
+
+        wall = np.concatenate([np.full(len(t), w) for w, t in handed])
+        t_ev = np.concatenate([t for _, t in handed])
+        keep = np.isfinite(t_ev) & (t_ev < figures["last_send_wall"] - args.settle)
+        lat = wall[keep] - t_ev[keep]
+        if lat.size:
+            figures.update(handed_p50_ms=float(np.percentile(lat, 50) * 1e3),
+                           handed_p99_ms=float(np.percentile(lat, 99) * 1e3))
     print(json.dumps(figures))
     return 0
 

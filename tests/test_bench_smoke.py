@@ -84,7 +84,7 @@ def test_floors_count_what_python_can_reads(rides):
 
 def test_decode_delivers_every_frame_and_sample(rides):
     ride = rides["short"]
-    _, count = decode(load_rig("m1"), ride.can, ride.captures)
+    _wall, _cpu, count = decode(load_rig("m1"), ride.can, ride.captures)
     assert count.can_frames == _pycan_frames(ride.can)  # reference: python-can's reader
     # the board runs at 2000 samples/s (RIG.md); the aligner may hold none back at the end
     assert count.samples == pytest.approx(2.0 * 2000, abs=40)
