@@ -264,6 +264,7 @@ class CrankTracker:
             raise InputError(f"anchor_frames must be >= 4, got {anchor_frames!r}")
         self.L = L
         self.tooth_angle = np.arange(L) * wheel.pitch_deg + corr - np.mod(wheel.tdc_offset_deg, 360)
+        self._pending_angle: tuple[float, np.ndarray] | None = None  # (from time, tooth angles)
         self.guard = int(loss_guard)
         self.H = max(2, self.guard)
         self.slip = int(max_slip_teeth)
@@ -661,6 +662,36 @@ class CrankTracker:
         self.R_last = R
 
     # ------------------------------------------------------------------ output
+    def schedule_tooth_correction(self, correction_deg, from_time: float) -> None:
+        """Apply learnt tooth errors to every edge at or after ``from_time`` (s).
+
+        A correction learnt during the run (on its first fuel cut) takes effect at a time, not
+        at the next push, so that the angles do not depend on how the stream was chunked: pick
+        ``from_time`` later than any edge already handed out (a few seconds after the data it
+        was learnt from is plenty for chunks of a second or less).
+        """
+        corr = np.asarray(correction_deg, dtype=float)
+        if corr.shape != (self.L,) or not np.all(np.isfinite(corr)):
+            raise InputError(
+                f"correction_deg must be {self.L} finite values (one per real tooth), got "
+                f"shape {corr.shape}"
+            )
+        base = np.arange(self.L) * self.wheel.pitch_deg - np.mod(self.wheel.tdc_offset_deg, 360)
+        self._pending_angle = (float(from_time), base + corr)
+
+    def _tooth_angle_at(self, t: np.ndarray, tooth: np.ndarray) -> np.ndarray:
+        """Angle of each tooth number within its revolution, as in force at each edge time."""
+        safe = np.where(tooth >= 0, tooth, 0)
+        pending = self._pending_angle
+        if pending is None:
+            return self.tooth_angle[safe]
+        from_time, new = pending
+        late = t >= from_time
+        out = np.where(late, new[safe], self.tooth_angle[safe])
+        if late.all() and len(t):
+            self.tooth_angle, self._pending_angle = new, None
+        return out
+
     def _emit(self, limit: int) -> CrankAngles:
         if self.assigned:
             st = np.concatenate([a[0] for a in self.assigned])
@@ -688,7 +719,7 @@ class CrankTracker:
             synced = np.isfinite(R)
             tooth = self.T[lo:hi].copy()
             angle = np.full(hi - lo, np.nan)
-            angle[synced] = 360.0 * R[synced] + self.tooth_angle[tooth[synced]]
+            angle[synced] = 360.0 * R[synced] + self._tooth_angle_at(b.t[lo:hi], tooth)[synced]
             valid = synced & ~near & (kind[lo:hi] == NORMAL) & self.PH[lo:hi]
             keep = kind[lo:hi] != PLACEHOLDER
             ev = [e for i, e in self.events if i < limit]

@@ -51,6 +51,10 @@ MASK_WAIT_LIMIT_S = 5.0
 FUEL_CUT_OVER_IDLE = 1.25
 #: Learnt tooth errors are kept for later runs when the fit is at least this confident (0..1).
 TOOTH_CONFIDENCE_MIN = 0.5
+#: A run on an uncorrected wheel applies what its own first fuel cut taught, when the fit is this
+#: confident and rests on this many revolutions, from this long after the cut (CAN time, s: the
+#: switch must not depend on how the stream is chunked).
+IN_RUN_CONFIDENCE, IN_RUN_MIN_REVOLUTIONS, IN_RUN_DELAY_S = 0.9, 100, 3.0
 #: Longest rough-road span whose events are held back for the summaries, s (the store's events
 #: are masked however long the span lasts).
 OPEN_SPAN_LIMIT_S = 300.0
@@ -135,6 +139,7 @@ class RunAnalysis:
         self._last_event_t = -np.inf
         self.rough_spans: list[tuple[float, float]] = []
         self.tooth_correction_applied = tooth_correction_deg is not None
+        self.correction_from_store = tooth_correction_deg is not None
         self.teeth = _FuelCutLearner(ToothErrorLearner(ToothWheel.like(rig.wheel), engine))
 
     # -- per chunk -----------------------------------------------------------------------
@@ -146,6 +151,7 @@ class RunAnalysis:
                                 status_t=status_t, throttle=throttle)
         self.health = chunk.health
         self.teeth.push(step.crank, step.events)
+        self._maybe_correct_teeth()
         out = StepOutput(step.events, notes=list(step.notes))
         new_spans = []
         if self.vibration is not None:
@@ -177,6 +183,22 @@ class RunAnalysis:
         self.summary.finish()
         self.notes += out.notes
         return out
+
+    def _maybe_correct_teeth(self) -> None:
+        closed_at = self.teeth.take_closed()
+        if closed_at is None or self.tooth_correction_applied:
+            return
+        learnt = self.teeth.result()
+        if learnt.confidence < IN_RUN_CONFIDENCE or learnt.n_revolutions < IN_RUN_MIN_REVOLUTIONS:
+            return
+        from_time = closed_at + IN_RUN_DELAY_S
+        self.events.tracker.schedule_tooth_correction(learnt.error_deg, from_time)
+        self.summary.intervals_from(from_time)
+        self.tooth_correction_applied = True
+        self.notes.append(
+            f"tooth spacing errors of {learnt.rms_deg:.3f} deg rms learnt on the fuel cut ending "
+            f"at t={closed_at:.1f} s are applied from t={from_time:.1f} s; the firing intervals "
+            "of this run are taken from then on")
 
     # -- rough-road masking --------------------------------------------------------------
     def _hold(self, events: np.ndarray, new_spans, out: StepOutput, *, end_time: float,
@@ -233,6 +255,7 @@ class _FuelCutLearner:
         self._open: float | None = None  # start of a stretch still going on
         self._last: float = -np.inf  # TDC time of the last fuel-cut event seen
         self._decided: float = -np.inf  # events are decided up to this time
+        self._closed_at: float | None = None  # a stretch ended at this event time (not yet taken)
 
     def push(self, crank: CrankAngles, events: np.ndarray, *, final: bool = False) -> None:
         if len(events):
@@ -265,12 +288,18 @@ class _FuelCutLearner:
             elif self._open is not None:
                 self._spans.append((self._open, self._last))
                 self._open = None
+                self._closed_at = float(ti)
         finite = t[np.isfinite(t)]
         if finite.size:
             self._decided = max(self._decided, float(finite.max()))
 
     def result(self):
         return self.learner.result()
+
+    def take_closed(self) -> float | None:
+        """Time of the event that ended the latest fuel-cut stretch, once; None if none."""
+        closed, self._closed_at = self._closed_at, None
+        return closed
 
 
 def _take(c: CrankAngles, a: int, b: int) -> CrankAngles:
@@ -338,7 +367,7 @@ def _finish(analysis: RunAnalysis, store: Store, run_id: int, *, status: str = "
         summary["vibration_exposure"] = {
             "riding_hours": vib.riding_hours, "a8_m_s2": vib.exposure}
     summary["tooth_errors"] = teeth = _save_tooth_errors(analysis, store, run_id)
-    if teeth["kept_for_next_runs"] and not teeth["applied_from_earlier_run"]:
+    if teeth["kept_for_next_runs"] and not analysis.tooth_correction_applied:
         analysis.notes.insert(0,
             f"tooth spacing errors of {teeth['learnt_rms_deg']:.3f} deg rms were learnt on this "
             "run's fuel cut and kept for the next runs of this rig; this run is not corrected "
@@ -364,7 +393,8 @@ def _save_tooth_errors(analysis: RunAnalysis, store: Store, run_id: int) -> dict
         store.save_tooth_errors(analysis.rig.name, wheel_key(analysis.rig), learnt.error_deg,
                                 run_id=run_id, n_revs=learnt.n_revolutions)
     return {
-        "applied_from_earlier_run": analysis.tooth_correction_applied,
+        "applied_from_earlier_run": analysis.correction_from_store,
+        "applied_during_run": analysis.tooth_correction_applied and not analysis.correction_from_store,
         "learnt_revolutions": int(learnt.n_revolutions),
         "learnt_rms_deg": float(learnt.rms_deg) if learnt.n_revolutions else None,
         "confidence": float(learnt.confidence),

@@ -89,6 +89,7 @@ class RunSummary:
     _contrib: dict[int, list[float]] = field(default_factory=dict)
     _scores: list[tuple[str, float]] = field(default_factory=list)
     _patterns: dict[str, int] = field(default_factory=dict)
+    _intervals_from: float | None = None
     _rpm: list[float] = field(default_factory=lambda: [math.inf, -math.inf, 0.0, 0.0])
     _t: list[float] = field(default_factory=lambda: [math.inf, -math.inf])
 
@@ -135,7 +136,8 @@ class RunSummary:
             self._rpm[3] += rpm.size
         for kind, revs in WINDOW_KINDS.items():
             self._windows[kind] += self._window_rows(ev, revs)
-        for r in interval_check(ev, self.engine, tolerance_deg=self.tolerance_deg):
+        iv = ev if self._intervals_from is None else ev[ev["t"] >= self._intervals_from]
+        for r in interval_check(iv, self.engine, tolerance_deg=self.tolerance_deg):
             acc = self._intervals.setdefault(
                 r.from_cylinder, _IntervalSum(r.from_cylinder, r.to_cylinder, r.expected_deg))
             acc.add(r)
@@ -147,6 +149,15 @@ class RunSummary:
         if np.any(ev["verdict"] == MISFIRE):
             for label, count in misfire_patterns(ev)["counts"].items():
                 self._patterns[label] = self._patterns.get(label, 0) + int(count)
+
+    def intervals_from(self, t: float) -> None:
+        """Take the firing intervals only from events at or after ``t`` (s) from now on.
+
+        Used when the run's own tooth-error correction starts mid-run: intervals before it
+        carry the wheel's errors. What was summed before is dropped.
+        """
+        self._intervals_from = float(t)
+        self._intervals = {}
 
     def _window_rows(self, ev: np.ndarray, revs: int) -> list[dict]:
         windows, per_cyl = window_rates(ev, revolutions=revs, engine=self.engine)

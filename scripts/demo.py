@@ -39,8 +39,8 @@ def main() -> int:
     if rc != 0:
         return rc
     print("\n--- The first run learnt the trigger wheel's tooth spacing errors on its overrun fuel "
-          "cut.\n--- Replaying the same ride again applies them (as any later ride of this rig "
-          "would):\n")
+          "cut\n--- and applied them from then on. A later ride of this rig (here: the same one "
+          "again)\n--- applies them from its first revolution:\n")
     rc = crankbeat(argv + ["--label", "demo-loop", "--force"])
     if rc != 0:
         return rc
