@@ -367,6 +367,11 @@ def _finish(analysis: RunAnalysis, store: Store, run_id: int, *, status: str = "
         summary["vibration_exposure"] = {
             "riding_hours": vib.riding_hours, "a8_m_s2": vib.exposure}
     summary["tooth_errors"] = teeth = _save_tooth_errors(analysis, store, run_id)
+    if not analysis.tooth_correction_applied and not teeth["kept_for_next_runs"]:
+        analysis.notes.insert(0,
+            "the wheel's tooth spacing errors are not known yet (no earlier run of this rig learnt "
+            "them, and this run had no usable overrun fuel cut): firing intervals are not "
+            "corrected for them and may be off by several degrees")
     if teeth["kept_for_next_runs"] and not analysis.tooth_correction_applied:
         analysis.notes.insert(0,
             f"tooth spacing errors of {teeth['learnt_rms_deg']:.3f} deg rms were learnt on this "
