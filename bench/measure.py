@@ -149,6 +149,9 @@ def _guard(rows_fn: Callable[[], list[Row]], figures: list[tuple[str, str | None
             return rows_fn()
         except (CrankbeatError, OSError, subprocess.SubprocessError) as exc:
             reason = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        except Exception as exc:  # noqa: BLE001 - a part that breaks must not stop the bench
+            first = str(exc).splitlines()[0] if str(exc) else ""
+            reason = f"{type(exc).__name__}: {first}".rstrip(": ")
     return [missing(f, reason, op=op, limit=lim, unit=u) for f, op, lim, u in figures]
 
 
@@ -346,7 +349,10 @@ def profile_text(b: Bench) -> str:
         return f"profile not made: {reason}"
     from bench import profiling
 
-    ride = b.ride(f"lap-{b.profile_minutes}")
+    try:
+        ride = b.ride(f"lap-{b.profile_minutes}")
+    except CrankbeatError as exc:
+        return f"profile not made: {exc}"
     stats = b.out / "profile.pstats"
     store = b.out / "profile.db"
     argv = [script("bench_replay.py"), "--rig", b.rig, "--can", str(ride.can), "--store",
@@ -354,7 +360,10 @@ def profile_text(b: Bench) -> str:
     for name, p in ride.captures.items():
         argv += ["--accel", f"{name}={p}"]
     b.say(f"profile: cProfile of the {b.profile_minutes} min replay")
-    run = run_child(argv)
+    try:
+        run = run_child(argv)
+    except (OSError, subprocess.SubprocessError) as exc:
+        return f"profile not made: {exc}"
     _remove_store(store)
     if not run.ok:
         return f"profile not made: {run.error}"
