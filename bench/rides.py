@@ -112,6 +112,13 @@ def _load(folder: Path) -> RideFiles | None:
     return files
 
 
+def _prune(root: Path, scenario: Scenario, keep: Path) -> None:
+    """Remove the copies of this scenario made by an older simulator: never read again."""
+    for stale in root.glob(f"{scenario.name}-seed{scenario.seed}-*"):
+        if stale != keep and stale.is_dir():
+            shutil.rmtree(stale, ignore_errors=True)
+
+
 def ensure_ride(scenario: Scenario, root: Path, *, rig: str = "m1",
                 timeout_s: float = 1800.0) -> RideFiles:
     """The ride of ``scenario`` under ``root``, generated first when it is not cached.
@@ -124,6 +131,7 @@ def ensure_ride(scenario: Scenario, root: Path, *, rig: str = "m1",
     folder = root / f"{scenario.name}-seed{scenario.seed}-{ride_key(rig, scenario)}"
     cached = _load(folder)
     if cached is not None:
+        _prune(root, scenario, folder)
         return cached
     root.mkdir(parents=True, exist_ok=True)
     tmp = root / f".tmp-{folder.name}-{os.getpid()}"
@@ -140,9 +148,7 @@ def ensure_ride(scenario: Scenario, root: Path, *, rig: str = "m1",
     if folder.exists():
         shutil.rmtree(folder)
     tmp.rename(folder)
-    for stale in root.glob(f"{scenario.name}-seed{scenario.seed}-*"):
-        if stale != folder and stale.is_dir():  # made by an older simulator: never read again
-            shutil.rmtree(stale, ignore_errors=True)
+    _prune(root, scenario, folder)
     files = _load(folder)
     if files is None:
         raise CrankbeatError(f"generating ride {scenario.name!r} left no manifest in {folder}")
