@@ -102,7 +102,7 @@ class MisfireSettings:
     threshold: float | None = None
     default_threshold: float = 0.6
     threshold_min: float = 0.35
-    threshold_max: float = 20.0
+    threshold_max: float = 0.85
     spread_k: float = 4.5
     misfire_share: float = 0.6
     min_cell_events: int = 24
@@ -114,7 +114,7 @@ class MisfireSettings:
     fuel_cut_work_bar: float = 1.0
     fuel_cut_hold_s: float = 0.15
     holdoff_events: int | None = None
-    holdoff_margin: float = 0.25
+    holdoff_margin: float = 0.15
     block: int = 128
     min_misfires: int = 5
     z_local: float = 0.0
