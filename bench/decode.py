@@ -24,9 +24,11 @@ class DecodeCount:
     samples: int  # accelerometer samples, all sensors
 
 
-def _decode_once(stream, rig, can_path: str, accel: dict[str, str]) -> DecodeCount:
+def _decode_once(stream, rig, can_path: str, accel: dict[str, str], chunk_s: float | None
+                 ) -> DecodeCount:
     count = DecodeCount(0, 0, 0, 0, 0)
-    with stream.replay(rig, can_path, accel) as chunks:
+    options = {} if chunk_s is None else {"chunk_s": chunk_s}
+    with stream.replay(rig, can_path, accel, **options) as chunks:
         for chunk in chunks:
             count.chunks += 1
             count.tooth_frames += len(chunk.teeth)
@@ -37,9 +39,14 @@ def _decode_once(stream, rig, can_path: str, accel: dict[str, str]) -> DecodeCou
 
 
 def decode(rig, can_path: str | os.PathLike, accel: dict[str, str | os.PathLike] | None = None,
-           *, repeat: int = 1) -> tuple[float, float, DecodeCount]:
-    """Best wall and CPU times (s) of ``repeat`` decode passes, and what a pass delivered."""
+           *, repeat: int = 1, chunk_s: float | None = None
+           ) -> tuple[float, float, DecodeCount]:
+    """Best wall and CPU times (s) of ``repeat`` decode passes, and what a pass delivered.
+
+    ``chunk_s`` None keeps the stream's default chunk length (what a replay uses).
+    """
     from logger import stream  # imported before the clock starts: a replay has it loaded
 
     acc = {k: os.fspath(v) for k, v in (accel or {}).items()}
-    return best_of(lambda: _decode_once(stream, rig, os.fspath(can_path), acc), repeat=repeat)
+    return best_of(lambda: _decode_once(stream, rig, os.fspath(can_path), acc, chunk_s),
+                   repeat=repeat)
