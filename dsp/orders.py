@@ -264,11 +264,13 @@ class AngleResampler:
         fj = np.concatenate((self._fine_j, j))
         ft = np.concatenate((self._fine_t, t))
         fx = np.concatenate((self._fine_x, vals))
-        # a hole ends what the FIR can use: finish the run before the last hole
-        holes = np.flatnonzero(np.diff(fj) != 1)
+        # a hole ends what the FIR can use: finish each run before a hole (one push can bring
+        # several holes, e.g. after lost CAN frames; every run must be contiguous)
+        holes = np.flatnonzero(np.diff(fj) != 1) + 1
+        for a, b in zip(np.r_[0, holes[:-1]], holes):
+            self._out.append(self._decimate(fj[a:b], ft[a:b], fx[a:b]))
         if len(holes):
-            h = holes[-1] + 1
-            self._out.append(self._decimate(fj[:h], ft[:h], fx[:h]))
+            h = holes[-1]
             fj, ft, fx = fj[h:], ft[h:], fx[h:]
         self._fine_j, self._fine_t, self._fine_x = fj, ft, fx
 

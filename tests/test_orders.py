@@ -215,3 +215,21 @@ def test_rephased_crank_jump_is_not_bridged():
     late_s, late_r = s.t > te[420], ref.t > te[420]
     assert np.array_equal(s.index[late_s], ref.index[late_r] + 64)
     assert np.allclose(s.x[late_s], ref.x[late_r], atol=1e-9)
+
+
+def test_several_holes_in_one_push_keep_samples_and_grid_together():
+    # Lost CAN frames leave untrusted edges; one push may carry several such holes. Each grid
+    # point must keep its own sample (index, time and value rows stay aligned) and no point is
+    # made up across a hole.
+    ts, x1, te, th = sweep(3000, 3000.001, 3.0, {1.0: 1.0})
+    x = np.stack((x1, x1, x1), axis=1)
+    valid = np.ones(len(te), bool)
+    for k in (900, 1500, 2100, 2700):
+        valid[k] = False
+    out = resample_to_angle(ts, x, te, th, fs=FS, valid=valid)
+    assert len(out.index) == len(out.t) == len(out.x)
+    assert len(np.flatnonzero(np.diff(out.index) != 1)) == 4
+    # the grid values are the signal itself: cos θ at each grid angle (order 1, amplitude 1;
+    # the resampler's default grid is 64 points per revolution)
+    theta = np.deg2rad(out.index * 360.0 / 64)
+    np.testing.assert_allclose(out.x[:, 0], np.cos(theta), atol=0.02)
