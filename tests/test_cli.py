@@ -265,3 +265,20 @@ def test_ride_input_errors(capsys, tmp_path):
     code, _, err = run_cli(capsys, "ride", "--rig", "m1", "--port", "bar_left",
                            "--store", str(tmp_path / "r.db"))
     assert code == 2 and "expected NAME=VALUE" in err
+
+
+def test_an_internal_failure_is_one_error_line_not_a_traceback(tmp_path, capsys, monkeypatch):
+    # a bug inside a command must reach the user as one line naming the failure and where,
+    # with exit code 70 (EX_SOFTWARE, sysexits.h); CRANKBEAT_DEBUG=1 gives the full trace
+    from logger.cli import cmd_runs, main as cli
+
+    def broken(args):
+        raise ZeroDivisionError("simulated bug")
+
+    monkeypatch.setattr(cmd_runs, "run", broken)
+    monkeypatch.delenv("CRANKBEAT_DEBUG", raising=False)
+    rc = cli.main(["runs", "--store", str(tmp_path / "s.db")])
+    err = capsys.readouterr().err
+    assert rc == 70
+    assert err.count("\n") == 1 and err.startswith("error: internal error")
+    assert "ZeroDivisionError: simulated bug" in err and "Traceback" not in err

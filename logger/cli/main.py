@@ -15,6 +15,8 @@ import importlib
 import os
 import sqlite3
 import sys
+import traceback
+from pathlib import Path
 from types import ModuleType
 
 from dsp.errors import CrankbeatError, StoreError
@@ -68,6 +70,10 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+#: Exit code of an unexpected failure inside crankbeat (EX_SOFTWARE of sysexits.h).
+INTERNAL_ERROR_EXIT = 70
+
+
 def main(argv: list[str] | None = None) -> int:
     """Run one command; return its exit code (argv without the program name)."""
     try:
@@ -96,6 +102,14 @@ def main(argv: list[str] | None = None) -> int:
         except (OSError, ValueError):
             pass
         return 0
+    except Exception as exc:  # a bug of ours: one line for the rider, the trace for developers
+        if os.environ.get("CRANKBEAT_DEBUG"):
+            raise
+        where = traceback.extract_tb(exc.__traceback__)[-1]
+        print(f"error: internal error, please report it: {type(exc).__name__}: {exc} "
+              f"(at {Path(where.filename).name}:{where.lineno}; set CRANKBEAT_DEBUG=1 for the "
+              "full trace)", file=sys.stderr)
+        return INTERNAL_ERROR_EXIT
 
 
 def _error_text(exc: BaseException) -> str:
