@@ -189,7 +189,10 @@ class _Board:
             sos_w = weighting_sos(kind, fs) if kind != "none" else None  # type: ignore[arg-type]
             band = "Wh" if kind == "none" else kind
             sos_u = band_limiting_sos(band, fs)  # type: ignore[arg-type]
-            self.groups.append((kind, axes, sos_w, sos_u))
+            # steady-state states for a unit input, scaled at each (re)start after a gap
+            zi1_w = None if sos_w is None else signal.sosfilt_zi(sos_w)[:, :, None]
+            zi1_u = signal.sosfilt_zi(sos_u)[:, :, None]
+            self.groups.append((kind, axes, sos_w, sos_u, zi1_w, zi1_u))
         self.zi: list[tuple[np.ndarray | None, np.ndarray] | None] = [None] * len(self.groups)
         n_bands = len(edges) - 1
         self.sq_w = np.zeros((n_bands, 3))
@@ -217,12 +220,11 @@ class _Board:
         starts = np.flatnonzero(gap)
         bounds = np.r_[0, starts[starts > 0], len(x)]
         for a, b in zip(bounds[:-1], bounds[1:]):
-            for g, (_, axes, sos_w, sos_u) in enumerate(self.groups):
+            for g, (_, axes, sos_w, sos_u, zi1_w, zi1_u) in enumerate(self.groups):
                 seg = x[a:b, axes]
                 if gap[a] or self.zi[g] is None:  # start settled on the present value
                     x0 = seg[0][None, None, :]
-                    zw0 = None if sos_w is None else signal.sosfilt_zi(sos_w)[:, :, None] * x0
-                    self.zi[g] = (zw0, signal.sosfilt_zi(sos_u)[:, :, None] * x0)
+                    self.zi[g] = (None if zi1_w is None else zi1_w * x0, zi1_u * x0)
                 zw, zu = self.zi[g]  # type: ignore[misc]
                 yu[a:b, axes], zu = signal.sosfilt(sos_u, seg, axis=0, zi=zu)
                 if sos_w is not None:

@@ -88,7 +88,7 @@ def test_chunking_does_not_change_a_single_number(ride):
         pipeline._mask(ev, masks + out.masked_spans)
         return ev
 
-    a, b = events(0.2), events(0.73)
+    a, b = events(0.2), events(pipeline.REPLAY_CHUNK_S)
     assert len(a) == len(b) > 0
     for name in a.dtype.names:
         np.testing.assert_array_equal(a[name], b[name], err_msg=name)
@@ -123,7 +123,7 @@ def test_tooth_errors_learnt_on_fuel_cut_correct_the_rest_of_the_run_and_the_nex
         segments=(
             Segment(3.0, gear=3, rpm=(4500, 4500), throttle=(35, 35)),
             Segment(4.0, gear=3, rpm=(6500, 2500), throttle=(0, 0)),  # overrun: fuel cut
-            Segment(6.0, gear=3, rpm=(4000, 5000), throttle=(35, 40)),
+            Segment(9.0, gear=3, rpm=(4000, 5000), throttle=(35, 40)),
         ),
         wheel=WheelSpec(error_rms_deg=0.1),
         seed=9,

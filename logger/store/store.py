@@ -436,11 +436,14 @@ class Store:
                 f"add_order_map: amplitude shape {amp.shape} does not match "
                 f"{len(lo)} bands x {len(orders)} orders"
             )
+        visited = ~np.all(np.isnan(amp), axis=1)
+        # NaN (no block of this order in a visited band) is stored as NULL
+        vals = np.where(np.isfinite(amp), amp, np.nan).tolist()
+        ords = orders.tolist()
         recs = [
-            (sensor, axis, float(lo[b]), float(hi[b]), float(orders[k]), jsonable(float(amp[b, k])))
-            for b in range(len(lo))
-            if not np.all(np.isnan(amp[b]))
-            for k in range(len(orders))
+            (sensor, axis, float(lo[b]), float(hi[b]), ords[k], None if v != v else v)
+            for b in np.flatnonzero(visited).tolist()
+            for k, v in enumerate(vals[b])
         ]
         cols = ("sensor", "axis", "rpm_lo", "rpm_hi", "ord", "amplitude")
         return self._insert("order_map", cols, run_id, recs)
