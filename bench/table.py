@@ -13,6 +13,8 @@ import operator
 from dataclasses import asdict, dataclass
 from typing import Literal
 
+from dsp.errors import InputError
+
 Op = Literal[">=", ">", "<=", "<"]
 Status = Literal["PASS", "MISS", "INFO", "NOT MEASURED"]
 
@@ -47,9 +49,10 @@ class Row:
 
     def __post_init__(self) -> None:
         if self.op is not None and self.op not in _OPS:
-            raise ValueError(f"row {self.figure!r}: op must be one of {sorted(_OPS)}, got {self.op!r}")
+            raise InputError(f"row {self.figure!r}: op must be one of {sorted(_OPS)}, "
+                             f"got {self.op!r}")
         if (self.op is None) != (self.limit is None):
-            raise ValueError(f"row {self.figure!r}: give both op and limit, or neither")
+            raise InputError(f"row {self.figure!r}: give both op and limit, or neither")
 
     @property
     def status(self) -> Status:
