@@ -47,6 +47,8 @@ COMMIT_EVERY_S = 0.5
 #: Chunk length of a replay on the CAN clock, s. Every stage gives the same numbers whatever the
 #: chunking (tests hold them equal); longer chunks than the live 0.2 s spare per-call overheads.
 REPLAY_CHUNK_S = 2.0
+#: Chunk length of a live ride, s: short, since an event reaches the store a chunk after its data.
+LIVE_CHUNK_S = 0.1
 #: How long events wait for the rough-road verdict before they are summarised without it, s
 #: of CAN time (a board that fell silent must not hold the summaries back for ever).
 MASK_WAIT_LIMIT_S = 5.0
@@ -325,7 +327,8 @@ def _mask(events: np.ndarray, spans: list[tuple[float, float]]) -> np.ndarray:
 
 # ------------------------------------------------------------------------------ driving
 def _drive(analysis: RunAnalysis, chunks: Iterable[Chunk], store: Store, run_id: int, *,
-           on_step: Callable[[StepOutput, Chunk], None] | None = None) -> None:
+           on_step: Callable[[StepOutput, Chunk], None] | None = None,
+           commit_every_s: float = COMMIT_EVERY_S) -> None:
     last_commit = time.monotonic()
     for chunk in chunks:
         out = analysis.push(chunk)
@@ -333,7 +336,7 @@ def _drive(analysis: RunAnalysis, chunks: Iterable[Chunk], store: Store, run_id:
         if on_step is not None:
             on_step(out, chunk)
         now = time.monotonic()
-        if now - last_commit >= COMMIT_EVERY_S:
+        if now - last_commit >= commit_every_s:
             store.commit()
             last_commit = now
     out = analysis.finish()
@@ -495,7 +498,7 @@ def analyse_live(
     rig: Rig, bus: CanBus | None, ports: dict[str, str], store: Store, *,
     record_dir: str | Path | None = None, display=None,
     stop_event: threading.Event | None = None, label: str | None = None,
-    notes: str | None = None, odometer_km: float | None = None, chunk_s: float = 0.2,
+    notes: str | None = None, odometer_km: float | None = None, chunk_s: float = LIVE_CHUNK_S,
 ) -> RunResult:
     """Analyse a live ride until ``stop_event`` is set (or the bus closes).
 
@@ -528,7 +531,8 @@ def analyse_live(
     try:
         with stream.live(rig, bus, ports, record_dir=record_dir, chunk_s=chunk_s,
                          stop=stop_event) as chunks:
-            _drive(analysis, chunks, store, run_id, on_step=on_step)
+            # every chunk is committed at once: a reader sees each event a chunk after its data
+            _drive(analysis, chunks, store, run_id, on_step=on_step, commit_every_s=0.0)
     except KeyboardInterrupt:
         status = "complete"  # the rider stopped the ride: what was analysed is the run
     summary = _finish(analysis, store, run_id, status=status)

@@ -44,7 +44,7 @@ from logger.serial.port import PortReader
 
 Record = tuple[float, bytes]
 #: Live: how long after a chunk's end the host clock must be before its serial reads are taken.
-LIVE_SERIAL_MARGIN_S = 0.1
+LIVE_SERIAL_MARGIN_S = 0.03
 #: Live: a wait longer than this means the bus stamps with another clock: do not wait then.
 LIVE_MAX_WAIT_S = 1.0
 #: Frames per CAN batch read from a source.
