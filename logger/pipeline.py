@@ -40,7 +40,7 @@ from logger import stream
 from logger.chunks import Chunk, StreamHealth
 from logger.rig import list_layouts, load_layout
 from logger.rig.model import CanBus, Rig
-from logger.run_summary import RunSummary
+from logger.run_summary import WINDOW_KINDS, RunSummary
 from logger.store import Store, sha256_file
 
 COMMIT_EVERY_S = 0.5
@@ -332,7 +332,7 @@ def _drive(analysis: RunAnalysis, chunks: Iterable[Chunk], store: Store, run_id:
     last_commit = time.monotonic()
     for chunk in chunks:
         out = analysis.push(chunk)
-        _write(store, run_id, out)
+        _write(store, run_id, out, analysis.summary)
         if on_step is not None:
             on_step(out, chunk)
         now = time.monotonic()
@@ -340,23 +340,26 @@ def _drive(analysis: RunAnalysis, chunks: Iterable[Chunk], store: Store, run_id:
             store.commit()
             last_commit = now
     out = analysis.finish()
-    _write(store, run_id, out)
+    _write(store, run_id, out, analysis.summary)
     store.commit()
 
 
-def _write(store: Store, run_id: int, out: StepOutput) -> None:
+def _write(store: Store, run_id: int, out: StepOutput, summary: RunSummary) -> None:
     if len(out.events):
         store.add_events(run_id, out.events)
     if out.masked_spans:
         store.mask_events(run_id, out.masked_spans)
+    for kind in WINDOW_KINDS:  # stored as their blocks complete: memory does not grow
+        rows = summary.take_windows(kind)
+        if rows:
+            store.add_windows(run_id, [{k: v for k, v in r.items() if k != "complete"}
+                                       for r in rows], kind=kind)
 
 
 def _finish(analysis: RunAnalysis, store: Store, run_id: int, *, status: str = "complete"
             ) -> dict:
     s = analysis.summary
     analysis.notes += s.score_layouts(analysis.events.profile)
-    for kind in ("rev200", "rev1000"):
-        store.add_windows(run_id, s.windows(kind), kind=kind)
     store.add_intervals(run_id, s.interval_rows())
     summary = s.as_dict()
     vib = getattr(analysis, "vib_summary", None)

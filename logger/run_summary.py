@@ -85,6 +85,7 @@ class RunSummary:
     _block_index: int | None = None
     _counts: dict[str, np.ndarray] = field(default_factory=dict)
     _windows: dict[str, list[dict]] = field(default_factory=lambda: {k: [] for k in WINDOW_KINDS})
+    _worst: dict[str, float] = field(default_factory=dict)
     _intervals: dict[int, _IntervalSum] = field(default_factory=dict)
     _contrib: dict[int, list[float]] = field(default_factory=dict)
     _scores: list[tuple[str, float]] = field(default_factory=list)
@@ -135,7 +136,12 @@ class RunSummary:
             self._rpm[2] += float(rpm.sum())
             self._rpm[3] += rpm.size
         for kind, revs in WINDOW_KINDS.items():
-            self._windows[kind] += self._window_rows(ev, revs)
+            rows = self._window_rows(ev, revs)
+            self._windows[kind] += rows
+            rates = [r["rate"] for r in rows
+                     if r["cylinder"] == 0 and r.get("complete") and math.isfinite(r["rate"])]
+            if rates:
+                self._worst[kind] = max(self._worst.get(kind, -math.inf), max(rates))
         iv = ev if self._intervals_from is None else ev[ev["t"] >= self._intervals_from]
         for r in interval_check(iv, self.engine, tolerance_deg=self.tolerance_deg):
             acc = self._intervals.setdefault(
@@ -177,8 +183,10 @@ class RunSummary:
     def finish(self) -> None:
         self._close_block()
 
-    def windows(self, kind: str) -> list[dict]:
-        return self._windows[kind]
+    def take_windows(self, kind: str) -> list[dict]:
+        """Window rows summarised since the last call (the caller stores them; memory stays flat)."""
+        rows, self._windows[kind] = self._windows[kind], []
+        return rows
 
     def interval_rows(self) -> list[dict]:
         return [self._intervals[k].row(self.tolerance_deg) for k in sorted(self._intervals,
@@ -222,11 +230,7 @@ class RunSummary:
                 "contribution": contrib[0] / contrib[1] if contrib and contrib[1] else None,
             })
         total = int(counted.sum())
-        worst = {}
-        for kind in WINDOW_KINDS:
-            rates = [r["rate"] for r in self._windows[kind]
-                     if r["cylinder"] == 0 and r.get("complete") and math.isfinite(r["rate"])]
-            worst[kind] = max(rates) if rates else None
+        worst = {kind: self._worst.get(kind) for kind in WINDOW_KINDS}
         scores = self.layout_scores()
         best = scores[0][0] if scores else None
         # layouts with the same interval pattern cannot be told apart by it (270° twin, 90° V)
