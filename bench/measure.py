@@ -31,8 +31,6 @@ P99_MAX_MS = 250.0
 CPU_MAX_PCT = 30.0
 RSS_MAX_MB = 300.0
 RSS_GROWTH_MAX = 1.10
-#: Chunk length of the informative decode pass that shows the per-chunk share of the cost, s.
-LONG_CHUNK_S = 2.0
 #: Linear cost: the time per ride-minute of a long ride may exceed a shorter one's by this much.
 PER_MINUTE_GROWTH_MAX = 1.20
 
@@ -236,29 +234,33 @@ def decode_rows(b: Bench) -> list[Row]:
 
 def _decode_rows(b: Bench) -> list[Row]:
     from bench.decode import decode
+    from logger.pipeline import LIVE_CHUNK_S, REPLAY_CHUNK_S
     from logger.rig import load_rig
 
     pycan_s, _split_s, ride = _floors(b)
-    b.say(f"decode only: stream.replay of the {b.main_minutes} min ride, no analysis "
-          f"(best of {b.repeat})")
-    wall, cpu, count = decode(load_rig(b.rig), ride.can, ride.captures, repeat=b.repeat)
+    b.say(f"decode only: stream.replay of the {b.main_minutes} min ride in the replay's "
+          f"{REPLAY_CHUNK_S:g} s chunks, no analysis (best of {b.repeat})")
+    wall, cpu, count = decode(load_rig(b.rig), ride.can, ride.captures, repeat=b.repeat,
+                              chunk_s=REPLAY_CHUNK_S)
     b.say(f"  {cpu:.2f} s CPU ({wall:.2f} s wall): {count.can_frames:,} CAN frames, "
           f"{count.samples:,} samples")
-    b.raw["decode"] = {"cpu_s": cpu, "wall_s": wall, **count.__dict__}
-    # the same pass with longer chunks shows how much of the cost is per chunk, not per frame
-    _w, cpu_long, count_long = decode(load_rig(b.rig), ride.can, ride.captures, repeat=1,
-                                      chunk_s=LONG_CHUNK_S)
-    b.raw["decode_long_chunks"] = {"chunk_s": LONG_CHUNK_S, "cpu_s": cpu_long,
-                                   "chunks": count_long.chunks}
-    return [Row("decode CAN log + capture: speed-up over python-can iteration",
+    b.raw["decode"] = {"cpu_s": cpu, "wall_s": wall, "chunk_s": REPLAY_CHUNK_S,
+                       **count.__dict__}
+    # the same pass in live-sized chunks shows how much of the cost is per chunk, not per frame
+    _w, cpu_short, count_short = decode(load_rig(b.rig), ride.can, ride.captures, repeat=1,
+                                        chunk_s=LIVE_CHUNK_S)
+    b.raw["decode_live_chunks"] = {"chunk_s": LIVE_CHUNK_S, "cpu_s": cpu_short,
+                                   "chunks": count_short.chunks}
+    return [Row(f"decode CAN log + capture ({REPLAY_CHUNK_S:g} s replay chunks): speed-up over "
+                "python-can iteration",
                 f"{pycan_s:.2f} s / {cpu:.2f} s CPU = {pycan_s / cpu:.2f}x "
                 f"({count.can_frames:,} frames, {count.samples:,} samples, "
                 f"{count.chunks:,} chunks)", value=pycan_s / cpu,
                 op=">=", limit=DECODE_SPEEDUP_MIN, unit="x"),
-            Row(f"decode with {LONG_CHUNK_S:g} s chunks: speed-up over python-can iteration",
-                f"{pycan_s:.2f} s / {cpu_long:.2f} s CPU = {pycan_s / cpu_long:.2f}x "
-                f"({count_long.chunks:,} chunks)",
-                value=pycan_s / cpu_long)]
+            Row(f"decode in {LIVE_CHUNK_S:g} s live chunks: speed-up over python-can iteration",
+                f"{pycan_s:.2f} s / {cpu_short:.2f} s CPU = {pycan_s / cpu_short:.2f}x "
+                f"({count_short.chunks:,} chunks)",
+                value=pycan_s / cpu_short)]
 
 
 def memory_rows(b: Bench) -> list[Row]:
