@@ -3,11 +3,10 @@
 from __future__ import annotations
 
 import argparse
-import importlib
 import sys
 from pathlib import Path
 
-from dsp.errors import CrankbeatError, DuplicateRunError, SourceError, UsageError
+from dsp.errors import DuplicateRunError, SourceError, UsageError
 from logger.cli.common import add_store_argument, open_store, parse_assignment, print_json, stderr
 from logger.cli.summary import render_run, run_digest
 from logger.store import sha256_file
@@ -95,14 +94,10 @@ def run(args: argparse.Namespace) -> int:
 
 
 def _analyse(args, rig, can_path: Path, accel: dict[str, Path], store) -> int:
-    try:
-        pipeline = importlib.import_module("logger.pipeline")
-    except ModuleNotFoundError as exc:
-        if exc.name != "logger.pipeline":
-            raise
-        raise CrankbeatError("the analysis pipeline (logger.pipeline) is missing") from None
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+
+    from logger import pipeline  # imported here: it pulls in every dsp stage
 
     console = Console(file=sys.stderr)
     with Progress(TextColumn("replay"), BarColumn(), TextColumn("{task.percentage:>3.0f}%"),

@@ -3,12 +3,11 @@
 from __future__ import annotations
 
 import argparse
-import importlib
 import signal
 import threading
 from pathlib import Path
 
-from dsp.errors import CrankbeatError, UsageError
+from dsp.errors import UsageError
 from logger.cli.common import add_store_argument, open_store, parse_assignment, stderr
 from logger.cli.summary import render_run
 from logger.live import LiveDisplay, caution_text
@@ -66,12 +65,7 @@ def run(args: argparse.Namespace) -> int:
             record_dir.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
             raise UsageError(f"--record {record_dir}: cannot create it ({exc.strerror})") from None
-    try:
-        pipeline = importlib.import_module("logger.pipeline")
-    except ModuleNotFoundError as exc:
-        if exc.name != "logger.pipeline":
-            raise
-        raise CrankbeatError("the analysis pipeline (logger.pipeline) is missing") from None
+    from logger import pipeline  # imported here: it pulls in every dsp stage
 
     stop = threading.Event()
 

@@ -20,13 +20,12 @@ from logger.rig.model import (
     Rig,
     SerialField,
     SerialSensor,
-    Wheel,
 )
 from logger.rig.validate import element_bits, occupied_bits
 
 __all__ = [
     "CanBus", "CanMessage", "CanSignal", "Checksum", "Limits", "Rig", "SerialField",
-    "SerialSensor", "Wheel", "element_bits", "list_layouts", "list_presets", "load_layout",
+    "SerialSensor", "element_bits", "list_layouts", "list_presets", "load_layout",
     "load_rig", "occupied_bits", "parse_rig", "resolve_can_bus", "resolve_serial_port",
     "serial_port_env",
 ]

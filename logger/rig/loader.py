@@ -32,7 +32,8 @@ from importlib import resources
 from pathlib import Path
 from typing import get_args
 
-from dsp.errors import RigError
+from dsp.crank import ToothWheel
+from dsp.errors import InputError, RigError
 from logger.rig.layouts import read_rig_engine
 from logger.rig.model import (
     CAN_ROLES,
@@ -47,7 +48,6 @@ from logger.rig.model import (
     Rig,
     SerialField,
     SerialSensor,
-    Wheel,
 )
 from logger.rig.schema import Problems, Section, parse_toml
 from logger.rig.validate import check_messages, check_sensor
@@ -161,7 +161,7 @@ def _read_limits(sec: Section | None) -> Limits | None:
     return Limits(**kw)
 
 
-def _read_wheel(sec: Section | None) -> Wheel | None:
+def _read_wheel(sec: Section | None) -> ToothWheel | None:
     if sec is None:
         return None
     before = len(sec.problems)
@@ -180,8 +180,12 @@ def _read_wheel(sec: Section | None) -> Wheel | None:
     sec.finish()
     if len(sec.problems) > before:
         return None
-    return Wheel(teeth=teeth, missing=missing, tdc_offset_deg=tdc, cam=cam,
-                 cam_active_level=level)
+    try:
+        return ToothWheel(teeth=teeth, missing=missing, tdc_offset_deg=tdc, cam=cam,
+                          cam_active_level=level)
+    except InputError as exc:  # what the crank reconstruction can follow (e.g. the gap's size)
+        sec.problem("teeth", str(exc), "a wheel the crank reconstruction can follow")
+        return None
 
 
 def _read_can(sec: Section | None) -> tuple[CanBus | None, tuple[CanMessage, ...] | None]:
@@ -273,7 +277,8 @@ def _read_signal(sec: Section) -> CanSignal | None:
                      saturated_raw=saturated, modulo=modulo)  # type: ignore[arg-type]
 
 
-def _check_rig_roles(wheel: Wheel, messages: tuple[CanMessage, ...], problems: Problems) -> None:
+def _check_rig_roles(wheel: ToothWheel, messages: tuple[CanMessage, ...],
+                     problems: Problems) -> None:
     roles = {s.role for m in messages for s in m.signals}
     if "tooth_periods" not in roles:
         problems.add("can.message", "no signal has role 'tooth_periods'",

@@ -9,6 +9,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from typing import Literal
 
+from dsp.crank import ToothWheel
 from dsp.engine import Engine
 
 ByteOrder = Literal["little", "big"]
@@ -126,7 +127,7 @@ class SerialSensor:
     name: str
     location: Location  # picks the weighting: bar/footpeg -> Wh, seat -> Wk/Wd
     mount: str  # free text label, e.g. "left handlebar clamp"
-    axes: tuple[str, str, str]  # direction of sensor x, y, z on the bike: "forward", "left", "up", ...
+    axes: tuple[str, str, str]  # where sensor x, y, z point on the bike: "forward", "left", ...
     port: str
     baud: int
     sample_rate_hz: float
@@ -143,32 +144,6 @@ class SerialSensor:
             if f.role == role:
                 return f
         return None
-
-
-@dataclass(frozen=True)
-class Wheel:
-    """Crank trigger wheel and cam sensor.
-
-    ``teeth`` counts tooth positions including the missing ones (60 for a 60-2 wheel).
-    Tooth 0 is the first tooth after the gap. ``tdc_offset_deg`` is how far cylinder 1's TDC
-    lies after the falling edge of tooth 0, in crank degrees.
-    ``cam`` is ``"window"`` (level 1 during the crank revolution that contains cylinder 1's firing
-    TDC, revolution counted from tooth 0) or ``"none"``. ``cam_active_level`` inverts it.
-    """
-
-    teeth: int = 60
-    missing: int = 2
-    tdc_offset_deg: float = 96.0
-    cam: Literal["window", "none"] = "window"
-    cam_active_level: int = 1
-
-    @property
-    def real_teeth(self) -> int:
-        return self.teeth - self.missing
-
-    @property
-    def pitch_deg(self) -> float:
-        return 360.0 / self.teeth
 
 
 @dataclass(frozen=True)
@@ -190,7 +165,7 @@ class Rig:
     description: str
     source: str  # file path or "preset:NAME"
     engine: Engine
-    wheel: Wheel
+    wheel: ToothWheel  # the dsp's own wheel description: one definition for both packages
     can_bus: CanBus
     messages: tuple[CanMessage, ...]
     sensors: tuple[SerialSensor, ...]

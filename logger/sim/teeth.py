@@ -9,16 +9,16 @@ from __future__ import annotations
 
 import numpy as np
 
-from logger.rig.model import Wheel
+from dsp.crank import ToothWheel
 
 
-def wheel_errors(wheel: Wheel, rms_deg: float, rng: np.random.Generator) -> np.ndarray:
+def wheel_errors(wheel: ToothWheel, rms_deg: float, rng: np.random.Generator) -> np.ndarray:
     """Spacing error of each physical tooth's edge, degrees, zero mean, shape (real_teeth,)."""
     err = rng.standard_normal(wheel.real_teeth) * rms_deg
     return err - err.mean() if rms_deg > 0 else np.zeros(wheel.real_teeth)
 
 
-def edges_between(lo_deg: float, hi_deg: float, wheel: Wheel, errors: np.ndarray):
+def edges_between(lo_deg: float, hi_deg: float, wheel: ToothWheel, errors: np.ndarray):
     """Physical tooth edges with unwrapped angle in [lo, hi).
 
     Returns
@@ -39,7 +39,7 @@ def edges_between(lo_deg: float, hi_deg: float, wheel: Wheel, errors: np.ndarray
     return ang[keep], tooth[keep].astype(np.int64), rev[keep].astype(np.int64)
 
 
-def cam_levels(rev: np.ndarray, wheel: Wheel) -> np.ndarray:
+def cam_levels(rev: np.ndarray, wheel: ToothWheel) -> np.ndarray:
     """Cam level at teeth of wheel revolutions ``rev`` (int8; -1 when the wheel has no cam).
 
     ``window``: the active level during the revolution (from tooth 0) holding cylinder 1's firing
