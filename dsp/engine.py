@@ -74,7 +74,8 @@ class Engine:
                 raise InputError(f"{label} has {len(seq)} entries, expected {n} (one per cylinder)")
         if sorted(self.firing_order) != list(range(1, n + 1)):
             raise InputError(
-                f"firing_order {list(self.firing_order)} must name each cylinder 1..{n} exactly once"
+                f"firing_order {list(self.firing_order)} must name each cylinder 1..{n} "
+                "exactly once"
             )
         if self.firing_deg is not None and len(self.firing_deg) != n:
             raise InputError(f"firing_deg has {len(self.firing_deg)} entries, expected {n}")

@@ -34,9 +34,9 @@ EVENT_DTYPE = np.dtype(
         ("threshold", "f8"),  # decision threshold applied to ``metric``
         ("verdict", "i1"),  # FIRED, MISFIRE, MASKED, UNUSABLE or FUEL_CUT
         ("confidence", "f4"),  # 0..1, how clear the verdict is
-        ("interval_deg", "f8"),  # observed crank angle since the previous firing event (NaN if none)
+        ("interval_deg", "f8"),  # observed crank angle since the previous firing (NaN: none)
         ("expected_interval_deg", "f8"),  # what the layout promises for that interval
-        ("contribution", "f8"),  # relative speed rise over the expansion window (1.0 = cylinder mean)
+        ("contribution", "f8"),  # relative work of the expansion window (1.0 = engine mean)
     ]
 )
 

@@ -82,7 +82,7 @@ def piston_velocity(theta_deg: ArrayLike, omega: ArrayLike, *, r: float, l: floa
 def piston_acceleration(
     theta_deg: ArrayLike, omega: ArrayLike, *, r: float, l: float, alpha: ArrayLike = 0.0
 ) -> np.ndarray:
-    """Piston acceleration, m/s²: a = ω² d²s/dθ² + α ds/dθ (α: crank angular acceleration, rad/s²)."""
+    """Piston acceleration, m/s²: a = ω² d²s/dθ² + α ds/dθ (α: crank acceleration, rad/s²)."""
     omega = np.asarray(omega, dtype=float)
     return omega**2 * velocity_ratio_derivative(theta_deg, r=r, l=l) + np.asarray(
         alpha, dtype=float

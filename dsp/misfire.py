@@ -242,9 +242,9 @@ class _Cells:
         if self.mis_fill[c, r, ld] >= s.min_misfires:
             self.mis[c, r, ld] = float(_fmedian(self.mis_metric[c, r, ld]))
         # far enough above the fired spread (false alarms) and at least misfire_share of the way
-        # to a complete misfire (1: partial burns and disturbances); where the spread is wide the first term
-        # wins. The misfire level seen in the run is kept for reports, not for the threshold:
-        # misfires scatter widely (a second one in a row keeps more work) and a threshold
+        # to a complete misfire (1: partial burns and disturbances); where the spread is wide the
+        # first term wins. The misfire level seen in the run is kept for reports, not for the
+        # threshold: misfires scatter widely (a second one in a row keeps more work) and a threshold
         # pushed up by the clear ones would miss the others.
         thr = med + max(s.spread_k * sig, s.misfire_share * (1.0 - med))
         self.thr[c, r, ld] = float(np.clip(thr, s.threshold_min, s.threshold_max))

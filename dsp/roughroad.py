@@ -164,11 +164,6 @@ class RoughRoadDetector:
         return self._open
 
     # -- public -------------------------------------------------------------------------
-    @property
-    def open_since(self) -> float | None:
-        """Start of the span open now (s), or None: later events may still fall in a span."""
-        return self._open
-
     def push(self, t: ArrayLike, xyz: ArrayLike, rpm: ArrayLike | None = None) -> RoughStep:
         """Add samples; return the spans this closed.
 

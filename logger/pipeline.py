@@ -409,7 +409,8 @@ def _save_tooth_errors(analysis: RunAnalysis, store: Store, run_id: int) -> dict
                                 run_id=run_id, n_revs=learnt.n_revolutions)
     return {
         "applied_from_earlier_run": analysis.correction_from_store,
-        "applied_during_run": analysis.tooth_correction_applied and not analysis.correction_from_store,
+        "applied_during_run": (analysis.tooth_correction_applied
+                               and not analysis.correction_from_store),
         "learnt_revolutions": int(learnt.n_revolutions),
         "learnt_rms_deg": float(learnt.rms_deg) if learnt.n_revolutions else None,
         "confidence": float(learnt.confidence),

@@ -184,7 +184,7 @@ class RunSummary:
         self._close_block()
 
     def take_windows(self, kind: str) -> list[dict]:
-        """Window rows summarised since the last call (the caller stores them; memory stays flat)."""
+        """Window rows summarised since the last call (the caller stores them: flat memory)."""
         rows, self._windows[kind] = self._windows[kind], []
         return rows
 

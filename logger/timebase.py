@@ -75,7 +75,7 @@ def support_line(x: np.ndarray, y: np.ndarray) -> tuple[float, float]:
         return float(np.min(y)), 0.0
     hull = _lower_hull(x, y)
     xm = float(np.mean(x))
-    for i0, i1 in zip(hull[:-1], hull[1:], strict=True):
+    for i0, i1 in zip(hull[:-1], hull[1:], strict=True):  # noqa: B007 (both used below)
         if x[i1] >= xm:
             break
     b = (y[i1] - y[i0]) / (x[i1] - x[i0])

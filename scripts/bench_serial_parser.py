@@ -2,7 +2,8 @@
 
 Usage: python scripts/bench_serial_parser.py [seconds_of_stream] [read_bytes]
 Makes a 2 kHz stream of 16-byte frames with a little damage, cuts it into port reads of
-``read_bytes`` and times (a) one push per read, (b) push_records over batches of reads, (c) the whole decoder
+``read_bytes`` and times (a) one push per read, (b) push_records over batches of reads,
+(c) the whole decoder
 (parser and clock aligner) with one read per push and in batches.
 """
 

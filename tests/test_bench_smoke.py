@@ -19,10 +19,10 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from bench import measure, profiling  # noqa: E402
+from bench import rides as rides_mod  # noqa: E402
 from bench.decode import decode  # noqa: E402
 from bench.floors import pycan_iteration, read_split  # noqa: E402
 from bench.procs import run_child, script  # noqa: E402
-from bench import rides as rides_mod  # noqa: E402
 from bench.rides import (  # noqa: E402
     START_TIME,
     RideFiles,

@@ -10,11 +10,11 @@ import re
 
 import numpy as np
 import pytest
+from test_store_fill import counts, fill_run, make_events
 
 from dsp.events import VERDICT_NAMES
 from logger.cli.main import COMMANDS, OPTIONAL, main
 from logger.store import Store
-from test_store_fill import counts, fill_run, make_events
 
 
 def run_cli(capsys, *argv):
@@ -270,7 +270,8 @@ def test_ride_input_errors(capsys, tmp_path):
 def test_an_internal_failure_is_one_error_line_not_a_traceback(tmp_path, capsys, monkeypatch):
     # a bug inside a command must reach the user as one line naming the failure and where,
     # with exit code 70 (EX_SOFTWARE, sysexits.h); CRANKBEAT_DEBUG=1 gives the full trace
-    from logger.cli import cmd_runs, main as cli
+    from logger.cli import cmd_runs
+    from logger.cli import main as cli
 
     def broken(args):
         raise ZeroDivisionError("simulated bug")

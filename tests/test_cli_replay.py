@@ -18,10 +18,10 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from test_store_fill import fill_run, make_events
 
 from logger.cli.main import main
 from logger.store import Store, sha256_file
-from test_store_fill import fill_run, make_events
 
 ROOT = Path(__file__).resolve().parent.parent
 HAVE_PIPELINE = importlib.util.find_spec("logger.pipeline") is not None
@@ -110,8 +110,9 @@ def test_replay_twice_gives_one_run_unless_forced(tmp_path, capsys, short_ride):
     assert {s["sha256"] for s in a["sources"]} == {sha256_file(p) for p in [log, *caps]}
     # The run's date is the ride's own start: the first receive time in the log, read with
     # python-can's own reader.
-    import can
     from datetime import datetime
+
+    import can
 
     with can.LogReader(str(log)) as reader:
         first = next(iter(reader)).timestamp

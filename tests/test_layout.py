@@ -39,7 +39,7 @@ LAYOUTS = {
     "twin-360": (engine((0, 0)), (360, 360)),
     "twin-180": (engine((0, 180)), (180, 540)),
     "twin-270": (engine((0, 270)), (270, 450)),
-    "vtwin-90": (engine((0, 0), (0, 90)), (270, 450)),  # = 270° twin (REFERENCES.md)
+    "vtwin-90": (engine((0, 0), (0, 90)), (270, 450)),  # = 270° twin, REFERENCES.md
     "vtwin-60": (engine((0, 0), (0, 60)), (300, 420)),  # (360-γ)/(360+γ), γ=60
     "boxer-twin": (engine((0, 180), (0, 180)), (360, 360)),
     "twin-180-2stroke": (engine((0, 180), stroke_cycle=2), (180, 180)),
@@ -72,7 +72,8 @@ def test_vtwin_fires_360_plus_vee_after_front_cylinder():
 
 
 def test_signature_tells_twins_apart_but_not_270_from_vtwin_90():
-    sig = {n: layout_signature(LAYOUTS[n][0]) for n in ("twin-360", "twin-180", "twin-270", "vtwin-90")}
+    names = ("twin-360", "twin-180", "twin-270", "vtwin-90")
+    sig = {n: layout_signature(LAYOUTS[n][0]) for n in names}
     assert len({sig["twin-360"], sig["twin-180"], sig["twin-270"]}) == 3
     assert sig["twin-270"] == sig["vtwin-90"]
 
@@ -83,7 +84,7 @@ def test_explicit_firing_angles_win():
 
 
 def test_impossible_firing_order_is_an_input_error():
-    # three cylinders on one pin have only two TDC slots per cycle (0 and 360): two would fire at once
+    # three cylinders on one pin have two TDC slots per cycle (0 and 360): two would fire at once
     eng = engine((0, 0, 0))
     with pytest.raises(InputError, match="firing"):
         firing_angles(eng)
@@ -162,7 +163,7 @@ def test_presets_load_if_present():
     rig = pytest.importorskip("logger.rig")
     if not hasattr(rig, "load_layout"):
         pytest.skip("logger.rig.load_layout not there yet")
-    for name, (eng, pattern) in LAYOUTS.items():
+    for name, (eng, _pattern) in LAYOUTS.items():
         if name in ("vtwin-60", "single-2stroke"):
             continue
         preset = rig.load_layout(name)

@@ -89,10 +89,10 @@ def test_caution_lines_come_first():
 
 def test_tally_counts_and_the_rolling_200_rev_window():
     import numpy as np
+    from test_store_fill import m1_like_rig, make_events
 
     from logger.chunks import StreamHealth
     from logger.live import LiveTally
-    from test_store_fill import m1_like_rig, make_events
 
     rig = m1_like_rig()
     # Cylinder 2 misfires on every 10th cycle for the first 1000 cycles, then never.

@@ -8,8 +8,7 @@ import numpy as np
 import pytest
 
 from logger.rig import load_rig
-from logger.sim import Fault, Scenario, Segment, simulate
-from logger.sim import combustion, maps
+from logger.sim import Fault, Scenario, Segment, combustion, maps, simulate
 from logger.sim.crank import displacement
 
 RIG = load_rig("m1")

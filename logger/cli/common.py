@@ -11,7 +11,7 @@ from pathlib import Path
 from typing import Any
 
 from dsp.errors import UsageError
-from logger.report.text import fmt
+from logger.report.text import fmt  # noqa: F401 (the commands format numbers with it)
 from logger.store import Store, jsonable
 
 DEFAULT_STORE = "crankbeat.db"

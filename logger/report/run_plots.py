@@ -10,7 +10,12 @@ from matplotlib.ticker import MaxNLocator
 
 from dsp.events import FIRED, MISFIRE
 from logger.report.style import (
-    MISFIRE_COLOUR, MUTED_COLOUR, THRESHOLD_COLOUR, cyl_colour, new_figure, save,
+    MISFIRE_COLOUR,
+    MUTED_COLOUR,
+    THRESHOLD_COLOUR,
+    cyl_colour,
+    new_figure,
+    save,
 )
 from logger.store import Store
 

@@ -220,7 +220,9 @@ class GasTorque:
         for k, kern, lever, kf, pe, pieces in self.cyl:
             for a, b, sh in pieces:
                 rows = np.arange(c0, c1) + sh + 1  # params row 0 is cycle -1
-                col = lambda arr: arr[rows, k][:, None]  # noqa: E731
+                def col(arr, rows=rows, k=k):
+                    return arr[rows, k][:, None]
+
                 p = kern(p_manifold=col(pr.p_man), p_ivc=col(pr.p_ivc), start_deg=col(pr.start),
                          duration_deg=col(pr.duration), k_fired=kf[rows][:, None],
                          p_evo=pe[rows][:, None], cols=slice(a, b))

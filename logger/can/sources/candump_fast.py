@@ -19,8 +19,8 @@ from __future__ import annotations
 import gzip
 import io
 import os
-from functools import lru_cache
 from collections.abc import Iterator
+from functools import lru_cache
 from typing import BinaryIO
 
 import can
@@ -189,7 +189,6 @@ def _parse_uniform(buf: np.ndarray, s: np.ndarray, e: np.ndarray) -> tuple[np.nd
     with ok=False for :func:`_parse_canonical`.
     """
     n = len(s)
-    end = len(buf)
     cols = _Parsed(n, 8)
     ok = np.zeros(n, bool)
     close, dot, hsh = _landmarks(buf, s, e)

@@ -14,8 +14,8 @@ import pathlib
 from collections.abc import Iterator
 
 import can
-from can.io.generic import TextIOMessageReader
 from can.io import MESSAGE_READERS
+from can.io.generic import TextIOMessageReader
 
 from dsp.errors import FormatError, SourceError
 from logger.can.sources.base import CanSource, FrameBatch
