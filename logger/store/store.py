@@ -638,8 +638,9 @@ class Store:
             f" WHERE {where} ORDER BY sensor, axis, rpm_lo, ord", params))
 
     def cylinder_stats(self, run_id: int) -> list[dict]:
-        """Per cylinder, from the events alone: counts per verdict, misfire rate (% of fired +
-        misfire), mean contribution of fired events, mean interval error (deg)."""
+        """Per cylinder: counts per verdict, misfire rate (% of fired + misfire) and mean
+        contribution of fired events, from the events; the interval error (deg) of the interval
+        ending at the cylinder from the run's interval check (from the events where it has none)."""
         self._check_run(run_id)
         c = _VERDICT_CODES
         sql = (
@@ -652,10 +653,17 @@ class Store:
             "  THEN interval_deg - expected_interval_deg END) AS interval_error_deg"
             " FROM events WHERE run = ? GROUP BY cylinder ORDER BY cylinder"
         )
+        # the run's interval check is the considered figure (it starts where a tooth-error
+        # correction learnt mid-run took effect): the interval ending at each cylinder
+        checked = {r["to_cyl"]: r["observed_deg"] - r["expected_deg"]
+                   for r in self.intervals(run_id)
+                   if r["observed_deg"] is not None and r["expected_deg"] is not None}
         out = []
         for row in self.db.query(sql, [run_id]):
             counted = row["fired"] + row["misfires"]
             row["rate_pct"] = 100.0 * row["misfires"] / counted if counted else None
+            if row["cylinder"] in checked:
+                row["interval_error_deg"] = checked[row["cylinder"]]
             out.append(row)
         return out
 
