@@ -29,13 +29,13 @@ from pathlib import Path
 import numpy as np
 
 from dsp.analysis import EventAnalyzer
-from dsp.crank import CrankAngles, ToothWheel
+from dsp.crank import CrankAngles
 from dsp.engine import Engine
 from dsp.errors import CrankbeatWarning, DuplicateRunError
 from dsp.events import FIRED, FUEL_CUT, MASKED, MISFIRE
 from dsp.misfire import MisfireSettings
 from dsp.toothcal import ToothErrorLearner
-from dsp.vibration import SensorSpec, VibrationAnalyzer, merge_spans
+from dsp.vibration import SensorSpec, VibrationAnalyzer, VibrationSummary, merge_spans
 from logger import stream
 from logger.chunks import Chunk, StreamHealth
 from logger.rig import list_layouts, load_layout
@@ -129,11 +129,12 @@ class RunAnalysis:
         self.rig = rig
         engine = rig.engine
         self.events = EventAnalyzer(
-            engine, ToothWheel.like(rig.wheel), settings=misfire_settings(rig),
+            engine, rig.wheel, settings=misfire_settings(rig),
             tooth_correction_deg=tooth_correction_deg,
         )
         specs = [SensorSpec.of(s) for s in rig.sensors]
         self.vibration = VibrationAnalyzer(engine, specs) if specs else None
+        self.vib_summary: VibrationSummary | None = None  # set by finish()
         self.summary = RunSummary(engine, engine.name, layout_candidates(engine),
                                   tolerance_deg=rig.limits.interval_tolerance_deg)
         self.health = StreamHealth()
@@ -146,7 +147,7 @@ class RunAnalysis:
         self.rough_spans: list[tuple[float, float]] = []
         self.tooth_correction_applied = tooth_correction_deg is not None
         self.correction_from_store = tooth_correction_deg is not None
-        self.teeth = _FuelCutLearner(ToothErrorLearner(ToothWheel.like(rig.wheel), engine))
+        self.teeth = _FuelCutLearner(ToothErrorLearner(rig.wheel, engine))
 
     # -- per chunk -----------------------------------------------------------------------
     def push(self, chunk: Chunk) -> StepOutput:
@@ -362,7 +363,7 @@ def _finish(analysis: RunAnalysis, store: Store, run_id: int, *, status: str = "
     analysis.notes += s.score_layouts(analysis.events.profile)
     store.add_intervals(run_id, s.interval_rows())
     summary = s.as_dict()
-    vib = getattr(analysis, "vib_summary", None)
+    vib = analysis.vib_summary
     if vib is not None:
         store.add_vibration(run_id, _vibration_rows(vib))
         for name, amp in vib.order_amplitude.items():
