@@ -147,7 +147,8 @@ class RunAnalysis:
         self.rough_spans: list[tuple[float, float]] = []
         self.tooth_correction_applied = tooth_correction_deg is not None
         self.correction_from_store = tooth_correction_deg is not None
-        self.teeth = _FuelCutLearner(ToothErrorLearner(rig.wheel, engine))
+        self.teeth = _FuelCutLearner(ToothErrorLearner(rig.wheel, engine),
+                                     self.events.settings)
 
     # -- per chunk -----------------------------------------------------------------------
     def push(self, chunk: Chunk) -> StepOutput:
@@ -255,8 +256,10 @@ class _FuelCutLearner:
     events around them are decided, so the learner sees each edge once, in order.
     """
 
-    def __init__(self, learner: ToothErrorLearner) -> None:
+    def __init__(self, learner: ToothErrorLearner, settings: MisfireSettings) -> None:
         self.learner = learner
+        self.closed_throttle_pct = settings.closed_throttle_pct
+        self.overrun_min_rpm = settings.fuel_cut_min_rpm
         self._parts: list[CrankAngles] = []
         self._spans: list[tuple[float, float]] = []  # closed fuel-cut stretches (TDC times)
         self._open: float | None = None  # start of a stretch still going on
@@ -284,7 +287,13 @@ class _FuelCutLearner:
 
     def _take_events(self, events: np.ndarray) -> None:
         t = events["t"]
-        cut = events["verdict"] == FUEL_CUT
+        # overrun as the ECU's status tells it, too: with large tooth errors the uncorrected
+        # work estimate can look like combustion, and the learning must not wait for the very
+        # correction it is to provide; a fit spoilt by real combustion shows in its confidence
+        overrun = ((events["throttle"] <= self.closed_throttle_pct)
+                   & (events["rpm"] >= self.overrun_min_rpm)
+                   & np.isin(events["verdict"], (FIRED, FUEL_CUT)))
+        cut = (events["verdict"] == FUEL_CUT) | overrun
         for ti, is_cut in zip(t, cut):
             if not np.isfinite(ti):
                 continue

@@ -164,3 +164,33 @@ def test_lost_can_frames_are_counted_and_the_ride_goes_on(tmp_path):
     assert result.summary["stream"]["can_lost_frames"] > 20
     assert np.sum(events["verdict"] == 3) > 0  # UNUSABLE around the losses
     assert np.sum(events["verdict"] == FIRED) > 0.8 * len(events)
+
+
+def test_overrun_without_an_ecu_fuel_cut_still_teaches_the_wheel(tmp_path):
+    # An ECU that keeps firing on a closed throttle leaves no 'fuel_cut' events, and an
+    # uncorrected 0.1° rms wheel hides misfires (measured: 55 % found). The overrun the status
+    # frames show (throttle closed, well above idle) is then where the wheel is learnt; the
+    # learnt errors must match the simulator's own (truth) and the detection recover.
+    from logger.sim import EngineSpec, WheelSpec
+
+    rig = load_rig("m1")
+    scenario = Scenario(
+        segments=(
+            Segment(2.0, gear=3, rpm=(4000, 4000), throttle=(30, 30)),
+            Segment(4.0, gear=3, rpm=(7000, 2500), throttle=(0, 0)),  # overrun, still firing
+            Segment(8.0, gear=4, rpm=(3000, 7000), throttle=(30, 40)),
+        ),
+        faults=(Fault("misfire", 1, probability=0.05),),
+        wheel=WheelSpec(error_rms_deg=0.1),
+        engine=EngineSpec(fuel_cut=False),
+        seed=5,
+    )
+    sim = simulate(rig, scenario)
+    paths = write_ride(sim, tmp_path / "ride")
+    result, events, _ = _replay(rig, paths, tmp_path / "s.db")
+    assert result.summary["tooth_errors"]["applied_during_run"]
+    with Store.open(tmp_path / "s.db") as store:
+        learnt = store.load_tooth_errors(rig.name, pipeline.wheel_key(rig))
+    true = sim.tooth_error_deg - sim.tooth_error_deg[0]  # positions relative to tooth 0
+    assert np.sqrt(np.mean((learnt - true) ** 2)) < 0.2 * np.sqrt(np.mean(true**2))
+    assert score_misfire(events, sim.events).detection_rate >= 0.75
