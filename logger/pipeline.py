@@ -33,6 +33,7 @@ from dsp.crank import CrankAngles
 from dsp.engine import Engine
 from dsp.errors import CrankbeatWarning, DuplicateRunError
 from dsp.events import FIRED, FUEL_CUT, MASKED, MISFIRE
+from dsp.intervals import SpeedProfile
 from dsp.misfire import MisfireSettings
 from dsp.toothcal import ToothErrorLearner
 from dsp.vibration import SensorSpec, VibrationAnalyzer, VibrationSummary, merge_spans
@@ -149,6 +150,10 @@ class RunAnalysis:
         self.correction_from_store = tooth_correction_deg is not None
         self.teeth = _FuelCutLearner(ToothErrorLearner(rig.wheel, engine),
                                      self.events.settings)
+        # the layout check's speed profile: the analyzer's own, or one restarted where a
+        # tooth-error correction learnt mid-run takes effect (uncorrected teeth bend the profile)
+        self.profile = self.events.profile
+        self._profile_from: float | None = None
 
     # -- per chunk -----------------------------------------------------------------------
     def push(self, chunk: Chunk) -> StepOutput:
@@ -160,6 +165,7 @@ class RunAnalysis:
         self.health = chunk.health
         self.teeth.push(step.crank, step.events)
         self._maybe_correct_teeth()
+        self._add_to_profile(step.crank)
         out = StepOutput(step.events, notes=list(step.notes))
         new_spans = []
         if self.vibration is not None:
@@ -179,6 +185,7 @@ class RunAnalysis:
     def finish(self) -> StepOutput:
         step = self.events.finish()
         self.teeth.push(step.crank, step.events, final=True)
+        self._add_to_profile(step.crank)
         out = StepOutput(step.events, notes=list(step.notes))
         new_spans = []
         if self.vibration is not None:
@@ -202,11 +209,21 @@ class RunAnalysis:
         from_time = closed_at + IN_RUN_DELAY_S
         self.events.tracker.schedule_tooth_correction(learnt.error_deg, from_time)
         self.summary.intervals_from(from_time)
+        old = self.events.profile
+        self.profile = SpeedProfile(old.cycle_deg, old.bin_deg)
+        self._profile_from = from_time
         self.tooth_correction_applied = True
         self.notes.append(
             f"tooth spacing errors of {learnt.rms_deg:.3f} deg rms learnt on the fuel cut ending "
             f"at t={closed_at:.1f} s are applied from t={from_time:.1f} s; the firing intervals "
             "of this run are taken from then on")
+
+    def _add_to_profile(self, crank: CrankAngles) -> None:
+        if self._profile_from is None or not len(crank):
+            return  # the analyzer keeps its own profile up to date
+        late = int(np.searchsorted(crank.t, self._profile_from, side="left"))
+        if late < len(crank):
+            self.profile.add(_take(crank, late, len(crank)))
 
     # -- rough-road masking --------------------------------------------------------------
     def _hold(self, events: np.ndarray, new_spans, out: StepOutput, *, end_time: float,
@@ -369,7 +386,7 @@ def _write(store: Store, run_id: int, out: StepOutput, summary: RunSummary) -> N
 def _finish(analysis: RunAnalysis, store: Store, run_id: int, *, status: str = "complete"
             ) -> dict:
     s = analysis.summary
-    analysis.notes += s.score_layouts(analysis.events.profile)
+    analysis.notes += s.score_layouts(analysis.profile)
     store.add_intervals(run_id, s.interval_rows())
     summary = s.as_dict()
     vib = analysis.vib_summary
@@ -387,6 +404,10 @@ def _finish(analysis: RunAnalysis, store: Store, run_id: int, *, status: str = "
         summary["vibration_exposure"] = {
             "riding_hours": vib.riding_hours, "a8_m_s2": vib.exposure}
     summary["tooth_errors"] = teeth = _save_tooth_errors(analysis, store, run_id)
+    if not analysis.tooth_correction_applied and not summary["layout_check"]["matches_rig"]:
+        analysis.notes.insert(0,
+            "the layout check ran on an uncorrected wheel: tooth spacing errors bend the speed "
+            "profile, so its verdict is doubtful until they are learnt (an overrun fuel cut)")
     if not analysis.tooth_correction_applied and not teeth["kept_for_next_runs"]:
         analysis.notes.insert(0,
             "the wheel's tooth spacing errors are not known yet (no earlier run of this rig learnt "
