@@ -62,6 +62,9 @@ TOOTH_CONFIDENCE_MIN = 0.5
 #: switch must not depend on how the stream is chunked: longer than a replay chunk plus the
 #: few cycles an event waits for its verdict).
 IN_RUN_CONFIDENCE, IN_RUN_MIN_REVOLUTIONS, IN_RUN_DELAY_S = 0.9, 100, 4.0
+#: A stored correction agrees with the run's own when they differ by at most this (deg rms), or
+#: this share of the errors' own rms: then the stored one stays.
+STORED_AGREES_DEG, STORED_AGREES_SHARE = 0.01, 0.25
 #: Longest rough-road span whose events are held back for the summaries, s (the store's events
 #: are masked however long the span lasts).
 OPEN_SPAN_LIMIT_S = 300.0
@@ -148,6 +151,10 @@ class RunAnalysis:
         self.rough_spans: list[tuple[float, float]] = []
         self.tooth_correction_applied = tooth_correction_deg is not None
         self.correction_from_store = tooth_correction_deg is not None
+        self._correction = (None if tooth_correction_deg is None
+                            else np.asarray(tooth_correction_deg, dtype=float))
+        self.corrected_in_run = False
+        self.replaced_stored = False  # the stored errors disagreed with this run's own
         self.teeth = _FuelCutLearner(ToothErrorLearner(rig.wheel, engine),
                                      self.events.settings)
         # the layout check's speed profile: the analyzer's own, or one restarted where a
@@ -201,18 +208,29 @@ class RunAnalysis:
 
     def _maybe_correct_teeth(self) -> None:
         closed_at = self.teeth.take_closed()
-        if closed_at is None or self.tooth_correction_applied:
+        if closed_at is None or self.corrected_in_run:
             return
         learnt = self.teeth.result()
         if learnt.confidence < IN_RUN_CONFIDENCE or learnt.n_revolutions < IN_RUN_MIN_REVOLUTIONS:
             return
+        if self._correction is not None:
+            # a stored correction is for this rig's wheel; a wheel changed since (or a store
+            # shared by several bikes) shows as a disagreement with what this run learns
+            off = float(np.sqrt(np.mean((learnt.error_deg - self._correction) ** 2)))
+            if off <= max(STORED_AGREES_DEG, STORED_AGREES_SHARE * learnt.rms_deg):
+                return
+            self.replaced_stored = True
+            self.notes.append(
+                f"the tooth errors stored for this rig differ from this run's by {off:.3f} deg "
+                "rms (another wheel?): this run's own are applied from the time below")
         from_time = closed_at + IN_RUN_DELAY_S
         self.events.tracker.schedule_tooth_correction(learnt.error_deg, from_time)
         self.summary.intervals_from(from_time)
         old = self.events.profile
         self.profile = SpeedProfile(old.cycle_deg, old.bin_deg)
         self._profile_from = from_time
-        self.tooth_correction_applied = True
+        self.tooth_correction_applied = self.corrected_in_run = True
+        self._correction = learnt.error_deg
         self.notes.append(
             f"tooth spacing errors of {learnt.rms_deg:.3f} deg rms learnt on the fuel cut ending "
             f"at t={closed_at:.1f} s are applied from t={from_time:.1f} s; the firing intervals "
@@ -440,8 +458,8 @@ def _save_tooth_errors(analysis: RunAnalysis, store: Store, run_id: int) -> dict
                                 run_id=run_id, n_revs=learnt.n_revolutions)
     return {
         "applied_from_earlier_run": analysis.correction_from_store,
-        "applied_during_run": (analysis.tooth_correction_applied
-                               and not analysis.correction_from_store),
+        "applied_during_run": analysis.corrected_in_run,
+        "replaced_stored": analysis.replaced_stored,
         "learnt_revolutions": int(learnt.n_revolutions),
         "learnt_rms_deg": float(learnt.rms_deg) if learnt.n_revolutions else None,
         "confidence": float(learnt.confidence),

@@ -197,3 +197,29 @@ def test_overrun_without_an_ecu_fuel_cut_still_teaches_the_wheel(tmp_path):
     true = sim.tooth_error_deg - sim.tooth_error_deg[0]  # positions relative to tooth 0
     assert np.sqrt(np.mean((learnt - true) ** 2)) < 0.2 * np.sqrt(np.mean(true**2))
     assert score_misfire(events, sim.events).detection_rate >= 0.75
+
+
+def test_a_stored_correction_from_another_wheel_is_replaced_by_the_runs_own(tmp_path):
+    # One store, one rig name, two bikes whose wheels differ (different seeds give different
+    # spacing errors): the second ride starts with the first one's correction, finds on its
+    # overrun that it does not fit, and applies its own; its intervals must then be right.
+    from logger.sim import WheelSpec
+
+    rig = load_rig("m1")
+    db = tmp_path / "s.db"
+    segments = (
+        Segment(2.0, gear=3, rpm=(4500, 4500), throttle=(35, 35)),
+        Segment(4.0, gear=3, rpm=(6500, 2500), throttle=(0, 0)),
+        Segment(9.0, gear=3, rpm=(4000, 5000), throttle=(35, 40)),
+    )
+    results = []
+    for seed in (21, 22):
+        scenario = Scenario(segments=segments, wheel=WheelSpec(error_rms_deg=0.1), seed=seed)
+        paths = write_ride(simulate(rig, scenario), tmp_path / f"ride{seed}")
+        results.append(_replay(rig, paths, db)[0])
+    second = results[1]
+    assert second.summary["tooth_errors"]["applied_from_earlier_run"]
+    assert second.summary["tooth_errors"]["replaced_stored"]
+    with Store.open(db) as store:
+        for r in store.intervals(second.run_id):
+            assert abs(r["observed_deg"] - r["expected_deg"]) <= 3.0, r
