@@ -149,7 +149,6 @@ class RunAnalysis:
         self._accel_seen = {s.name: False for s in specs}
         self._last_event_t = -np.inf
         self.rough_spans: list[tuple[float, float]] = []
-        self.tooth_correction_applied = tooth_correction_deg is not None
         self.correction_from_store = tooth_correction_deg is not None
         self._correction = (None if tooth_correction_deg is None
                             else np.asarray(tooth_correction_deg, dtype=float))
@@ -161,6 +160,11 @@ class RunAnalysis:
         # tooth-error correction learnt mid-run takes effect (uncorrected teeth bend the profile)
         self.profile = self.events.profile
         self._profile_from: float | None = None
+
+    @property
+    def tooth_correction_applied(self) -> bool:
+        """Some learnt tooth errors correct (part of) this run: stored ones, or its own."""
+        return self.correction_from_store or self.corrected_in_run
 
     # -- per chunk -----------------------------------------------------------------------
     def push(self, chunk: Chunk) -> StepOutput:
@@ -229,7 +233,7 @@ class RunAnalysis:
         old = self.events.profile
         self.profile = SpeedProfile(old.cycle_deg, old.bin_deg)
         self._profile_from = from_time
-        self.tooth_correction_applied = self.corrected_in_run = True
+        self.corrected_in_run = True
         self._correction = learnt.error_deg
         self.notes.append(
             f"tooth spacing errors of {learnt.rms_deg:.3f} deg rms learnt on the fuel cut ending "
