@@ -26,7 +26,7 @@ fixtures: $(STAMP)
 
 lint: $(STAMP)
 	$(BIN)/python -m pip install --quiet ruff
-	$(BIN)/ruff check logger dsp tests scripts
+	$(BIN)/ruff check crankbeat logger dsp tests scripts bench
 
 clean:
 	rm -rf $(VENV) build *.egg-info demo-out

@@ -45,7 +45,7 @@ def decode(rig, can_path: str | os.PathLike, accel: dict[str, str | os.PathLike]
 
     ``chunk_s`` None keeps the stream's default chunk length (what a replay uses).
     """
-    from logger import stream  # imported before the clock starts: a replay has it loaded
+    from crankbeat.logger import stream  # imported before the clock starts: a replay has it loaded
 
     acc = {k: os.fspath(v) for k, v in (accel or {}).items()}
     return best_of(lambda: _decode_once(stream, rig, os.fspath(can_path), acc, chunk_s),

@@ -21,7 +21,7 @@ from typing import TypeVar
 
 import can
 
-from dsp.errors import InputError
+from crankbeat.errors import InputError
 
 T = TypeVar("T")
 

@@ -166,14 +166,14 @@ class LiveFigures:
 
 
 def run_live(can_log: Path, captures: dict[str, Path], store: Path, *, base: float,
-             rig: str = "m1", start_margin_s: float = 0.5, end_settle_s: float = 1.0,
+             rig: str = "larch", start_margin_s: float = 0.5, end_settle_s: float = 1.0,
              tail_s: float = 1.5, timeout_s: float = 600.0) -> LiveFigures:
     """Stream a recorded ride in real time into a fresh store and measure latency and CPU.
 
     Events whose TDC lies within ``end_settle_s`` of the last frame sent are left out of the
     latency figures: nothing after them arrives to complete them until the stream stops.
     """
-    from logger.serial.capture import CaptureReader
+    from crankbeat.logger.serial.capture import CaptureReader
 
     servers: dict[str, SerialServer] = {}
     for name, path in captures.items():

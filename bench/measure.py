@@ -20,7 +20,7 @@ from pathlib import Path
 
 from bench.procs import ChildRun, run_child, script
 from bench.table import Row, missing
-from dsp.errors import CrankbeatError
+from crankbeat.errors import CrankbeatError
 
 #: Targets of issue 7.
 RTF_MIN = 300.0
@@ -35,16 +35,16 @@ RSS_GROWTH_MAX = 1.10
 PER_MINUTE_GROWTH_MAX = 1.20
 
 PARTS = {
-    "sim": ("logger.sim", ("simulate", "write_ride")),
-    "stream": ("logger.stream", ("replay",)),
-    "pipeline": ("logger.pipeline", ("analyse_replay",)),
-    "live": ("logger.pipeline", ("analyse_live",)),
-    "store": ("logger.store", ("Store",)),
+    "sim": ("crankbeat.logger.sim", ("simulate", "write_ride")),
+    "stream": ("crankbeat.logger.stream", ("replay",)),
+    "pipeline": ("crankbeat.logger.pipeline", ("analyse_replay",)),
+    "live": ("crankbeat.logger.pipeline", ("analyse_live",)),
+    "store": ("crankbeat.logger.store", ("Store",)),
 }
 
 
 def part_missing(*names: str) -> str:
-    """'' when every named part imports with its attributes, else 'logger.x missing'."""
+    """'' when every named part imports with its attributes, else 'crankbeat.logger.x missing'."""
     for name in names:
         module, attrs = PARTS[name]
         try:
@@ -68,7 +68,7 @@ class Bench:
     main_minutes: int = 10
     live_seconds: float = 25.0
     profile_minutes: int = 2
-    rig: str = "m1"
+    rig: str = "larch"
     cpu: int | None = None
     rides: dict = field(default_factory=dict)  # key -> RideFiles
     replays: dict[int, list[ChildRun]] = field(default_factory=dict)
@@ -233,9 +233,10 @@ def decode_rows(b: Bench) -> list[Row]:
 
 
 def _decode_rows(b: Bench) -> list[Row]:
+    from crankbeat.logger.pipeline import LIVE_CHUNK_S, REPLAY_CHUNK_S
+    from crankbeat.logger.rig import load_rig
+
     from bench.decode import decode
-    from logger.pipeline import LIVE_CHUNK_S, REPLAY_CHUNK_S
-    from logger.rig import load_rig
 
     pycan_s, _split_s, ride = _floors(b)
     b.say(f"decode only: stream.replay of the {b.main_minutes} min ride in the replay's "
@@ -322,9 +323,10 @@ def live_rows(b: Bench) -> list[Row]:
 
 
 def _live_rows(b: Bench) -> list[Row]:
+    from crankbeat.logger.rig import load_rig
+
     from bench.live import run_live
     from bench.rides import START_TIME
-    from logger.rig import load_rig
 
     ride = b.ride("live")
     store = b.out / "live.db"

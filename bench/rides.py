@@ -1,6 +1,6 @@
 """The rides the benchmark replays, generated once by ``logger.sim`` and cached on disk.
 
-A ride of N minutes is N laps of the same one-minute lap of the invented M1 test loop (idle,
+A ride of N minutes is N laps of the same one-minute lap of the invented Larch test loop (idle,
 a pull through two gears, cruise, overrun fuel cut, a rough stretch, a misfiring spell, idle),
 so every ride has the same content per minute and the scaling figures compare like with like.
 The live ride holds the reference rig at 10 500 rpm.
@@ -22,9 +22,10 @@ import shutil
 from dataclasses import dataclass
 from pathlib import Path
 
+from crankbeat.logger.sim import Fault, Scenario, Segment, scenario_to_toml
+
 from bench.procs import run_child, script
-from dsp.errors import CrankbeatError, InputError
-from logger.sim import Fault, Scenario, Segment, scenario_to_toml
+from crankbeat.errors import CrankbeatError, InputError
 
 ROOT = Path(__file__).resolve().parent.parent
 START_TIME = 1767225600.0  # invented ride date on the CAN time base
@@ -60,14 +61,14 @@ def lap_scenario(minutes: int, *, seed: int = 4242) -> Scenario:
         faults.append(Fault("misfire", 2, start=t + 1.0, end=t + 4.0, probability=0.3))
         faults.append(Fault("misfire", 1, start=t + 5.0, end=t + 7.0, probability=0.05))
     return Scenario(segments=lap * minutes, faults=tuple(faults), seed=seed,
-                    name=f"bench-lap-{minutes}min", start_time=START_TIME, rig="m1")
+                    name=f"bench-lap-{minutes}min", start_time=START_TIME, rig="larch")
 
 
 def live_scenario(seconds: float = 25.0, *, rpm: float = 10500.0, seed: int = 1050) -> Scenario:
     """The reference rig held at ``rpm`` in third gear for ``seconds``."""
     seg = Segment(float(seconds), gear=3, rpm=(rpm, rpm), throttle=(75, 75), label="held")
     return Scenario(segments=(seg,), seed=seed, name=f"bench-live-{rpm:.0f}rpm-{seconds:g}s",
-                    start_time=START_TIME, rig="m1")
+                    start_time=START_TIME, rig="larch")
 
 
 @dataclass
@@ -119,7 +120,7 @@ def _prune(root: Path, scenario: Scenario, keep: Path) -> None:
             shutil.rmtree(stale, ignore_errors=True)
 
 
-def ensure_ride(scenario: Scenario, root: Path, *, rig: str = "m1",
+def ensure_ride(scenario: Scenario, root: Path, *, rig: str = "larch",
                 timeout_s: float = 1800.0) -> RideFiles:
     """The ride of ``scenario`` under ``root``, generated first when it is not cached.
 

@@ -13,7 +13,7 @@ import operator
 from dataclasses import asdict, dataclass
 from typing import Literal
 
-from dsp.errors import InputError
+from crankbeat.errors import InputError
 
 Op = Literal[">=", ">", "<=", "<"]
 Status = Literal["PASS", "MISS", "INFO", "NOT MEASURED"]
@@ -84,7 +84,7 @@ class Row:
 
 def missing(figure: str, reason: str, *, op: Op | None = None, limit: float | None = None,
             unit: str = "") -> Row:
-    """A row for a figure whose part is missing (``reason`` like "logger.pipeline missing")."""
+    """A row for a figure whose part is missing (``reason`` like "<module> missing")."""
     return Row(figure, op=op, limit=limit, unit=unit, missing=reason)
 
 

@@ -42,11 +42,11 @@ from dataclasses import dataclass, field
 from typing import Any, Literal
 
 import numpy as np
+from crankbeat.dsp._crank_edges import NORMAL, PLACEHOLDER, SATURATED, EdgeBatch, EdgeStage
+from crankbeat.dsp._crank_phase import phase_distinguishable, phase_from_pattern
+from crankbeat.dsp.engine import Engine
 
-from dsp._crank_edges import NORMAL, PLACEHOLDER, SATURATED, EdgeBatch, EdgeStage
-from dsp._crank_phase import phase_distinguishable, phase_from_pattern
-from dsp.engine import Engine
-from dsp.errors import InputError, PhaseUnknownWarning
+from crankbeat.errors import InputError, PhaseUnknownWarning
 
 __all__ = [
     "ToothWheel",

@@ -23,7 +23,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from dsp.errors import InputError
+from crankbeat.errors import InputError
 
 
 @dataclass(frozen=True)

@@ -38,11 +38,11 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from crankbeat.dsp.engine import Engine
+from crankbeat.dsp.kinematics import equivalent_inertia
+from crankbeat.dsp.layout import firing_sequence
 
-from dsp.engine import Engine
-from dsp.errors import InputError
-from dsp.kinematics import equivalent_inertia
-from dsp.layout import firing_sequence
+from crankbeat.errors import InputError
 
 #: Span around each TDC over which the centre of the combustion torque is taken, degrees.
 RISE_SPAN = (-45.0, 105.0)

@@ -8,10 +8,10 @@ degrees of crank rotation from the cylinder's own TDC; results are SI.
 from __future__ import annotations
 
 import numpy as np
+from crankbeat.dsp.engine import Engine
 from numpy.typing import ArrayLike
 
-from dsp.engine import Engine
-from dsp.errors import InputError
+from crankbeat.errors import InputError
 
 
 def _check_geometry(r: float, l: float) -> float:

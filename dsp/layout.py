@@ -20,11 +20,11 @@ from dataclasses import dataclass
 from typing import Literal
 
 import numpy as np
+from crankbeat.dsp.engine import Engine
+from crankbeat.dsp.kinematics import cylinder_angles, velocity_ratio_derivative
 from numpy.typing import ArrayLike
 
-from dsp.engine import Engine
-from dsp.errors import InputError
-from dsp.kinematics import cylinder_angles, velocity_ratio_derivative
+from crankbeat.errors import InputError
 
 _ANGLE_EPS = 1e-6
 

@@ -34,7 +34,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 from scipy import signal
 
-from dsp.errors import InputError
+from crankbeat.errors import InputError
 
 Window = Literal["hann", "flattop", "boxcar"]
 Detrend = Literal["none", "constant", "linear"]
@@ -72,11 +72,11 @@ def _pchip_slopes(x: np.ndarray, y: np.ndarray) -> np.ndarray:
     return d
 
 
-def _edge_slope(h0: float, h1: float, m0: float, m1: float) -> float:
-    d = ((2 * h0 + h1) * m0 - h0 * m1) / (h0 + h1)
+def _edge_slope(h0: float, h1: float, m0: float, larch: float) -> float:
+    d = ((2 * h0 + h1) * m0 - h0 * larch) / (h0 + h1)
     if np.sign(d) != np.sign(m0):
         return 0.0
-    if np.sign(m0) != np.sign(m1) and abs(d) > abs(3 * m0):
+    if np.sign(m0) != np.sign(larch) and abs(d) > abs(3 * m0):
         return 3 * m0
     return d
 

@@ -31,7 +31,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 from scipy import signal
 
-from dsp.errors import InputError
+from crankbeat.errors import InputError
 
 _HIST_LO, _HIST_HI, _HIST_STEP = -8.0, 3.0, 0.02  # log10 of the r.m.s., decades
 

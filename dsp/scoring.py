@@ -15,9 +15,9 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
+from crankbeat.dsp.events import FUEL_CUT, MASKED, MISFIRE, UNUSABLE, VERDICT_NAMES
 
-from dsp.errors import InputError
-from dsp.events import FUEL_CUT, MASKED, MISFIRE, UNUSABLE, VERDICT_NAMES
+from crankbeat.errors import InputError
 
 _EXCLUDING = (MASKED, FUEL_CUT, UNUSABLE)
 _NAME_TO_CODE = {v: k for k, v in VERDICT_NAMES.items()}

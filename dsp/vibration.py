@@ -24,20 +24,20 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from numpy.typing import ArrayLike
-from scipy import signal
-
-from dsp.engine import Engine
-from dsp.errors import InputError
-from dsp.orders import AngleResampler, OrderMap
-from dsp.roughroad import RoughRoadDetector
-from dsp.weighting import (
+from crankbeat.dsp.engine import Engine
+from crankbeat.dsp.orders import AngleResampler, OrderMap
+from crankbeat.dsp.roughroad import RoughRoadDetector
+from crankbeat.dsp.weighting import (
     G_N,
     WHOLE_BODY_K,
     band_limiting_sos,
     daily_exposure,
     weighting_sos,
 )
+from numpy.typing import ArrayLike
+from scipy import signal
+
+from crankbeat.errors import InputError
 
 HAND_ARM = ("bar", "footpeg")
 #: Crank time kept behind the newest edge for accelerometer samples still on their way, s.

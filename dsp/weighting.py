@@ -31,7 +31,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 from scipy import signal
 
-from dsp.errors import InputError
+from crankbeat.errors import InputError
 
 Kind = Literal["Wh", "Wk", "Wd"]
 

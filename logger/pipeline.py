@@ -27,22 +27,22 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+from crankbeat.dsp.analysis import EventAnalyzer
+from crankbeat.dsp.crank import CrankAngles
+from crankbeat.dsp.engine import Engine
+from crankbeat.dsp.events import FIRED, FUEL_CUT, MASKED, MISFIRE
+from crankbeat.dsp.intervals import SpeedProfile
+from crankbeat.dsp.misfire import MisfireSettings
+from crankbeat.dsp.toothcal import ToothErrorLearner
+from crankbeat.dsp.vibration import SensorSpec, VibrationAnalyzer, VibrationSummary, merge_spans
+from crankbeat.logger import stream
+from crankbeat.logger.chunks import Chunk, StreamHealth
+from crankbeat.logger.rig import list_layouts, load_layout
+from crankbeat.logger.rig.model import CanBus, Rig
+from crankbeat.logger.run_summary import WINDOW_KINDS, RunSummary
+from crankbeat.logger.store import Store, sha256_file
 
-from dsp.analysis import EventAnalyzer
-from dsp.crank import CrankAngles
-from dsp.engine import Engine
-from dsp.errors import CrankbeatWarning, DuplicateRunError
-from dsp.events import FIRED, FUEL_CUT, MASKED, MISFIRE
-from dsp.intervals import SpeedProfile
-from dsp.misfire import MisfireSettings
-from dsp.toothcal import ToothErrorLearner
-from dsp.vibration import SensorSpec, VibrationAnalyzer, VibrationSummary, merge_spans
-from logger import stream
-from logger.chunks import Chunk, StreamHealth
-from logger.rig import list_layouts, load_layout
-from logger.rig.model import CanBus, Rig
-from logger.run_summary import WINDOW_KINDS, RunSummary
-from logger.store import Store, sha256_file
+from crankbeat.errors import CrankbeatWarning, DuplicateRunError
 
 COMMIT_EVERY_S = 0.5
 #: Chunk length of a replay on the CAN clock, s. Every stage gives the same numbers whatever the
@@ -562,7 +562,7 @@ def analyse_live(
     ``display`` is a :class:`logger.live.LiveDisplay` (or None); it is refreshed a few times a
     second from a :class:`logger.live.LiveTally`.
     """
-    from logger.live import LiveTally
+    from crankbeat.logger.live import LiveTally
 
     run_id, correction = _begin(rig, store, [], force=True, label=label, notes=notes,
                                 odometer_km=odometer_km)

@@ -20,13 +20,18 @@ import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
+from crankbeat.dsp.analysis import (
+    cylinder_contribution,
+    misfire_counts,
+    misfire_patterns,
+    window_rates,
+)
+from crankbeat.dsp.engine import Engine
+from crankbeat.dsp.events import MISFIRE
+from crankbeat.dsp.intervals import IntervalResult, identify_layout, interval_check
+from crankbeat.dsp.layout import firing_sequence, layout_signature
 
-from dsp.analysis import cylinder_contribution, misfire_counts, misfire_patterns, window_rates
-from dsp.engine import Engine
-from dsp.errors import InputError, LayoutMismatchWarning
-from dsp.events import MISFIRE
-from dsp.intervals import IntervalResult, identify_layout, interval_check
-from dsp.layout import firing_sequence, layout_signature
+from crankbeat.errors import InputError, LayoutMismatchWarning
 
 #: Crank revolutions per summary block (a multiple of both window lengths).
 BLOCK_REVOLUTIONS = 1000

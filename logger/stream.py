@@ -31,16 +31,16 @@ from collections.abc import Callable, Iterator
 
 import can
 import numpy as np
+from crankbeat.logger.can.decode import FrameDecoder
+from crankbeat.logger.can.sources import BusSource, CanSource, FrameBatch, open_log
+from crankbeat.logger.chunks import AccelBlock, Chunk, StatusBlock, StreamHealth, TeethBlock
+from crankbeat.logger.recorder import Recorder
+from crankbeat.logger.rig.model import CanBus, Rig
+from crankbeat.logger.serial.capture import CaptureReader
+from crankbeat.logger.serial.decoder import SerialDecoder
+from crankbeat.logger.serial.port import PortReader
 
-from dsp.errors import UsageError
-from logger.can.decode import FrameDecoder
-from logger.can.sources import BusSource, CanSource, FrameBatch, open_log
-from logger.chunks import AccelBlock, Chunk, StatusBlock, StreamHealth, TeethBlock
-from logger.recorder import Recorder
-from logger.rig.model import CanBus, Rig
-from logger.serial.capture import CaptureReader
-from logger.serial.decoder import SerialDecoder
-from logger.serial.port import PortReader
+from crankbeat.errors import UsageError
 
 Record = tuple[float, bytes]
 #: Live: how long after a chunk's end the host clock must be before its serial reads are taken.

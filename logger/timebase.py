@@ -40,7 +40,7 @@ from collections import deque
 
 import numpy as np
 
-from dsp.errors import InputError
+from crankbeat.errors import InputError
 
 
 def _lower_hull(x: np.ndarray, y: np.ndarray) -> list[int]:

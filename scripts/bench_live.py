@@ -1,7 +1,7 @@
 """Bench helper: the analysing process of the live figure (run by bench/live.py).
 
 Usage: python scripts/bench_live.py --can LOG --port NAME=URL --store FILE --base T
-       [--rig m1] [--tail S]
+       [--rig larch] [--tail S]
 
 python-can's virtual bus joins buses of one process only, so the frames of the recorded ride
 are sent onto it from a feeder thread here, each at wall time ``t0 + (ts - base)``; the bus
@@ -37,7 +37,7 @@ def _cpu_self() -> float:
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--rig", default="m1")
+    ap.add_argument("--rig", default="larch")
     ap.add_argument("--can", required=True, type=Path)
     ap.add_argument("--port", action="append", default=[], metavar="NAME=URL")
     ap.add_argument("--store", required=True, type=Path)
@@ -48,12 +48,12 @@ def main(argv: list[str] | None = None) -> int:
     args = ap.parse_args(argv)
 
     import can
+    from crankbeat.logger.pipeline import analyse_live
+    from crankbeat.logger.rig import load_rig
+    from crankbeat.logger.rig.model import CanBus
+    from crankbeat.logger.store import Store
 
-    from dsp.errors import CrankbeatError
-    from logger.pipeline import analyse_live
-    from logger.rig import load_rig
-    from logger.rig.model import CanBus
-    from logger.store import Store
+    from crankbeat.errors import CrankbeatError
 
     rig = load_rig(args.rig)
     with can.LogReader(str(args.can)) as reader:

@@ -1,7 +1,7 @@
 """Bench helper: one whole replay into a fresh store, timed inside a fresh process.
 
 Usage: python scripts/bench_replay.py --can LOG [--accel NAME=CAPTURE ...] --store FILE
-       [--rig m1] [--cpu N] [--profile OUT.pstats]
+       [--rig larch] [--cpu N] [--profile OUT.pstats]
 
 The timed span is everything ``crankbeat replay`` does with the files: open (create) the store,
 hash the sources, stream, analyse, write and close. Imports and the interpreter start are
@@ -33,7 +33,7 @@ def _fresh(path: Path) -> None:
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--rig", default="m1")
+    ap.add_argument("--rig", default="larch")
     ap.add_argument("--can", required=True, type=Path)
     ap.add_argument("--accel", action="append", default=[], metavar="NAME=CAPTURE")
     ap.add_argument("--store", required=True, type=Path)
@@ -43,10 +43,11 @@ def main(argv: list[str] | None = None) -> int:
     if args.cpu is not None:
         os.sched_setaffinity(0, {args.cpu})
 
-    from dsp.errors import CrankbeatError
-    from logger.pipeline import analyse_replay
-    from logger.rig import load_rig
-    from logger.store import Store
+    from crankbeat.logger.pipeline import analyse_replay
+    from crankbeat.logger.rig import load_rig
+    from crankbeat.logger.store import Store
+
+    from crankbeat.errors import CrankbeatError
 
     accel = dict(spec.split("=", 1) for spec in args.accel)
     try:

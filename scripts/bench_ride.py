@@ -1,6 +1,6 @@
 """Bench helper: simulate one ride and write it into a folder (run by bench/rides.py).
 
-Usage: python scripts/bench_ride.py --rig m1 --scenario FILE.toml --out FOLDER
+Usage: python scripts/bench_ride.py --rig larch --scenario FILE.toml --out FOLDER
 
 Runs in its own process because the simulator holds the whole ride in memory; the folder gets
 the ride's files and ``bench-ride.json`` naming them (written last: the ride is complete), and
@@ -15,15 +15,16 @@ import sys
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+from crankbeat.logger.rig import load_rig  # noqa: E402
+from crankbeat.logger.sim import load_scenario, simulate, write_ride  # noqa: E402
+
 from bench.procs import own_peak_mb  # noqa: E402
-from dsp.errors import CrankbeatError  # noqa: E402
-from logger.rig import load_rig  # noqa: E402
-from logger.sim import load_scenario, simulate, write_ride  # noqa: E402
+from crankbeat.errors import CrankbeatError  # noqa: E402
 
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--rig", default="m1")
+    ap.add_argument("--rig", default="larch")
     ap.add_argument("--scenario", required=True, type=Path)
     ap.add_argument("--out", required=True, type=Path)
     args = ap.parse_args(argv)

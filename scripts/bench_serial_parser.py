@@ -13,11 +13,10 @@ import sys
 import time
 
 import numpy as np
-
-from logger.rig.model import Checksum, SerialField, SerialSensor
-from logger.serial.decoder import SerialDecoder
-from logger.serial.frames import encode_frames
-from logger.serial.parser import SerialFrameParser
+from crankbeat.logger.rig.model import Checksum, SerialField, SerialSensor
+from crankbeat.logger.serial.decoder import SerialDecoder
+from crankbeat.logger.serial.frames import encode_frames
+from crankbeat.logger.serial.parser import SerialFrameParser
 
 G = 1 / 2048
 SENSOR = SerialSensor(

@@ -1,6 +1,6 @@
 """`make demo`: replay the shipped demo ride into a fresh store and write its report.
 
-No hardware, no network: the demo ride of the invented M1 mule lives in fixtures/demo/.
+No hardware, no network: the demo ride of the invented Larch mule lives in fixtures/demo/.
 """
 
 from __future__ import annotations
@@ -9,7 +9,7 @@ import shutil
 import sys
 from pathlib import Path
 
-from logger.cli.main import main as crankbeat
+from crankbeat.logger.cli.main import main as crankbeat
 
 ROOT = Path(__file__).resolve().parent.parent
 DEMO = ROOT / "fixtures" / "demo"
@@ -30,8 +30,8 @@ def main() -> int:
     OUT.mkdir()
     store = OUT / "crankbeat.db"
     print(f"crankbeat demo: replaying {can_log.relative_to(ROOT)} "
-          f"(+ {len(captures)} accelerometer capture) of the invented M1 test mule\n")
-    argv = ["replay", "--rig", "m1", "--can", str(can_log), "--store", str(store),
+          f"(+ {len(captures)} accelerometer capture) of the invented Larch test mule\n")
+    argv = ["replay", "--rig", "larch", "--can", str(can_log), "--store", str(store),
             "--odometer", "1520", "--notes", "demo ride on the test loop"]
     for cap in captures:
         argv += ["--accel", str(cap)]

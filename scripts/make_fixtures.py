@@ -15,8 +15,8 @@ import sys
 import tempfile
 from pathlib import Path
 
-from logger.rig import load_rig
-from logger.sim import (
+from crankbeat.logger.rig import load_rig
+from crankbeat.logger.sim import (
     CanSpec,
     EngineSpec,
     Fault,
@@ -34,7 +34,7 @@ START = 1767225600.0  # 2026-01-01 00:00 UTC on the CAN time base (invented)
 
 
 def demo_scenario() -> Scenario:
-    """The M1 mule on the invented test loop, about a minute."""
+    """The Larch mule on the invented test loop, about a minute."""
     seg = Segment
     segments = (
         seg(10.0, gear=0, rpm=(1300, 1300), throttle=(1.5, 1.5), label="idle"),
@@ -60,14 +60,14 @@ def demo_scenario() -> Scenario:
         Fault("partial_burn", 1, start=t_partial + 1.0, end=t_partial + 4.0, fraction=0.45),
     )
     return Scenario(
-        segments=segments, faults=faults, seed=20260101, name="demo test loop", rig="m1",
+        segments=segments, faults=faults, seed=20260101, name="demo test loop", rig="larch",
         start_time=START, wheel=WheelSpec(error_rms_deg=0.05),
         can=CanSpec(unknown_ids=(0x3F0, 0x7E8), unknown_rate_hz=5.0, drop_probability=0.0002),
         serial=SerialSpec(corrupt_probability=0.0005, lost_probability=0.0003, start_offset=5),
     )
 
 
-def short_scenario(seed: int, *, layout: str | None = None, rig: str = "m1") -> Scenario:
+def short_scenario(seed: int, *, layout: str | None = None, rig: str = "larch") -> Scenario:
     """A few seconds: idle, a gear, some misfires on each cylinder."""
     segs = (
         Segment(0.6, gear=0, rpm=(1300, 1300), throttle=(2, 2)),
@@ -81,10 +81,10 @@ def short_scenario(seed: int, *, layout: str | None = None, rig: str = "m1") -> 
 
 
 def _layout_rig(folder: Path, layout: str) -> Path:
-    """M1's rig file with another layout: the rig describes the engine that is simulated."""
-    text = (ROOT / "logger" / "presets" / "m1.toml").read_text(encoding="utf-8")
+    """Larch's rig file with another layout: the rig describes the engine that is simulated."""
+    text = (ROOT / "logger" / "presets" / "larch.toml").read_text(encoding="utf-8")
     text = text.replace('layout = "twin-270"', f'layout = "{layout}"', 1)
-    text = text.replace('name = "m1"', f'name = "m1-{layout}"', 1)
+    text = text.replace('name = "larch"', f'name = "larch-{layout}"', 1)
     folder.mkdir(parents=True, exist_ok=True)
     path = folder / "rig.toml"
     path.write_text(text, encoding="utf-8")
@@ -96,21 +96,21 @@ def build(out: Path) -> None:
     out.mkdir(parents=True, exist_ok=True)
     # (folder, rig to simulate, scenario, CAN format, keep accelerometer captures)
     jobs: list[tuple[str, object, Scenario, str, bool]] = [
-        ("demo", load_rig("m1"), demo_scenario(), ".log", True),
+        ("demo", load_rig("larch"), demo_scenario(), ".log", True),
     ]
     for i, layout in enumerate(("twin-360", "twin-180", "twin-270", "vtwin-90")):
         rig = load_rig(_layout_rig(out / layout, layout))
         sc = short_scenario(101 + i, rig=f"fixtures/{layout}/rig.toml")
         jobs.append((layout, rig, sc, ".log", False))
     mismatch = short_scenario(201, layout="twin-360")
-    jobs.append(("mismatch-360", load_rig("m1"), mismatch, ".log", False))
-    jobs.append(("blf", load_rig("m1"), short_scenario(301), ".blf", False))
-    if (ROOT / "logger" / "presets" / "example-four.toml").exists():
+    jobs.append(("mismatch-360", load_rig("larch"), mismatch, ".log", False))
+    jobs.append(("blf", load_rig("larch"), short_scenario(301), ".blf", False))
+    if (ROOT / "logger" / "presets" / "alder.toml").exists():
         sc = Scenario(segments=(Segment(0.8, gear=0, rpm=(1200, 1200), throttle=(2, 2)),
                                 Segment(1.7, gear=3, rpm=(4000, 5500), throttle=(30, 40))),
                       faults=(Fault("misfire", 3, start=1.3, probability=0.08),), seed=401,
-                      name="short example-four", rig="example-four", start_time=START)
-        jobs.append(("example-four", load_rig("example-four"), sc, ".asc", True))
+                      name="short alder", rig="alder", start_time=START)
+        jobs.append(("alder", load_rig("alder"), sc, ".asc", True))
     for name, rig, sc, fmt, captures in jobs:
         ride = simulate(rig, sc)
         if not captures:

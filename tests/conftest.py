@@ -1,5 +1,5 @@
 """Shared fixtures: a leak guard for buses, ports, databases and threads, and a small synthetic
-M1 ride (CAN frames laid out with our encoder, serial frames with the serial encoder)."""
+Larch ride (CAN frames laid out with our encoder, serial frames with the serial encoder)."""
 
 from __future__ import annotations
 
@@ -120,20 +120,20 @@ def pytest_configure(config):
 
 
 @pytest.fixture(scope="session")
-def m1():
-    from logger.rig import load_rig
+def larch():
+    from crankbeat.logger.rig import load_rig
 
-    return load_rig("m1")
+    return load_rig("larch")
 
 
 def m1_frames(rig, *, seconds: float = 1.0, rpm: float = 3000.0, t0: float = 1_767_225_600.0,
               extra_ids: bool = False) -> list[can.Message]:
-    """Tooth and status frames of the M1 rig at a steady speed, laid out by the rig's signals.
+    """Tooth and status frames of the Larch rig at a steady speed, laid out by the rig's signals.
 
     The tooth periods follow a 60-2 wheel (the gap period three times the others, RIG.md);
     this is test data to carry bits end to end, not physics.
     """
-    from logger.can.bits import encode_signal
+    from crankbeat.logger.can.bits import encode_signal
 
     teeth_msg = rig.message_for("tooth_periods")
     status_msg = rig.message_for("engine_speed")
@@ -169,8 +169,8 @@ def m1_frames(rig, *, seconds: float = 1.0, rpm: float = 3000.0, t0: float = 1_7
 
 def m1_serial(rig, *, seconds: float = 1.0, t0: float = 1_767_225_600.0,
               read_every: float = 0.004) -> list[tuple[float, bytes]]:
-    """Serial reads (host_time, bytes) of the M1 board: sampled frames cut into USB-sized reads."""
-    from logger.serial.frames import encode_frames
+    """Serial reads (host_time, bytes) of the Larch board: frames cut into USB-sized reads."""
+    from crankbeat.logger.serial.frames import encode_frames
 
     sensor = rig.sensors[0]
     n = int(seconds * sensor.sample_rate_hz)

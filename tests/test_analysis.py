@@ -1,4 +1,4 @@
-"""EventAnalyzer / analyse_ride on simulated M1 rides, and the whole-run summaries.
+"""EventAnalyzer / analyse_ride on simulated Larch rides, and the whole-run summaries.
 
 Rides come from the project's simulator (logger.sim); the CAN frames are laid out here as the rig
 file says (three 0.25 µs periods per frame, cam at the last tooth, receive time = last edge +
@@ -9,8 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-
-from dsp.analysis import (
+from crankbeat.dsp.analysis import (
     EventAnalyzer,
     analyse_ride,
     cylinder_contribution,
@@ -18,14 +17,15 @@ from dsp.analysis import (
     misfire_patterns,
     window_rates,
 )
-from dsp.crank import ToothWheel
-from dsp.engine import Engine
-from dsp.errors import InputError
-from dsp.events import EVENT_DTYPE, FIRED, FUEL_CUT, MISFIRE, UNUSABLE, empty_events
-from dsp.scoring import score_misfire
+from crankbeat.dsp.crank import ToothWheel
+from crankbeat.dsp.engine import Engine
+from crankbeat.dsp.events import EVENT_DTYPE, FIRED, FUEL_CUT, MISFIRE, UNUSABLE, empty_events
+from crankbeat.dsp.scoring import score_misfire
 
-sim = pytest.importorskip("logger.sim")
-rig_mod = pytest.importorskip("logger.rig")
+from crankbeat.errors import InputError
+
+sim = pytest.importorskip("crankbeat.logger.sim")
+rig_mod = pytest.importorskip("crankbeat.logger.rig")
 
 UNIT = 0.25e-6  # s per raw period count (RIG.md, crank teeth frame)
 
@@ -47,7 +47,7 @@ def ride_frames(ride, *, per_frame=3, seed=0):
 
 def run_ride(scenario, *, rig=None, settings=None):
     """Simulate, analyse whole-array, score: (ride, step, score)."""
-    rig = rig or rig_mod.load_rig("m1")
+    rig = rig or rig_mod.load_rig("larch")
     ride = sim.simulate(rig, scenario)
     ft, per, cam, lost = ride_frames(ride)
     step = analyse_ride(
@@ -140,7 +140,7 @@ def test_ends_of_the_ride_are_unusable_not_lost(overrun_ride):
 
 
 def test_status_arguments_are_checked():
-    an = EventAnalyzer(rig_mod.load_rig("m1").engine, ToothWheel())
+    an = EventAnalyzer(rig_mod.load_rig("larch").engine, ToothWheel())
     with pytest.raises(InputError, match="together"):
         an.push(np.zeros(0), np.zeros((0, 3)), np.zeros(0, np.int8), np.zeros(0, np.int32),
                 status_t=[1.0])
@@ -205,7 +205,7 @@ def test_cylinder_contribution_spots_a_weak_cylinder():
 
 
 def test_lost_frames_cost_only_the_events_near_them():
-    rig = rig_mod.load_rig("m1")
+    rig = rig_mod.load_rig("larch")
     scn = _scenario([sim.Segment(duration=4.0, gear=3, rpm=(4000, 4000), throttle=(40, 40))],
                     p=0.03, seed=2)
     ride = sim.simulate(rig, scn)

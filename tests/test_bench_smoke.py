@@ -18,6 +18,10 @@ import pytest
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
+from crankbeat.logger.rig import load_rig  # noqa: E402
+from crankbeat.logger.serial.capture import CaptureReader  # noqa: E402
+from crankbeat.logger.sim import Scenario, Segment, simulate, write_ride  # noqa: E402
+
 from bench import measure, profiling  # noqa: E402
 from bench import rides as rides_mod  # noqa: E402
 from bench.decode import decode  # noqa: E402
@@ -32,16 +36,13 @@ from bench.rides import (  # noqa: E402
     ride_key,
 )
 from bench.table import Row, failed, render  # noqa: E402
-from logger.rig import load_rig  # noqa: E402
-from logger.serial.capture import CaptureReader  # noqa: E402
-from logger.sim import Scenario, Segment, simulate, write_ride  # noqa: E402
 
 RPM = 10500.0
 
 
 def _short_scenario() -> Scenario:
     return Scenario(segments=(Segment(2.0, gear=0, rpm=(1300, 1300), throttle=(1.5, 1.5)),),
-                    seed=3, name="smoke-2s", start_time=START_TIME, rig="m1")
+                    seed=3, name="smoke-2s", start_time=START_TIME, rig="larch")
 
 
 @pytest.fixture(scope="module")
@@ -50,7 +51,7 @@ def rides(tmp_path_factory):
     short = ensure_ride(_short_scenario(), root)  # through the generating child, as the bench
     # the live ride is written in this process: one child fewer for a smoke test
     live_dir = root / "live"
-    sim = simulate(load_rig("m1"), live_scenario(2.0, rpm=RPM))
+    sim = simulate(load_rig("larch"), live_scenario(2.0, rpm=RPM))
     paths = write_ride(sim, live_dir, stem="ride")
     live = RideFiles(live_dir, paths.can, paths.captures, sim.scenario.duration, 0.0)
     return {"short": short, "live": live, "root": root}
@@ -68,7 +69,7 @@ def test_rides_are_cached_by_scenario(rides, monkeypatch):
     monkeypatch.setattr(rides_mod, "ride_key", lambda rig, sc: short.folder.name.rsplit("-", 1)[1])
     again = ensure_ride(_short_scenario(), rides["root"])
     assert again.folder == short.folder and again.generated_s == 0.0  # served from the cache
-    assert ride_key("m1", lap_scenario(1, seed=5)) != ride_key("m1", lap_scenario(1, seed=6))
+    assert ride_key("larch", lap_scenario(1, seed=5)) != ride_key("larch", lap_scenario(1, seed=6))
     assert lap_scenario(3).duration == 180.0  # one lap is one minute
 
 
@@ -84,7 +85,7 @@ def test_floors_count_what_python_can_reads(rides):
 
 def test_decode_delivers_every_frame_and_sample(rides):
     ride = rides["short"]
-    _wall, _cpu, count = decode(load_rig("m1"), ride.can, ride.captures)
+    _wall, _cpu, count = decode(load_rig("larch"), ride.can, ride.captures)
     assert count.can_frames == _pycan_frames(ride.can)  # reference: python-can's reader
     # the board runs at 2000 samples/s (RIG.md); the aligner may hold none back at the end
     assert count.samples == pytest.approx(2.0 * 2000, abs=40)
@@ -157,12 +158,13 @@ def test_rows_judge_targets_and_missing_parts(monkeypatch):
     info = Row("floor", "4 s", value=4.0)
     assert (ceiling.status, floor.status, info.status) == ("PASS", "MISS", "INFO")
     assert ceiling.ratio == pytest.approx(0.48)
-    monkeypatch.setitem(measure.PARTS, "pipeline", ("logger.not_landed_yet", ("analyse",)))
+    part = ("crankbeat.logger.not_landed_yet", ("analyse",))
+    monkeypatch.setitem(measure.PARTS, "pipeline", part)
     reason = measure.part_missing("pipeline")
-    assert "logger.not_landed_yet missing" in reason
+    assert "crankbeat.logger.not_landed_yet missing" in reason
     rows = measure._guard(lambda: [info], [("replay", "<", 1.0, "")], reason)
     assert [r.status for r in rows] == ["NOT MEASURED"]
     assert failed([ceiling, floor, info, *rows]) == [floor, rows[0]]
     text = render([ceiling, *rows])
-    assert "not measured: logger.not_landed_yet missing" in text
+    assert "not measured: crankbeat.logger.not_landed_yet missing" in text
     assert json.dumps([r.as_dict() for r in rows])  # results.json can hold every row

@@ -11,10 +11,9 @@ import numpy as np
 import pytest
 from cantools.database.conversion import BaseConversion
 from conftest import m1_frames
-
-from logger.can.decode import FrameDecoder
-from logger.can.sources.base import FrameBatch
-from logger.rig.model import CanMessage
+from crankbeat.logger.can.decode import FrameDecoder
+from crankbeat.logger.can.sources.base import FrameBatch
+from crankbeat.logger.rig.model import CanMessage
 
 T0 = 1_767_225_600.0
 
@@ -48,15 +47,15 @@ def _tooth_msgs(rig, periods_s, counters, cams, t):
     return out
 
 
-def test_tooth_and_status_values_from_cantools_frames(m1):
+def test_tooth_and_status_values_from_cantools_frames(larch):
     periods = [[2.0e-3, 2.05e-3, 6.1e-3], [1.0e-4, 1.25e-4, 16.3e-3]]
-    msgs = _tooth_msgs(m1, periods, [254, 255], [1, 0], [T0, T0 + 0.01])
-    st = _cantools(m1.message_for("engine_speed"))
+    msgs = _tooth_msgs(larch, periods, [254, 255], [1, 0], [T0, T0 + 0.01])
+    st = _cantools(larch.message_for("engine_speed"))
     msgs.append(can.Message(timestamp=T0 + 0.02, arbitration_id=st.frame_id,
                             is_extended_id=False, data=st.encode({
                                 "engine_speed": 3000.25, "throttle": 22.5, "gear": 3,
                                 "coolant": 88, "road_speed": 61.37, "status_counter": 9})))
-    dec = FrameDecoder(m1)
+    dec = FrameDecoder(larch)
     teeth, status = dec.push(_batch(msgs))
     # the rig's unit is 0.25 us (RIG.md): values within half a step of what went in
     np.testing.assert_allclose(teeth.periods, periods, atol=0.125e-6)
@@ -70,18 +69,18 @@ def test_tooth_and_status_values_from_cantools_frames(m1):
     assert dec.health.can_frames == 3 and dec.health.notes == []
 
 
-def test_saturated_period_is_nan(m1):
+def test_saturated_period_is_nan(larch):
     # RIG.md: 0xFFFF (65535 x 0.25 us = 16.38375 ms) means saturated
-    msgs = _tooth_msgs(m1, [[1e-3, 16.38375e-3, 1e-3]], [0], [0], [T0])
-    teeth, _ = FrameDecoder(m1).push(_batch(msgs))
+    msgs = _tooth_msgs(larch, [[1e-3, 16.38375e-3, 1e-3]], [0], [0], [T0])
+    teeth, _ = FrameDecoder(larch).push(_batch(msgs))
     assert np.isnan(teeth.periods[0, 1]) and not np.isnan(teeth.periods[0, 0])
 
 
-def test_counter_gaps_are_lost_frames_and_wrap_is_not(m1):
+def test_counter_gaps_are_lost_frames_and_wrap_is_not(larch):
     counters = [250, 251, 252, 255, 0, 1, 5]  # 253, 254 and 2..4 missing; 255 -> 0 wraps
     n = len(counters)
-    msgs = _tooth_msgs(m1, [[1e-3] * 3] * n, counters, [0] * n, T0 + 0.001 * np.arange(n))
-    dec = FrameDecoder(m1)
+    msgs = _tooth_msgs(larch, [[1e-3] * 3] * n, counters, [0] * n, T0 + 0.001 * np.arange(n))
+    dec = FrameDecoder(larch)
     teeth, _ = dec.push(_batch(msgs, first_line=10))
     assert teeth.lost_before.tolist() == [0, 0, 0, 2, 0, 0, 3]
     assert dec.health.can_lost_frames == 5
@@ -89,12 +88,12 @@ def test_counter_gaps_are_lost_frames_and_wrap_is_not(m1):
         "ride.log line 13: crank_teeth counter 252 -> 255: 2 frame(s) lost")
 
 
-def test_state_carries_across_batches_identically(m1):
-    msgs = m1_frames(m1, seconds=0.5, extra_ids=True)
+def test_state_carries_across_batches_identically(larch):
+    msgs = m1_frames(larch, seconds=0.5, extra_ids=True)
     del msgs[100:103]  # a loss the counter must see across a batch boundary
-    whole = FrameDecoder(m1)
+    whole = FrameDecoder(larch)
     t_all, s_all = whole.push(_batch(msgs))
-    split = FrameDecoder(m1)
+    split = FrameDecoder(larch)
     parts = [split.push(_batch(msgs[a:b], first_line=a + 1))
              for a, b in [(0, 1), (1, 101), (101, 102), (102, 777), (777, len(msgs))]]
     for f in dataclasses.fields(t_all):
@@ -106,8 +105,8 @@ def test_state_carries_across_batches_identically(m1):
     assert whole.health.can_lost_frames >= 3
 
 
-def test_unknown_error_remote_and_bad_length_are_counted_and_skipped(m1):
-    good = m1_frames(m1, seconds=0.05)
+def test_unknown_error_remote_and_bad_length_are_counted_and_skipped(larch):
+    good = m1_frames(larch, seconds=0.05)
     odd = [
         can.Message(timestamp=T0 + 0.0101, arbitration_id=0x555, is_extended_id=False, data=b"1"),
         can.Message(timestamp=T0 + 0.0102, is_error_frame=True),
@@ -119,9 +118,9 @@ def test_unknown_error_remote_and_bad_length_are_counted_and_skipped(m1):
                     data=b"\x00" * 8),  # same number, 29-bit: another id
     ]
     msgs = sorted(good + odd, key=lambda m: m.timestamp)
-    dec = FrameDecoder(m1)
+    dec = FrameDecoder(larch)
     teeth, status = dec.push(_batch(msgs))
-    ref_t, ref_s = FrameDecoder(m1).push(_batch(good))
+    ref_t, ref_s = FrameDecoder(larch).push(_batch(good))
     np.testing.assert_array_equal(teeth.periods, ref_t.periods)
     np.testing.assert_array_equal(status.values["engine_speed"], ref_s.values["engine_speed"])
     h = dec.health
@@ -129,20 +128,20 @@ def test_unknown_error_remote_and_bad_length_are_counted_and_skipped(m1):
         2, 1, 1, 1)
     line = {m.timestamp: i + 1 for i, m in enumerate(msgs)}
     notes = "\n".join(h.notes)
-    assert f"ride.log line {line[T0 + 0.0101]}: id 0x555 is not in rig 'm1'" in notes
+    assert f"ride.log line {line[T0 + 0.0101]}: id 0x555 is not in rig 'larch'" in notes
     assert f"ride.log line {line[T0 + 0.0105]}: id 0x000000A0 is not in rig" in notes
     assert (f"ride.log line {line[T0 + 0.0104]}: id 0x100 (engine_status) has 5 data bytes, "
             "expected 8") in notes
     assert f"ride.log line {line[T0 + 0.0102]}: CAN error frame" in notes
 
 
-def test_backwards_time_and_silent_periodic_message(m1):
-    msgs = m1_frames(m1, seconds=0.3)
+def test_backwards_time_and_silent_periodic_message(larch):
+    msgs = m1_frames(larch, seconds=0.3)
     status = [m for m in msgs if m.arbitration_id == 0x100]
     late = [can.Message(timestamp=m.timestamp + 2.0, arbitration_id=0x100, is_extended_id=False,
                         data=m.data) for m in status[:3]]
     back = can.Message(timestamp=T0 + 0.1, arbitration_id=0x555, is_extended_id=False, data=b"")
-    dec = FrameDecoder(m1)
+    dec = FrameDecoder(larch)
     dec.push(_batch(msgs + late + [back]))
     h = dec.health
     assert h.can_time_jumps == 1  # the 100 Hz status message silent for ~1.7 s > 0.5 s
@@ -151,15 +150,15 @@ def test_backwards_time_and_silent_periodic_message(m1):
     assert any(f"line {len(msgs) + 4}: timestamp goes backwards" in n for n in h.notes)
 
 
-def test_log_of_another_rig_says_so(m1):
+def test_log_of_another_rig_says_so(larch):
     msgs = [can.Message(timestamp=T0 + i * 1e-3, arbitration_id=0x321, is_extended_id=False,
                         data=bytes(8)) for i in range(50)]
-    dec = FrameDecoder(m1)
+    dec = FrameDecoder(larch)
     teeth, status = dec.push(_batch(msgs))
     dec.finish()
     assert len(teeth) == 0 and len(status) == 0 and dec.health.can_unknown_id == 50
     assert dec.health.notes[-1] == (
-        "ride.log: none of the first 50 frames has an id of rig 'm1' (expected 0x0A0, 0x100): "
+        "ride.log: none of the first 50 frames has an id of rig 'larch' (expected 0x0A0, 0x100): "
         "is this the right rig for this log?")
 
 
@@ -172,14 +171,14 @@ def _with_teeth_signal(rig, **changes):
                                                    for m in rig.messages))
 
 
-def test_wrong_byte_order_in_the_rig_is_noted(m1):
-    msgs = m1_frames(m1, seconds=0.5)
-    right = FrameDecoder(m1)
+def test_wrong_byte_order_in_the_rig_is_noted(larch):
+    msgs = m1_frames(larch, seconds=0.5)
+    right = FrameDecoder(larch)
     right.push(_batch(msgs))
     right.finish()
     assert not any("implausible" in n for n in right.health.notes)
     # the same bytes read as Motorola (start bit 23 = MSB of byte 2): bytes swapped
-    wrong = FrameDecoder(_with_teeth_signal(m1, byte_order="big", start_bit=23))
+    wrong = FrameDecoder(_with_teeth_signal(larch, byte_order="big", start_bit=23))
     wrong.push(_batch(msgs))
     wrong.finish()
     notes = [n for n in wrong.health.notes if "implausible" in n]
@@ -187,14 +186,14 @@ def test_wrong_byte_order_in_the_rig_is_noted(m1):
     assert "check byte order, scale and start bit of signal 'tooth_period'" in notes[0]
 
 
-def test_cam_in_another_message_is_held(m1):
-    teeth_msg = m1.message_for("tooth_periods")
+def test_cam_in_another_message_is_held(larch):
+    teeth_msg = larch.message_for("tooth_periods")
     cam = teeth_msg.signal_for("cam_level")
     cam_msg = CanMessage("cam", 0x200, False, 1, (dataclasses.replace(cam, start_bit=0),))
-    rig = dataclasses.replace(m1, messages=(
+    rig = dataclasses.replace(larch, messages=(
         dataclasses.replace(teeth_msg, signals=tuple(s for s in teeth_msg.signals if s is not cam)),
-        *m1.messages[1:], cam_msg))
-    msgs = m1_frames(m1, seconds=0.05)
+        *larch.messages[1:], cam_msg))
+    msgs = m1_frames(larch, seconds=0.05)
     t_cam = msgs[20].timestamp + 1e-7
     msgs.insert(21, can.Message(timestamp=t_cam, arbitration_id=0x200, is_extended_id=False,
                                 data=b"\x01"))

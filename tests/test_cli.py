@@ -10,11 +10,10 @@ import re
 
 import numpy as np
 import pytest
+from crankbeat.dsp.events import VERDICT_NAMES
+from crankbeat.logger.cli.main import COMMANDS, OPTIONAL, main
+from crankbeat.logger.store import Store
 from test_store_fill import counts, fill_run, make_events
-
-from dsp.events import VERDICT_NAMES
-from logger.cli.main import COMMANDS, OPTIONAL, main
-from logger.store import Store
 
 
 def run_cli(capsys, *argv):
@@ -117,7 +116,7 @@ def test_show_text_has_cylinders_intervals_and_vibration(capsys, store):
     path, ids, evs = store
     code, out, _ = run_cli(capsys, "show", "last", "--store", str(path))
     assert code == 0
-    assert f"run {ids['b']}  [complete]  rig m1" in out
+    assert f"run {ids['b']}  [complete]  rig larch" in out
     mis, counted = counts(evs["b"], 2)
     row = next(line for line in out.splitlines() if line.split()[:1] == ["2"])
     cells = row.split()
@@ -244,25 +243,25 @@ def test_replay_input_errors(capsys, tmp_path):
     code, _, err = run_cli(capsys, "replay", "--rig", "no-such-rig", "--can", str(log),
                            "--store", db)
     assert code == 3 and err.startswith("error: ") and "no-such-rig" in err
-    code, _, err = run_cli(capsys, "replay", "--rig", "m1", "--can", str(tmp_path / "x.log"),
+    code, _, err = run_cli(capsys, "replay", "--rig", "larch", "--can", str(tmp_path / "x.log"),
                            "--store", db)
     assert code == 4 and "no such CAN log" in err
-    code, _, err = run_cli(capsys, "replay", "--rig", "m1", "--can", str(log), "--accel",
+    code, _, err = run_cli(capsys, "replay", "--rig", "larch", "--can", str(log), "--accel",
                            "seat=x.acraw", "--store", db)
     assert code == 2 and "has no sensor 'seat'" in err and "bar_left" in err
-    code, _, err = run_cli(capsys, "replay", "--rig", "m1", "--can", str(log), "--accel",
+    code, _, err = run_cli(capsys, "replay", "--rig", "larch", "--can", str(log), "--accel",
                            str(tmp_path / "none.acraw"), "--store", db)
     assert code == 4 and "capture for sensor 'bar_left'" in err
-    code, _, err = run_cli(capsys, "replay", "--rig", "m1", "--can", str(log), "--pace", "0",
+    code, _, err = run_cli(capsys, "replay", "--rig", "larch", "--can", str(log), "--pace", "0",
                            "--store", db)
     assert code == 2 and "--pace" in err
 
 
 def test_ride_input_errors(capsys, tmp_path):
-    code, _, err = run_cli(capsys, "ride", "--rig", "m1", "--port", "seat=loop://",
+    code, _, err = run_cli(capsys, "ride", "--rig", "larch", "--port", "seat=loop://",
                            "--store", str(tmp_path / "r.db"))
     assert code == 2 and "has no sensor 'seat'" in err
-    code, _, err = run_cli(capsys, "ride", "--rig", "m1", "--port", "bar_left",
+    code, _, err = run_cli(capsys, "ride", "--rig", "larch", "--port", "bar_left",
                            "--store", str(tmp_path / "r.db"))
     assert code == 2 and "expected NAME=VALUE" in err
 
@@ -270,8 +269,8 @@ def test_ride_input_errors(capsys, tmp_path):
 def test_an_internal_failure_is_one_error_line_not_a_traceback(tmp_path, capsys, monkeypatch):
     # a bug inside a command must reach the user as one line naming the failure and where,
     # with exit code 70 (EX_SOFTWARE, sysexits.h); CRANKBEAT_DEBUG=1 gives the full trace
-    from logger.cli import cmd_runs
-    from logger.cli import main as cli
+    from crankbeat.logger.cli import cmd_runs
+    from crankbeat.logger.cli import main as cli
 
     def broken(args):
         raise ZeroDivisionError("simulated bug")

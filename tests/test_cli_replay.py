@@ -18,19 +18,18 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from crankbeat.logger.cli.main import main
+from crankbeat.logger.store import Store, sha256_file
 from test_store_fill import fill_run, make_events
 
-from logger.cli.main import main
-from logger.store import Store, sha256_file
-
 ROOT = Path(__file__).resolve().parent.parent
-HAVE_PIPELINE = importlib.util.find_spec("logger.pipeline") is not None
+HAVE_PIPELINE = importlib.util.find_spec("crankbeat.logger.pipeline") is not None
 needs_pipeline = pytest.mark.skipif(not HAVE_PIPELINE,
-                                    reason="logger.pipeline (lead engineer) has not landed yet")
+                                    reason="crankbeat.logger.pipeline has not landed yet")
 
 
-DEMO = ROOT / "fixtures" / "demo"  # fixtures/README.md: the M1's 60 s demo ride
-SHORT = ROOT / "fixtures" / "blf"  # 2 s of the M1 in python-can's BLF format, no capture
+DEMO = ROOT / "fixtures" / "demo"  # fixtures/README.md: the Larch's 60 s demo ride
+SHORT = ROOT / "fixtures" / "blf"  # 2 s of the Larch in python-can's BLF format, no capture
 
 
 @pytest.fixture(scope="module")
@@ -50,7 +49,7 @@ def short_ride():
     return log, []
 
 
-def _replay_argv(store: Path, log: Path, caps: list[Path], *extra: str, rig: str = "m1"
+def _replay_argv(store: Path, log: Path, caps: list[Path], *extra: str, rig: str = "larch"
                  ) -> list[str]:
     argv = ["replay", "--rig", rig, "--can", str(log), "--store", str(store), *extra]
     for cap in caps:
@@ -137,7 +136,7 @@ def _count_events(db: Path) -> int:
 def test_killed_replay_leaves_an_incomplete_run_with_its_events(tmp_path, ride):
     log, caps = ride
     db = tmp_path / "killed.db"
-    argv = [sys.executable, "-m", "logger.cli.main",
+    argv = [sys.executable, "-m", "crankbeat.logger.cli.main",
             *_replay_argv(db, log, caps, "--pace", "1", "--label", "killed")]
     env = dict(os.environ, PYTHONPATH=str(ROOT))
     proc = subprocess.Popen(argv, cwd=tmp_path, env=env, stdout=subprocess.DEVNULL,
@@ -163,7 +162,7 @@ def test_killed_replay_leaves_an_incomplete_run_with_its_events(tmp_path, ride):
         assert run["status"] == "incomplete" and run["label"] == "killed"
         ev = st.events(run["id"])
     assert len(ev) > 0
-    assert set(ev["cylinder"].tolist()) <= {1, 2}  # RIG.md: the M1 is a twin
+    assert set(ev["cylinder"].tolist()) <= {1, 2}  # RIG.md: the Larch is a twin
     assert np.isfinite(ev["t"]).all()
 
 
@@ -173,15 +172,15 @@ def test_query_commands_on_a_replayed_ride(tmp_path, capsys):
     import csv
     import io
 
-    folder = ROOT / "fixtures" / "example-four"
+    folder = ROOT / "fixtures" / "alder"
     logs = sorted(folder.glob("*.asc"))
     if not logs:
-        pytest.skip("fixtures/example-four is missing (make fixtures)")
+        pytest.skip("fixtures/alder is missing (make fixtures)")
     caps = sorted(folder.glob("*.acraw"))
     db = tmp_path / "q.db"
-    assert main(_replay_argv(db, logs[0], caps, "--label", "sim", rig="example-four")) == 0
+    assert main(_replay_argv(db, logs[0], caps, "--label", "sim", rig="alder")) == 0
     out, _ = capsys.readouterr()
-    assert out.startswith("run 1  [complete]  rig example-four")
+    assert out.startswith("run 1  [complete]  rig alder")
     assert "layout check: best fit" in out and "per cylinder" in out
     assert main(["runs", "--store", str(db), "--json"]) == 0
     (row,) = json.loads(capsys.readouterr()[0])

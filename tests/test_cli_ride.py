@@ -17,13 +17,12 @@ import uuid
 
 import can
 import pytest
-
-from logger.cli.main import main
-from logger.store import Store
+from crankbeat.logger.cli.main import main
+from crankbeat.logger.store import Store
 
 pytestmark = pytest.mark.skipif(
-    importlib.util.find_spec("logger.pipeline") is None
-    or importlib.util.find_spec("logger.cli.cmd_synth") is None,
+    importlib.util.find_spec("crankbeat.logger.pipeline") is None
+    or importlib.util.find_spec("crankbeat.logger.cli.cmd_synth") is None,
     reason="needs logger.pipeline and the simulator (crankbeat synth)")
 
 RIDE_S = 3.0  # seconds of ride played live
@@ -32,7 +31,7 @@ RIDE_S = 3.0  # seconds of ride played live
 @pytest.fixture(scope="module")
 def short_ride(tmp_path_factory):
     out = tmp_path_factory.mktemp("live")
-    assert main(["synth", "--rig", "m1", "--duration", "6", "--rpm", "4000", "--throttle", "30",
+    assert main(["synth", "--rig", "larch", "--duration", "6", "--rpm", "4000", "--throttle", "30",
                  "--misfire-cylinder", "1", "--misfire-rate", "0.05", "--seed", "11",
                  "--out", str(out), "--quiet"]) == 0
     return out / "ride.log", out / "ride.bar_left.acraw"
@@ -51,7 +50,7 @@ def _wait_for_listener(channel: str, deadline_s: float = 30.0) -> None:
 
 
 def test_ride_records_analyses_and_replays_the_same(tmp_path, short_ride, capsys):
-    from logger.serial.capture import CaptureReader
+    from crankbeat.logger.serial.capture import CaptureReader
 
     log, cap = short_ride
     channel = f"crankbeat-test-{uuid.uuid4().hex[:8]}"
@@ -109,7 +108,7 @@ def test_ride_records_analyses_and_replays_the_same(tmp_path, short_ride, capsys
     db = tmp_path / "live.db"
     rec = tmp_path / "rec"
     try:
-        code = main(["ride", "--rig", "m1", "--interface", "virtual", "--channel", channel,
+        code = main(["ride", "--rig", "larch", "--interface", "virtual", "--channel", channel,
                      "--port", f"bar_left=socket://127.0.0.1:{port}", "--record", str(rec),
                      "--store", str(db), "--label", "live-test", "--plain"])
     finally:
@@ -136,7 +135,7 @@ def test_ride_records_analyses_and_replays_the_same(tmp_path, short_ride, capsys
         recorded = sum(1 for _ in reader)
     assert recorded == sent["frames"]
 
-    code = main(["replay", "--rig", "m1", "--can", str(logs[0]), "--accel", str(caps[0]),
+    code = main(["replay", "--rig", "larch", "--can", str(logs[0]), "--accel", str(caps[0]),
                  "--store", str(db), "--json"])
     capsys.readouterr()
     assert code == 0

@@ -15,16 +15,22 @@ from dataclasses import dataclass
 
 import numpy as np
 import pytest
+from crankbeat.dsp.crank import (
+    CrankAngles,
+    CrankTracker,
+    ToothWheel,
+    phase_from_pattern,
+    reconstruct_crank,
+)
+from crankbeat.dsp.engine import Engine
 
-from dsp.crank import CrankAngles, CrankTracker, ToothWheel, phase_from_pattern, reconstruct_crank
-from dsp.engine import Engine
-from dsp.errors import InputError, PhaseUnknownWarning
+from crankbeat.errors import InputError, PhaseUnknownWarning
 
 TWIN_270 = Engine("twin-270", 4, (0.0, 270.0), (0.0, 0.0), (-0.04, 0.04), (1, 2))
 TWIN_360 = Engine("twin-360", 4, (0.0, 0.0), (0.0, 0.0), (-0.04, 0.04), (1, 2))
 SINGLE_2T = Engine("single-2t", 2, (0.0,), (0.0,), (0.0,), (1,))
 M1_WHEEL = ToothWheel(60, 2, 96.0, "window", 1)
-UNIT = 0.25e-6  # s, period resolution of the M1 tooth frame (RIG.md)
+UNIT = 0.25e-6  # s, period resolution of the Larch tooth frame (RIG.md)
 SAT = 16.38e-3  # s, saturated period (RIG.md: 0xFFFF means >= 16.38 ms)
 
 
@@ -172,7 +178,7 @@ def firing_speed(base_rpm, engine=TWIN_270, *, swing=0.03):
     Independent of the tracker's pattern template (which uses plain dips at TDC): only the
     physics sign is shared - compression slows the crank, combustion speeds it up.
     """
-    from dsp.layout import firing_angles
+    from crankbeat.dsp.layout import firing_angles
 
     fire = firing_angles(engine)
     grid = np.arange(0.0, 720.0, 0.05)
@@ -194,7 +200,7 @@ def firing_speed(base_rpm, engine=TWIN_270, *, swing=0.03):
 
 
 def test_speed_sweep_idle_to_rev_limit():
-    # M1: idle 1300 rpm, rev limit 10 500 rpm (RIG.md); speed linear in angle over 600 revs
+    # Larch: idle 1300 rpm, rev limit 10 500 rpm (RIG.md); speed linear in angle over 600 revs
     phi_end = 360.0 * 600
     base = lambda phi: 1300.0 + (10500.0 - 1300.0) * np.clip((phi + 300) / (phi_end + 300), 0, 1)
     tr = tooth_edges(firing_speed(base), phi_end, M1_WHEEL, step_deg=0.05)
@@ -421,7 +427,7 @@ def test_bad_input_one_line_errors():
         ToothWheel(60, 0)
 
 
-# --- simulated rides of the M1 (logger.sim: true edges, tooth numbers, cam levels, angles) -------
+# --- simulated rides of the Larch (logger.sim: true edges, tooth numbers, cam levels, angles) --
 def sim_frames(ride, *, seed: int = 0, k: int = 3, latency=(0.1e-3, 1e-3)) -> Frames:
     """Tooth frames from a SimRide's true edges, built like make_frames (RIG.md layout)."""
     t = ride.tooth_time - ride.start_time  # seconds since the ride start keep full precision
@@ -440,8 +446,8 @@ def sim_frames(ride, *, seed: int = 0, k: int = 3, latency=(0.1e-3, 1e-3)) -> Fr
 
 
 def m1_scenario():
-    """An M1 ride: idle, a pull in 2nd, closed-throttle overrun (fuel cut), cruise in 3rd."""
-    from logger import sim
+    """An Larch ride: idle, a pull in 2nd, closed-throttle overrun (fuel cut), cruise in 3rd."""
+    from crankbeat.logger import sim
 
     seg = sim.Segment
     return sim.Scenario(
@@ -455,10 +461,10 @@ def m1_scenario():
 
 @pytest.fixture(scope="module")
 def m1_ride():
-    from logger import sim
-    from logger.rig import load_rig
+    from crankbeat.logger import sim
+    from crankbeat.logger.rig import load_rig
 
-    rig = load_rig("m1")
+    rig = load_rig("larch")
     return rig, sim.simulate(rig, m1_scenario())
 
 

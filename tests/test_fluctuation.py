@@ -11,14 +11,19 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from crankbeat.dsp.engine import Engine
+from crankbeat.dsp.fluctuation import (
+    FluctuationStage,
+    WindowSpec,
+    default_window,
+    event_fluctuation,
+)
+from crankbeat.dsp.kinematics import equivalent_inertia, gas_torque_factor, piston_position
+from crankbeat.dsp.layout import firing_angles
 
-from dsp.engine import Engine
-from dsp.errors import InputError
-from dsp.fluctuation import FluctuationStage, WindowSpec, default_window, event_fluctuation
-from dsp.kinematics import equivalent_inertia, gas_torque_factor, piston_position
-from dsp.layout import firing_angles
+from crankbeat.errors import InputError
 
-M1 = Engine(
+Larch = Engine(
     name="twin-270",
     stroke_cycle=4,
     pin_deg=(0.0, 270.0),
@@ -30,7 +35,7 @@ M1 = Engine(
 STEP = 0.25  # deg, integration grid of the model
 
 
-def _pressure(local_deg, burn, p_ivc, eps=12.0, engine=M1, retard=0.0):
+def _pressure(local_deg, burn, p_ivc, eps=12.0, engine=Larch, retard=0.0):
     """Cylinder pressure (Pa) along the cycle at local angle 0..720 (0 = firing TDC)."""
     r, l = engine.crank_radius_m, engine.conrod_m
     area = np.pi * engine.bore_m**2 / 4
@@ -56,7 +61,7 @@ def synth_ride(
     teeth=60,
     missing=2,
     tdc_offset=96.0,
-    engine=M1,
+    engine=Larch,
     quant=0.25e-6,
     seed=0,
     retard=(0.0, 0.0),
@@ -113,13 +118,13 @@ def synth_ride(
     return edge_t, edge_angle, valid, per, truth
 
 
-def _raw(ride, engine=M1, window=None):
+def _raw(ride, engine=Larch, window=None):
     t, a, v, p, _ = ride
     return event_fluctuation(t, a, v, p, engine, pitch_deg=6.0, window=window)
 
 
 def test_default_window_fits_the_layout():
-    w = default_window(M1)
+    w = default_window(Larch)
     assert w.length_deg == 180.0  # 3/4 of 270 exceeds the expansion stroke
     four = Engine("flat-four", 4, (0, 180, 180, 0), (0,) * 4, (0, 1, 2, 3), (1, 3, 4, 2))
     assert default_window(four).length_deg == pytest.approx(135.0)  # 3/4 of 180
@@ -127,7 +132,7 @@ def test_default_window_fits_the_layout():
 
 def test_window_too_long_is_rejected():
     with pytest.raises(InputError, match="too long"):
-        FluctuationStage(M1, 6.0, window=WindowSpec(start_deg=0, length_deg=350))
+        FluctuationStage(Larch, 6.0, window=WindowSpec(start_deg=0, length_deg=350))
 
 
 def test_fired_and_misfired_work_separate_at_steady_speed():
@@ -150,7 +155,7 @@ def test_work_does_not_depend_on_rpm_for_the_same_combustion():
     w3 = np.median(_raw(r3)["work"][10:-10])
     w9 = np.median(_raw(r9)["work"][10:-10])
     # the same estimate blind to the reciprocating masses (J taken as constant)
-    blind = M1.with_geometry(recip_mass_kg=1e-9)
+    blind = Larch.with_geometry(recip_mass_kg=1e-9)
     b3 = np.median(_raw(r3, engine=blind)["work"][10:-10])
     b9 = np.median(_raw(r9, engine=blind)["work"][10:-10])
     assert w9 == pytest.approx(w3, rel=0.05)
@@ -173,7 +178,7 @@ def test_event_time_is_the_firing_tdc():
     ev = ev[(ev["cycle"] >= 0) & (ev["cycle"] < 12)]
     truth_t = ride[4]["t_tdc"][ev["cycle"], ev["cylinder"] - 1]
     ok = np.isfinite(ev["t"])
-    # TDC lies on a tooth edge of the M1 wheel (96 = 16 pitches): the edge time itself
+    # TDC lies on a tooth edge of the Larch wheel (96 = 16 pitches): the edge time itself
     assert np.max(np.abs(ev["t"][ok] - truth_t[ok])) < 2e-6
 
 
@@ -183,10 +188,10 @@ def test_streaming_equals_whole_array_on_random_chunks():
     t, a, v, p, _ = synth_ride(cycles=30, fired=fired)
     v = v.copy()
     v[900:905] = False  # a patch of invalid edges
-    whole = event_fluctuation(t, a, v, p, M1, pitch_deg=6.0)
+    whole = event_fluctuation(t, a, v, p, Larch, pitch_deg=6.0)
     rng = np.random.default_rng(3)
     cuts = np.sort(rng.choice(np.arange(1, t.size), size=40, replace=False))
-    stage = FluctuationStage(M1, 6.0)
+    stage = FluctuationStage(Larch, 6.0)
     bounds = zip(np.r_[0, cuts], np.r_[cuts, t.size])
     parts = [stage.push(t[i0:i1], a[i0:i1], v[i0:i1], p[i0:i1]) for i0, i1 in bounds]
     parts.append(stage.finish())

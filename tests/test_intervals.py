@@ -10,15 +10,15 @@ import warnings
 
 import numpy as np
 import pytest
+from crankbeat.dsp.crank import ToothWheel, reconstruct_crank
+from crankbeat.dsp.engine import Engine
+from crankbeat.dsp.events import FIRED, empty_events
+from crankbeat.dsp.intervals import identify_layout, interval_check
 
-from dsp.crank import ToothWheel, reconstruct_crank
-from dsp.engine import Engine
-from dsp.errors import InputError, LayoutMismatchWarning
-from dsp.events import FIRED, empty_events
-from dsp.intervals import identify_layout, interval_check
+from crankbeat.errors import InputError, LayoutMismatchWarning
 
-sim = pytest.importorskip("logger.sim")
-rig_mod = pytest.importorskip("logger.rig")
+sim = pytest.importorskip("crankbeat.logger.sim")
+rig_mod = pytest.importorskip("crankbeat.logger.rig")
 from test_analysis import ride_frames, run_ride  # noqa: E402
 
 Seg = sim.Segment
@@ -31,7 +31,7 @@ def _steady(rpm, thr, duration=3.0, gear=3):
 
 @pytest.mark.parametrize("rpm", [3000, 5000, 7000])
 def test_m1_intervals_within_3_degrees(rpm):
-    rig = rig_mod.load_rig("m1")
+    rig = rig_mod.load_rig("larch")
     _, step, _ = run_ride(sim.Scenario(segments=_steady(rpm, 40), seed=5))
     res = interval_check(step.events, rig.engine, tolerance_deg=3.0)
     assert [(r.from_cylinder, r.to_cylinder, r.expected_deg) for r in res] == [
@@ -45,7 +45,7 @@ def test_m1_intervals_within_3_degrees(rpm):
 
 @pytest.mark.parametrize("rpm,thr", [(3000, 30), (4500, 40), (6000, 60)])
 def test_ten_degrees_of_retard_is_flagged(rpm, thr):
-    rig = rig_mod.load_rig("m1")
+    rig = rig_mod.load_rig("larch")
     scn = sim.Scenario(segments=_steady(rpm, thr), faults=(sim.Fault("retard", 2, degrees=10.0),),
                        seed=5)
     _, step, _ = run_ride(scn)
@@ -58,14 +58,14 @@ def test_ten_degrees_of_retard_is_flagged(rpm, thr):
 
 @pytest.fixture(scope="module")
 def candidates():
-    rig = rig_mod.load_rig("m1")
+    rig = rig_mod.load_rig("larch")
     geo = {k: getattr(rig.engine, k) for k in
            ("bore_m", "stroke_m", "conrod_m", "recip_mass_kg", "inertia_kgm2")}
     return {n: rig_mod.load_layout(n).with_geometry(**geo) for n in TWINS}
 
 
 def _crank_of(true_layout, rpm=5000, thr=40):
-    rig = rig_mod.load_rig("m1")
+    rig = rig_mod.load_rig("larch")
     scn = sim.Scenario(segments=_steady(rpm, thr), seed=6,
                        engine=sim.EngineSpec(true_layout=true_layout))
     ride = sim.simulate(rig, scn)
@@ -132,9 +132,9 @@ def test_bad_arguments():
 
 
 def test_analyzer_profile_warns_of_a_mismatch_while_streaming(candidates):
-    from dsp.analysis import EventAnalyzer
+    from crankbeat.dsp.analysis import EventAnalyzer
 
-    rig = rig_mod.load_rig("m1")
+    rig = rig_mod.load_rig("larch")
     scn = sim.Scenario(segments=_steady(5000, 40), seed=6,
                        engine=sim.EngineSpec(true_layout="twin-360"))
     ride = sim.simulate(rig, scn)

@@ -8,10 +8,8 @@ crank axis; equation numbers from memory), and the two-term series a ≈ rω²(c
 
 import numpy as np
 import pytest
-
-from dsp.engine import Engine
-from dsp.errors import InputError
-from dsp.kinematics import (
+from crankbeat.dsp.engine import Engine
+from crankbeat.dsp.kinematics import (
     equivalent_inertia,
     piston_acceleration,
     piston_position,
@@ -19,7 +17,9 @@ from dsp.kinematics import (
     reciprocating_torque,
 )
 
-R, L = 0.031, 0.124  # m: the M1's crank radius (62 mm stroke / 2) and con-rod (RIG.md)
+from crankbeat.errors import InputError
+
+R, L = 0.031, 0.124  # m: the Larch's crank radius (62 mm stroke / 2) and con-rod (RIG.md)
 
 
 def heywood_distance_from_crank_axis(theta_rad, r, l):

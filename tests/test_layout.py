@@ -9,10 +9,8 @@ memory, checked numerically"; the triple's √3 couples are common practice.
 
 import numpy as np
 import pytest
-
-from dsp.engine import Engine
-from dsp.errors import InputError
-from dsp.layout import (
+from crankbeat.dsp.engine import Engine
+from crankbeat.dsp.layout import (
     balance_table,
     firing_angles,
     firing_intervals,
@@ -21,7 +19,9 @@ from dsp.layout import (
     torque_orders,
 )
 
-M, R, CONROD, PITCH = 0.42, 0.031, 0.124, 0.08  # kg, m, m, m (M1 figures of RIG.md; pitch invented)
+from crankbeat.errors import InputError
+
+M, R, CONROD, PITCH = 0.42, 0.031, 0.124, 0.08  # kg, m, m, m (Larch figures; pitch invented)
 LAM = R / CONROD
 
 
@@ -160,9 +160,9 @@ def test_torque_orders_even_and_uneven():
 
 
 def test_presets_load_if_present():
-    rig = pytest.importorskip("logger.rig")
+    rig = pytest.importorskip("crankbeat.logger.rig")
     if not hasattr(rig, "load_layout"):
-        pytest.skip("logger.rig.load_layout not there yet")
+        pytest.skip("crankbeat.logger.rig.load_layout not there yet")
     for name, (eng, _pattern) in LAYOUTS.items():
         if name in ("vtwin-60", "single-2stroke"):
             continue

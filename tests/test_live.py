@@ -2,10 +2,9 @@
 
 from __future__ import annotations
 
+from crankbeat.logger.live import CAUTION_LINES, CylinderState, LiveDisplay, LiveState
+from crankbeat.logger.live.display import IntervalState
 from rich.console import Console
-
-from logger.live import CAUTION_LINES, CylinderState, LiveDisplay, LiveState
-from logger.live.display import IntervalState
 
 
 def _text(display: LiveDisplay, state: LiveState) -> str:
@@ -24,7 +23,7 @@ def _state(**kw) -> LiveState:
         cylinders=[CylinderState(1, events=9000, misfires=3, rate200_pct=0.5, contribution=1.01),
                    CylinderState(2, events=9000, misfires=41, rate200_pct=1.5,
                                  contribution=0.97)],
-        # RIG.md: the M1's 270° crank fires at 270 then 450 degrees
+        # RIG.md: the Larch's 270° crank fires at 270 then 450 degrees
         intervals=[IntervalState(1, 2, 270.0, 270.8), IntervalState(2, 1, 450.0, 449.2)],
         vibration={"bar_left": 8.31}, can_frames=123456, can_lost=2, serial_crc_errors=5,
         serial_reconnects=1, recording="rides/",
@@ -89,10 +88,9 @@ def test_caution_lines_come_first():
 
 def test_tally_counts_and_the_rolling_200_rev_window():
     import numpy as np
+    from crankbeat.logger.chunks import StreamHealth
+    from crankbeat.logger.live import LiveTally
     from test_store_fill import m1_like_rig, make_events
-
-    from logger.chunks import StreamHealth
-    from logger.live import LiveTally
 
     rig = m1_like_rig()
     # Cylinder 2 misfires on every 10th cycle for the first 1000 cycles, then never.

@@ -1,4 +1,4 @@
-"""Misfire decision on simulated rides of the M1, scored against the simulator's ground truth.
+"""Misfire decision on simulated rides of the Larch, scored against the simulator's ground truth.
 
 Targets (the project's acceptance figures): detection >= 99 % and false alarms <= 0.1 % of fired
 events at 2000-8000 rpm and 20-80 % throttle; >= 95 % / <= 0.5 % at 8000-10500 rpm below 15 %
@@ -11,13 +11,13 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from crankbeat.dsp.events import MISFIRE, UNUSABLE
+from crankbeat.dsp.fluctuation import RAW_EVENT_DTYPE
+from crankbeat.dsp.misfire import MisfireDetector, MisfireSettings, detect_misfires
 
-from dsp.errors import InputError
-from dsp.events import MISFIRE, UNUSABLE
-from dsp.fluctuation import RAW_EVENT_DTYPE
-from dsp.misfire import MisfireDetector, MisfireSettings, detect_misfires
+from crankbeat.errors import InputError
 
-sim = pytest.importorskip("logger.sim")
+sim = pytest.importorskip("crankbeat.logger.sim")
 from test_analysis import run_ride  # noqa: E402  (shared ride helper)
 
 Seg = sim.Segment
@@ -187,6 +187,6 @@ def test_settings_are_checked():
 
 
 def _twin():
-    from dsp.engine import Engine
+    from crankbeat.dsp.engine import Engine
 
     return Engine("twin-270", 4, (0.0, 270.0), (0.0, 0.0), (-0.04, 0.04), (1, 2))

@@ -4,12 +4,9 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from scipy.interpolate import PchipInterpolator
-
-from dsp.engine import Engine
-from dsp.errors import InputError
-from dsp.layout import predicted_orders
-from dsp.orders import (
+from crankbeat.dsp.engine import Engine
+from crankbeat.dsp.layout import predicted_orders
+from crankbeat.dsp.orders import (
     AngleResampler,
     AngleSamples,
     OrderMap,
@@ -18,6 +15,9 @@ from dsp.orders import (
     order_spectrum,
     resample_to_angle,
 )
+from scipy.interpolate import PchipInterpolator
+
+from crankbeat.errors import InputError
 
 FS = 2000.0
 

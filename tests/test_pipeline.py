@@ -7,19 +7,19 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from crankbeat.dsp.events import FIRED, MASKED, MISFIRE
+from crankbeat.dsp.scoring import score_misfire
+from crankbeat.logger import pipeline, stream
+from crankbeat.logger.rig import load_rig
+from crankbeat.logger.sim import Fault, Scenario, Segment, simulate, write_ride
+from crankbeat.logger.store import Store
 
-from dsp.errors import DuplicateRunError
-from dsp.events import FIRED, MASKED, MISFIRE
-from dsp.scoring import score_misfire
-from logger import pipeline, stream
-from logger.rig import load_rig
-from logger.sim import Fault, Scenario, Segment, simulate, write_ride
-from logger.store import Store
+from crankbeat.errors import DuplicateRunError
 
 
 @pytest.fixture(scope="module")
 def ride(tmp_path_factory):
-    rig = load_rig("m1")
+    rig = load_rig("larch")
     scenario = Scenario(
         segments=(
             Segment(2.0, gear=0, rpm=(1300, 1300), throttle=(2, 2)),
@@ -114,11 +114,11 @@ def test_tooth_errors_learnt_on_fuel_cut_correct_the_rest_of_the_run_and_the_nex
     # A wheel with 0.1° rms spacing errors biases the observed firing interval; the errors are
     # learnt on the overrun fuel cut (REFERENCES.md, common practice: learnt while no cylinder
     # fires), applied from a few seconds after the cut on, and to the next run of the rig from
-    # its start: both must then see the M1's 270/450 within ±3° (the issue's figure; intervals
+    # its start: both must then see the Larch's 270/450 within ±3° (the issue's figure; intervals
     # from RIG.md).
-    from logger.sim import WheelSpec
+    from crankbeat.logger.sim import WheelSpec
 
-    rig = load_rig("m1")
+    rig = load_rig("larch")
     scenario = Scenario(
         segments=(
             Segment(3.0, gear=3, rpm=(4500, 4500), throttle=(35, 35)),
@@ -154,9 +154,9 @@ def test_tooth_errors_learnt_on_fuel_cut_correct_the_rest_of_the_run_and_the_nex
 def test_lost_can_frames_are_counted_and_the_ride_goes_on(tmp_path):
     # 0.3 % of the frames dropped (and latency jitter): each loss leaves a hole in the crank
     # edges; the run must still finish, count the losses and mark the events around them.
-    from logger.sim import CanSpec
+    from crankbeat.logger.sim import CanSpec
 
-    rig = load_rig("m1")
+    rig = load_rig("larch")
     scenario = Scenario(
         segments=(Segment(8.0, gear=3, rpm=(2500, 6000), throttle=(30, 50)),),
         can=CanSpec(drop_probability=0.003, jitter_s=0.0005, latency_s=0.0008),
@@ -174,9 +174,9 @@ def test_overrun_without_an_ecu_fuel_cut_still_teaches_the_wheel(tmp_path):
     # uncorrected 0.1° rms wheel hides misfires (measured: 55 % found). The overrun the status
     # frames show (throttle closed, well above idle) is then where the wheel is learnt; the
     # learnt errors must match the simulator's own (truth) and the detection recover.
-    from logger.sim import EngineSpec, WheelSpec
+    from crankbeat.logger.sim import EngineSpec, WheelSpec
 
-    rig = load_rig("m1")
+    rig = load_rig("larch")
     scenario = Scenario(
         segments=(
             Segment(2.0, gear=3, rpm=(4000, 4000), throttle=(30, 30)),
@@ -203,9 +203,9 @@ def test_a_stored_correction_from_another_wheel_is_replaced_by_the_runs_own(tmp_
     # One store, one rig name, two bikes whose wheels differ (different seeds give different
     # spacing errors): the second ride starts with the first one's correction, finds on its
     # overrun that it does not fit, and applies its own; its intervals must then be right.
-    from logger.sim import WheelSpec
+    from crankbeat.logger.sim import WheelSpec
 
-    rig = load_rig("m1")
+    rig = load_rig("larch")
     db = tmp_path / "s.db"
     segments = (
         Segment(2.0, gear=3, rpm=(4500, 4500), throttle=(35, 35)),

@@ -1,4 +1,4 @@
-"""Shipped presets: all rigs and layouts load, m1 is RIG.md's bike, layouts fire as in the trade."""
+"""Shipped presets: every rig and layout loads, larch is the reference rig."""
 
 from __future__ import annotations
 
@@ -7,10 +7,10 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from crankbeat.dsp.layout import balance_table, firing_intervals, firing_sequence
+from crankbeat.logger.rig import list_layouts, list_presets, load_layout, load_rig, occupied_bits
 
-from dsp.errors import RigError
-from dsp.layout import balance_table, firing_intervals, firing_sequence
-from logger.rig import list_layouts, list_presets, load_layout, load_rig, occupied_bits
+from crankbeat.errors import RigError
 
 
 @pytest.mark.parametrize("name", list_presets())
@@ -32,13 +32,13 @@ def test_presets_load_from_any_working_directory(tmp_path: Path) -> None:
     here = os.getcwd()
     os.chdir(tmp_path)
     try:
-        assert load_rig("m1").engine.name == "twin-270"
+        assert load_rig("larch").engine.name == "twin-270"
     finally:
         os.chdir(here)
 
 
 def test_shipped_lists() -> None:
-    assert {"m1", "example-four"} <= set(list_presets())
+    assert {"larch", "alder"} <= set(list_presets())
     assert {"single", "twin-360", "twin-180", "twin-270", "vtwin-90", "boxer-twin",
             "twin-180-2stroke", "triple-240", "four-flat", "four-cross"} <= set(list_layouts())
 
@@ -48,11 +48,11 @@ def test_unknown_layout_lists_the_known_ones() -> None:
         load_layout("v-twin")
 
 
-# --- m1 is the bike of RIG.md ("The reference rig", /work/shared/RIG.md) -----------------------
+# --- larch is the bike of RIG.md ("The reference rig", /work/shared/RIG.md) -----------------------
 
 
 def test_m1_engine_is_rig_md() -> None:
-    e = load_rig("m1").engine
+    e = load_rig("larch").engine
     # RIG.md "The bike": pins 0/270, bore 84, stroke 62, con-rod 124 mm, 0.42 kg, 0.021 kg·m²
     assert e.stroke_cycle == 4 and e.pin_deg == (0.0, 270.0) and e.firing_order == (1, 2)
     assert (e.bore_m, e.stroke_m, e.conrod_m) == pytest.approx((0.084, 0.062, 0.124))
@@ -62,7 +62,7 @@ def test_m1_engine_is_rig_md() -> None:
 
 
 def test_m1_wheel_limits_and_bus_are_rig_md() -> None:
-    rig = load_rig("m1")
+    rig = load_rig("larch")
     # RIG.md: 60-2 wheel, TDC 96° after tooth 0's falling edge, one-window cam, active level 1
     w = rig.wheel
     assert (w.teeth, w.missing, w.real_teeth, w.tdc_offset_deg) == (60, 2, 58, 96.0)
@@ -79,7 +79,7 @@ def byte_bits(first: int, last: int) -> set[int]:
 
 
 def test_m1_crank_frame_is_rig_md() -> None:
-    msg = load_rig("m1").message_for("tooth_periods")
+    msg = load_rig("larch").message_for("tooth_periods")
     assert msg is not None and msg.can_id == 0x0A0  # RIG.md table, id 0x0A0
     counter, cam, teeth = (msg.signal_for(r) for r in ("counter", "cam_level", "tooth_periods"))
     # RIG.md: byte 0 rolling counter 0..255; byte 1 bit 0 cam; bytes 2..7 three uint16 periods
@@ -92,7 +92,7 @@ def test_m1_crank_frame_is_rig_md() -> None:
 
 
 def test_m1_status_frame_is_rig_md() -> None:
-    msg = load_rig("m1").message_for("engine_speed")
+    msg = load_rig("larch").message_for("engine_speed")
     assert msg is not None and msg.can_id == 0x100 and msg.rate_hz == 100  # RIG.md: 100 Hz
     # RIG.md row 0x100: (role, bytes, scale, offset)
     table = {
@@ -111,7 +111,7 @@ def test_m1_status_frame_is_rig_md() -> None:
 
 
 def test_m1_accelerometer_is_rig_md() -> None:
-    s = load_rig("m1").sensors[0]
+    s = load_rig("larch").sensors[0]
     # RIG.md "Serial accelerometer": 921 600 baud, 2000 samples/s, 16-byte frames, sync A5 5A
     assert (s.baud, s.sample_rate_hz, s.frame_length, s.sync) == (921600, 2000.0, 16, b"\xa5\x5a")
     # RIG.md: left handlebar clamp; axes x forward, y left, z up
@@ -132,8 +132,8 @@ def test_m1_accelerometer_is_rig_md() -> None:
 
 
 def test_example_four_is_the_rig_it_claims() -> None:
-    rig = load_rig("example-four")
-    assert "Q4" in rig.description and rig.engine.n_cylinders == 4
+    rig = load_rig("alder")
+    assert "Alder" in rig.description and rig.engine.n_cylinders == 4
     teeth = rig.message_for("tooth_periods")
     assert teeth is not None and teeth.extended and teeth.can_id > 0x7FF  # a 29-bit id
     assert all(s.byte_order == "big" for m in rig.messages for s in m.signals)

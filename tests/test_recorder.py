@@ -3,22 +3,22 @@
 from __future__ import annotations
 
 import can
+import crankbeat.logger.recorder as recorder_mod
 import numpy as np
 import pytest
 from conftest import m1_frames, m1_serial
+from crankbeat.logger.can.sources.base import FrameBatch
+from crankbeat.logger.recorder import Recorder
+from crankbeat.logger.serial.capture import CaptureReader
 
-import logger.recorder as recorder_mod
-from dsp.errors import UsageError
-from logger.can.sources.base import FrameBatch
-from logger.recorder import Recorder
-from logger.serial.capture import CaptureReader
+from crankbeat.errors import UsageError
 
 
 @pytest.mark.parametrize("suffix", [".log", ".asc", ".blf", ".csv"])
-def test_frames_and_serial_reads_come_back(tmp_path, m1, suffix):
-    msgs = m1_frames(m1, seconds=0.2, extra_ids=True)
-    reads = m1_serial(m1, seconds=0.2) + [(1_767_225_600.5, b"")]  # b"": a link break
-    with Recorder(tmp_path, m1, can_suffix=suffix, stem="x") as rec:
+def test_frames_and_serial_reads_come_back(tmp_path, larch, suffix):
+    msgs = m1_frames(larch, seconds=0.2, extra_ids=True)
+    reads = m1_serial(larch, seconds=0.2) + [(1_767_225_600.5, b"")]  # b"": a link break
+    with Recorder(tmp_path, larch, can_suffix=suffix, stem="x") as rec:
         rec.write_can(FrameBatch.from_messages(msgs[:50], range(50)))
         rec.write_can(msgs[50:])
         rec.write_serial("bar_left", reads)
@@ -37,11 +37,11 @@ def test_frames_and_serial_reads_come_back(tmp_path, m1, suffix):
         assert r.read() == reads
 
 
-def test_data_reach_the_disk_before_close(tmp_path, m1, monkeypatch):
+def test_data_reach_the_disk_before_close(tmp_path, larch, monkeypatch):
     monkeypatch.setattr(recorder_mod, "FLUSH_EVERY_S", 0.0)  # flush after every write
-    msgs = m1_frames(m1, seconds=0.05)
-    reads = m1_serial(m1, seconds=0.05)
-    with Recorder(tmp_path, m1, stem="p") as rec:
+    msgs = m1_frames(larch, seconds=0.05)
+    reads = m1_serial(larch, seconds=0.05)
+    with Recorder(tmp_path, larch, stem="p") as rec:
         rec.write_can(msgs)
         rec.write_serial("bar_left", reads)
         # read while still open, as after a power cut: everything written is there
@@ -50,19 +50,19 @@ def test_data_reach_the_disk_before_close(tmp_path, m1, monkeypatch):
             assert r.read() == reads
 
 
-def test_explicit_flush(tmp_path, m1):
-    with Recorder(tmp_path, m1, stem="f") as rec:
-        rec.write_can(m1_frames(m1, seconds=0.02))
+def test_explicit_flush(tmp_path, larch):
+    with Recorder(tmp_path, larch, stem="f") as rec:
+        rec.write_can(m1_frames(larch, seconds=0.02))
         rec.flush()
         assert rec.can_path.read_text().count("\n") == rec.frames
 
 
-def test_bad_requests(tmp_path, m1):
+def test_bad_requests(tmp_path, larch):
     with pytest.raises(UsageError, match="has no serial sensor 'seat'"):
-        Recorder(tmp_path, m1, sensors=["seat"])
+        Recorder(tmp_path, larch, sensors=["seat"])
     with pytest.raises(UsageError, match="cannot record CAN as '.xyz'"):
-        Recorder(tmp_path, m1, can_suffix=".xyz")
-    with Recorder(tmp_path, m1, stem="b", sensors=[]) as rec:
+        Recorder(tmp_path, larch, can_suffix=".xyz")
+    with Recorder(tmp_path, larch, stem="b", sensors=[]) as rec:
         assert rec.serial_paths == {}
         with pytest.raises(UsageError, match="no serial sensor 'bar_left'"):
             rec.write_serial("bar_left", [(1.0, b"x")])

@@ -9,11 +9,10 @@ from html.parser import HTMLParser
 import matplotlib.image as mpimg
 import numpy as np
 import pytest
+from crankbeat.logger.report import make_run_report, plot_trend
+from crankbeat.logger.report.run_plots import windows_from_events
+from crankbeat.logger.store import Store
 from test_store_fill import fill_run, make_events
-
-from logger.report import make_run_report, plot_trend
-from logger.report.run_plots import windows_from_events
-from logger.store import Store
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (RFC 2083), section 3.1
 

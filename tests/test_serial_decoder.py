@@ -10,12 +10,11 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from test_serial_sensors import M1, ODD
-
-from logger.chunks import AccelBlock
-from logger.serial.capture import CaptureReader, CaptureWriter
-from logger.serial.decoder import SerialDecoder
-from logger.serial.frames import encode_frames
+from crankbeat.logger.chunks import AccelBlock
+from crankbeat.logger.serial.capture import CaptureReader, CaptureWriter
+from crankbeat.logger.serial.decoder import SerialDecoder
+from crankbeat.logger.serial.frames import encode_frames
+from test_serial_sensors import ODD, Larch
 
 OFFSET = 1_767_225_600.0
 DRIFT = 30e-6
@@ -67,7 +66,7 @@ def _decode(sensor, records, batch):
 
 
 def test_capture_replay_gives_truth_and_is_batch_independent(tmp_path):
-    records, truth, acc = board(M1, 60, seed=1, drop=[30_000, 30_001, 90_000], corrupt=[50_000])
+    records, truth, acc = board(Larch, 60, seed=1, drop=[30_000, 30_001, 90_000], corrupt=[50_000])
     path = tmp_path / "bar.accraw"
     with CaptureWriter(path) as w:
         for t, d in records:
@@ -76,7 +75,7 @@ def test_capture_replay_gives_truth_and_is_batch_independent(tmp_path):
         replay = list(r)
     assert replay == records
 
-    dec, t, xyz, gap = _decode(M1, replay, batch=7)
+    dec, t, xyz, gap = _decode(Larch, replay, batch=7)
     np.testing.assert_array_equal(xyz, acc / 2048.0)
     err = np.abs(t - truth)[30 * 2000 :] * 1e3
     assert np.median(err) < 0.05 and err.max() < 0.15  # ms
@@ -89,9 +88,9 @@ def test_capture_replay_gives_truth_and_is_batch_independent(tmp_path):
 
 
 def test_live_one_read_per_push_equals_replay_in_big_batches():
-    records, _, _ = board(M1, 25, seed=7, drop=[20_000])
-    _, t_live, xyz_live, gap_live = _decode(M1, records, batch=1)
-    _, t, xyz, gap = _decode(M1, records, batch=1000)
+    records, _, _ = board(Larch, 25, seed=7, drop=[20_000])
+    _, t_live, xyz_live, gap_live = _decode(Larch, records, batch=1)
+    _, t, xyz, gap = _decode(Larch, records, batch=1000)
     assert np.array_equal(t_live, t) and np.array_equal(xyz_live, xyz)
     assert np.array_equal(gap_live, gap) and gap.sum() == 1
 
@@ -105,13 +104,13 @@ def test_other_board_layout_works_end_to_end():
 
 
 def test_reconnect_and_board_reset_mark_gaps_and_keep_time():
-    rec1, truth1, acc1 = board(M1, 20, seed=3)
+    rec1, truth1, acc1 = board(Larch, 20, seed=3)
     # Pulled for about 2 s; the board restarted: sequence and clock from zero again.
-    rec2, truth2, acc2 = board(M1, 20, seed=4, t_dev0=0.0)
+    rec2, truth2, acc2 = board(Larch, 20, seed=4, t_dev0=0.0)
     shift = truth1[-1] + 2.0 - truth2[0]
     rec2 = [(t + shift, d) for t, d in rec2]
     records = rec1 + [(rec1[-1][0] + 0.01, b"")] + rec2
-    dec, t, xyz, gap = _decode(M1, records, batch=13)
+    dec, t, xyz, gap = _decode(Larch, records, batch=13)
     np.testing.assert_array_equal(xyz, np.vstack([acc1, acc2]) / 2048.0)
     assert np.flatnonzero(gap).tolist() == [len(truth1)]
     assert dec.health.reconnects == 1 and dec.health.clock_jumps == 1
@@ -123,37 +122,37 @@ def test_reconnect_and_board_reset_mark_gaps_and_keep_time():
 
 def test_wrong_clock_unit_in_the_rig_is_noted():
     from dataclasses import replace
-    records, truth, _ = board(M1, 12, seed=8)
-    wrong = replace(M1, device_time_unit_s=1.1e-6)  # 10 % off: no crystal is that bad
+    records, truth, _ = board(Larch, 12, seed=8)
+    wrong = replace(Larch, device_time_unit_s=1.1e-6)  # 10 % off: no crystal is that bad
     dec, t, _, _ = _decode(wrong, records, batch=20)
     assert len(t) == len(truth)
     assert any("ppm against the host clock" in n and "device_time_unit_s" in n for n in dec.notes)
-    good, _, _, _ = _decode(M1, records, batch=20)
+    good, _, _, _ = _decode(Larch, records, batch=20)
     assert not any("ppm" in n for n in good.notes)
 
 
 def test_stuck_board_clock_is_noted_and_memory_stays_bounded():
     n = 100_000  # 50 s at 2 kHz, every frame stamped with the same device time
-    data = encode_frames(M1, np.arange(n), np.full(n, 1234), np.zeros((n, 3), np.int64))
+    data = encode_frames(Larch, np.arange(n), np.full(n, 1234), np.zeros((n, 3), np.int64))
     records = [(1000.0 + i * 0.008, data[i * 256 : (i + 1) * 256]) for i in range(len(data) // 256)]
-    dec = SerialDecoder(M1)
+    dec = SerialDecoder(Larch)
     out = sum(len(dec.push(records[i : i + 50])) for i in range(0, len(records), 50))
     assert dec.aligner.pending <= 30 * 2000 and out + dec.aligner.pending == n
     assert any("not advancing" in note for note in dec.notes)
 
 
 def test_wrong_framing_is_noted_not_fatal():
-    records, _, _ = board(ODD, 5, seed=5)  # ODD's bytes fed to a decoder expecting M1 frames
-    dec, t, _, _ = _decode(M1, records, batch=10)
+    records, _, _ = board(ODD, 5, seed=5)  # ODD's bytes fed to a decoder expecting Larch frames
+    dec, t, _, _ = _decode(Larch, records, batch=10)
     assert len(t) == 0 and dec.health.good == 0
     assert any("without a valid frame" in n for n in dec.notes)
 
 
 @pytest.mark.parametrize("batch", [1, 64])
 def test_empty_and_tiny_pushes(batch):
-    dec = SerialDecoder(M1)
+    dec = SerialDecoder(Larch)
     assert len(dec.push([])) == 0
-    records, truth, _ = board(M1, 3, seed=6)
+    records, truth, _ = board(Larch, 3, seed=6)
     out = [dec.push(records[i : i + batch]) for i in range(0, len(records), batch)]
     out.append(dec.flush())
     assert sum(len(b) for b in out) == len(truth)

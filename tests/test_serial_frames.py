@@ -7,11 +7,11 @@ import struct
 
 import numpy as np
 import pytest
-from test_serial_sensors import M1, ODD, XOR
+from crankbeat.logger.rig.model import Checksum, SerialField
+from crankbeat.logger.serial.frames import FrameLayout, encode_frames
+from test_serial_sensors import ODD, XOR, Larch
 
-from dsp.errors import InputError, RigError
-from logger.rig.model import Checksum, SerialField
-from logger.serial.frames import FrameLayout, encode_frames
+from crankbeat.errors import InputError, RigError
 
 
 def test_m1_frame_bytes_match_struct_layout():
@@ -19,7 +19,7 @@ def test_m1_frame_bytes_match_struct_layout():
     seq = np.array([0, 1, 65535, 65536 + 7])
     t = np.array([0, 500, 2**32 - 1, 2**32 + 12])
     acc = np.array([[0, 0, 2048], [-1, 2, -2048], [32767, -32768, 5], [1, 2, 3]])
-    data = encode_frames(M1, seq, t, acc)
+    data = encode_frames(Larch, seq, t, acc)
     assert len(data) == 4 * 16
     for i in range(4):
         body = struct.pack("<HIhhh", seq[i] % 65536, t[i] % 2**32, *acc[i])
@@ -49,9 +49,9 @@ def test_xor_board_checksum_before_fields():
 
 
 def test_layout_decodes_what_it_encodes():
-    layout = FrameLayout(M1)
+    layout = FrameLayout(Larch)
     acc = np.array([[1, -2, 2048], [-2048, 4096, 0]])
-    frames = np.frombuffer(encode_frames(M1, np.array([5, 6]), np.array([10, 20]), acc),
+    frames = np.frombuffer(encode_frames(Larch, np.array([5, 6]), np.array([10, 20]), acc),
                            dtype=np.uint8).reshape(2, 16)
     assert layout.checksum_ok(frames).all()
     np.testing.assert_array_equal(layout.accel_g(frames), acc / 2048.0)
@@ -63,19 +63,19 @@ def test_layout_decodes_what_it_encodes():
 def test_bad_rig_layouts_are_rig_errors():
     from dataclasses import replace
     with pytest.raises(RigError, match="outside"):
-        FrameLayout(replace(M1, frame_length=12))
+        FrameLayout(replace(Larch, frame_length=12))
     with pytest.raises(RigError, match="inside its own range"):
-        FrameLayout(replace(M1, checksum=Checksum("crc16-ccitt-false", start=2, end=16, at=14)))
-    no_z = tuple(f for f in M1.fields if f.role != "accel_z")
+        FrameLayout(replace(Larch, checksum=Checksum("crc16-ccitt-false", start=2, end=16, at=14)))
+    no_z = tuple(f for f in Larch.fields if f.role != "accel_z")
     with pytest.raises(RigError, match="accel_z"):
-        FrameLayout(replace(M1, fields=no_z))
-    overlap_sync = M1.fields + (SerialField("x", 1, "u8"),)
+        FrameLayout(replace(Larch, fields=no_z))
+    overlap_sync = Larch.fields + (SerialField("x", 1, "u8"),)
     with pytest.raises(RigError, match="after the sync"):
-        FrameLayout(replace(M1, fields=overlap_sync))
+        FrameLayout(replace(Larch, fields=overlap_sync))
 
 
 def test_encode_rejects_out_of_range_counts():
     with pytest.raises(InputError, match="do not fit i16"):
-        encode_frames(M1, np.array([0]), np.array([0]), np.array([[40000, 0, 0]]))
+        encode_frames(Larch, np.array([0]), np.array([0]), np.array([[40000, 0, 0]]))
     with pytest.raises(InputError, match=r"\(n, 3\)"):
-        encode_frames(M1, np.array([0]), np.array([0]), np.array([1, 2, 3]))
+        encode_frames(Larch, np.array([0]), np.array([0]), np.array([1, 2, 3]))

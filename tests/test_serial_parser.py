@@ -12,12 +12,11 @@ import struct
 
 import numpy as np
 import pytest
+from crankbeat.logger.serial.frames import encode_frames
+from crankbeat.logger.serial.parser import SerialFrameParser, parse_stream
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from test_serial_sensors import M1, ODD, XOR
-
-from logger.serial.frames import encode_frames
-from logger.serial.parser import SerialFrameParser, parse_stream
+from test_serial_sensors import ODD, XOR, Larch
 
 
 def _ref_check(sensor, frame: bytes) -> bool:
@@ -85,38 +84,38 @@ def test_embedded_frames_recovered_once_any_chunking(segments, cuts):
     stream, embedded = b"", []
     for k, seg in enumerate(segments):
         if isinstance(seg, tuple):
-            data, _ = _frames(M1, 1, seed=seg[1], seq0=k)
+            data, _ = _frames(Larch, 1, seed=seg[1], seq0=k)
             embedded.append(len(stream))
             stream += data
         else:
             stream += seg
-    parser = SerialFrameParser(M1)
+    parser = SerialFrameParser(Larch)
     got = parser.push_records(_chunks(stream, cuts))
-    ref = reference_scan(M1, stream)
+    ref = reference_scan(Larch, stream)
     # Every embedded frame once; anything else accepted must pass the reference check too.
     assert set(embedded) <= set(ref)
     assert len(got) == len(ref) == parser.counts.good
-    np.testing.assert_array_equal(got.accel, _accel_rows(M1, stream, ref))
+    np.testing.assert_array_equal(got.accel, _accel_rows(Larch, stream, ref))
     c = parser.counts
     assert c.skipped + c.good * 16 + len(parser._carry) == len(stream)
 
 
 @settings(max_examples=60, deadline=None)
-@given(st.sampled_from([M1, ODD, XOR]), st.binary(max_size=600),
+@given(st.sampled_from([Larch, ODD, XOR]), st.binary(max_size=600),
        st.lists(st.integers(0, 10_000), max_size=8))
 def test_noise_matches_reference_for_every_board(sensor, noise, cuts):
-    # Pure noise: with a CRC-16 a chance frame is a 1-in-2^32 event per byte for M1; the 8-bit
+    # Pure noise: with a CRC-16 a chance frame is a 1-in-2^32 event per byte for Larch; the 8-bit
     # checksums of the other boards can pass by chance, so the reference decides.
     got, counts = parse_stream(sensor, _chunks(noise, cuts))
     ref = reference_scan(sensor, noise)
     assert len(got) == len(ref)
     np.testing.assert_array_equal(got.accel, _accel_rows(sensor, noise, ref))
-    if sensor is M1:
+    if sensor is Larch:
         assert len(got) == 0
 
 
 @settings(max_examples=40, deadline=None)
-@given(st.sampled_from([M1, ODD, XOR]), st.integers(1, 60), st.data())
+@given(st.sampled_from([Larch, ODD, XOR]), st.integers(1, 60), st.data())
 def test_damage_matches_reference(sensor, n, data):
     stream = bytearray(_frames(sensor, n, seed=n)[0])
     for _ in range(data.draw(st.integers(0, 4))):
@@ -137,20 +136,20 @@ def test_damage_matches_reference(sensor, n, data):
 
 # --- specific damage ----------------------------------------------------------------------------
 def test_start_mid_frame():
-    stream, acc = _frames(M1, 50)
+    stream, acc = _frames(Larch, 50)
     for k in range(1, 16):
-        got, counts = parse_stream(M1, [(0.0, stream[k:])])
+        got, counts = parse_stream(Larch, [(0.0, stream[k:])])
         np.testing.assert_array_equal(got.accel, acc[1:] / 2048.0)
         assert counts.skipped == 16 - k and counts.lost == 0 and counts.corrupt == 0
 
 
 def test_single_dropped_byte_loses_one_frame_and_counts_it():
-    stream, acc = _frames(M1, 100)
+    stream, acc = _frames(Larch, 100)
     for frame in (0, 7, 50, 98):
         for within in (0, 1, 5, 15):
             cut = frame * 16 + within
             damaged = stream[:cut] + stream[cut + 1 :]
-            got, counts = parse_stream(M1, [(0.0, damaged)])
+            got, counts = parse_stream(Larch, [(0.0, damaged)])
             keep = [i for i in range(100) if i != frame]
             np.testing.assert_array_equal(got.accel, acc[keep] / 2048.0)
             assert counts.lost == (1 if frame > 0 else 0)  # a loss before the first is unseen
@@ -162,11 +161,11 @@ def test_single_dropped_byte_loses_one_frame_and_counts_it():
 def test_every_single_bit_flip_is_rejected():
     # A CRC-16 detects every single-bit error (property of any CRC whose polynomial has more
     # than one term; common practice). A flip in the sync makes the frame unfindable instead.
-    stream, acc = _frames(M1, 3)
+    stream, acc = _frames(Larch, 3)
     for bit in range(16 * 8):
         b = bytearray(stream)
         b[16 + bit // 8] ^= 1 << (bit % 8)
-        got, counts = parse_stream(M1, [(0.0, bytes(b))])
+        got, counts = parse_stream(Larch, [(0.0, bytes(b))])
         np.testing.assert_array_equal(got.accel, acc[[0, 2]] / 2048.0)
         assert counts.lost == 1
         assert counts.corrupt == (0 if bit < 16 else 1)
@@ -174,20 +173,20 @@ def test_every_single_bit_flip_is_rejected():
 
 def test_frame_inside_failed_frame_is_found():
     # A real frame that starts inside a candidate whose checksum failed (a truncated frame).
-    stream, acc = _frames(M1, 3)
+    stream, acc = _frames(Larch, 3)
     bad = stream[:9]  # sync + 7 bytes of frame 0, then frame 1 follows at once
-    got, counts = parse_stream(M1, [(0.0, bad + stream[16:])])
+    got, counts = parse_stream(Larch, [(0.0, bad + stream[16:])])
     np.testing.assert_array_equal(got.accel, acc[1:] / 2048.0)
     assert counts.corrupt == 1 and counts.skipped == 9
-    p = SerialFrameParser(M1)
+    p = SerialFrameParser(Larch)
     p.push(bad + stream[16:], 0.0)
     assert (p.good, p.corrupt, p.lost, p.skipped) == (2, 1, 0, 9)  # loss before the first: unseen
 
 
 def test_frame_split_across_reads_gets_time_of_completing_read():
-    stream, _ = _frames(M1, 4)
+    stream, _ = _frames(Larch, 4)
     recs = [(10.0, stream[:20]), (11.0, stream[20:33]), (12.0, stream[33:])]
-    got, _ = parse_stream(M1, recs)
+    got, _ = parse_stream(Larch, recs)
     assert got.host_time.tolist() == [10.0, 11.0, 12.0, 12.0]
     assert got.last_in_read.tolist() == [True, True, False, True]
 
@@ -196,8 +195,9 @@ def test_sequence_and_device_time_unwrap():
     # Sequence wraps at 65536, device time (µs, u32) wraps at 2^32 (RIG.md).
     n = 400
     seq0, t0 = 65536 - 100, 2**32 - 30_000
-    stream, _ = _frames(M1, n, seq0=seq0, t0=t0)
-    got, counts = parse_stream(M1, [(float(i), stream[i * 160 : (i + 1) * 160]) for i in range(40)])
+    stream, _ = _frames(Larch, n, seq0=seq0, t0=t0)
+    reads = [(float(i), stream[i * 160 : (i + 1) * 160]) for i in range(40)]
+    got, counts = parse_stream(Larch, reads)
     np.testing.assert_array_equal(got.seq, np.arange(n) + seq0 % 65536)
     np.testing.assert_allclose(np.diff(got.device_t), 0.5e-3, atol=1e-9)
     assert counts.lost == 0
@@ -205,9 +205,9 @@ def test_sequence_and_device_time_unwrap():
 
 def test_long_gap_beyond_sequence_range_is_counted_from_the_clock():
     # 70 000 frames missing at 2 kHz = 35 s: the u16 sequence alone would say 70000 - 65536.
-    a, _ = _frames(M1, 10)
-    b, _ = _frames(M1, 10, seq0=10 + 70_000, t0=(10 + 70_000) * 500)
-    got, counts = parse_stream(M1, [(0.0, a), (35.005, b)])
+    a, _ = _frames(Larch, 10)
+    b, _ = _frames(Larch, 10, seq0=10 + 70_000, t0=(10 + 70_000) * 500)
+    got, counts = parse_stream(Larch, [(0.0, a), (35.005, b)])
     assert counts.lost == 70_000 and got.lost_before[10] == 70_000
     assert got.seq[-1] == 10 + 70_000 + 9
 
@@ -221,9 +221,9 @@ def test_board_without_sequence_field_counts_losses_from_its_clock():
 
 
 def test_device_reset_is_a_break_and_rebased_on_host_time():
-    a, _ = _frames(M1, 20, seq0=5000, t0=900_000_000)
-    b, _ = _frames(M1, 20)  # the board restarted: sequence and clock from 0
-    got, counts = parse_stream(M1, [(100.0, a), (103.0, b)])
+    a, _ = _frames(Larch, 20, seq0=5000, t0=900_000_000)
+    b, _ = _frames(Larch, 20)  # the board restarted: sequence and clock from 0
+    got, counts = parse_stream(Larch, [(100.0, a), (103.0, b)])
     assert got.break_before.tolist() == [False] * 20 + [True] + [False] * 19
     assert counts.clock_jumps == 1
     gap = got.device_t[20] - got.device_t[19]
@@ -232,9 +232,9 @@ def test_device_reset_is_a_break_and_rebased_on_host_time():
 
 
 def test_link_break_record_drops_carry_and_marks_next_frame():
-    stream, acc = _frames(M1, 6)
+    stream, acc = _frames(Larch, 6)
     recs = [(1.0, stream[:40]), (1.1, b""), (2.0, stream[48:])]
-    p = SerialFrameParser(M1)
+    p = SerialFrameParser(Larch)
     got = p.push_records(recs)
     np.testing.assert_array_equal(got.accel, acc[[0, 1, 3, 4, 5]] / 2048.0)
     assert got.break_before.tolist() == [False, False, True, False, False]
@@ -242,11 +242,11 @@ def test_link_break_record_drops_carry_and_marks_next_frame():
 
 
 def test_push_one_by_one_equals_whole_stream():
-    stream, _ = _frames(M1, 300, seed=3)
+    stream, _ = _frames(Larch, 300, seed=3)
     noisy = stream[:1000] + b"\xa5\x5a junk" + stream[1000:]
     recs = _chunks(noisy, list(range(0, len(noisy), 37)))
-    whole, wc = parse_stream(M1, recs)
-    p = SerialFrameParser(M1)
+    whole, wc = parse_stream(Larch, recs)
+    p = SerialFrameParser(Larch)
     parts = [p.push(d, t) for t, d in recs]
     for name in ("seq", "device_t", "accel", "host_time", "lost_before", "last_in_read"):
         np.testing.assert_array_equal(np.concatenate([getattr(x, name) for x in parts]),
@@ -258,7 +258,7 @@ def test_struct_decoded_values():
     # Decode one frame independently with struct and compare every field.
     body = struct.pack("<HIhhh", 4321, 123456789, -2048, 1024, 2047)
     frame = b"\xa5\x5a" + body + struct.pack("<H", binascii.crc_hqx(body, 0xFFFF))
-    got, _ = parse_stream(M1, [(5.0, frame)])
+    got, _ = parse_stream(Larch, [(5.0, frame)])
     assert got.seq.tolist() == [4321]
     assert got.device_t.tolist() == pytest.approx([123.456789])
     np.testing.assert_array_equal(got.accel, [[-1.0, 0.5, 2047 / 2048]])

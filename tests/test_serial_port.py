@@ -14,12 +14,12 @@ import time
 
 import numpy as np
 import pytest
-from test_serial_sensors import M1
+from crankbeat.logger.serial.frames import encode_frames
+from crankbeat.logger.serial.parser import parse_stream
+from crankbeat.logger.serial.port import PortReader
+from test_serial_sensors import Larch
 
-from dsp.errors import SourceError
-from logger.serial.frames import encode_frames
-from logger.serial.parser import parse_stream
-from logger.serial.port import PortReader
+from crankbeat.errors import SourceError
 
 
 @pytest.fixture(autouse=True)
@@ -57,7 +57,7 @@ def _collect(reader, want_bytes, timeout=5.0):
 
 def _stream(n, seq0=0):
     acc = np.random.default_rng(seq0).integers(-3000, 3000, size=(n, 3))
-    return encode_frames(M1, seq0 + np.arange(n), (seq0 + np.arange(n)) * 500, acc), acc
+    return encode_frames(Larch, seq0 + np.arange(n), (seq0 + np.arange(n)) * 500, acc), acc
 
 
 def test_loop_url_delivers_every_byte_with_host_times():
@@ -71,7 +71,7 @@ def test_loop_url_delivers_every_byte_with_host_times():
     assert b"".join(d for _, d in recs) == data
     times = [t for t, _ in recs]
     assert times == sorted(times) and t_start <= times[0] and times[-1] <= t_end  # time.time base
-    frames, counts = parse_stream(M1, recs)
+    frames, counts = parse_stream(Larch, recs)
     np.testing.assert_array_equal(frames.accel, acc / 2048.0)
     assert counts.corrupt == 0 and counts.lost == 0
 
@@ -170,7 +170,7 @@ def test_socket_url_reconnects_after_server_restart():
     assert len(marks) == 1
     assert b"".join(d for _, d in recs[: marks[0]]) == part1
     assert b"".join(d for _, d in recs[marks[0] + 1 :]) == part2
-    frames, counts = parse_stream(M1, recs)
+    frames, counts = parse_stream(Larch, recs)
     np.testing.assert_array_equal(frames.accel, np.vstack([acc1, acc2]) / 2048.0)
     assert counts.breaks == 1 and frames.break_before.sum() >= 1 and frames.break_before[200]
 
@@ -216,5 +216,5 @@ def test_posix_tty_backend_on_a_pseudo_terminal():
             if fd >= 0:
                 os.close(fd)
     assert recs[-1][1] == b"" and b"".join(d for _, d in recs) == data
-    frames, _ = parse_stream(M1, recs)
+    frames, _ = parse_stream(Larch, recs)
     np.testing.assert_array_equal(frames.accel, acc / 2048.0)

@@ -1,7 +1,7 @@
 """Sensor descriptions shared by the serial tests, checked against the shipped preset file.
 
-``M1`` is the reference rig's handlebar board written out by hand; the test below reads
-``logger/presets/m1.toml`` with the standard library's TOML parser so that the hand copy
+``Larch`` is the reference rig's handlebar board written out by hand; the test below reads
+``logger/presets/larch.toml`` with the standard library's TOML parser so that the hand copy
 cannot silently differ from the preset. ``ODD`` is a deliberately different board (3-byte
 sync, big-endian fields, sum8 checksum, no sequence field, 8-bit-wide fields) to show that
 nothing is tied to the reference layout.
@@ -12,11 +12,11 @@ from __future__ import annotations
 import tomllib
 from pathlib import Path
 
-from logger.rig.model import Checksum, SerialField, SerialSensor
+from crankbeat.logger.rig.model import Checksum, SerialField, SerialSensor
 
 _G = 1.0 / 2048.0  # RIG.md: 1/2048 g per bit
 
-M1 = SerialSensor(
+Larch = SerialSensor(
     name="bar_left",
     location="bar",
     mount="left handlebar clamp",
@@ -85,19 +85,19 @@ XOR = SerialSensor(
 
 
 def test_m1_copy_matches_preset_file():
-    preset = Path(__file__).resolve().parents[1] / "logger" / "presets" / "m1.toml"
+    preset = Path(__file__).resolve().parents[1] / "logger" / "presets" / "larch.toml"
     doc = tomllib.loads(preset.read_text())
     (board,) = doc["serial"]
-    assert board["name"] == M1.name
-    assert board["frame_length"] == M1.frame_length
-    assert bytes(board["sync"]) == M1.sync
-    assert board["baud"] == M1.baud and board["sample_rate_hz"] == M1.sample_rate_hz
-    assert board["sequence_modulo"] == M1.sequence_modulo
-    assert board["device_time_modulo"] == M1.device_time_modulo
-    assert board["device_time_unit_s"] == M1.device_time_unit_s
+    assert board["name"] == Larch.name
+    assert board["frame_length"] == Larch.frame_length
+    assert bytes(board["sync"]) == Larch.sync
+    assert board["baud"] == Larch.baud and board["sample_rate_hz"] == Larch.sample_rate_hz
+    assert board["sequence_modulo"] == Larch.sequence_modulo
+    assert board["device_time_modulo"] == Larch.device_time_modulo
+    assert board["device_time_unit_s"] == Larch.device_time_unit_s
     ck = board["checksum"]
     assert (ck["kind"], ck["start"], ck["end"], ck["at"]) == (
-        M1.checksum.kind, M1.checksum.start, M1.checksum.end, M1.checksum.at)
+        Larch.checksum.kind, Larch.checksum.start, Larch.checksum.end, Larch.checksum.at)
     fields = {(f["name"], f["offset"], f["dtype"], f.get("scale", 1.0), f.get("role"))
               for f in board["field"]}
-    assert fields == {(f.name, f.offset, f.dtype, f.scale, f.role) for f in M1.fields}
+    assert fields == {(f.name, f.offset, f.dtype, f.scale, f.role) for f in Larch.fields}

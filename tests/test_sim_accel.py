@@ -4,12 +4,11 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from crankbeat.logger.rig import load_rig
+from crankbeat.logger.sim import EngineSpec, Physics, Scenario, Segment, simulate
+from crankbeat.logger.sim.teeth import hermite
 
-from logger.rig import load_rig
-from logger.sim import EngineSpec, Physics, Scenario, Segment, simulate
-from logger.sim.teeth import hermite
-
-M1 = load_rig("m1")
+Larch = load_rig("larch")
 
 
 def _ride(layout, rpm=6000, rough=0.0, gear=0, seconds=1.5, inertia_scale=1.0):
@@ -17,7 +16,7 @@ def _ride(layout, rpm=6000, rough=0.0, gear=0, seconds=1.5, inertia_scale=1.0):
     sc = Scenario(segments=(seg,),
                   seed=4, engine=EngineSpec(true_layout=layout),
                   physics=Physics(inertia_scale=inertia_scale))
-    return simulate(M1, sc)
+    return simulate(Larch, sc)
 
 
 def _order_amplitude(ride, order, axis):

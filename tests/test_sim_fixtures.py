@@ -7,10 +7,9 @@ from pathlib import Path
 
 import can
 import pytest
-
-from logger.cli.main import main
-from logger.rig import load_rig
-from logger.sim import load_scenario, read_truth, simulate, write_ride
+from crankbeat.logger.cli.main import main
+from crankbeat.logger.rig import load_rig
+from crankbeat.logger.sim import load_scenario, read_truth, simulate, write_ride
 
 ROOT = Path(__file__).resolve().parent.parent
 FIX = ROOT / "fixtures"
@@ -21,7 +20,7 @@ def _sha(p: Path) -> str:
 
 
 @pytest.mark.parametrize(
-    "name, fmt", [("twin-270", ".log"), ("blf", ".blf"), ("example-four", ".asc")]
+    "name, fmt", [("twin-270", ".log"), ("blf", ".blf"), ("alder", ".asc")]
 )
 def test_fixture_regenerates_from_its_scenario(name, fmt, tmp_path):
     folder = FIX / name
@@ -57,7 +56,8 @@ def test_demo_fixture_has_what_the_readme_promises():
 def test_synth_command_writes_a_ride(tmp_path, capsys):
     assert main(["synth", "--help"]) == 0
     out = tmp_path / "r"
-    code = main(["synth", "--rig", "m1", "--duration", "1.5", "--rpm", "2500:3500", "--gear", "2",
+    code = main(["synth", "--rig", "larch", "--duration", "1.5", "--rpm", "2500:3500",
+                 "--gear", "2",
                  "--throttle", "25", "--misfire-cylinder", "1", "--misfire-rate", "0.2",
                  "--can-format", ".csv", "--seed", "4", "--out", str(out), "--quiet"])
     assert code == 0

@@ -6,12 +6,11 @@ import math
 
 import numpy as np
 import pytest
+from crankbeat.logger.rig import load_rig
+from crankbeat.logger.sim import Fault, Scenario, Segment, combustion, maps, simulate
+from crankbeat.logger.sim.crank import displacement
 
-from logger.rig import load_rig
-from logger.sim import Fault, Scenario, Segment, combustion, maps, simulate
-from logger.sim.crank import displacement
-
-RIG = load_rig("m1")
+RIG = load_rig("larch")
 ENG = RIG.engine
 CR = 12.5
 
@@ -69,7 +68,7 @@ def test_pressure_kernel_matches_the_reference_function():
 def test_indicated_work_by_torque_equals_cyclic_integral_of_p_dV():
     # Virtual work: ∮ p A ds/dθ dθ = ∮ p dV (definition of indicated work, Heywood ch. 2). The
     # torque route uses dsp.kinematics' lever arm, the p-dV route plain volume differences.
-    from dsp.kinematics import gas_torque_factor
+    from crankbeat.dsp.kinematics import gas_torque_factor
 
     phi = np.linspace(-360.0, 360.0, 14401)
     p = combustion.pressure(phi, engine=ENG, compression_ratio=CR, p_manifold=0.9e5, p_ivc=0.88e5,
@@ -163,7 +162,7 @@ def test_fuel_cut_on_closed_throttle_overrun():
 def test_cylinder_to_cylinder_spread_shows_in_the_expansion_speed_rise():
     # A cylinder releasing more heat accelerates the crank more over its expansion stroke; on a
     # 360° twin the two expansion windows are alike, so the stronger cylinder shows a larger rise.
-    from logger.sim import EngineSpec, Physics
+    from crankbeat.logger.sim import EngineSpec, Physics
 
     sc = Scenario(segments=(Segment(3.0, gear=0, rpm=(3000, 3000), throttle=(8, 8)),), seed=6,
                   engine=EngineSpec(true_layout="twin-360"),

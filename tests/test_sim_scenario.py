@@ -6,11 +6,9 @@ import math
 
 import numpy as np
 import pytest
-
-from dsp.errors import InputError
-from dsp.layout import firing_intervals
-from logger.rig import load_layout, load_rig
-from logger.sim import (
+from crankbeat.dsp.layout import firing_intervals
+from crankbeat.logger.rig import load_layout, load_rig
+from crankbeat.logger.sim import (
     EngineSpec,
     Fault,
     Physics,
@@ -22,15 +20,17 @@ from logger.sim import (
     scenario_to_toml,
     simulate,
 )
-from logger.sim.profile import Profile
+from crankbeat.logger.sim.profile import Profile
 
-M1 = load_rig("m1")
+from crankbeat.errors import InputError
+
+Larch = load_rig("larch")
 
 TEXT = """
 [ride]
 name = "loop"
 seed = 5
-rig = "m1"
+rig = "larch"
 
 [[segment]]
 duration = 2.0
@@ -76,7 +76,7 @@ def test_scenario_file_round_trip(tmp_path):
     p = tmp_path / "s.toml"
     p.write_text(TEXT)
     sc = load_scenario(p)
-    assert sc.seed == 5 and sc.rig == "m1" and sc.duration == 5.0
+    assert sc.seed == 5 and sc.rig == "larch" and sc.duration == 5.0
     assert sc.segments[1].road_kmh == (40, 60) and sc.segments[1].rough == 1.0
     assert sc.faults[1].cycles == (10, 11, 12)
     assert sc.engine.true_layout == "twin-360" and sc.physics.driveline_stiffness == 12000.0
@@ -135,7 +135,7 @@ def load_scenario_text():
 
 def test_road_speed_segment_reaches_its_target():
     sc = load_scenario_text()
-    ride = simulate(M1, Scenario(segments=sc.segments, seed=1))
+    ride = simulate(Larch, Scenario(segments=sc.segments, seed=1))
     t = ride.status_t - ride.start_time
     v = ride.status["road_speed"][(t > 4.0) & (t < 4.9)]
     target = 40 + 20 * (np.array([4.45]) - 2.0) / 3.0
@@ -150,7 +150,7 @@ def test_wheel_edges_and_cam_window_follow_rig_md():
     # RIG.md: 60-2 wheel, tooth 0 first after the gap, cylinder 1 TDC 96° after tooth 0's edge
     # (= tooth 16's edge, 16 × 6°); cylinder 2 fires 270° later (= tooth 1 of the next
     # revolution, 366°); cam level 1 during the revolution holding cylinder 1's firing TDC.
-    ride = simulate(M1, _steady())
+    ride = simulate(Larch, _steady())
     t, tooth, cam = ride.tooth_time, ride.tooth_number, ride.tooth_cam
     assert tooth.max() == 57 and np.all(np.diff(tooth)[tooth[1:] != 0] == 1)
     ev = ride.events
@@ -168,8 +168,8 @@ def test_wheel_edges_and_cam_window_follow_rig_md():
 
 
 def test_wheel_errors_are_seeded_and_move_the_edges():
-    a = simulate(M1, _steady(wheel=WheelSpec(error_rms_deg=0.1)))
-    b = simulate(M1, _steady(wheel=WheelSpec(error_rms_deg=0.1)))
+    a = simulate(Larch, _steady(wheel=WheelSpec(error_rms_deg=0.1)))
+    b = simulate(Larch, _steady(wheel=WheelSpec(error_rms_deg=0.1)))
     assert np.array_equal(a.tooth_error_deg, b.tooth_error_deg)
     # 58 draws of N(0, 0.1°): the sample std has a relative standard error 1/√(2·57) ≈ 9 %,
     # so ±35 % is about 3.7 standard errors (χ² statistics)
@@ -184,7 +184,7 @@ def test_true_layout_sets_the_firing_intervals(layout):
     # Intervals of the common layouts (DESIGN.md, common practice): 360/360, 180/540, 270/450, and
     # a 90° V-twin like a 270° twin; taken here from the truth's TDC times at steady speed.
     sc = _steady(rpm=2400, engine=EngineSpec(true_layout=layout))
-    ride = simulate(M1, sc)
+    ride = simulate(Larch, sc)
     ev = ride.events
     th = np.radians(ride.tooth_angle)
     ang = np.degrees(np.interp(ev["t"], ride.tooth_time, th))
@@ -196,15 +196,15 @@ def test_true_layout_sets_the_firing_intervals(layout):
 
 def test_inertia_scale_reduces_the_speed_fluctuation():
     # Speed fluctuation of a flywheel is ΔE / (J ω²) (handbook coefficient of fluctuation).
-    base = simulate(M1, _steady(rpm=2000))
-    heavy = simulate(M1, _steady(rpm=2000, physics=Physics(inertia_scale=2.0)))
+    base = simulate(Larch, _steady(rpm=2000))
+    heavy = simulate(Larch, _steady(rpm=2000, physics=Physics(inertia_scale=2.0)))
 
     def fluct(r):
         sel = r.tooth_time - r.start_time > 0.5
         return np.ptp(r.tooth_omega[sel]) / np.mean(r.tooth_omega[sel])
 
     ratio = fluct(base) / fluct(heavy)
-    j0 = M1.engine.inertia_kgm2
+    j0 = Larch.engine.inertia_kgm2
     jr = (2 * j0 + 0.0005) / (j0 + 0.0005)  # plus the reciprocating share, ~m·r² (from memory)
     assert ratio == pytest.approx(jr, rel=0.15)
 
@@ -212,7 +212,7 @@ def test_inertia_scale_reduces_the_speed_fluctuation():
 def test_faults_by_explicit_cycles_and_probability():
     sc = Scenario(segments=(Segment(2.0, gear=0, rpm=(3000, 3000), throttle=(5, 5)),), seed=8,
                   faults=(Fault("misfire", 1, cycles=(5, 9)), Fault("misfire", 2, probability=0.3)))
-    ev = simulate(M1, sc).events
+    ev = simulate(Larch, sc).events
     m1 = ev[(ev["cylinder"] == 1) & ~ev["fired"]]
     assert m1["cycle"].tolist() == [5, 9]
     share = np.mean(~ev["fired"][ev["cylinder"] == 2])

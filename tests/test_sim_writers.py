@@ -10,11 +10,10 @@ import can
 import cantools
 import numpy as np
 import pytest
-
-from logger.rig import load_rig
-from logger.serial.capture import CaptureReader
-from logger.serial.parser import SerialFrameParser
-from logger.sim import (
+from crankbeat.logger.rig import load_rig
+from crankbeat.logger.serial.capture import CaptureReader
+from crankbeat.logger.serial.parser import SerialFrameParser
+from crankbeat.logger.sim import (
     CanSpec,
     Fault,
     Scenario,
@@ -29,7 +28,7 @@ from logger.sim import (
     write_ride,
 )
 
-M1 = load_rig("m1")
+Larch = load_rig("larch")
 SC = Scenario(
     segments=(Segment(0.8, gear=0, rpm=(1300, 1300), throttle=(1, 1)),
               Segment(1.2, gear=2, rpm=(3000, 5000), throttle=(30, 40))),
@@ -41,7 +40,7 @@ SC = Scenario(
 
 @pytest.fixture(scope="module")
 def ride():
-    return simulate(M1, SC)
+    return simulate(Larch, SC)
 
 
 @pytest.fixture(scope="module")
@@ -87,7 +86,7 @@ def test_python_can_reads_back_every_frame(ride, frames, tmp_path, fmt):
 
 
 def test_unwritable_formats_are_refused(ride, tmp_path):
-    from dsp.errors import InputError
+    from crankbeat.errors import InputError
 
     for fmt in (".blf.gz", ".mf4", ".db"):
         with pytest.raises(InputError, match="CAN format"):
@@ -97,7 +96,7 @@ def test_unwritable_formats_are_refused(ride, tmp_path):
 def test_tooth_frames_decode_with_cantools(ride, frames):
     # Reference bit layout: cantools, from the rig's signal definitions (RIG.md: three uint16
     # periods at 0.25 µs, oldest first, rolling counter in byte 0, cam in byte 1 bit 0).
-    msg = M1.message_for("tooth_periods")
+    msg = Larch.message_for("tooth_periods")
     ref = _cantools_message(msg)
     sel = np.flatnonzero(frames.can_id == msg.can_id)
     dec = [ref.decode(frames.data[i, :8].tobytes()) for i in sel[:400]]
@@ -117,7 +116,7 @@ def test_tooth_frames_decode_with_cantools(ride, frames):
 
 
 def test_status_frames_decode_with_cantools(ride, frames):
-    msg = M1.message_for("engine_speed")
+    msg = Larch.message_for("engine_speed")
     ref = _cantools_message(msg)
     sel = np.flatnonzero(frames.can_id == msg.can_id)
     assert len(sel) == len(ride.status_t)
@@ -142,7 +141,7 @@ def test_frame_times_latency_and_foreign_ids(ride, frames):
 def test_dropped_frames_leave_counter_gaps():
     sc = Scenario(segments=(Segment(1.0, gear=0, rpm=(2000, 2000), throttle=(3, 3)),), seed=3,
                   can=CanSpec(drop_probability=0.05))
-    ride = simulate(M1, sc)
+    ride = simulate(Larch, sc)
     fr = build_frames(ride)
     all_teeth = len(ride.tooth_time[1:]) // 3
     sel = fr.kind == 0
@@ -174,7 +173,7 @@ def test_capture_frames_carry_valid_crc_and_the_true_samples(ride, tmp_path):
     assert np.all(frames[:, 0] == 0xA5) and np.all(frames[:, 1] == 0x5A)
     for f in frames[::97]:
         assert binascii.crc_hqx(f[2:14].tobytes(), 0xFFFF) == int(f[14]) | int(f[15]) << 8
-    parser = SerialFrameParser(M1.sensor("bar_left"))
+    parser = SerialFrameParser(Larch.sensor("bar_left"))
     parsed = parser.push_records(records)
     assert len(parsed) == len(acc.t)
     assert np.allclose(parsed.accel, np.clip(np.rint(acc.xyz * 2048), -32768, 32767) / 2048)
@@ -188,7 +187,7 @@ def test_capture_frames_carry_valid_crc_and_the_true_samples(ride, tmp_path):
 def test_device_clock_drifts_and_wraps():
     sc = Scenario(segments=(Segment(1.0, gear=0, rpm=(1300, 1300), throttle=(1, 1)),), seed=1,
                   serial=SerialSpec(drift_ppm=30.0, clock_offset_s=4294.5))
-    ride = simulate(M1, sc)
+    ride = simulate(Larch, sc)
     acc = ride.accel["bar_left"]
     assert acc.device_raw.max() < 2**32 and np.any(np.diff(acc.device_raw) < 0)  # wrapped
     dev = np.unwrap(acc.device_raw.astype(float), period=2**32) * 1e-6
@@ -201,9 +200,9 @@ def test_serial_faults_are_counted_by_the_parser():
     sc = Scenario(segments=(Segment(1.0, gear=0, rpm=(1300, 1300), throttle=(1, 1)),), seed=1,
                   serial=SerialSpec(corrupt_probability=0.01, lost_probability=0.01,
                                     start_offset=7))
-    ride = simulate(M1, sc)
+    ride = simulate(Larch, sc)
     records = list(serial_chunks(ride, "bar_left"))
-    parser = SerialFrameParser(M1.sensor("bar_left"))
+    parser = SerialFrameParser(Larch.sensor("bar_left"))
     parsed = parser.push_records(records)
     n = len(ride.accel["bar_left"].t)
     assert parser.counts.corrupt > 0 and parser.counts.lost > 0
@@ -231,17 +230,17 @@ def test_files_regenerate_bit_for_bit(tmp_path):
     sc = Scenario(segments=(Segment(0.6, gear=1, rpm=(3000, 3500), throttle=(20, 20), rough=0.5),),
                   seed=21, serial=SerialSpec(corrupt_probability=0.002))
     for fmt, sub in ((".asc", "a"), (".asc", "b"), (".log.gz", "a"), (".log.gz", "b")):
-        write_ride(simulate(M1, sc), tmp_path / sub, can_format=fmt)
+        write_ride(simulate(Larch, sc), tmp_path / sub, can_format=fmt)
     assert _hashes(tmp_path / "a") == _hashes(tmp_path / "b")
     head = (tmp_path / "a" / "ride.asc").read_text().splitlines()[0]
     assert head.startswith("date ") and "2026" in head  # the scenario's start, not the clock
-    other = simulate(M1, Scenario(segments=sc.segments, seed=22))
+    other = simulate(Larch, Scenario(segments=sc.segments, seed=22))
     write_ride(other, tmp_path / "c", can_format=".asc")
     assert _hashes(tmp_path / "c")["ride.asc"] != _hashes(tmp_path / "a")["ride.asc"]
 
 
 def test_any_rig_big_endian_extended_ids_36_minus_1(tmp_path):
-    rig = load_rig("example-four")
+    rig = load_rig("alder")
     sc = Scenario(segments=(Segment(1.0, gear=0, rpm=(3000, 3000), throttle=(10, 10)),), seed=2)
     ride = simulate(rig, sc)
     assert ride.tooth_number.max() == 34  # 36-1: 35 physical teeth
@@ -264,7 +263,7 @@ def test_any_rig_big_endian_extended_ids_36_minus_1(tmp_path):
 
 def test_status_roles_split_over_messages_at_their_own_rates(tmp_path):
     # Any rig: here coolant moves to its own 10 Hz message (29-bit id, big-endian).
-    text = (Path(__file__).resolve().parent.parent / "logger/presets/m1.toml").read_text()
+    text = (Path(__file__).resolve().parent.parent / "logger/presets/larch.toml").read_text()
     block = text[text.index('  [[can.message.signal]]\n  name = "coolant"'):
                  text.index('  [[can.message.signal]]\n  name = "road_speed"')]
     text = text.replace(block, "")
@@ -326,6 +325,6 @@ def test_live_serial_chunks_through_pyserial_loop(ride):
     finally:
         port.close()
     assert back == [d for _, d in chunks]
-    parsed = SerialFrameParser(M1.sensor("bar_left")).push_records(
+    parsed = SerialFrameParser(Larch.sensor("bar_left")).push_records(
         [(t, b) for (t, _), b in zip(chunks, back)])
     assert len(parsed) >= len(b"".join(back)) // 16 - 1

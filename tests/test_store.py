@@ -8,11 +8,11 @@ import sqlite3
 import numpy as np
 import pytest
 import sqlite_utils
+from crankbeat.dsp.events import EVENT_DTYPE, MISFIRE
+from crankbeat.logger.store import SCHEMA_VERSION, Store, sha256_file
 from test_store_fill import counts, fill_run, m1_like_rig, make_events
 
-from dsp.errors import RunNotFoundError, StoreError, UsageError
-from dsp.events import EVENT_DTYPE, MISFIRE
-from logger.store import SCHEMA_VERSION, Store, sha256_file
+from crankbeat.errors import RunNotFoundError, StoreError, UsageError
 
 TABLES = {"rigs", "runs", "sources", "events", "windows", "intervals", "vibration", "order_map",
           "tooth_errors", "schema_version"}
@@ -145,18 +145,18 @@ def test_rig_text_is_kept_once_per_version(tmp_path):
         text = st.rig_toml(a)
         assert st.db["rigs"].count == 1
         assert st.rig_toml(b) == text
-    assert 'name = "m1"' in text and "misfire_alert_pct" in text  # logger/presets/m1.toml
+    assert 'name = "larch"' in text and "misfire_alert_pct" in text  # logger/presets/larch.toml
 
 
 def test_tooth_errors_latest_wins(tmp_path):
     with Store.open(tmp_path / "p.db") as st:
-        assert st.load_tooth_errors("m1", "60-2") is None
-        st.save_tooth_errors("m1", "60-2", [0.1, -0.1, 0.0], n_revs=100,
+        assert st.load_tooth_errors("larch", "60-2") is None
+        st.save_tooth_errors("larch", "60-2", [0.1, -0.1, 0.0], n_revs=100,
                              learnt_at="2026-01-01T00:00:00+00:00")
-        st.save_tooth_errors("m1", "60-2", [0.2, np.nan, -0.2], n_revs=200,
+        st.save_tooth_errors("larch", "60-2", [0.2, np.nan, -0.2], n_revs=200,
                              learnt_at="2026-02-01T00:00:00+00:00")
-        st.save_tooth_errors("m1", "36-1", [9.0], learnt_at="2026-03-01T00:00:00+00:00")
-        got = st.load_tooth_errors("m1", "60-2")
+        st.save_tooth_errors("larch", "36-1", [9.0], learnt_at="2026-03-01T00:00:00+00:00")
+        got = st.load_tooth_errors("larch", "60-2")
         rms = st.db.execute("SELECT rms FROM tooth_errors ORDER BY id LIMIT 1").fetchone()[0]
     np.testing.assert_array_equal(got, [0.2, np.nan, -0.2])
     assert rms == pytest.approx(np.sqrt((0.01 + 0.01) / 3))  # rms definition
@@ -258,8 +258,8 @@ def test_misfire_verdict_filter(tmp_path):
 
 def test_dsp_results_are_stored_as_they_come(tmp_path):
     """window_rates and interval_check output go in without reshaping (real dsp functions)."""
-    from dsp.analysis import window_rates
-    from dsp.intervals import interval_check
+    from crankbeat.dsp.analysis import window_rates
+    from crankbeat.dsp.intervals import interval_check
 
     rig = m1_like_rig()
     ev = make_events(1500, misfire_every={2: 10}, interval_offset={2: 1.0}, special=False)

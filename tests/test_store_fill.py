@@ -1,27 +1,27 @@
 """Synthetic runs for the store, CLI and report tests (no tests in this file).
 
-Events of an M1-like 270° twin (RIG.md: cylinder 2 fires 270° after cylinder 1, then 450° back
+Events of an Larch-like 270° twin (RIG.md: cylinder 2 fires 270° after cylinder 1, then 450° back
 to cylinder 1), with misfires placed at known events so every count is known exactly.
 """
 
 from __future__ import annotations
 
 import numpy as np
-
-from dsp.crank import ToothWheel
-from dsp.engine import Engine
-from dsp.events import FIRED, FUEL_CUT, MASKED, MISFIRE, UNUSABLE, empty_events
-from logger.rig.model import CanBus, Rig
+from crankbeat.dsp.crank import ToothWheel
+from crankbeat.dsp.engine import Engine
+from crankbeat.dsp.events import FIRED, FUEL_CUT, MASKED, MISFIRE, UNUSABLE, empty_events
+from crankbeat.logger.rig.model import CanBus, Rig
 
 # RIG.md: 270° crank twin -> intervals 270 (1->2) and 450 (2->1); common practice.
 EXPECTED = {1: 450.0, 2: 270.0}  # interval ending at this cylinder's firing
 
 
 def m1_like_rig() -> Rig:
-    """A rig object carrying the M1 preset's file text (source "preset:m1")."""
+    """A rig object carrying the Larch preset's file text (source "preset:larch")."""
     engine = Engine(name="twin-270", stroke_cycle=4, pin_deg=(0.0, 270.0), bank_deg=(0.0, 0.0),
                     position_m=(-0.04, 0.04), firing_order=(1, 2))
-    return Rig(name="m1", description="test", source="preset:m1", engine=engine, wheel=ToothWheel(),
+    return Rig(name="larch", description="test", source="preset:larch", engine=engine,
+               wheel=ToothWheel(),
                can_bus=CanBus(), messages=(), sensors=())
 
 

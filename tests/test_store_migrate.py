@@ -5,10 +5,9 @@ from __future__ import annotations
 import sqlite3
 
 import numpy as np
-
-from dsp.events import EVENT_DTYPE
-from logger.store import SCHEMA_VERSION, Store
-from logger.store.schema import source_key
+from crankbeat.dsp.events import EVENT_DTYPE
+from crankbeat.logger.store import SCHEMA_VERSION, Store
+from crankbeat.logger.store.schema import source_key
 
 # Frozen copy of the v1 layout (logger/store/schema.py `_v1` as first shipped). It stays as it
 # is when the schema moves on: that is the point of the test.
@@ -44,7 +43,8 @@ CREATE TABLE "vibration" ("run" INTEGER REFERENCES "runs"("id"), "sensor" TEXT, 
 CREATE TABLE "tooth_errors" ("id" INTEGER PRIMARY KEY, "rig" TEXT, "wheel_key" TEXT,
   "learnt_at" TEXT, "run" INTEGER, "errors" TEXT, "rms" REAL, "n_revs" INTEGER);
 INSERT INTO schema_version VALUES (1);
-INSERT INTO rigs VALUES (1, 'm1', 'f00d', '[rig]\nname = "m1"\n', '2026-01-01T00:00:00+00:00');
+INSERT INTO rigs VALUES (1, 'larch', 'f00d', '[rig]\nname = "larch"\n',
+  '2026-01-01T00:00:00+00:00');
 INSERT INTO runs VALUES (1, 1, '2026-01-02T08:00:00+00:00', 'old-ride', 'dry', 1200.0,
   'complete', '{"x": 1}', '2026-01-02T09:00:00+00:00');
 INSERT INTO sources VALUES (1, 1, 'old.log', 'aaaa', 'can', 10);
@@ -107,8 +107,7 @@ def test_migrated_file_takes_new_runs_and_reopens_unchanged(tmp_path):
 def test_v1_ddl_is_what_the_first_migration_builds(tmp_path):
     """Guards the frozen copy: migration 1 alone must build exactly these tables and columns."""
     import sqlite_utils
-
-    from logger.store.schema import migrate
+    from crankbeat.logger.store.schema import migrate
 
     fresh = sqlite_utils.Database(tmp_path / "fresh.db")
     migrate(fresh, target=1)

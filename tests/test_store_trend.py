@@ -5,10 +5,10 @@ from __future__ import annotations
 import math
 
 import pytest
+from crankbeat.logger.store import Store, parse_rpm_band
 from test_store_fill import counts, fill_run, make_events
 
-from dsp.errors import UsageError
-from logger.store import Store, parse_rpm_band
+from crankbeat.errors import UsageError
 
 
 def _vib(sensor, bands, axis="sum", weighting="Wh", n=1000):
@@ -93,7 +93,7 @@ def test_bar_vibration_pools_bands_and_sums_axes(history):
     assert set(pts) == {ids["a"], ids["b"]}  # run c has no vibration rows
     # r.m.s. of two equal-length bands: sqrt((3² + 4²) / 2)
     assert pts[ids["a"]].value == pytest.approx(math.sqrt(12.5))
-    assert pts[ids["a"]].series == "bar_left"  # the seat sensor is not a bar sensor in m1
+    assert pts[ids["a"]].series == "bar_left"  # the seat sensor is not a bar sensor in larch
     # ISO 5349-1 vibration total value a_hv = sqrt(x² + y² + z²): sqrt(25 + 144 + 7056) = 85
     assert pts[ids["b"]].value == pytest.approx(85.0)
     (only_low,) = [p for p in st.trend("bar_vibration", rpm_band="5000-5500")

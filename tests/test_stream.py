@@ -9,18 +9,18 @@ import time
 from pathlib import Path
 
 import can
+import crankbeat.logger.stream as stream_mod
 import numpy as np
 import pytest
 from conftest import m1_frames, m1_serial
+from crankbeat.logger.can.decode import FrameDecoder
+from crankbeat.logger.can.sources import open_log
+from crankbeat.logger.rig.model import CanBus
+from crankbeat.logger.serial.capture import CaptureReader, CaptureWriter
+from crankbeat.logger.serial.decoder import SerialDecoder
+from crankbeat.logger.stream import live, replay
 
-import logger.stream as stream_mod
-from dsp.errors import FormatError, SourceError, UsageError
-from logger.can.decode import FrameDecoder
-from logger.can.sources import open_log
-from logger.rig.model import CanBus
-from logger.serial.capture import CaptureReader, CaptureWriter
-from logger.serial.decoder import SerialDecoder
-from logger.stream import live, replay
+from crankbeat.errors import FormatError, SourceError, UsageError
 
 FIX = Path(__file__).resolve().parent.parent / "fixtures"
 DEMO_LOG = FIX / "demo" / "demo.log"
@@ -72,9 +72,9 @@ def _replay(rig, log, acc=None, **kw):
 
 
 # ----------------------------------------------------------------------------- replay
-def test_chunks_sit_on_whole_multiples_and_lose_nothing(tmp_path, m1):
-    log, acc = _write_ride(tmp_path, m1)
-    chunks = _replay(m1, log, acc, chunk_s=0.25)
+def test_chunks_sit_on_whole_multiples_and_lose_nothing(tmp_path, larch):
+    log, acc = _write_ride(tmp_path, larch)
+    chunks = _replay(larch, log, acc, chunk_s=0.25)
     prev = -np.inf
     for c in chunks:
         k = c.end_time / 0.25
@@ -83,7 +83,7 @@ def test_chunks_sit_on_whole_multiples_and_lose_nothing(tmp_path, m1):
         assert (c.status.t < c.end_time).all()
         prev = c.end_time
     # nothing lost or doubled at the boundaries: the same as one decoder over the whole log
-    dec = FrameDecoder(m1)
+    dec = FrameDecoder(larch)
     with open_log(log) as src:
         blocks = [dec.push(b) for b in src.batches()]
     np.testing.assert_array_equal(_cat(chunks, "teeth", "periods"),
@@ -91,7 +91,7 @@ def test_chunks_sit_on_whole_multiples_and_lose_nothing(tmp_path, m1):
     np.testing.assert_array_equal(_cat(chunks, "status", "engine_speed"),
                                   np.concatenate([b[1].values["engine_speed"] for b in blocks]))
     # the accelerometer: the serial decoder fed everything at once, then flushed
-    sd = SerialDecoder(m1.sensor("bar_left"))
+    sd = SerialDecoder(larch.sensor("bar_left"))
     with CaptureReader(acc) as r:
         whole = [sd.push(r.read()), sd.flush()]
     np.testing.assert_array_equal(_cat(chunks, "accel", "t"),
@@ -102,66 +102,66 @@ def test_chunks_sit_on_whole_multiples_and_lose_nothing(tmp_path, m1):
     assert chunks[-1].health.can_unknown_id > 0
 
 
-def test_batching_does_not_change_the_chunks(tmp_path, m1, monkeypatch):
-    log, acc = _write_ride(tmp_path, m1)
-    ref = _replay(m1, log, acc)
+def test_batching_does_not_change_the_chunks(tmp_path, larch, monkeypatch):
+    log, acc = _write_ride(tmp_path, larch)
+    ref = _replay(larch, log, acc)
     monkeypatch.setattr(stream_mod, "BATCH_FRAMES", 37)
-    assert_same_chunks(_replay(m1, log, acc), ref)
-    assert_same_chunks(_replay(m1, log, acc, fast=False), ref)  # python-can's reader
+    assert_same_chunks(_replay(larch, log, acc), ref)
+    assert_same_chunks(_replay(larch, log, acc, fast=False), ref)  # python-can's reader
 
 
 @needs_demo
-def test_demo_fast_and_python_can_paths_agree(m1):
-    fast = _replay(m1, DEMO_LOG)
-    slow = _replay(m1, DEMO_LOG, fast=False)
+def test_demo_fast_and_python_can_paths_agree(larch):
+    fast = _replay(larch, DEMO_LOG)
+    slow = _replay(larch, DEMO_LOG, fast=False)
     assert_same_chunks(fast, slow)
     assert len(fast) > 100 and sum(len(c.teeth) for c in fast) > 50_000
 
 
-def test_progress_and_health_snapshots(tmp_path, m1):
-    log, acc = _write_ride(tmp_path, m1, seconds=1.0)
-    with replay(m1, log, {"bar_left": acc}) as s:
+def test_progress_and_health_snapshots(tmp_path, larch):
+    log, acc = _write_ride(tmp_path, larch, seconds=1.0)
+    with replay(larch, log, {"bar_left": acc}) as s:
         seen = []
         for c in s:
             seen.append((s.progress, c.health.can_frames))
         done, total = s.progress
     assert total == log.stat().st_size and done == total
     frames = [h for _, h in seen]
-    assert frames == sorted(frames) and frames[-1] == len(m1_frames(m1, seconds=1.0,
+    assert frames == sorted(frames) and frames[-1] == len(m1_frames(larch, seconds=1.0,
                                                                     extra_ids=True))
 
 
-def test_paced_replay_gives_the_same_chunks(tmp_path, m1):
-    log, acc = _write_ride(tmp_path, m1, seconds=0.4)
-    assert_same_chunks(_replay(m1, log, acc, pace=50.0), _replay(m1, log, acc))
+def test_paced_replay_gives_the_same_chunks(tmp_path, larch):
+    log, acc = _write_ride(tmp_path, larch, seconds=0.4)
+    assert_same_chunks(_replay(larch, log, acc, pace=50.0), _replay(larch, log, acc))
 
 
-def test_bad_arguments_are_usage_errors(tmp_path, m1):
-    log, acc = _write_ride(tmp_path, m1, seconds=0.2)
+def test_bad_arguments_are_usage_errors(tmp_path, larch):
+    log, acc = _write_ride(tmp_path, larch, seconds=0.2)
     with pytest.raises(UsageError, match="no serial sensor 'seat'"):
-        replay(m1, log, {"seat": acc})
+        replay(larch, log, {"seat": acc})
     with pytest.raises(UsageError, match="chunk_s must be a positive number of seconds, got 0"):
-        replay(m1, log, chunk_s=0)
+        replay(larch, log, chunk_s=0)
     with pytest.raises(UsageError, match="pace"):
-        replay(m1, log, pace=-1)
+        replay(larch, log, pace=-1)
     with pytest.raises(SourceError, match="cannot open capture file"):
-        replay(m1, log, {"bar_left": tmp_path / "none.acraw"})
+        replay(larch, log, {"bar_left": tmp_path / "none.acraw"})
 
 
-def test_random_bytes_log_fails_in_one_line_and_closes(tmp_path, m1):
+def test_random_bytes_log_fails_in_one_line_and_closes(tmp_path, larch):
     junk = tmp_path / "junk.log"
     junk.write_bytes(np.random.default_rng(7).integers(0, 256, 3000, dtype=np.uint8).tobytes())
     with pytest.raises(FormatError) as e:
-        _replay(m1, junk)
+        _replay(larch, junk)
     msg = str(e.value)
     assert msg.startswith(f"{junk}: line 1: not a candump log") and "\n" not in msg
 
 
-def test_a_log_of_another_rig_is_noted(tmp_path, m1):
-    from logger.rig import load_rig
+def test_a_log_of_another_rig_is_noted(tmp_path, larch):
+    from crankbeat.logger.rig import load_rig
 
-    log, _ = _write_ride(tmp_path, m1, seconds=0.3)
-    chunks = _replay(load_rig("example-four"), log)
+    log, _ = _write_ride(tmp_path, larch, seconds=0.3)
+    chunks = _replay(load_rig("alder"), log)
     notes = chunks[-1].health.notes
     assert any("is this the right rig for this log?" in n for n in notes)
     assert sum(len(c.teeth) for c in chunks) == 0
@@ -214,13 +214,13 @@ def _feed(bus_channel, server, msgs, reads, t_base, done, errors):
         done.set()
 
 
-def test_live_recorded_then_replayed_gives_identical_chunks(tmp_path, m1, monkeypatch):
+def test_live_recorded_then_replayed_gives_identical_chunks(tmp_path, larch, monkeypatch):
     # under load a serial read may reach the queue late; widen the margin for the test
     monkeypatch.setattr(stream_mod, "LIVE_SERIAL_MARGIN_S", 0.3)
-    from logger.sim import Scenario, Segment, can_messages, serial_chunks, simulate
+    from crankbeat.logger.sim import Scenario, Segment, can_messages, serial_chunks, simulate
 
     seconds = 1.2
-    ride = simulate(m1, Scenario(segments=(Segment(seconds, gear=2, rpm=(3000, 3500),
+    ride = simulate(larch, Scenario(segments=(Segment(seconds, gear=2, rpm=(3000, 3500),
                                                    throttle=(20, 30)),), seed=3))
     msgs = list(can_messages(ride))
     reads = list(serial_chunks(ride, "bar_left"))
@@ -232,7 +232,7 @@ def test_live_recorded_then_replayed_gives_identical_chunks(tmp_path, m1, monkey
                               args=(channel, server, msgs, reads, t_base, done, errors))
     live_chunks = []
     try:
-        with live(m1, CanBus(interface="virtual", channel=channel), {"bar_left": server.url},
+        with live(larch, CanBus(interface="virtual", channel=channel), {"bar_left": server.url},
                   record_dir=tmp_path / "rec", record_stem="run", stop=done) as s:
             feeder.start()
             live_chunks = list(s)
@@ -243,30 +243,30 @@ def test_live_recorded_then_replayed_gives_identical_chunks(tmp_path, m1, monkey
     assert not errors
     rec = tmp_path / "rec"
     assert sorted(p.name for p in rec.iterdir()) == ["run.bar_left.acraw", "run.log"]
-    replayed = _replay(m1, rec / "run.log", rec / "run.bar_left.acraw")
+    replayed = _replay(larch, rec / "run.log", rec / "run.bar_left.acraw")
     assert_same_chunks(live_chunks, replayed)
     # and the data made it through: every frame and (nearly) every sample
     assert sum(len(c.teeth) + len(c.status) for c in live_chunks) == sum(
         1 for m in msgs if m.arbitration_id in (0x0A0, 0x100))
     np.testing.assert_array_equal(
         _cat(live_chunks, "teeth", "periods"),
-        np.concatenate([FrameDecoder(m1).push(_frames_batch(msgs))[0].periods]))
+        np.concatenate([FrameDecoder(larch).push(_frames_batch(msgs))[0].periods]))
     # (the simulated capture may start mid-frame and carry a corrupt frame or two)
     assert live_chunks[-1].health.serial_good["bar_left"] >= 0.9 * seconds * 2000
 
 
 def _frames_batch(msgs):
-    from logger.can.sources.base import FrameBatch
+    from crankbeat.logger.can.sources.base import FrameBatch
 
     return FrameBatch.from_messages(msgs, range(len(msgs)))
 
 
-def test_live_stops_on_an_idle_bus_and_releases_everything(tmp_path, m1):
+def test_live_stops_on_an_idle_bus_and_releases_everything(tmp_path, larch):
     stop = threading.Event()
     channel = f"crankbeat-idle-{id(tmp_path)}"
-    with live(m1, CanBus(interface="virtual", channel=channel), stop=stop) as s:
+    with live(larch, CanBus(interface="virtual", channel=channel), stop=stop) as s:
         threading.Timer(0.3, stop.set).start()
         chunks = list(s)
     assert chunks == []
     with pytest.raises(UsageError, match="no serial sensor"):
-        live(m1, CanBus(interface="virtual", channel=channel), {"nope": "loop://"})
+        live(larch, CanBus(interface="virtual", channel=channel), {"nope": "loop://"})

@@ -17,6 +17,10 @@ import numpy as np
 import pytest
 
 sys.path.insert(0, str(Path(__file__).parent))
+from crankbeat.dsp.engine import Engine  # noqa: E402
+from crankbeat.dsp.kinematics import equivalent_inertia  # noqa: E402
+from crankbeat.dsp.layout import firing_angles  # noqa: E402
+from crankbeat.dsp.toothcal import ToothErrorLearner, learn_tooth_errors  # noqa: E402
 from test_crank import (  # noqa: E402
     M1_WHEEL,
     TWIN_270,
@@ -28,11 +32,7 @@ from test_crank import (  # noqa: E402
     tooth_edges,
 )
 
-from dsp.engine import Engine  # noqa: E402
-from dsp.errors import InputError  # noqa: E402
-from dsp.kinematics import equivalent_inertia  # noqa: E402
-from dsp.layout import firing_angles  # noqa: E402
-from dsp.toothcal import ToothErrorLearner, learn_tooth_errors  # noqa: E402
+from crankbeat.errors import InputError  # noqa: E402
 
 # an inline triple firing every 240° (common practice): identical cylinders on different teeth
 TRIPLE = Engine("triple-240", 4, (0.0, 240.0, 120.0), (0.0, 0.0, 0.0), (-0.07, 0.0, 0.07),
@@ -143,7 +143,7 @@ def test_one_speed_only_lowers_confidence():
 def _segment_spread(out, engine, window=(0.0, 120.0)):
     """Std of the normalised segment time over every firing event (the classic crank-speed
     metric, SAE 900232: segment time over each cylinder's expansion window)."""
-    from dsp.layout import firing_angles
+    from crankbeat.dsp.layout import firing_angles
 
     v = out.valid
     ang, t = out.angle[v], out.t[v]
@@ -174,7 +174,7 @@ def test_bad_input():
     learner = ToothErrorLearner(M1_WHEEL, TRIPLE)
     res = learner.result()
     assert res.n_revolutions == 0 and res.confidence == 0.0
-    from dsp.crank import CrankAngles
+    from crankbeat.dsp.crank import CrankAngles
 
     a = CrankAngles(np.zeros(3), np.zeros(3), np.zeros(3, np.int64), np.ones(3, bool),
                     np.ones(3))
@@ -185,12 +185,12 @@ def test_bad_input():
 
 
 def test_simulated_m1_overrun():
-    """The M1 simulator's wheel (0.1° rms errors) learnt on its own fuel-cut overrun."""
-    from dsp.crank import ToothWheel
-    from logger import sim
-    from logger.rig import load_rig
+    """The Larch simulator's wheel (0.1° rms errors) learnt on its own fuel-cut overrun."""
+    from crankbeat.dsp.crank import ToothWheel
+    from crankbeat.logger import sim
+    from crankbeat.logger.rig import load_rig
 
-    rig = load_rig("m1")
+    rig = load_rig("larch")
     ride = sim.simulate(rig, m1_scenario())
     wheel = ToothWheel.like(rig.wheel)
     out = run(sim_frames(ride, seed=21), wheel=wheel, engine=rig.engine)
@@ -205,7 +205,7 @@ def test_simulated_m1_overrun():
     truth = ride.tooth_error_deg - ride.tooth_error_deg[0]
     miss = np.sqrt(np.mean((res.error_deg - truth) ** 2))
     rms_true = np.sqrt(np.mean(truth**2))
-    print(f"M1 overrun: {res.n_revolutions} revs {res.rpm_range[0]:.0f}-{res.rpm_range[1]:.0f} "
+    print(f"Larch overrun: {res.n_revolutions} revs {res.rpm_range[0]:.0f}-{res.rpm_range[1]:.0f} "
           f"rpm, rms error {rms_true:.4f} deg, miss {miss:.5f} deg, conf {res.confidence:.3f}")
     assert res.n_revolutions > 150
     assert miss < 0.06 * rms_true  # measured: 0.005 deg of 0.156 deg

@@ -4,13 +4,13 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from crankbeat.dsp.engine import Engine
+from crankbeat.dsp.layout import predicted_orders
+from crankbeat.dsp.orders import compare_orders
+from crankbeat.dsp.vibration import SensorSpec, VibrationAnalyzer, merge_spans
+from crankbeat.dsp.weighting import G_N
 
-from dsp.engine import Engine
-from dsp.errors import InputError
-from dsp.layout import predicted_orders
-from dsp.orders import compare_orders
-from dsp.vibration import SensorSpec, VibrationAnalyzer, merge_spans
-from dsp.weighting import G_N
+from crankbeat.errors import InputError
 
 FS = 2000.0
 ENGINE = Engine(name="twin-270", stroke_cycle=4, pin_deg=(0.0, 270.0), bank_deg=(0.0, 0.0),
@@ -139,14 +139,14 @@ def test_bad_input():
 
 # -- simulated rides (logger.sim) -------------------------------------------------------------
 
-sim = pytest.importorskip("logger.sim.ride")
+sim = pytest.importorskip("crankbeat.logger.sim.ride")
 
 
 def simulated(layout: str, *, faults=(), rough: float = 0.0, road_noise_g: float = 0.02):
-    from logger.rig import load_rig
-    from logger.sim.scenario import EngineSpec, Physics, Scenario, Segment
+    from crankbeat.logger.rig import load_rig
+    from crankbeat.logger.sim.scenario import EngineSpec, Physics, Scenario, Segment
 
-    rig = load_rig("m1")
+    rig = load_rig("larch")
     segs = (Segment(duration=6.0, gear=3, rpm=(3000.0, 6000.0), throttle=(30.0, 40.0)),)
     if rough:
         segs = (Segment(duration=10.0, gear=3, rpm=(4000.0, 4000.0), throttle=(30.0, 30.0)),
@@ -205,7 +205,7 @@ def test_simulated_twins_show_the_predicted_orders(twins):
 def test_misfiring_cylinder_shows_unpredicted_half_orders():
     # a 360° twin whose cylinder 2 never fires fires every 720°: half orders appear that the
     # layout does not predict (torque_orders of 360/360 has whole orders only)
-    from logger.sim.scenario import Fault
+    from crankbeat.logger.sim.scenario import Fault
 
     _, _, res = simulated("twin-360", faults=(Fault(kind="misfire", cylinder=2),))
     assert [u["order"] for u in res["unpredicted"]][:1] == [1.5]

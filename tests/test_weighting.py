@@ -7,10 +7,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from scipy import signal
-
-from dsp.errors import InputError
-from dsp.weighting import (
+from crankbeat.dsp.weighting import (
     band_limiting_sos,
     daily_exposure,
     vector_sum,
@@ -20,6 +17,9 @@ from dsp.weighting import (
     weighting_zpk,
     whole_body_exposure,
 )
+from scipy import signal
+
+from crankbeat.errors import InputError
 
 # ISO 5349-1:2001, Table A.2 (Wh at one-third-octave centres), as transcribed in
 # /work/shared/REFERENCES.md; the standard rounds them to 3 significant figures.

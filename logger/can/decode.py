@@ -12,11 +12,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-
-from logger.can.bits import decode_raw, decode_signal
-from logger.can.sources.base import FrameBatch
-from logger.chunks import StatusBlock, StreamHealth, TeethBlock
-from logger.rig.model import CanMessage, CanSignal, Rig
+from crankbeat.logger.can.bits import decode_raw, decode_signal
+from crankbeat.logger.can.sources.base import FrameBatch
+from crankbeat.logger.chunks import StatusBlock, StreamHealth, TeethBlock
+from crankbeat.logger.rig.model import CanMessage, CanSignal, Rig
 
 #: Status roles, in the order their arrays appear in :class:`StatusBlock`.
 STATUS_ROLES = ("engine_speed", "throttle", "gear", "coolant", "road_speed")

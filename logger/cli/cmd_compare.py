@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import argparse
 
-from logger.cli.common import add_store_argument, fmt, open_store, print_json, table
-from logger.store import Store
+from crankbeat.logger.cli.common import add_store_argument, fmt, open_store, print_json, table
+from crankbeat.logger.store import Store
 
 NAME = "compare"
 HELP = "put two runs side by side: misfire rates, contribution, intervals, vibration"

@@ -6,17 +6,24 @@ import argparse
 import sys
 from pathlib import Path
 
-from dsp.errors import DuplicateRunError, SourceError, UsageError
-from logger.cli.common import add_store_argument, open_store, parse_assignment, print_json, stderr
-from logger.cli.summary import render_run, run_digest
-from logger.store import sha256_file
+from crankbeat.logger.cli.common import (
+    add_store_argument,
+    open_store,
+    parse_assignment,
+    print_json,
+    stderr,
+)
+from crankbeat.logger.cli.summary import render_run, run_digest
+from crankbeat.logger.store import sha256_file
+
+from crankbeat.errors import DuplicateRunError, SourceError, UsageError
 
 NAME = "replay"
 HELP = "analyse a recorded ride (CAN log + accelerometer captures) into the store"
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--rig", required=True, help="rig file (TOML) or preset name, e.g. m1")
+    parser.add_argument("--rig", required=True, help="rig file (TOML) or preset name, e.g. larch")
     parser.add_argument("--can", required=True, metavar="LOG",
                         help="CAN log in a format python-can reads (.log, .asc, .blf, .csv, .trc)")
     parser.add_argument("--accel", action="append", default=[], metavar="[NAME=]CAPTURE",
@@ -32,7 +39,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--force", action="store_true",
                         help="analyse again even if these files were analysed before")
     parser.add_argument("--json", action="store_true", help="print one JSON object (with 'id')")
-    parser.epilog = ("example: crankbeat replay --rig m1 --can ride.log "
+    parser.epilog = ("example: crankbeat replay --rig larch --can ride.log "
                      "--accel bar_left=ride.bar_left.acraw --label warm-up --odometer 1520")
 
 
@@ -63,7 +70,7 @@ def _check_file(path: Path, what: str) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from logger.rig import load_rig
+    from crankbeat.logger.rig import load_rig
 
     if args.pace is not None and not args.pace > 0:
         raise UsageError(f"--pace must be > 0, got {args.pace:g}")
@@ -94,10 +101,9 @@ def run(args: argparse.Namespace) -> int:
 
 
 def _analyse(args, rig, can_path: Path, accel: dict[str, Path], store) -> int:
+    from crankbeat.logger import pipeline  # imported here: it pulls in every dsp stage
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
-
-    from logger import pipeline  # imported here: it pulls in every dsp stage
 
     console = Console(file=sys.stderr)
     with Progress(TextColumn("replay"), BarColumn(), TextColumn("{task.percentage:>3.0f}%"),

@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from logger.cli.common import add_store_argument, open_store
+from crankbeat.logger.cli.common import add_store_argument, open_store
 
 NAME = "report"
 HELP = "write a run's figures (PNG) and one self-contained HTML page"
@@ -20,7 +20,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from logger.report import make_run_report
+    from crankbeat.logger.report import make_run_report
 
     with open_store(args) as store:
         run_id = store.resolve_run(args.run)

@@ -7,17 +7,18 @@ import signal
 import threading
 from pathlib import Path
 
-from dsp.errors import UsageError
-from logger.cli.common import add_store_argument, open_store, parse_assignment, stderr
-from logger.cli.summary import render_run
-from logger.live import LiveDisplay, caution_text
+from crankbeat.logger.cli.common import add_store_argument, open_store, parse_assignment, stderr
+from crankbeat.logger.cli.summary import render_run
+from crankbeat.logger.live import LiveDisplay, caution_text
+
+from crankbeat.errors import UsageError
 
 NAME = "ride"
 HELP = "record and analyse a ride live from the CAN bus and the accelerometer ports"
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--rig", required=True, help="rig file (TOML) or preset name, e.g. m1")
+    parser.add_argument("--rig", required=True, help="rig file (TOML) or preset name, e.g. larch")
     add_store_argument(parser)
     parser.add_argument("--interface", help="python-can interface (default: from the rig)")
     parser.add_argument("--channel", help="CAN channel, e.g. can0 (default: from the rig)")
@@ -31,7 +32,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--odometer", type=float, metavar="KM", help="odometer reading, km")
     parser.add_argument("--plain", action="store_true",
                         help="print updates line by line instead of redrawing the screen")
-    parser.epilog = ("example: crankbeat ride --rig m1 --channel can0 "
+    parser.epilog = ("example: crankbeat ride --rig larch --channel can0 "
                      "--port bar_left=/dev/ttyUSB0 --record rides/ --label morning\n"
                      "Ctrl-C ends the ride and keeps everything recorded so far.\n\n"
                      + caution_text())
@@ -39,7 +40,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 def ports_for(rig, specs: list[str]) -> dict[str, str]:
     """Serial port per sensor: ``--port`` flags, then environment, then the rig file."""
-    from logger.rig import resolve_serial_port
+    from crankbeat.logger.rig import resolve_serial_port
 
     given: dict[str, str] = {}
     names = [s.name for s in rig.sensors]
@@ -53,7 +54,7 @@ def ports_for(rig, specs: list[str]) -> dict[str, str]:
 
 
 def run(args: argparse.Namespace) -> int:
-    from logger.rig import load_rig, resolve_can_bus
+    from crankbeat.logger.rig import load_rig, resolve_can_bus
 
     rig = load_rig(args.rig)
     bus = resolve_can_bus(rig, interface=args.interface, channel=args.channel,
@@ -65,7 +66,7 @@ def run(args: argparse.Namespace) -> int:
             record_dir.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
             raise UsageError(f"--record {record_dir}: cannot create it ({exc.strerror})") from None
-    from logger import pipeline  # imported here: it pulls in every dsp stage
+    from crankbeat.logger import pipeline  # imported here: it pulls in every dsp stage
 
     stop = threading.Event()
 

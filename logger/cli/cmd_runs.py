@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from logger.cli.common import add_store_argument, fmt, open_store, print_json, table
+from crankbeat.logger.cli.common import add_store_argument, fmt, open_store, print_json, table
 
 NAME = "runs"
 HELP = "list the runs in the store"
@@ -14,7 +14,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     add_store_argument(parser)
     parser.add_argument("--rig", help="only runs of this rig (by name)")
     parser.add_argument("--json", action="store_true", help="print one JSON array")
-    parser.epilog = "example: crankbeat runs --rig m1 --store programme.db"
+    parser.epilog = "example: crankbeat runs --rig larch --store programme.db"
 
 
 def run(args: argparse.Namespace) -> int:

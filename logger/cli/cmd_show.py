@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import argparse
 
-from logger.cli.common import add_store_argument, open_store, print_json
-from logger.cli.summary import render_run, run_digest
+from crankbeat.logger.cli.common import add_store_argument, open_store, print_json
+from crankbeat.logger.cli.summary import render_run, run_digest
 
 NAME = "show"
 HELP = "show one run: per-cylinder misfires, firing intervals, vibration, stream health"

@@ -6,7 +6,7 @@ import argparse
 import sys
 import time
 
-from dsp.errors import UsageError
+from crankbeat.errors import UsageError
 
 NAME = "synth"
 HELP = "simulate a ride (CAN log, serial captures, ground truth) from a scenario or quick flags"
@@ -14,7 +14,7 @@ HELP = "simulate a ride (CAN log, serial captures, ground truth) from a scenario
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--rig", default=None,
-                        help="rig file (TOML) or preset name (default: the scenario's, else m1)")
+                        help="rig file (TOML) or preset name (default: the scenario's, else larch)")
     parser.add_argument("--scenario", metavar="FILE", default=None,
                         help="scenario file (TOML); without it the quick flags below make one")
     parser.add_argument("--out", metavar="DIR", default="synth-out", help="output directory")
@@ -37,7 +37,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="no progress on stderr (shown only on a terminal anyway)")
     parser.epilog = (
         "examples:\n"
-        "  crankbeat synth --rig m1 --duration 20 --rpm 3000:7000 --throttle 40 "
+        "  crankbeat synth --rig larch --duration 20 --rpm 3000:7000 --throttle 40 "
         "--misfire-cylinder 2 --out rides/pull\n"
         "  crankbeat synth --scenario fixtures/demo/demo.scenario.toml --out rides/demo"
     )
@@ -57,7 +57,7 @@ def _rpm_pair(text: str) -> tuple[float, float]:
 
 def quick_scenario(args: argparse.Namespace):
     """The scenario the quick flags describe."""
-    from logger.sim import Fault, Scenario, Segment
+    from crankbeat.logger.sim import Fault, Scenario, Segment
 
     if not args.duration > 0:
         raise UsageError(f"--duration must be > 0 s, got {args.duration}")
@@ -92,8 +92,8 @@ class _Progress:
 def run(args: argparse.Namespace) -> int:
     from dataclasses import replace
 
-    from logger.rig import load_rig
-    from logger.sim import load_scenario, simulate, write_ride
+    from crankbeat.logger.rig import load_rig
+    from crankbeat.logger.sim import load_scenario, simulate, write_ride
 
     if args.scenario:
         sc = load_scenario(args.scenario)
@@ -101,7 +101,7 @@ def run(args: argparse.Namespace) -> int:
         sc = quick_scenario(args)
     if args.seed is not None:
         sc = replace(sc, seed=args.seed)
-    rig_spec = args.rig or sc.rig or "m1"
+    rig_spec = args.rig or sc.rig or "larch"
     rig = load_rig(rig_spec)
     sc = replace(sc, rig=rig_spec)
     progress = _Progress(not args.quiet and sys.stderr.isatty())

@@ -5,8 +5,8 @@ from __future__ import annotations
 import argparse
 from pathlib import Path
 
-from logger.cli.common import add_store_argument, fmt, open_store, print_json, table
-from logger.store import METRICS
+from crankbeat.logger.cli.common import add_store_argument, fmt, open_store, print_json, table
+from crankbeat.logger.store import METRICS
 
 NAME = "trend"
 HELP = "follow a metric across runs (misfire rate, interval error, bar vibration, contribution)"
@@ -34,7 +34,7 @@ def run(args: argparse.Namespace) -> int:
         points = store.trend(args.metric, rig=args.rig, cylinder=args.cylinder,
                              rpm_band=args.rpm, by=args.by, last=args.last)
         if args.plot:
-            from logger.report.trend import plot_trend
+            from crankbeat.logger.report.trend import plot_trend
 
             plot_trend(points, Path(args.plot), metric=args.metric, by=args.by,
                        rpm_band=args.rpm)

@@ -19,23 +19,23 @@ import traceback
 from pathlib import Path
 from types import ModuleType
 
-from dsp.errors import CrankbeatError, StoreError
+from crankbeat.errors import CrankbeatError, StoreError
 
 #: Command modules, in help order. ``cmd_synth`` comes from the simulator; main works without it.
 COMMANDS: tuple[str, ...] = (
-    "logger.cli.cmd_ride",
-    "logger.cli.cmd_replay",
-    "logger.cli.cmd_runs",
-    "logger.cli.cmd_show",
-    "logger.cli.cmd_events",
-    "logger.cli.cmd_trend",
-    "logger.cli.cmd_compare",
-    "logger.cli.cmd_report",
-    "logger.cli.cmd_synth",
+    "crankbeat.logger.cli.cmd_ride",
+    "crankbeat.logger.cli.cmd_replay",
+    "crankbeat.logger.cli.cmd_runs",
+    "crankbeat.logger.cli.cmd_show",
+    "crankbeat.logger.cli.cmd_events",
+    "crankbeat.logger.cli.cmd_trend",
+    "crankbeat.logger.cli.cmd_compare",
+    "crankbeat.logger.cli.cmd_report",
+    "crankbeat.logger.cli.cmd_synth",
 )
 
 #: Modules that may be absent without breaking the other commands.
-OPTIONAL = frozenset({"logger.cli.cmd_synth"})
+OPTIONAL = frozenset({"crankbeat.logger.cli.cmd_synth"})
 
 
 def command_modules() -> list[ModuleType]:
@@ -55,7 +55,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="crankbeat",
         description="Ride-test analysis: misfire per cylinder, firing intervals, rider vibration.",
-        epilog="example: crankbeat replay --rig m1 --can ride.log --accel ride.bar_left.acraw",
+        epilog="example: crankbeat replay --rig larch --can ride.log --accel ride.bar_left.acraw",
     )
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", title="commands")
     for mod in command_modules():

@@ -2,9 +2,9 @@
 
 from __future__ import annotations
 
-from logger.cli.common import fmt, table
-from logger.report.text import summary_lines
-from logger.store import Store
+from crankbeat.logger.cli.common import fmt, table
+from crankbeat.logger.report.text import summary_lines
+from crankbeat.logger.store import Store
 
 
 def run_digest(store: Store, run_id: int) -> dict:

@@ -4,7 +4,7 @@ The pipeline keeps a :class:`LiveTally` (push each step's events, the stream hea
 vibration level) and, a few times a second, calls ``display.update(tally.state(elapsed_s))``.
 """
 
-from logger.live.display import (
+from crankbeat.logger.live.display import (
     CAUTION_LINES,
     CylinderState,
     IntervalState,
@@ -12,7 +12,7 @@ from logger.live.display import (
     LiveState,
     caution_text,
 )
-from logger.live.tally import LiveTally
+from crankbeat.logger.live.tally import LiveTally
 
 __all__ = ["CAUTION_LINES", "CylinderState", "IntervalState", "LiveDisplay", "LiveState",
            "LiveTally", "caution_text"]

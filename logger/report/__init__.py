@@ -17,11 +17,11 @@ __all__ = ["RunReport", "make_run_report", "plot_trend"]
 
 def __getattr__(name: str) -> Any:
     if name in ("RunReport", "make_run_report"):
-        from logger.report import run
+        from crankbeat.logger.report import run
 
         return getattr(run, name)
     if name == "plot_trend":
-        from logger.report.trend import plot_trend
+        from crankbeat.logger.report.trend import plot_trend
 
         return plot_trend
-    raise AttributeError(f"module 'logger.report' has no attribute {name!r}")
+    raise AttributeError(f"module 'crankbeat.logger.report' has no attribute {name!r}")

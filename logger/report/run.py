@@ -8,11 +8,12 @@ import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from dsp.errors import CrankbeatError
-from logger.report import run_plots
-from logger.report.text import summary_lines
-from logger.report.trend import plot_trend
-from logger.store import Store
+from crankbeat.logger.report import run_plots
+from crankbeat.logger.report.text import summary_lines
+from crankbeat.logger.report.trend import plot_trend
+from crankbeat.logger.store import Store
+
+from crankbeat.errors import CrankbeatError
 
 
 @dataclass
@@ -26,7 +27,7 @@ class RunReport:
 
 def _limits(rig_toml: str) -> dict[str, float]:
     """The rig's [limits] as stored with the run (model defaults where the file is silent)."""
-    from logger.rig.model import Limits
+    from crankbeat.logger.rig.model import Limits
 
     base = {"misfire_alert_pct": Limits.misfire_alert_pct,
             "interval_tolerance_deg": Limits.interval_tolerance_deg}

@@ -5,11 +5,8 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
-from matplotlib.colors import LogNorm
-from matplotlib.ticker import MaxNLocator
-
-from dsp.events import FIRED, MISFIRE
-from logger.report.style import (
+from crankbeat.dsp.events import FIRED, MISFIRE
+from crankbeat.logger.report.style import (
     MISFIRE_COLOUR,
     MUTED_COLOUR,
     THRESHOLD_COLOUR,
@@ -17,7 +14,9 @@ from logger.report.style import (
     new_figure,
     save,
 )
-from logger.store import Store
+from crankbeat.logger.store import Store
+from matplotlib.colors import LogNorm
+from matplotlib.ticker import MaxNLocator
 
 # Above this many fired events per cylinder the dots are thinned (every misfire is kept).
 _MAX_DOTS = 40_000

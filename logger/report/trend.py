@@ -7,9 +7,8 @@ from datetime import datetime
 from pathlib import Path
 
 import matplotlib.dates as mdates
-
-from logger.report.style import CYLINDER_COLOURS, new_figure, save
-from logger.store import METRICS, TrendPoint
+from crankbeat.logger.report.style import CYLINDER_COLOURS, new_figure, save
+from crankbeat.logger.store import METRICS, TrendPoint
 
 _LABELS = {
     "misfire_rate": "misfire rate [%]",

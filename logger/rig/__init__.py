@@ -8,10 +8,10 @@ Public surface::
     resolve_serial_port(sensor, ...) -> str
 """
 
-from logger.rig.config import resolve_can_bus, resolve_serial_port, serial_port_env
-from logger.rig.layouts import list_layouts, load_layout
-from logger.rig.loader import list_presets, load_rig, parse_rig
-from logger.rig.model import (
+from crankbeat.logger.rig.config import resolve_can_bus, resolve_serial_port, serial_port_env
+from crankbeat.logger.rig.layouts import list_layouts, load_layout
+from crankbeat.logger.rig.loader import list_presets, load_rig, parse_rig
+from crankbeat.logger.rig.model import (
     CanBus,
     CanMessage,
     CanSignal,
@@ -21,7 +21,7 @@ from logger.rig.model import (
     SerialField,
     SerialSensor,
 )
-from logger.rig.validate import element_bits, occupied_bits
+from crankbeat.logger.rig.validate import element_bits, occupied_bits
 
 __all__ = [
     "CanBus", "CanMessage", "CanSignal", "Checksum", "Limits", "Rig", "SerialField",

@@ -6,8 +6,9 @@ import os
 from collections.abc import Mapping
 from dataclasses import replace
 
-from dsp.errors import RigError
-from logger.rig.model import CanBus, Rig, SerialSensor
+from crankbeat.logger.rig.model import CanBus, Rig, SerialSensor
+
+from crankbeat.errors import RigError
 
 __all__ = ["resolve_can_bus", "resolve_serial_port", "serial_port_env"]
 

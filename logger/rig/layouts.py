@@ -15,10 +15,10 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from crankbeat.dsp.engine import Engine
+from crankbeat.logger.rig.schema import Problems, Section, parse_toml
 
-from dsp.engine import Engine
-from dsp.errors import InputError, RigError
-from logger.rig.schema import Problems, Section, parse_toml
+from crankbeat.errors import InputError, RigError
 
 __all__ = ["list_layouts", "load_layout"]
 
@@ -38,7 +38,7 @@ class UnknownLayout(LookupError):
 
 
 def _layout_dir() -> Any:
-    return resources.files("logger.presets").joinpath("layouts")
+    return resources.files("crankbeat.logger.presets").joinpath("layouts")
 
 
 def list_layouts() -> list[str]:
@@ -157,7 +157,7 @@ def build_engine(name: str, crank: dict[str, Any], geometry: dict[str, float],
         return None
     if engine.firing_deg is not None:
         return engine if _check_firing_deg(engine, sec, "firing_deg") else None
-    from dsp.layout import firing_angles  # the lead's rule decides which TDC fires
+    from crankbeat.dsp.layout import firing_angles  # the lead's rule decides which TDC fires
 
     try:
         firing_angles(engine)

@@ -4,7 +4,7 @@ Every problem found is one line ``<file>: <key path>: <what was wrong>, expected
 of them are collected and raised together as one :class:`~dsp.errors.RigError` (first line the
 count when there are several).
 
-The file (see ``logger/presets/m1.toml`` for a complete one)::
+The file (see ``logger/presets/larch.toml`` for a complete one)::
 
     [rig]      name, description
     [engine]   layout = "<preset>" | stroke_cycle, firing_order, [[engine.cylinder]]
@@ -32,10 +32,9 @@ from importlib import resources
 from pathlib import Path
 from typing import get_args
 
-from dsp.crank import ToothWheel
-from dsp.errors import InputError, RigError
-from logger.rig.layouts import read_rig_engine
-from logger.rig.model import (
+from crankbeat.dsp.crank import ToothWheel
+from crankbeat.logger.rig.layouts import read_rig_engine
+from crankbeat.logger.rig.model import (
     CAN_ROLES,
     SERIAL_ROLES,
     CanBus,
@@ -49,8 +48,10 @@ from logger.rig.model import (
     SerialField,
     SerialSensor,
 )
-from logger.rig.schema import Problems, Section, parse_toml
-from logger.rig.validate import check_messages, check_sensor
+from crankbeat.logger.rig.schema import Problems, Section, parse_toml
+from crankbeat.logger.rig.validate import check_messages, check_sensor
+
+from crankbeat.errors import InputError, RigError
 
 __all__ = ["list_presets", "load_rig"]
 
@@ -65,7 +66,7 @@ _POSITIVE = {"check": lambda v: v > 0, "expected": "a value > 0"}
 
 def list_presets() -> list[str]:
     """Names of the rig presets shipped in ``logger/presets/``, sorted."""
-    root = resources.files("logger.presets")
+    root = resources.files("crankbeat.logger.presets")
     return sorted(p.name[:-5] for p in root.iterdir() if p.name.endswith(".toml"))
 
 
@@ -83,7 +84,7 @@ def _read_spec(spec: str | os.PathLike[str]) -> tuple[str, str, str, Path | None
             raise RigError(f"{text_spec}: cannot be read ({exc.strerror})") from None
     presets = list_presets()
     if isinstance(spec, str) and spec in presets:
-        entry = resources.files("logger.presets").joinpath(f"{spec}.toml")
+        entry = resources.files("crankbeat.logger.presets").joinpath(f"{spec}.toml")
         return entry.read_text(encoding="utf-8"), f"presets/{spec}.toml", f"preset:{spec}", None
     if path.is_dir():
         raise RigError(f"{text_spec}: is a directory, expected a rig file or a preset name")

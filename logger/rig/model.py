@@ -9,8 +9,8 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from typing import Literal
 
-from dsp.crank import ToothWheel
-from dsp.engine import Engine
+from crankbeat.dsp.crank import ToothWheel
+from crankbeat.dsp.engine import Engine
 
 ByteOrder = Literal["little", "big"]
 

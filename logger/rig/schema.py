@@ -12,7 +12,7 @@ import difflib
 from collections.abc import Callable
 from typing import Any, Literal
 
-from dsp.errors import RigError
+from crankbeat.errors import RigError
 
 Kind = Literal["int", "float", "str", "bool", "table", "tables", "ints", "floats", "strs"]
 

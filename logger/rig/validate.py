@@ -7,8 +7,8 @@ an independent second reading of the same DBC conventions.
 
 from __future__ import annotations
 
-from logger.rig.model import CanMessage, CanSignal, SerialSensor
-from logger.rig.schema import Problems
+from crankbeat.logger.rig.model import CanMessage, CanSignal, SerialSensor
+from crankbeat.logger.rig.schema import Problems
 
 __all__ = ["element_bits", "occupied_bits", "check_messages", "check_sensor"]
 

@@ -12,12 +12,17 @@ Conventions shared by every module here:
 The public surface is re-exported here; the modules are one concern each.
 """
 
-from logger.serial.capture import MAGIC, CaptureReader, CaptureWriter
-from logger.serial.checksums import CHECKSUM_FUNCTIONS, crc16_ccitt_false, sum8, xor8
-from logger.serial.decoder import SerialDecoder, SerialHealth
-from logger.serial.frames import FrameLayout, encode_frames
-from logger.serial.parser import FrameCounts, ParsedFrames, SerialFrameParser, parse_stream
-from logger.serial.port import PortReader
+from crankbeat.logger.serial.capture import MAGIC, CaptureReader, CaptureWriter
+from crankbeat.logger.serial.checksums import CHECKSUM_FUNCTIONS, crc16_ccitt_false, sum8, xor8
+from crankbeat.logger.serial.decoder import SerialDecoder, SerialHealth
+from crankbeat.logger.serial.frames import FrameLayout, encode_frames
+from crankbeat.logger.serial.parser import (
+    FrameCounts,
+    ParsedFrames,
+    SerialFrameParser,
+    parse_stream,
+)
+from crankbeat.logger.serial.port import PortReader
 
 __all__ = [
     "CHECKSUM_FUNCTIONS",

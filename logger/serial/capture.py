@@ -17,7 +17,7 @@ import struct
 from collections.abc import Iterator
 from typing import BinaryIO
 
-from dsp.errors import FormatError, SourceError
+from crankbeat.errors import FormatError, SourceError
 
 MAGIC = b"ACCRAW1\n"
 _HEADER = struct.Struct("<dI")

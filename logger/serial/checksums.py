@@ -11,7 +11,7 @@ from collections.abc import Callable
 
 import numpy as np
 
-from dsp.errors import InputError
+from crankbeat.errors import InputError
 
 
 def _crc16_table(poly: int) -> np.ndarray:

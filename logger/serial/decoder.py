@@ -13,11 +13,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-
-from logger.chunks import AccelBlock
-from logger.rig.model import SerialSensor
-from logger.serial.parser import SerialFrameParser
-from logger.timebase import ClockAligner
+from crankbeat.logger.chunks import AccelBlock
+from crankbeat.logger.rig.model import SerialSensor
+from crankbeat.logger.serial.parser import SerialFrameParser
+from crankbeat.logger.timebase import ClockAligner
 
 #: Notes kept per decoder (the first ones tell the story; the counters keep the totals).
 MAX_NOTES = 20

@@ -22,7 +22,7 @@ from collections import deque
 
 import serial
 
-from dsp.errors import SourceError
+from crankbeat.errors import SourceError
 
 Record = tuple[float, bytes]
 

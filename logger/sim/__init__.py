@@ -6,9 +6,9 @@ firing event; ``write_ride`` lays it out as the rig's CAN frames (any python-can
 serial capture files, a truth CSV and a copy of the scenario.
 """
 
-from logger.sim.canframes import CanFrames, build_frames
-from logger.sim.ride import TRUTH_DTYPE, AccelTruth, SimRide, simulate
-from logger.sim.scenario import (
+from crankbeat.logger.sim.canframes import CanFrames, build_frames
+from crankbeat.logger.sim.ride import TRUTH_DTYPE, AccelTruth, SimRide, simulate
+from crankbeat.logger.sim.scenario import (
     CanSpec,
     EngineSpec,
     Fault,
@@ -21,7 +21,7 @@ from logger.sim.scenario import (
     scenario_from_dict,
     scenario_to_toml,
 )
-from logger.sim.writers import (
+from crankbeat.logger.sim.writers import (
     CAN_FORMATS,
     RidePaths,
     can_messages,

@@ -15,11 +15,10 @@ its time stamps are integers of its unit (µs) and wrap at the sensor's modulo.
 from __future__ import annotations
 
 import numpy as np
+from crankbeat.dsp.kinematics import reciprocating_torque
+from crankbeat.dsp.layout import shaking_couples, shaking_forces
+from crankbeat.logger.sim.teeth import hermite
 from scipy.signal import bilinear, butter, lfilter, sosfilt
-
-from dsp.kinematics import reciprocating_torque
-from dsp.layout import shaking_couples, shaking_forces
-from logger.sim.teeth import hermite
 
 CYLINDER_TILT_DEG = 30.0  # cylinder 1's axis leans forward from vertical
 FORCE_GAIN_G_PER_N = 6.0e-5  # low-frequency sensor acceleration per newton of shaking force
@@ -61,7 +60,7 @@ def sample_times(sensor, scenario, rng: np.random.Generator):
 
 def fill(ride, track, cycle_t: np.ndarray) -> None:
     """Set ``ride.accel`` for every sensor of the rig."""
-    from logger.sim.ride import AccelTruth
+    from crankbeat.logger.sim.ride import AccelTruth
 
     sc = ride.scenario
     for idx, sensor in enumerate(ride.rig.sensors):

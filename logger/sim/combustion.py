@@ -18,9 +18,8 @@ Pressures are absolute, Pa. Everything broadcasts over events (leading axes) and
 from __future__ import annotations
 
 import numpy as np
-
-from dsp.engine import Engine
-from dsp.kinematics import piston_position
+from crankbeat.dsp.engine import Engine
+from crankbeat.dsp.kinematics import piston_position
 
 IVC_DEG = -135.0  # intake valve closes 45° after BDC
 EVO_DEG = 130.0  # exhaust valve opens 50° before BDC

@@ -10,10 +10,9 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-
-from dsp.engine import Engine
-from logger.sim import combustion, maps
-from logger.sim.scenario import Fault, Scenario
+from crankbeat.dsp.engine import Engine
+from crankbeat.logger.sim import combustion, maps
+from crankbeat.logger.sim.scenario import Fault, Scenario
 
 GRID_STEP_DEG = 1.0
 N_GRID = int(round(720 / GRID_STEP_DEG))
@@ -102,7 +101,7 @@ def local_grid() -> np.ndarray:
 def cylinder_torque(phi_deg: np.ndarray, engine: Engine, scenario: Scenario,
                     **params) -> np.ndarray:
     """Gas torque of one cylinder at local angles ``phi_deg``, N·m (params broadcast)."""
-    from dsp.kinematics import gas_torque_factor
+    from crankbeat.dsp.kinematics import gas_torque_factor
 
     phys = scenario.physics
     p = combustion.pressure(
@@ -187,7 +186,7 @@ class GasTorque:
 
     def __init__(self, engine: Engine, scenario: Scenario, params: EventParams,
                  fire_deg: np.ndarray) -> None:
-        from dsp.kinematics import gas_torque_factor
+        from crankbeat.dsp.kinematics import gas_torque_factor
 
         phys = scenario.physics
         j = GRID_STEP_DEG * np.arange(N_GRID + 1)

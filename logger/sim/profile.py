@@ -11,8 +11,7 @@ import bisect
 from dataclasses import dataclass
 
 import numpy as np
-
-from logger.sim.scenario import Physics, Scenario
+from crankbeat.logger.sim.scenario import Physics, Scenario
 
 SHIFT_S = 0.35
 
@@ -45,7 +44,7 @@ class Profile:
         phys = scenario.physics
         segs = scenario.segments
         if any(s.gear > len(phys.gear_ratios) or s.gear < 0 for s in segs):
-            from dsp.errors import InputError
+            from crankbeat.errors import InputError
 
             bad = next(s.gear for s in segs if s.gear > len(phys.gear_ratios) or s.gear < 0)
             raise InputError(f"segment gear {bad} is not 0..{len(phys.gear_ratios)}")

@@ -7,15 +7,15 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
+from crankbeat.dsp.engine import Engine
+from crankbeat.dsp.layout import firing_angles
+from crankbeat.logger.rig.model import Rig
+from crankbeat.logger.sim import crank, driveline, firing
+from crankbeat.logger.sim.profile import Profile
+from crankbeat.logger.sim.scenario import Scenario
+from crankbeat.logger.sim.teeth import cam_levels, edges_between, hermite, wheel_errors
 
-from dsp.engine import Engine
-from dsp.errors import InputError
-from dsp.layout import firing_angles
-from logger.rig.model import Rig
-from logger.sim import crank, driveline, firing
-from logger.sim.profile import Profile
-from logger.sim.scenario import Scenario
-from logger.sim.teeth import cam_levels, edges_between, hermite, wheel_errors
+from crankbeat.errors import InputError
 
 #: Ground truth of every firing event of the simulated ride.
 TRUTH_DTYPE = np.dtype(
@@ -94,7 +94,7 @@ def simulated_engine(rig: Rig, scenario: Scenario) -> Engine:
     """The rig's engine, or the scenario's ``true_layout`` with the rig's geometry."""
     eng = rig.engine
     if scenario.engine.true_layout:
-        from logger.rig import load_layout
+        from crankbeat.logger.rig import load_layout
 
         lay = load_layout(scenario.engine.true_layout)
         eng = eng.with_geometry(
@@ -234,7 +234,7 @@ def simulate(
     (angle-domain energy solution, per-cycle controller) and :mod:`logger.sim.driveline`
     (first-order time correction for the torsional mode and the road input).
     """
-    from logger.sim import accel, status
+    from crankbeat.logger.sim import accel, status
 
     say = progress or (lambda stage, frac: None)
     engine = simulated_engine(rig, scenario)

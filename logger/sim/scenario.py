@@ -7,7 +7,7 @@ scenario file (TOML, crankbeat's own layout):
 
     [ride]
     name = "short pull"
-    rig = "m1"                     # optional: the rig the scenario was written for
+    rig = "larch"                     # optional: the rig the scenario was written for
     seed = 11
     start_time = 1767225600.0      # s on the CAN time base at the start of the ride
     coolant_c = [62.0, 88.0]       # coolant at the start and the limit it warms towards
@@ -69,7 +69,7 @@ from dataclasses import asdict, dataclass, field, fields, replace
 from pathlib import Path
 from typing import Any, Literal
 
-from dsp.errors import InputError
+from crankbeat.errors import InputError
 
 FaultKind = Literal["misfire", "partial_burn", "retard"]
 

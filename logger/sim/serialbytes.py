@@ -10,8 +10,7 @@ that starts in the middle of a frame.
 from __future__ import annotations
 
 import numpy as np
-
-from logger.serial.frames import encode_frames
+from crankbeat.logger.serial.frames import encode_frames
 
 _INT_RANGE = {"i8": (-128, 127), "u8": (0, 255), "i16": (-32768, 32767), "u16": (0, 65535),
               "i32": (-(2**31), 2**31 - 1), "u32": (0, 2**32 - 1)}

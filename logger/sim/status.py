@@ -3,8 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
-
-from logger.sim.crank import SlowTrack
+from crankbeat.logger.sim.crank import SlowTrack
 
 STATUS_ROLES = ("engine_speed", "throttle", "gear", "coolant", "road_speed")
 COOLANT_TAU_S = 240.0

@@ -8,8 +8,7 @@ Tooth edge angles are unwrapped crank degrees with 0 at cylinder 1's firing TDC 
 from __future__ import annotations
 
 import numpy as np
-
-from dsp.crank import ToothWheel
+from crankbeat.dsp.crank import ToothWheel
 
 
 def wheel_errors(wheel: ToothWheel, rms_deg: float, rng: np.random.Generator) -> np.ndarray:

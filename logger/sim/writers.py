@@ -24,12 +24,12 @@ from pathlib import Path
 
 import can
 import numpy as np
+from crankbeat.logger.serial.capture import CaptureWriter
+from crankbeat.logger.sim.canframes import CanFrames, build_frames
+from crankbeat.logger.sim.scenario import scenario_to_toml
+from crankbeat.logger.sim.serialbytes import stream
 
-from dsp.errors import InputError
-from logger.serial.capture import CaptureWriter
-from logger.sim.canframes import CanFrames, build_frames
-from logger.sim.scenario import scenario_to_toml
-from logger.sim.serialbytes import stream
+from crankbeat.errors import InputError
 
 CAN_FORMATS = (".log", ".asc", ".blf", ".csv", ".trc")
 TRUTH_COLUMNS = ("t", "cycle", "cylinder", "fired", "burn_fraction", "retard_deg", "rpm",
@@ -157,7 +157,7 @@ def write_truth(ride, path: str | os.PathLike) -> Path:
 
 def read_truth(path: str | os.PathLike) -> np.ndarray:
     """Read a truth CSV back into a :data:`logger.sim.TRUTH_DTYPE` array."""
-    from logger.sim.ride import TRUTH_DTYPE
+    from crankbeat.logger.sim.ride import TRUTH_DTYPE
 
     rows = np.loadtxt(path, delimiter=",", skiprows=1, ndmin=2)
     out = np.zeros(len(rows), dtype=TRUTH_DTYPE)

@@ -32,9 +32,9 @@ Queries: :meth:`Store.runs`, :meth:`Store.run`, :meth:`Store.resolve_run` (id, l
 :func:`trend` across runs.
 """
 
-from logger.store.schema import MIGRATIONS, SCHEMA_VERSION, migrate
-from logger.store.store import Store, jsonable, sha256_file, utc_iso, verdict_code
-from logger.store.trend import METRICS, TrendPoint, parse_rpm_band, trend
+from crankbeat.logger.store.schema import MIGRATIONS, SCHEMA_VERSION, migrate
+from crankbeat.logger.store.store import Store, jsonable, sha256_file, utc_iso, verdict_code
+from crankbeat.logger.store.trend import METRICS, TrendPoint, parse_rpm_band, trend
 
 __all__ = [
     "MIGRATIONS",

@@ -16,10 +16,16 @@ from typing import Any
 
 import numpy as np
 import sqlite_utils
+from crankbeat.dsp.events import EVENT_DTYPE, FIRED, MASKED, MISFIRE, VERDICT_NAMES
+from crankbeat.logger.store.schema import (
+    EVENT_COLUMNS,
+    SCHEMA_VERSION,
+    current_version,
+    migrate,
+    source_key,
+)
 
-from dsp.errors import RunNotFoundError, StoreError, UsageError
-from dsp.events import EVENT_DTYPE, FIRED, MASKED, MISFIRE, VERDICT_NAMES
-from logger.store.schema import EVENT_COLUMNS, SCHEMA_VERSION, current_version, migrate, source_key
+from crankbeat.errors import RunNotFoundError, StoreError, UsageError
 
 _VERDICT_CODES = {name: code for code, name in VERDICT_NAMES.items()}
 
@@ -88,7 +94,7 @@ def _rig_text(rig: Any) -> str:
     try:
         if src.startswith("preset:"):
             name = src.split(":", 1)[1]
-            return (resources.files("logger.presets") / f"{name}.toml").read_text("utf-8")
+            return (resources.files("crankbeat.logger.presets") / f"{name}.toml").read_text("utf-8")
         if src and Path(src).is_file():
             return Path(src).read_text("utf-8")
     except (OSError, UnicodeDecodeError):
@@ -669,7 +675,7 @@ class Store:
 
     def trend(self, metric: str, **options: Any) -> list:
         """:func:`logger.store.trend.trend` on this store (same keyword options)."""
-        from logger.store.trend import trend
+        from crankbeat.logger.store.trend import trend
 
         return trend(self, metric, **options)  # type: ignore[arg-type]
 

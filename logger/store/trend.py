@@ -25,11 +25,12 @@ import tomllib
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Literal
 
-from dsp.errors import UsageError
-from dsp.events import FIRED, MISFIRE
+from crankbeat.dsp.events import FIRED, MISFIRE
+
+from crankbeat.errors import UsageError
 
 if TYPE_CHECKING:
-    from logger.store.store import Store
+    from crankbeat.logger.store.store import Store
 
 Metric = Literal["misfire_rate", "interval_error", "bar_vibration", "contribution"]
 

@@ -6,10 +6,10 @@ from __future__ import annotations
 import os
 import pathlib
 
-from logger.can.sources.base import CanSource, FrameBatch, concat
-from logger.can.sources.bus import BusSource
-from logger.can.sources.candump_fast import CandumpFastSource
-from logger.can.sources.logfile import LogFileSource
+from crankbeat.logger.can.sources.base import CanSource, FrameBatch, concat
+from crankbeat.logger.can.sources.bus import BusSource
+from crankbeat.logger.can.sources.candump_fast import CandumpFastSource
+from crankbeat.logger.can.sources.logfile import LogFileSource
 
 __all__ = ["BusSource", "CanSource", "CandumpFastSource", "FrameBatch", "LogFileSource",
            "concat", "open_log", "LOG_BACKENDS"]

@@ -15,10 +15,10 @@ from collections.abc import Iterator
 
 import can
 import numpy as np
+from crankbeat.logger.can.sources.base import CanSource, FrameBatch
+from crankbeat.logger.rig.model import CanBus
 
-from dsp.errors import SourceError
-from logger.can.sources.base import CanSource, FrameBatch
-from logger.rig.model import CanBus
+from crankbeat.errors import SourceError
 
 
 class BusSource(CanSource):
