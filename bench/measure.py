@@ -233,10 +233,9 @@ def decode_rows(b: Bench) -> list[Row]:
 
 
 def _decode_rows(b: Bench) -> list[Row]:
+    from bench.decode import decode
     from crankbeat.logger.pipeline import LIVE_CHUNK_S, REPLAY_CHUNK_S
     from crankbeat.logger.rig import load_rig
-
-    from bench.decode import decode
 
     pycan_s, _split_s, ride = _floors(b)
     b.say(f"decode only: stream.replay of the {b.main_minutes} min ride in the replay's "
@@ -323,10 +322,9 @@ def live_rows(b: Bench) -> list[Row]:
 
 
 def _live_rows(b: Bench) -> list[Row]:
-    from crankbeat.logger.rig import load_rig
-
     from bench.live import run_live
     from bench.rides import START_TIME
+    from crankbeat.logger.rig import load_rig
 
     ride = b.ride("live")
     store = b.out / "live.db"

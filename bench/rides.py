@@ -22,10 +22,9 @@ import shutil
 from dataclasses import dataclass
 from pathlib import Path
 
-from crankbeat.logger.sim import Fault, Scenario, Segment, scenario_to_toml
-
 from bench.procs import run_child, script
 from crankbeat.errors import CrankbeatError, InputError
+from crankbeat.logger.sim import Fault, Scenario, Segment, scenario_to_toml
 
 ROOT = Path(__file__).resolve().parent.parent
 START_TIME = 1767225600.0  # invented ride date on the CAN time base

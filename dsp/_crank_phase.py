@@ -13,10 +13,10 @@ four), which is exactly when the phase cannot be known.
 from __future__ import annotations
 
 import numpy as np
-from crankbeat.dsp.engine import Engine
-from crankbeat.dsp.layout import firing_angles
 from scipy.special import stdtr
 
+from crankbeat.dsp.engine import Engine
+from crankbeat.dsp.layout import firing_angles
 from crankbeat.errors import InputError
 
 #: width of one compression dip in the template, deg (a guess at its shape: only the sign and

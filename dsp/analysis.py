@@ -15,13 +15,13 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
+
 from crankbeat.dsp.crank import CrankAngles, CrankTracker, ToothWheel
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.events import FIRED, MISFIRE, VERDICT_NAMES, empty_events
 from crankbeat.dsp.fluctuation import RAW_EVENT_DTYPE, FluctuationStage, WindowSpec
 from crankbeat.dsp.intervals import SpeedProfile
 from crankbeat.dsp.misfire import MisfireDetector, MisfireSettings
-
 from crankbeat.errors import InputError
 
 

@@ -42,10 +42,10 @@ from dataclasses import dataclass, field
 from typing import Any, Literal
 
 import numpy as np
+
 from crankbeat.dsp._crank_edges import NORMAL, PLACEHOLDER, SATURATED, EdgeBatch, EdgeStage
 from crankbeat.dsp._crank_phase import phase_distinguishable, phase_from_pattern
 from crankbeat.dsp.engine import Engine
-
 from crankbeat.errors import InputError, PhaseUnknownWarning
 
 __all__ = [

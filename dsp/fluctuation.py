@@ -38,10 +38,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.kinematics import equivalent_inertia
 from crankbeat.dsp.layout import firing_sequence
-
 from crankbeat.errors import InputError
 
 #: Span around each TDC over which the centre of the combustion torque is taken, degrees.

@@ -18,12 +18,12 @@ import warnings
 from dataclasses import dataclass
 
 import numpy as np
+
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.events import FIRED
 from crankbeat.dsp.fluctuation import event_fluctuation
 from crankbeat.dsp.kinematics import equivalent_inertia
 from crankbeat.dsp.layout import firing_angles, firing_sequence
-
 from crankbeat.errors import InputError, LayoutMismatchWarning
 
 

@@ -8,9 +8,9 @@ degrees of crank rotation from the cylinder's own TDC; results are SI.
 from __future__ import annotations
 
 import numpy as np
-from crankbeat.dsp.engine import Engine
 from numpy.typing import ArrayLike
 
+from crankbeat.dsp.engine import Engine
 from crankbeat.errors import InputError
 
 

@@ -20,10 +20,10 @@ from dataclasses import dataclass
 from typing import Literal
 
 import numpy as np
-from crankbeat.dsp.engine import Engine
-from crankbeat.dsp.kinematics import cylinder_angles, velocity_ratio_derivative
 from numpy.typing import ArrayLike
 
+from crankbeat.dsp.engine import Engine
+from crankbeat.dsp.kinematics import cylinder_angles, velocity_ratio_derivative
 from crankbeat.errors import InputError
 
 _ANGLE_EPS = 1e-6

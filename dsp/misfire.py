@@ -41,12 +41,12 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy.special import ndtri
+
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.events import FIRED, FUEL_CUT, MISFIRE, UNUSABLE, empty_events
 from crankbeat.dsp.fluctuation import RAW_EVENT_DTYPE
 from crankbeat.dsp.layout import firing_sequence
-from scipy.special import ndtri
-
 from crankbeat.errors import InputError
 
 

@@ -15,8 +15,8 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from crankbeat.dsp.events import FUEL_CUT, MASKED, MISFIRE, UNUSABLE, VERDICT_NAMES
 
+from crankbeat.dsp.events import FUEL_CUT, MASKED, MISFIRE, UNUSABLE, VERDICT_NAMES
 from crankbeat.errors import InputError
 
 _EXCLUDING = (MASKED, FUEL_CUT, UNUSABLE)

@@ -32,10 +32,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+
 from crankbeat.dsp.crank import CrankAngles, ToothWheel
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.kinematics import equivalent_inertia
-
 from crankbeat.errors import InputError
 
 __all__ = ["ToothErrors", "ToothErrorLearner", "learn_tooth_errors"]

@@ -24,6 +24,9 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike
+from scipy import signal
+
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.orders import AngleResampler, OrderMap
 from crankbeat.dsp.roughroad import RoughRoadDetector
@@ -34,9 +37,6 @@ from crankbeat.dsp.weighting import (
     daily_exposure,
     weighting_sos,
 )
-from numpy.typing import ArrayLike
-from scipy import signal
-
 from crankbeat.errors import InputError
 
 HAND_ARM = ("bar", "footpeg")

@@ -27,6 +27,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+
 from crankbeat.dsp.analysis import EventAnalyzer
 from crankbeat.dsp.crank import CrankAngles
 from crankbeat.dsp.engine import Engine
@@ -35,14 +36,13 @@ from crankbeat.dsp.intervals import SpeedProfile
 from crankbeat.dsp.misfire import MisfireSettings
 from crankbeat.dsp.toothcal import ToothErrorLearner
 from crankbeat.dsp.vibration import SensorSpec, VibrationAnalyzer, VibrationSummary, merge_spans
+from crankbeat.errors import CrankbeatWarning, DuplicateRunError
 from crankbeat.logger import stream
 from crankbeat.logger.chunks import Chunk, StreamHealth
 from crankbeat.logger.rig import list_layouts, load_layout
 from crankbeat.logger.rig.model import CanBus, Rig
 from crankbeat.logger.run_summary import WINDOW_KINDS, RunSummary
 from crankbeat.logger.store import Store, sha256_file
-
-from crankbeat.errors import CrankbeatWarning, DuplicateRunError
 
 COMMIT_EVERY_S = 0.5
 #: Chunk length of a replay on the CAN clock, s. Every stage gives the same numbers whatever the

@@ -13,11 +13,11 @@ import time
 from pathlib import Path
 
 import can
+
+from crankbeat.errors import SourceError, UsageError
 from crankbeat.logger.can.sources.base import FrameBatch
 from crankbeat.logger.rig.model import Rig
 from crankbeat.logger.serial.capture import CaptureWriter
-
-from crankbeat.errors import SourceError, UsageError
 
 #: Longest time between two flushes to disk, s.
 FLUSH_EVERY_S = 1.0

@@ -20,6 +20,7 @@ import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
+
 from crankbeat.dsp.analysis import (
     cylinder_contribution,
     misfire_counts,
@@ -30,7 +31,6 @@ from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.events import MISFIRE
 from crankbeat.dsp.intervals import IntervalResult, identify_layout, interval_check
 from crankbeat.dsp.layout import firing_sequence, layout_signature
-
 from crankbeat.errors import InputError, LayoutMismatchWarning
 
 #: Crank revolutions per summary block (a multiple of both window lengths).

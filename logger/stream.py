@@ -31,6 +31,8 @@ from collections.abc import Callable, Iterator
 
 import can
 import numpy as np
+
+from crankbeat.errors import UsageError
 from crankbeat.logger.can.decode import FrameDecoder
 from crankbeat.logger.can.sources import BusSource, CanSource, FrameBatch, open_log
 from crankbeat.logger.chunks import AccelBlock, Chunk, StatusBlock, StreamHealth, TeethBlock
@@ -39,8 +41,6 @@ from crankbeat.logger.rig.model import CanBus, Rig
 from crankbeat.logger.serial.capture import CaptureReader
 from crankbeat.logger.serial.decoder import SerialDecoder
 from crankbeat.logger.serial.port import PortReader
-
-from crankbeat.errors import UsageError
 
 Record = tuple[float, bytes]
 #: Live: how long after a chunk's end the host clock must be before its serial reads are taken.

@@ -48,12 +48,12 @@ def main(argv: list[str] | None = None) -> int:
     args = ap.parse_args(argv)
 
     import can
+
+    from crankbeat.errors import CrankbeatError
     from crankbeat.logger.pipeline import analyse_live
     from crankbeat.logger.rig import load_rig
     from crankbeat.logger.rig.model import CanBus
     from crankbeat.logger.store import Store
-
-    from crankbeat.errors import CrankbeatError
 
     rig = load_rig(args.rig)
     with can.LogReader(str(args.can)) as reader:

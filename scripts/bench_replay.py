@@ -43,11 +43,10 @@ def main(argv: list[str] | None = None) -> int:
     if args.cpu is not None:
         os.sched_setaffinity(0, {args.cpu})
 
+    from crankbeat.errors import CrankbeatError
     from crankbeat.logger.pipeline import analyse_replay
     from crankbeat.logger.rig import load_rig
     from crankbeat.logger.store import Store
-
-    from crankbeat.errors import CrankbeatError
 
     accel = dict(spec.split("=", 1) for spec in args.accel)
     try:

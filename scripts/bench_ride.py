@@ -15,11 +15,10 @@ import sys
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
-from crankbeat.logger.rig import load_rig  # noqa: E402
-from crankbeat.logger.sim import load_scenario, simulate, write_ride  # noqa: E402
-
 from bench.procs import own_peak_mb  # noqa: E402
 from crankbeat.errors import CrankbeatError  # noqa: E402
+from crankbeat.logger.rig import load_rig  # noqa: E402
+from crankbeat.logger.sim import load_scenario, simulate, write_ride  # noqa: E402
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -13,6 +13,7 @@ import sys
 import time
 
 import numpy as np
+
 from crankbeat.logger.rig.model import Checksum, SerialField, SerialSensor
 from crankbeat.logger.serial.decoder import SerialDecoder
 from crankbeat.logger.serial.frames import encode_frames

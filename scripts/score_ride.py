@@ -16,8 +16,8 @@ import sys
 from dataclasses import asdict
 
 import numpy as np
-from crankbeat.dsp.scoring import score_misfire
 
+from crankbeat.dsp.scoring import score_misfire
 from crankbeat.errors import CrankbeatError, InputError
 
 _TRUE = {"1", "true", "yes", "t", "y"}

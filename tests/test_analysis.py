@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+
 from crankbeat.dsp.analysis import (
     EventAnalyzer,
     analyse_ride,
@@ -21,7 +22,6 @@ from crankbeat.dsp.crank import ToothWheel
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.events import EVENT_DTYPE, FIRED, FUEL_CUT, MISFIRE, UNUSABLE, empty_events
 from crankbeat.dsp.scoring import score_misfire
-
 from crankbeat.errors import InputError
 
 sim = pytest.importorskip("crankbeat.logger.sim")

@@ -18,10 +18,6 @@ import pytest
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from crankbeat.logger.rig import load_rig  # noqa: E402
-from crankbeat.logger.serial.capture import CaptureReader  # noqa: E402
-from crankbeat.logger.sim import Scenario, Segment, simulate, write_ride  # noqa: E402
-
 from bench import measure, profiling  # noqa: E402
 from bench import rides as rides_mod  # noqa: E402
 from bench.decode import decode  # noqa: E402
@@ -36,6 +32,9 @@ from bench.rides import (  # noqa: E402
     ride_key,
 )
 from bench.table import Row, failed, render  # noqa: E402
+from crankbeat.logger.rig import load_rig  # noqa: E402
+from crankbeat.logger.serial.capture import CaptureReader  # noqa: E402
+from crankbeat.logger.sim import Scenario, Segment, simulate, write_ride  # noqa: E402
 
 RPM = 10500.0
 

@@ -6,12 +6,12 @@ import cantools.database.can as cdb
 import numpy as np
 import pytest
 from cantools.database.conversion import BaseConversion
-from crankbeat.logger.can.bits import decode_raw, decode_signal, encode_signal, signal_bits
-from crankbeat.logger.rig.model import CanSignal
 from hypothesis import assume, given, settings
 from hypothesis import strategies as st
 
 from crankbeat.errors import InputError
+from crankbeat.logger.can.bits import decode_raw, decode_signal, encode_signal, signal_bits
+from crankbeat.logger.rig.model import CanSignal
 
 
 def _element_start(sig: CanSignal, i: int) -> int:

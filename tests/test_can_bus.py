@@ -5,10 +5,10 @@ from __future__ import annotations
 import can
 import numpy as np
 import pytest
-from crankbeat.logger.can.sources import BusSource
-from crankbeat.logger.rig.model import CanBus
 
 from crankbeat.errors import SourceError
+from crankbeat.logger.can.sources import BusSource
+from crankbeat.logger.rig.model import CanBus
 
 
 def test_frames_arrive_in_order_with_candump_resolution(request):

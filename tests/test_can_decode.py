@@ -11,6 +11,7 @@ import numpy as np
 import pytest
 from cantools.database.conversion import BaseConversion
 from conftest import m1_frames
+
 from crankbeat.logger.can.decode import FrameDecoder
 from crankbeat.logger.can.sources.base import FrameBatch
 from crankbeat.logger.rig.model import CanMessage

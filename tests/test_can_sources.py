@@ -9,6 +9,10 @@ from pathlib import Path
 import can
 import numpy as np
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from crankbeat.errors import FormatError, SourceError
 from crankbeat.logger.can.sources import (
     CandumpFastSource,
     FrameBatch,
@@ -16,10 +20,6 @@ from crankbeat.logger.can.sources import (
     concat,
     open_log,
 )
-from hypothesis import HealthCheck, given, settings
-from hypothesis import strategies as st
-
-from crankbeat.errors import FormatError, SourceError
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 T0 = 1_767_225_600.0

@@ -10,10 +10,11 @@ import re
 
 import numpy as np
 import pytest
+from test_store_fill import counts, fill_run, make_events
+
 from crankbeat.dsp.events import VERDICT_NAMES
 from crankbeat.logger.cli.main import COMMANDS, OPTIONAL, main
 from crankbeat.logger.store import Store
-from test_store_fill import counts, fill_run, make_events
 
 
 def run_cli(capsys, *argv):

@@ -18,9 +18,10 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from test_store_fill import fill_run, make_events
+
 from crankbeat.logger.cli.main import main
 from crankbeat.logger.store import Store, sha256_file
-from test_store_fill import fill_run, make_events
 
 ROOT = Path(__file__).resolve().parent.parent
 HAVE_PIPELINE = importlib.util.find_spec("crankbeat.logger.pipeline") is not None

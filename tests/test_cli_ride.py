@@ -17,6 +17,7 @@ import uuid
 
 import can
 import pytest
+
 from crankbeat.logger.cli.main import main
 from crankbeat.logger.store import Store
 

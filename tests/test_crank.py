@@ -15,6 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pytest
+
 from crankbeat.dsp.crank import (
     CrankAngles,
     CrankTracker,
@@ -23,7 +24,6 @@ from crankbeat.dsp.crank import (
     reconstruct_crank,
 )
 from crankbeat.dsp.engine import Engine
-
 from crankbeat.errors import InputError, PhaseUnknownWarning
 
 TWIN_270 = Engine("twin-270", 4, (0.0, 270.0), (0.0, 0.0), (-0.04, 0.04), (1, 2))

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.fluctuation import (
     FluctuationStage,
@@ -20,7 +21,6 @@ from crankbeat.dsp.fluctuation import (
 )
 from crankbeat.dsp.kinematics import equivalent_inertia, gas_torque_factor, piston_position
 from crankbeat.dsp.layout import firing_angles
-
 from crankbeat.errors import InputError
 
 Larch = Engine(

@@ -10,11 +10,11 @@ import warnings
 
 import numpy as np
 import pytest
+
 from crankbeat.dsp.crank import ToothWheel, reconstruct_crank
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.events import FIRED, empty_events
 from crankbeat.dsp.intervals import identify_layout, interval_check
-
 from crankbeat.errors import InputError, LayoutMismatchWarning
 
 sim = pytest.importorskip("crankbeat.logger.sim")

@@ -8,6 +8,7 @@ crank axis; equation numbers from memory), and the two-term series a ≈ rω²(c
 
 import numpy as np
 import pytest
+
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.kinematics import (
     equivalent_inertia,
@@ -16,7 +17,6 @@ from crankbeat.dsp.kinematics import (
     piston_velocity,
     reciprocating_torque,
 )
-
 from crankbeat.errors import InputError
 
 R, L = 0.031, 0.124  # m: the Larch's crank radius (62 mm stroke / 2) and con-rod (RIG.md)

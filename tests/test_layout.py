@@ -9,6 +9,7 @@ memory, checked numerically"; the triple's √3 couples are common practice.
 
 import numpy as np
 import pytest
+
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.layout import (
     balance_table,
@@ -18,7 +19,6 @@ from crankbeat.dsp.layout import (
     shaking_forces,
     torque_orders,
 )
-
 from crankbeat.errors import InputError
 
 M, R, CONROD, PITCH = 0.42, 0.031, 0.124, 0.08  # kg, m, m, m (Larch figures; pitch invented)

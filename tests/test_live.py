@@ -2,9 +2,10 @@
 
 from __future__ import annotations
 
+from rich.console import Console
+
 from crankbeat.logger.live import CAUTION_LINES, CylinderState, LiveDisplay, LiveState
 from crankbeat.logger.live.display import IntervalState
-from rich.console import Console
 
 
 def _text(display: LiveDisplay, state: LiveState) -> str:
@@ -88,9 +89,10 @@ def test_caution_lines_come_first():
 
 def test_tally_counts_and_the_rolling_200_rev_window():
     import numpy as np
+    from test_store_fill import m1_like_rig, make_events
+
     from crankbeat.logger.chunks import StreamHealth
     from crankbeat.logger.live import LiveTally
-    from test_store_fill import m1_like_rig, make_events
 
     rig = m1_like_rig()
     # Cylinder 2 misfires on every 10th cycle for the first 1000 cycles, then never.

@@ -11,10 +11,10 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+
 from crankbeat.dsp.events import MISFIRE, UNUSABLE
 from crankbeat.dsp.fluctuation import RAW_EVENT_DTYPE
 from crankbeat.dsp.misfire import MisfireDetector, MisfireSettings, detect_misfires
-
 from crankbeat.errors import InputError
 
 sim = pytest.importorskip("crankbeat.logger.sim")

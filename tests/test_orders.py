@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from scipy.interpolate import PchipInterpolator
+
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.layout import predicted_orders
 from crankbeat.dsp.orders import (
@@ -15,8 +17,6 @@ from crankbeat.dsp.orders import (
     order_spectrum,
     resample_to_angle,
 )
-from scipy.interpolate import PchipInterpolator
-
 from crankbeat.errors import InputError
 
 FS = 2000.0

@@ -7,14 +7,14 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+
 from crankbeat.dsp.events import FIRED, MASKED, MISFIRE
 from crankbeat.dsp.scoring import score_misfire
+from crankbeat.errors import DuplicateRunError
 from crankbeat.logger import pipeline, stream
 from crankbeat.logger.rig import load_rig
 from crankbeat.logger.sim import Fault, Scenario, Segment, simulate, write_ride
 from crankbeat.logger.store import Store
-
-from crankbeat.errors import DuplicateRunError
 
 
 @pytest.fixture(scope="module")

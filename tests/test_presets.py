@@ -7,10 +7,10 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from crankbeat.dsp.layout import balance_table, firing_intervals, firing_sequence
-from crankbeat.logger.rig import list_layouts, list_presets, load_layout, load_rig, occupied_bits
 
+from crankbeat.dsp.layout import balance_table, firing_intervals, firing_sequence
 from crankbeat.errors import RigError
+from crankbeat.logger.rig import list_layouts, list_presets, load_layout, load_rig, occupied_bits
 
 
 @pytest.mark.parametrize("name", list_presets())

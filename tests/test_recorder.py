@@ -3,15 +3,15 @@
 from __future__ import annotations
 
 import can
-import crankbeat.logger.recorder as recorder_mod
 import numpy as np
 import pytest
 from conftest import m1_frames, m1_serial
+
+import crankbeat.logger.recorder as recorder_mod
+from crankbeat.errors import UsageError
 from crankbeat.logger.can.sources.base import FrameBatch
 from crankbeat.logger.recorder import Recorder
 from crankbeat.logger.serial.capture import CaptureReader
-
-from crankbeat.errors import UsageError
 
 
 @pytest.mark.parametrize("suffix", [".log", ".asc", ".blf", ".csv"])

@@ -9,10 +9,11 @@ from html.parser import HTMLParser
 import matplotlib.image as mpimg
 import numpy as np
 import pytest
+from test_store_fill import fill_run, make_events
+
 from crankbeat.logger.report import make_run_report, plot_trend
 from crankbeat.logger.report.run_plots import windows_from_events
 from crankbeat.logger.store import Store
-from test_store_fill import fill_run, make_events
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (RFC 2083), section 3.1
 

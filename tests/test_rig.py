@@ -14,6 +14,10 @@ import pytest
 from cantools.database.can import Message as CtMessage
 from cantools.database.can import Signal as CtSignal
 from cantools.database.errors import Error as CantoolsError
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from crankbeat.errors import RigError
 from crankbeat.logger.rig import (
     CanMessage,
     CanSignal,
@@ -24,10 +28,6 @@ from crankbeat.logger.rig import (
 )
 from crankbeat.logger.rig.schema import Problems
 from crankbeat.logger.rig.validate import check_messages
-from hypothesis import given, settings
-from hypothesis import strategies as st
-
-from crankbeat.errors import RigError
 
 _PRESETS = resources.files("crankbeat.logger.presets")
 Larch = _PRESETS.joinpath("larch.toml").read_text(encoding="utf-8")

@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from crankbeat.dsp.roughroad import RoughRoadDetector, rough_road_spans, span_mask
 from scipy import signal
 
+from crankbeat.dsp.roughroad import RoughRoadDetector, rough_road_spans, span_mask
 from crankbeat.errors import InputError
 
 FS = 2000.0

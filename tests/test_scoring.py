@@ -14,9 +14,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+
 from crankbeat.dsp.events import FIRED, FUEL_CUT, MASKED, MISFIRE, UNUSABLE, empty_events
 from crankbeat.dsp.scoring import score_misfire
-
 from crankbeat.errors import InputError
 
 SCRIPT = Path(__file__).resolve().parents[1] / "scripts" / "score_ride.py"

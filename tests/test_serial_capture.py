@@ -6,11 +6,11 @@ import io
 import struct
 
 import pytest
-from crankbeat.logger.serial.capture import MAGIC, CaptureReader, CaptureWriter
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from crankbeat.errors import FormatError, SourceError
+from crankbeat.logger.serial.capture import MAGIC, CaptureReader, CaptureWriter
 
 RECORDS = [(1000.25, b"\xa5\x5a\x01"), (1000.5, b""), (1001.0, bytes(range(256)) * 3)]
 

@@ -6,11 +6,11 @@ import binascii
 
 import numpy as np
 import pytest
-from crankbeat.logger.serial.checksums import crc16_ccitt_false, sum8, xor8
 from hypothesis import given
 from hypothesis import strategies as st
 
 from crankbeat.errors import InputError
+from crankbeat.logger.serial.checksums import crc16_ccitt_false, sum8, xor8
 
 
 def test_crc16_ccitt_false_check_value():

@@ -10,11 +10,12 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from test_serial_sensors import ODD, Larch
+
 from crankbeat.logger.chunks import AccelBlock
 from crankbeat.logger.serial.capture import CaptureReader, CaptureWriter
 from crankbeat.logger.serial.decoder import SerialDecoder
 from crankbeat.logger.serial.frames import encode_frames
-from test_serial_sensors import ODD, Larch
 
 OFFSET = 1_767_225_600.0
 DRIFT = 30e-6

@@ -7,11 +7,11 @@ import struct
 
 import numpy as np
 import pytest
-from crankbeat.logger.rig.model import Checksum, SerialField
-from crankbeat.logger.serial.frames import FrameLayout, encode_frames
 from test_serial_sensors import ODD, XOR, Larch
 
 from crankbeat.errors import InputError, RigError
+from crankbeat.logger.rig.model import Checksum, SerialField
+from crankbeat.logger.serial.frames import FrameLayout, encode_frames
 
 
 def test_m1_frame_bytes_match_struct_layout():

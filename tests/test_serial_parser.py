@@ -12,11 +12,12 @@ import struct
 
 import numpy as np
 import pytest
-from crankbeat.logger.serial.frames import encode_frames
-from crankbeat.logger.serial.parser import SerialFrameParser, parse_stream
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from test_serial_sensors import ODD, XOR, Larch
+
+from crankbeat.logger.serial.frames import encode_frames
+from crankbeat.logger.serial.parser import SerialFrameParser, parse_stream
 
 
 def _ref_check(sensor, frame: bytes) -> bool:

@@ -14,12 +14,12 @@ import time
 
 import numpy as np
 import pytest
-from crankbeat.logger.serial.frames import encode_frames
-from crankbeat.logger.serial.parser import parse_stream
-from crankbeat.logger.serial.port import PortReader
 from test_serial_sensors import Larch
 
 from crankbeat.errors import SourceError
+from crankbeat.logger.serial.frames import encode_frames
+from crankbeat.logger.serial.parser import parse_stream
+from crankbeat.logger.serial.port import PortReader
 
 
 @pytest.fixture(autouse=True)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+
 from crankbeat.logger.rig import load_rig
 from crankbeat.logger.sim import EngineSpec, Physics, Scenario, Segment, simulate
 from crankbeat.logger.sim.teeth import hermite

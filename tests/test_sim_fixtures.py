@@ -7,6 +7,7 @@ from pathlib import Path
 
 import can
 import pytest
+
 from crankbeat.logger.cli.main import main
 from crankbeat.logger.rig import load_rig
 from crankbeat.logger.sim import load_scenario, read_truth, simulate, write_ride

@@ -6,6 +6,7 @@ import math
 
 import numpy as np
 import pytest
+
 from crankbeat.logger.rig import load_rig
 from crankbeat.logger.sim import Fault, Scenario, Segment, combustion, maps, simulate
 from crankbeat.logger.sim.crank import displacement

@@ -6,7 +6,9 @@ import math
 
 import numpy as np
 import pytest
+
 from crankbeat.dsp.layout import firing_intervals
+from crankbeat.errors import InputError
 from crankbeat.logger.rig import load_layout, load_rig
 from crankbeat.logger.sim import (
     EngineSpec,
@@ -21,8 +23,6 @@ from crankbeat.logger.sim import (
     simulate,
 )
 from crankbeat.logger.sim.profile import Profile
-
-from crankbeat.errors import InputError
 
 Larch = load_rig("larch")
 

@@ -10,6 +10,7 @@ import can
 import cantools
 import numpy as np
 import pytest
+
 from crankbeat.logger.rig import load_rig
 from crankbeat.logger.serial.capture import CaptureReader
 from crankbeat.logger.serial.parser import SerialFrameParser

@@ -8,11 +8,11 @@ import sqlite3
 import numpy as np
 import pytest
 import sqlite_utils
-from crankbeat.dsp.events import EVENT_DTYPE, MISFIRE
-from crankbeat.logger.store import SCHEMA_VERSION, Store, sha256_file
 from test_store_fill import counts, fill_run, m1_like_rig, make_events
 
+from crankbeat.dsp.events import EVENT_DTYPE, MISFIRE
 from crankbeat.errors import RunNotFoundError, StoreError, UsageError
+from crankbeat.logger.store import SCHEMA_VERSION, Store, sha256_file
 
 TABLES = {"rigs", "runs", "sources", "events", "windows", "intervals", "vibration", "order_map",
           "tooth_errors", "schema_version"}

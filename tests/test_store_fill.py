@@ -7,6 +7,7 @@ to cylinder 1), with misfires placed at known events so every count is known exa
 from __future__ import annotations
 
 import numpy as np
+
 from crankbeat.dsp.crank import ToothWheel
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.events import FIRED, FUEL_CUT, MASKED, MISFIRE, UNUSABLE, empty_events

@@ -5,6 +5,7 @@ from __future__ import annotations
 import sqlite3
 
 import numpy as np
+
 from crankbeat.dsp.events import EVENT_DTYPE
 from crankbeat.logger.store import SCHEMA_VERSION, Store
 from crankbeat.logger.store.schema import source_key
@@ -107,6 +108,7 @@ def test_migrated_file_takes_new_runs_and_reopens_unchanged(tmp_path):
 def test_v1_ddl_is_what_the_first_migration_builds(tmp_path):
     """Guards the frozen copy: migration 1 alone must build exactly these tables and columns."""
     import sqlite_utils
+
     from crankbeat.logger.store.schema import migrate
 
     fresh = sqlite_utils.Database(tmp_path / "fresh.db")

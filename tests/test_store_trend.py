@@ -5,10 +5,10 @@ from __future__ import annotations
 import math
 
 import pytest
-from crankbeat.logger.store import Store, parse_rpm_band
 from test_store_fill import counts, fill_run, make_events
 
 from crankbeat.errors import UsageError
+from crankbeat.logger.store import Store, parse_rpm_band
 
 
 def _vib(sensor, bands, axis="sum", weighting="Wh", n=1000):

@@ -9,18 +9,18 @@ import time
 from pathlib import Path
 
 import can
-import crankbeat.logger.stream as stream_mod
 import numpy as np
 import pytest
 from conftest import m1_frames, m1_serial
+
+import crankbeat.logger.stream as stream_mod
+from crankbeat.errors import FormatError, SourceError, UsageError
 from crankbeat.logger.can.decode import FrameDecoder
 from crankbeat.logger.can.sources import open_log
 from crankbeat.logger.rig.model import CanBus
 from crankbeat.logger.serial.capture import CaptureReader, CaptureWriter
 from crankbeat.logger.serial.decoder import SerialDecoder
 from crankbeat.logger.stream import live, replay
-
-from crankbeat.errors import FormatError, SourceError, UsageError
 
 FIX = Path(__file__).resolve().parent.parent / "fixtures"
 DEMO_LOG = FIX / "demo" / "demo.log"

@@ -19,12 +19,12 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from crankbeat.logger.timebase import ClockAligner, align_clock, align_samples, support_line
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.optimize import linprog
 
 from crankbeat.errors import InputError
+from crankbeat.logger.timebase import ClockAligner, align_clock, align_samples, support_line
 
 OFFSET = 1_767_225_600.0 + 123.456  # a host epoch time, s
 DRIFT = 30e-6

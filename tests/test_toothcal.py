@@ -17,10 +17,6 @@ import numpy as np
 import pytest
 
 sys.path.insert(0, str(Path(__file__).parent))
-from crankbeat.dsp.engine import Engine  # noqa: E402
-from crankbeat.dsp.kinematics import equivalent_inertia  # noqa: E402
-from crankbeat.dsp.layout import firing_angles  # noqa: E402
-from crankbeat.dsp.toothcal import ToothErrorLearner, learn_tooth_errors  # noqa: E402
 from test_crank import (  # noqa: E402
     M1_WHEEL,
     TWIN_270,
@@ -32,6 +28,10 @@ from test_crank import (  # noqa: E402
     tooth_edges,
 )
 
+from crankbeat.dsp.engine import Engine  # noqa: E402
+from crankbeat.dsp.kinematics import equivalent_inertia  # noqa: E402
+from crankbeat.dsp.layout import firing_angles  # noqa: E402
+from crankbeat.dsp.toothcal import ToothErrorLearner, learn_tooth_errors  # noqa: E402
 from crankbeat.errors import InputError  # noqa: E402
 
 # an inline triple firing every 240° (common practice): identical cylinders on different teeth

@@ -4,12 +4,12 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.layout import predicted_orders
 from crankbeat.dsp.orders import compare_orders
 from crankbeat.dsp.vibration import SensorSpec, VibrationAnalyzer, merge_spans
 from crankbeat.dsp.weighting import G_N
-
 from crankbeat.errors import InputError
 
 FS = 2000.0

@@ -7,6 +7,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from scipy import signal
+
 from crankbeat.dsp.weighting import (
     band_limiting_sos,
     daily_exposure,
@@ -17,8 +19,6 @@ from crankbeat.dsp.weighting import (
     weighting_zpk,
     whole_body_exposure,
 )
-from scipy import signal
-
 from crankbeat.errors import InputError
 
 # ISO 5349-1:2001, Table A.2 (Wh at one-third-octave centres), as transcribed in

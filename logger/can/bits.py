@@ -17,9 +17,9 @@ from __future__ import annotations
 from functools import lru_cache
 
 import numpy as np
-from crankbeat.logger.rig.model import CanSignal
 
 from crankbeat.errors import InputError
+from crankbeat.logger.rig.model import CanSignal
 
 __all__ = ["decode_raw", "decode_signal", "encode_signal", "signal_bits", "signal_end_byte"]
 

@@ -12,6 +12,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+
 from crankbeat.logger.can.bits import decode_raw, decode_signal
 from crankbeat.logger.can.sources.base import FrameBatch
 from crankbeat.logger.chunks import StatusBlock, StreamHealth, TeethBlock

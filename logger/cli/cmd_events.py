@@ -9,11 +9,11 @@ import math
 import sys
 
 import numpy as np
+
 from crankbeat.dsp.events import MISFIRE, VERDICT_NAMES
+from crankbeat.errors import CrankbeatError, UsageError
 from crankbeat.logger.cli.common import add_store_argument, open_store
 from crankbeat.logger.store import jsonable
-
-from crankbeat.errors import CrankbeatError, UsageError
 
 NAME = "events"
 HELP = "write every firing event of a run (CSV or JSON), masked and unusable ones included"

@@ -6,6 +6,7 @@ import argparse
 import sys
 from pathlib import Path
 
+from crankbeat.errors import DuplicateRunError, SourceError, UsageError
 from crankbeat.logger.cli.common import (
     add_store_argument,
     open_store,
@@ -15,8 +16,6 @@ from crankbeat.logger.cli.common import (
 )
 from crankbeat.logger.cli.summary import render_run, run_digest
 from crankbeat.logger.store import sha256_file
-
-from crankbeat.errors import DuplicateRunError, SourceError, UsageError
 
 NAME = "replay"
 HELP = "analyse a recorded ride (CAN log + accelerometer captures) into the store"
@@ -101,9 +100,10 @@ def run(args: argparse.Namespace) -> int:
 
 
 def _analyse(args, rig, can_path: Path, accel: dict[str, Path], store) -> int:
-    from crankbeat.logger import pipeline  # imported here: it pulls in every dsp stage
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+
+    from crankbeat.logger import pipeline  # imported here: it pulls in every dsp stage
 
     console = Console(file=sys.stderr)
     with Progress(TextColumn("replay"), BarColumn(), TextColumn("{task.percentage:>3.0f}%"),

@@ -7,11 +7,10 @@ import signal
 import threading
 from pathlib import Path
 
+from crankbeat.errors import UsageError
 from crankbeat.logger.cli.common import add_store_argument, open_store, parse_assignment, stderr
 from crankbeat.logger.cli.summary import render_run
 from crankbeat.logger.live import LiveDisplay, caution_text
-
-from crankbeat.errors import UsageError
 
 NAME = "ride"
 HELP = "record and analyse a ride live from the CAN bus and the accelerometer ports"

@@ -10,10 +10,9 @@ from collections.abc import Iterable, Sequence
 from pathlib import Path
 from typing import Any
 
+from crankbeat.errors import UsageError
 from crankbeat.logger.report.text import fmt  # noqa: F401 (the commands format numbers with it)
 from crankbeat.logger.store import Store, jsonable
-
-from crankbeat.errors import UsageError
 
 DEFAULT_STORE = "crankbeat.db"
 

@@ -10,12 +10,12 @@ from __future__ import annotations
 from collections import deque
 
 import numpy as np
+
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.events import FIRED, MISFIRE, UNUSABLE
+from crankbeat.errors import InputError
 from crankbeat.logger.chunks import StreamHealth
 from crankbeat.logger.live.display import CylinderState, IntervalState, LiveState
-
-from crankbeat.errors import InputError
 
 
 class LiveTally:

@@ -8,12 +8,11 @@ import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from crankbeat.errors import CrankbeatError
 from crankbeat.logger.report import run_plots
 from crankbeat.logger.report.text import summary_lines
 from crankbeat.logger.report.trend import plot_trend
 from crankbeat.logger.store import Store
-
-from crankbeat.errors import CrankbeatError
 
 
 @dataclass

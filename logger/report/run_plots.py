@@ -5,6 +5,9 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
+from matplotlib.colors import LogNorm
+from matplotlib.ticker import MaxNLocator
+
 from crankbeat.dsp.events import FIRED, MISFIRE
 from crankbeat.logger.report.style import (
     MISFIRE_COLOUR,
@@ -15,8 +18,6 @@ from crankbeat.logger.report.style import (
     save,
 )
 from crankbeat.logger.store import Store
-from matplotlib.colors import LogNorm
-from matplotlib.ticker import MaxNLocator
 
 # Above this many fired events per cylinder the dots are thinned (every misfire is kept).
 _MAX_DOTS = 40_000

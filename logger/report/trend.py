@@ -7,6 +7,7 @@ from datetime import datetime
 from pathlib import Path
 
 import matplotlib.dates as mdates
+
 from crankbeat.logger.report.style import CYLINDER_COLOURS, new_figure, save
 from crankbeat.logger.store import METRICS, TrendPoint
 

@@ -6,9 +6,8 @@ import os
 from collections.abc import Mapping
 from dataclasses import replace
 
-from crankbeat.logger.rig.model import CanBus, Rig, SerialSensor
-
 from crankbeat.errors import RigError
+from crankbeat.logger.rig.model import CanBus, Rig, SerialSensor
 
 __all__ = ["resolve_can_bus", "resolve_serial_port", "serial_port_env"]
 

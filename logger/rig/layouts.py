@@ -15,10 +15,10 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from crankbeat.dsp.engine import Engine
-from crankbeat.logger.rig.schema import Problems, Section, parse_toml
 
+from crankbeat.dsp.engine import Engine
 from crankbeat.errors import InputError, RigError
+from crankbeat.logger.rig.schema import Problems, Section, parse_toml
 
 __all__ = ["list_layouts", "load_layout"]
 

@@ -33,6 +33,7 @@ from pathlib import Path
 from typing import get_args
 
 from crankbeat.dsp.crank import ToothWheel
+from crankbeat.errors import InputError, RigError
 from crankbeat.logger.rig.layouts import read_rig_engine
 from crankbeat.logger.rig.model import (
     CAN_ROLES,
@@ -50,8 +51,6 @@ from crankbeat.logger.rig.model import (
 )
 from crankbeat.logger.rig.schema import Problems, Section, parse_toml
 from crankbeat.logger.rig.validate import check_messages, check_sensor
-
-from crankbeat.errors import InputError, RigError
 
 __all__ = ["list_presets", "load_rig"]
 

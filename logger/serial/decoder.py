@@ -13,6 +13,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+
 from crankbeat.logger.chunks import AccelBlock
 from crankbeat.logger.rig.model import SerialSensor
 from crankbeat.logger.serial.parser import SerialFrameParser

@@ -12,10 +12,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from crankbeat.logger.rig.model import SerialField, SerialSensor
-from crankbeat.logger.serial.checksums import CHECKSUM_FUNCTIONS
 
 from crankbeat.errors import InputError, RigError
+from crankbeat.logger.rig.model import SerialField, SerialSensor
+from crankbeat.logger.serial.checksums import CHECKSUM_FUNCTIONS
 
 _ACCEL_ROLES = ("accel_x", "accel_y", "accel_z")
 

@@ -26,10 +26,10 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from crankbeat.logger.rig.model import SerialSensor
-from crankbeat.logger.serial.frames import FrameLayout
 
 from crankbeat.errors import InputError
+from crankbeat.logger.rig.model import SerialSensor
+from crankbeat.logger.serial.frames import FrameLayout
 
 
 @dataclass

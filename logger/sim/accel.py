@@ -15,10 +15,11 @@ its time stamps are integers of its unit (µs) and wrap at the sensor's modulo.
 from __future__ import annotations
 
 import numpy as np
+from scipy.signal import bilinear, butter, lfilter, sosfilt
+
 from crankbeat.dsp.kinematics import reciprocating_torque
 from crankbeat.dsp.layout import shaking_couples, shaking_forces
 from crankbeat.logger.sim.teeth import hermite
-from scipy.signal import bilinear, butter, lfilter, sosfilt
 
 CYLINDER_TILT_DEG = 30.0  # cylinder 1's axis leans forward from vertical
 FORCE_GAIN_G_PER_N = 6.0e-5  # low-frequency sensor acceleration per newton of shaking force

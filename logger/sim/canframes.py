@@ -12,9 +12,9 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from crankbeat.logger.can.bits import encode_signal
 
 from crankbeat.errors import InputError
+from crankbeat.logger.can.bits import encode_signal
 
 FRAME_BITS = 130  # an 8-byte classic frame with an 11-bit id, bit stuffing included (about)
 

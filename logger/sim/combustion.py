@@ -18,6 +18,7 @@ Pressures are absolute, Pa. Everything broadcasts over events (leading axes) and
 from __future__ import annotations
 
 import numpy as np
+
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.kinematics import piston_position
 

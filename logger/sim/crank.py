@@ -23,14 +23,14 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.kinematics import equivalent_inertia
+from crankbeat.errors import InputError
 from crankbeat.logger.sim import maps
 from crankbeat.logger.sim.firing import GRID_STEP_DEG, N_GRID, GasTorque
 from crankbeat.logger.sim.profile import Profile, overall_ratio
 from crankbeat.logger.sim.scenario import Scenario
-
-from crankbeat.errors import InputError
 
 H_RAD = math.radians(GRID_STEP_DEG)
 CONTROL_TAU_S = 0.3  # time constant of the mean-speed controller

@@ -26,12 +26,13 @@ an edge at angle θ passes at t_alone(θ) − δ / ω.
 from __future__ import annotations
 
 import numpy as np
+from scipy.interpolate import CubicSpline
+from scipy.signal import bilinear, butter, lfilter, sosfilt
+
 from crankbeat.logger.sim.crank import CONTROL_TAU_S, SlowTrack, vehicle_inertia
 from crankbeat.logger.sim.profile import overall_ratio
 from crankbeat.logger.sim.scenario import Scenario
 from crankbeat.logger.sim.teeth import hermite
-from scipy.interpolate import CubicSpline
-from scipy.signal import bilinear, butter, lfilter, sosfilt
 
 FS = 4000.0  # Hz, grid of the driveline solution
 TAPER_S = 0.25  # the mode dies out over this after the clutch opens

@@ -10,6 +10,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+
 from crankbeat.dsp.engine import Engine
 from crankbeat.logger.sim import combustion, maps
 from crankbeat.logger.sim.scenario import Fault, Scenario

@@ -11,6 +11,7 @@ import bisect
 from dataclasses import dataclass
 
 import numpy as np
+
 from crankbeat.logger.sim.scenario import Physics, Scenario
 
 SHIFT_S = 0.35

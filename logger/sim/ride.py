@@ -7,15 +7,15 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
+
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.layout import firing_angles
+from crankbeat.errors import InputError
 from crankbeat.logger.rig.model import Rig
 from crankbeat.logger.sim import crank, driveline, firing
 from crankbeat.logger.sim.profile import Profile
 from crankbeat.logger.sim.scenario import Scenario
 from crankbeat.logger.sim.teeth import cam_levels, edges_between, hermite, wheel_errors
-
-from crankbeat.errors import InputError
 
 #: Ground truth of every firing event of the simulated ride.
 TRUTH_DTYPE = np.dtype(

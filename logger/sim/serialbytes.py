@@ -10,6 +10,7 @@ that starts in the middle of a frame.
 from __future__ import annotations
 
 import numpy as np
+
 from crankbeat.logger.serial.frames import encode_frames
 
 _INT_RANGE = {"i8": (-128, 127), "u8": (0, 255), "i16": (-32768, 32767), "u16": (0, 65535),

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
+
 from crankbeat.logger.sim.crank import SlowTrack
 
 STATUS_ROLES = ("engine_speed", "throttle", "gear", "coolant", "road_speed")

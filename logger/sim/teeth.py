@@ -8,6 +8,7 @@ Tooth edge angles are unwrapped crank degrees with 0 at cylinder 1's firing TDC 
 from __future__ import annotations
 
 import numpy as np
+
 from crankbeat.dsp.crank import ToothWheel
 
 

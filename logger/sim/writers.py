@@ -24,12 +24,12 @@ from pathlib import Path
 
 import can
 import numpy as np
+
+from crankbeat.errors import InputError
 from crankbeat.logger.serial.capture import CaptureWriter
 from crankbeat.logger.sim.canframes import CanFrames, build_frames
 from crankbeat.logger.sim.scenario import scenario_to_toml
 from crankbeat.logger.sim.serialbytes import stream
-
-from crankbeat.errors import InputError
 
 CAN_FORMATS = (".log", ".asc", ".blf", ".csv", ".trc")
 TRUTH_COLUMNS = ("t", "cycle", "cylinder", "fired", "burn_fraction", "retard_deg", "rpm",

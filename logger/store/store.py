@@ -16,7 +16,9 @@ from typing import Any
 
 import numpy as np
 import sqlite_utils
+
 from crankbeat.dsp.events import EVENT_DTYPE, FIRED, MASKED, MISFIRE, VERDICT_NAMES
+from crankbeat.errors import RunNotFoundError, StoreError, UsageError
 from crankbeat.logger.store.schema import (
     EVENT_COLUMNS,
     SCHEMA_VERSION,
@@ -24,8 +26,6 @@ from crankbeat.logger.store.schema import (
     migrate,
     source_key,
 )
-
-from crankbeat.errors import RunNotFoundError, StoreError, UsageError
 
 _VERDICT_CODES = {name: code for code, name in VERDICT_NAMES.items()}
 

@@ -26,7 +26,6 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING, Literal
 
 from crankbeat.dsp.events import FIRED, MISFIRE
-
 from crankbeat.errors import UsageError
 
 if TYPE_CHECKING:

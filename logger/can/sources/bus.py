@@ -15,10 +15,10 @@ from collections.abc import Iterator
 
 import can
 import numpy as np
-from crankbeat.logger.can.sources.base import CanSource, FrameBatch
-from crankbeat.logger.rig.model import CanBus
 
 from crankbeat.errors import SourceError
+from crankbeat.logger.can.sources.base import CanSource, FrameBatch
+from crankbeat.logger.rig.model import CanBus
 
 
 class BusSource(CanSource):

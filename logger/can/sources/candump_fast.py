@@ -25,9 +25,9 @@ from typing import BinaryIO
 
 import can
 import numpy as np
-from crankbeat.logger.can.sources.base import CanSource, FrameBatch
 
 from crankbeat.errors import FormatError, SourceError
+from crankbeat.logger.can.sources.base import CanSource, FrameBatch
 
 #: Bytes read per block; a block's lines are parsed together.
 BLOCK_BYTES = 4 * 1024 * 1024

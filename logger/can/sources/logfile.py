@@ -16,9 +16,9 @@ from collections.abc import Iterator
 import can
 from can.io import MESSAGE_READERS
 from can.io.generic import TextIOMessageReader
-from crankbeat.logger.can.sources.base import CanSource, FrameBatch
 
 from crankbeat.errors import FormatError, SourceError
+from crankbeat.logger.can.sources.base import CanSource, FrameBatch
 
 
 def _one_line(exc: BaseException) -> str:
