@@ -34,6 +34,7 @@ from typing import get_args
 
 from crankbeat.dsp.crank import ToothWheel
 from crankbeat.errors import InputError, RigError
+from crankbeat.logger.rig.candb import expand_can_database
 from crankbeat.logger.rig.layouts import read_rig_engine
 from crankbeat.logger.rig.model import (
     CAN_ROLES,
@@ -117,7 +118,9 @@ def load_rig(spec: str | os.PathLike[str]) -> Rig:
 def parse_rig(text: str, *, label: str, source: str, base_dir: Path | None = None) -> Rig:
     """Check rig TOML text; ``label`` names the file in messages (see :func:`load_rig`)."""
     problems = Problems(label)
-    top = Section(parse_toml(text, label), "", problems)
+    doc = parse_toml(text, label)
+    expand_can_database(doc, base_dir=base_dir, problems=problems)  # layouts from a CAN database
+    top = Section(doc, "", problems)
     rig_sec = top.table("rig", required=True)
     name, description = "", ""
     if rig_sec is not None:
