@@ -32,6 +32,7 @@ COMMANDS: tuple[str, ...] = (
     "crankbeat.logger.cli.cmd_compare",
     "crankbeat.logger.cli.cmd_report",
     "crankbeat.logger.cli.cmd_synth",
+    "crankbeat.logger.cli.cmd_bringup",
 )
 
 #: Modules that may be absent without breaking the other commands.
