@@ -23,8 +23,11 @@ symmetry point of the dips, averaged over many cycles, is the correction.
 4. Its standard error is the jackknife over blocks of cycles (delete one block, refit).
 
 What limits it: the other cylinders' pumping is not exactly a straight line over the window, and
-the compression/expansion of a real charge is not exactly symmetric (heat lost at TDC); both
-bias the estimate by a fraction of a degree on simulated rides (see tests/test_tdcfit.py).
+the compression/expansion of a real charge is not exactly symmetric (heat lost at TDC). On
+simulated overrun rides the estimate lands within 0.8 deg of the true TDC for the twins; where a
+partner cylinder turns from exhaust to intake right at cylinder 1's firing TDC (360° twin,
+flat-plane four) its pumping tilts the dip and the estimate falls short by 0.8 (twin) to 1.4 deg
+(four on a 36-1 wheel, few teeth per window); see tests/test_bringup.py.
 """
 
 from __future__ import annotations

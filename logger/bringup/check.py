@@ -36,6 +36,8 @@ CLOSED_THROTTLE_PCT = 1.0
 OVERRUN_IDLE_FACTOR = 1.5
 #: the first part of each closed-throttle stretch is left out (an ECU cuts fuel after a delay)
 FUEL_CUT_SETTLE_S = 0.3
+#: a TDC estimate this far (and two standard errors) from the file's value becomes a suggestion
+SUGGEST_TDC_DEG = 1.0
 
 
 @dataclass(frozen=True)
@@ -60,6 +62,7 @@ class RigCheck:
     tdc: TdcEstimate | None
     tdc_note: str
     sensors: dict[str, tuple[int, float]] = field(default_factory=dict)  # samples, rate Hz
+    teeth_per_frame: int = 1  # a cam change shows at the end of a frame: up to this - 1 late
     suggestions: dict[str, object] = field(default_factory=dict)
 
 
@@ -81,7 +84,10 @@ def _census(can_path, rig: Rig) -> tuple[float, list[IdRate], list[IdRate]]:
     key = cid.astype(np.uint64) | (ex.astype(np.uint64) << np.uint64(32))
     keys, counts = np.unique(key, return_counts=True)
     seen = {int(k): int(n) for k, n in zip(keys, counts)}
-    rate = (lambda n: n / dur if dur > 0 else 0.0)
+
+    def rate(n: int) -> float:
+        return n / dur if dur > 0 else 0.0
+
     known = []
     for m in rig.messages:
         n = seen.pop(int(m.can_id) | (int(m.extended) << 32), 0)
@@ -99,7 +105,10 @@ def _read(rig: Rig, can_path, accel):
             status.append(chunk.status)
             for name, block in chunk.accel.items():
                 acc.setdefault(name, []).append(block.t)
-    cat = (lambda parts, k: np.concatenate([getattr(p, k) for p in parts]))
+
+    def cat(parts, k):
+        return np.concatenate([getattr(p, k) for p in parts])
+
     tb = {k: cat(teeth, k) for k in ("frame_time", "periods", "cam", "lost_before")}
     st_t = cat(status, "t")
     roles = {r: np.concatenate([s.values[r] for s in status]) for r in status[0].values} \
@@ -138,7 +147,8 @@ def check_rig(rig: Rig, can_path: str | os.PathLike, accel: dict | None = None, 
     if per.size:
         breaks[:, 0] = tb["lost_before"] > 0
     seen = wheel_from_periods(per.reshape(-1), breaks=breaks.reshape(-1))
-    out = RigCheck(rig, dur, known, unknown, seen, None, "", None, "", sensors)
+    out = RigCheck(rig, dur, known, unknown, seen, None, "", None, "", sensors,
+                   teeth_per_frame=per.shape[1] if per.ndim == 2 else 1)
     if seen is None:
         out.cam_note = out.tdc_note = "not checked: no tooth wheel seen in the log"
         return out
@@ -164,7 +174,8 @@ def check_rig(rig: Rig, can_path: str | os.PathLike, accel: dict | None = None, 
         else:
             out.tdc = est
             value = float(np.mod(w.tdc_offset_deg + est.correction_deg, 360.0))
-            if abs(est.correction_deg) > max(2 * est.se_deg, 0.5):
+            # below 1 deg the method's own bias (dsp/tdcfit.py) is as large as the difference
+            if abs(est.correction_deg) > max(2 * est.se_deg, SUGGEST_TDC_DEG):
                 out.suggestions["wheel.tdc_offset_deg"] = round(value, 1)
     return out
 

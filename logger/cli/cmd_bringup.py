@@ -67,7 +67,8 @@ def run(args: argparse.Namespace) -> int:
               f"{rig.wheel.teeth}-{rig.wheel.missing}")
     c = res.cam
     cam_seen = "" if c is None else f"{c.pattern}" + (
-        f", changes at tooth {c.switch_tooth}" if c.switch_tooth is not None else "")
+        f", changes at tooth {c.switch_tooth} (seen at frame ends: up to "
+        f"{res.teeth_per_frame - 1} teeth late)" if c.switch_tooth is not None else "")
     print(f"cam: {cam_seen + '; ' if cam_seen else ''}{res.cam_note}; file: cam = "
           f"{rig.wheel.cam!r}, cam_active_level = {rig.wheel.cam_active_level}")
     if res.tdc is not None:
