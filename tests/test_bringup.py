@@ -189,3 +189,14 @@ def test_no_throttle_signal_says_so(tmp_path):
     res = check_rig(load_rig(path), FIXTURES / "demo" / "demo.log")
     assert res.tdc is None and "no throttle" in res.tdc_note
     assert np.isfinite(res.duration_s)
+
+
+def test_a_log_of_another_bike_shows_the_ids_missing(capsys):
+    """The alder rig against a Larch log: nothing configured is present, nothing is guessed."""
+    assert main(["bringup", "--rig", "alder", "--can", str(FIXTURES / "blf" / "blf.blf")]) == 0
+    out = capsys.readouterr().out
+    assert "0x18FF10A0  crank_teeth       0  0.0        -  MISSING" in out
+    assert "0x0A0    1902" in out  # the Larch's tooth frames, listed as unknown
+    assert "wheel: no gap seen" in out
+    assert "TDC not estimated: no tooth wheel seen in the log" in out
+    assert "no changes suggested" in out

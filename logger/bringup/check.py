@@ -150,7 +150,8 @@ def check_rig(rig: Rig, can_path: str | os.PathLike, accel: dict | None = None, 
     out = RigCheck(rig, dur, known, unknown, seen, None, "", None, "", sensors,
                    teeth_per_frame=per.shape[1] if per.ndim == 2 else 1)
     if seen is None:
-        out.cam_note = out.tdc_note = "not checked: no tooth wheel seen in the log"
+        out.cam_note = "not checked: no tooth wheel seen in the log"
+        out.tdc_note = "TDC not estimated: no tooth wheel seen in the log"
         return out
     w = rig.wheel
     wheel = ToothWheel(seen.teeth, seen.missing, w.tdc_offset_deg, w.cam, w.cam_active_level)
