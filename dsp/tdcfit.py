@@ -24,10 +24,11 @@ symmetry point of the dips, averaged over many cycles, is the correction.
 
 What limits it: the other cylinders' pumping is not exactly a straight line over the window, and
 the compression/expansion of a real charge is not exactly symmetric (heat lost at TDC). On
-simulated overrun rides the estimate lands within 0.8 deg of the true TDC for the twins; where a
-partner cylinder turns from exhaust to intake right at cylinder 1's firing TDC (360° twin,
-flat-plane four) its pumping tilts the dip and the estimate falls short by 0.8 (twin) to 1.4 deg
-(four on a 36-1 wheel, few teeth per window); see tests/test_bringup.py.
+simulated overrun rides the estimate lands within 1 deg of the true TDC for the twins in neutral
+to 4th gear; in 5th the driveline's response to the compression torque tilts the dip (-1.1 to
+-1.3 deg on the 180° twin); on the flat-plane four with its 36-1 wheel (few teeth per window, and
+a partner cylinder turning from exhaust to intake right at cylinder 1's firing TDC) it falls
+short by about 1.4 deg; see tests/test_bringup.py.
 """
 
 from __future__ import annotations

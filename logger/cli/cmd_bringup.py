@@ -26,7 +26,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.epilog = (
         "example:\n  crankbeat bringup --rig newbike.toml --can first-ride.log\n\n"
         "For TDC the log needs a stretch of closed throttle above 1.5 x idle (overrun fuel cut),\n"
-        "at least 20 cycles: roll off from mid revs in a middle gear and let the engine slow.")
+        "at least 20 cycles: roll off from mid revs in a low gear and let the engine slow.")
 
 
 def _id(r) -> str:
