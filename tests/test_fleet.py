@@ -158,3 +158,17 @@ def test_batch_command_on_a_folder(tmp_path, capsys):
     assert main(argv) == 0
     assert "0 stored, 1 skipped" in capsys.readouterr()[0]
     assert main(["batch", "--store", str(db)]) == 2  # neither rides nor --stored
+
+
+def test_bench_fleet_child_times_a_batch(tmp_path):
+    # the helper behind `make bench`'s fleet rows, on the 2 s BLF fixture (no timing judged)
+    import sys
+
+    sys.path.insert(0, str(ROOT))
+    from bench.procs import run_child, script
+
+    run = run_child([script("bench_fleet.py"), "--rides", str(FIX / "blf"), "--store",
+                     str(tmp_path / "b.db"), "--workers", "1"])
+    assert run.ok, run.error
+    assert run.result["rides"] == run.result["stored"] == 1 and run.result["failed"] == 0
+    assert run.result["seconds"] > 0 and run.result["worker_cpu_s"] > 0

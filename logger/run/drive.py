@@ -59,10 +59,12 @@ class OutputCollector:
 
     def output(self, analysis: RunAnalysis, sources: list[Source]) -> RunOutput:
         tail = analysis.conclude()
+        events = join_events(self.events, tail.rough_spans)
+        self.events = []  # the parts are in ``events`` now: do not hold them twice
         return RunOutput(
             rig_name=analysis.rig.name, wheel_key=wheel_key(analysis.rig),
             analyser=analyser_version(), sources=sources,
-            events=join_events(self.events, tail.rough_spans), windows=self.windows,
+            events=events, windows=self.windows,
             channels=concat_channels(self.channels), tail=tail)
 
 

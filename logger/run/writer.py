@@ -14,6 +14,8 @@ from crankbeat.logger.run.output import Priors, RunOutput, RunTail
 from crankbeat.logger.run.teeth import LearntTeeth, wheel_key
 from crankbeat.logger.store import Store
 
+#: Events written per call when a whole run is stored (the rows become Python tuples).
+WRITE_BLOCK = 20_000
 #: Epoch seconds that can be a ride's start (2001 .. 2100); logs with relative times start near 0.
 PLAUSIBLE_EPOCH = (1.0e9, 4.1e9)
 
@@ -78,8 +80,8 @@ def store_output(store: Store, rig: Rig, out: RunOutput, *, label: str | None = 
         rig, label=label, notes=notes, odometer_km=odometer_km,
         sources=[(s.path, s.sha256, s.kind) for s in out.sources],
         started_at=ride_start(out.t_start), analyser=out.analyser, commit=False)
-    if len(out.events):
-        store.add_events(run_id, out.events)
+    for a in range(0, len(out.events), WRITE_BLOCK):  # in blocks: bounded row lists
+        store.add_events(run_id, out.events[a:a + WRITE_BLOCK])
     for kind, rows in out.windows.items():
         store.add_windows(run_id, rows, kind=kind)
     if out.channels:
