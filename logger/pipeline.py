@@ -173,7 +173,11 @@ def analyse_live(
                          stop=stop_event) as chunks:
             drive(analysis, chunks, on_step, lambda out: write_step(store, run_id, out))
     except KeyboardInterrupt:  # the rider stopped the ride: what was analysed is the run
-        write_step(store, run_id, analysis.finish())
+        try:  # flush what the stages hold back (the interrupt may have cut a step short)
+            write_step(store, run_id, analysis.finish())
+        except Exception as exc:  # noqa: BLE001 - the run's tail must be stored regardless
+            analysis.notes.append(f"the ride was stopped mid-step; its last events are "
+                                  f"missing ({type(exc).__name__})")
     tail = analysis.conclude()
     write_tail(store, run_id, tail, rig.name, wheel_key(rig))
     return RunResult(run_id, tail.summary)

@@ -151,3 +151,13 @@ def test_unknown_suffix_is_a_usage_error(tmp_path):
     with pytest.raises(UsageError, match="no export format for '.xlsx'"):
         open_writer(tmp_path / "x.xlsx")
     assert not (tmp_path / "x.xlsx").exists()
+
+
+def test_a_missing_extra_is_named(monkeypatch, tmp_path):
+    import importlib.util
+
+    real = importlib.util.find_spec
+    monkeypatch.setattr(importlib.util, "find_spec",
+                        lambda name, *a: None if name == "pyarrow" else real(name, *a))
+    with pytest.raises(UsageError, match=r"needs pyarrow: pip install 'crankbeat\[export\]'"):
+        open_writer(tmp_path / "x.parquet")
