@@ -486,17 +486,21 @@ class Store:
                 f"add_order_map: amplitude shape {amp.shape} does not match "
                 f"{len(lo)} bands x {len(orders)} orders"
             )
-        visited = ~np.all(np.isnan(amp), axis=1)
-        # NaN (no block of this order in a visited band) is stored as NULL
-        vals = np.where(np.isfinite(amp), amp, np.nan).tolist()
-        ords = orders.tolist()
-        recs = [
-            (sensor, axis, float(lo[b]), float(hi[b]), ords[k], None if v != v else v)
-            for b in np.flatnonzero(visited).tolist()
-            for k, v in enumerate(vals[b])
-        ]
-        cols = ("sensor", "axis", "rpm_lo", "rpm_hi", "ord", "amplitude")
-        return self._insert("order_map", cols, run_id, recs)
+        visited = np.flatnonzero(~np.all(np.isnan(amp), axis=1))
+        # NaN (no block of this order in a visited band) is stored as NULL; rows are built
+        # column-wise (a map is ~10^4 rows per sensor and axis: a per-cell loop dominated)
+        self._check_run(run_id)
+        n_ord = len(orders)
+        vals = [None if v != v else v
+                for v in np.where(np.isfinite(amp[visited]), amp[visited], np.nan).ravel().tolist()]
+        self.db.conn.executemany(
+            "INSERT INTO order_map (run, sensor, axis, rpm_lo, rpm_hi, ord, amplitude)"
+            " VALUES (?, ?, ?, ?, ?, ?, ?)",
+            zip([run_id] * len(vals), [sensor] * len(vals), [axis] * len(vals),
+                np.repeat(lo[visited], n_ord).tolist(), np.repeat(hi[visited], n_ord).tolist(),
+                np.tile(orders, len(visited)).tolist(), vals),
+        )
+        return len(vals)
 
     def _insert(self, table: str, cols: Sequence[str], run_id: int, recs: list[tuple]) -> int:
         self._check_run(run_id)
