@@ -110,6 +110,13 @@ class EventAnalyzer:
         crank = self.tracker.push(frame_time, periods, cam, lost_before)
         return self._step(crank, final=False)
 
+    def schedule_tooth_correction(self, correction_deg, from_time: float) -> None:
+        """Correct tooth position errors (deg, one per real tooth) from CAN time ``from_time``, s.
+
+        See :meth:`dsp.crank.CrankTracker.schedule_tooth_correction`.
+        """
+        self.tracker.schedule_tooth_correction(correction_deg, from_time)
+
     def finish(self) -> AnalyzerStep:
         """Flush everything held back (the last events lack look-ahead)."""
         crank = self.tracker.finish()

@@ -302,6 +302,20 @@ class VibrationAnalyzer:
         self._last_flush = -np.inf
         self._feed: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
 
+    def rough_verdict_lag_s(self) -> float:
+        """Longest time after a sample until its rough-road verdict is known, s (0: no boards).
+
+        A span is reported when it closes: one detector window, the hold time and two frames.
+        """
+        return max((b.rough.window_frames * b.rough.frame_s + b.rough.hold_s
+                    + 2 * b.rough.frame_s for b in self.boards.values()), default=0.0)
+
+    def rough_open_since(self) -> float | None:
+        """Start (CAN time, s) of the earliest rough-road span still open, or None."""
+        starts = [b.rough.open_since for b in self.boards.values()
+                  if b.rough.open_since is not None]
+        return min(starts) if starts else None
+
     # -- crank --------------------------------------------------------------------------
     def _add_crank(self, te: np.ndarray, th: np.ndarray, ok: np.ndarray) -> np.ndarray:
         """Unwrap angles that restart each cycle (a drop of more than half a cycle)."""

@@ -24,9 +24,10 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from bench import measure  # noqa: E402
+from bench.fleet import fleet_rows  # noqa: E402
 from bench.table import failed, render  # noqa: E402
 
-GROUPS = ("replay", "decode", "memory", "scaling", "live", "profile")
+GROUPS = ("replay", "decode", "memory", "scaling", "live", "fleet", "profile")
 
 
 def _versions() -> dict:
@@ -86,7 +87,7 @@ def main(argv: list[str] | None = None) -> int:
     rows = []
     fns = {"replay": measure.replay_rows, "decode": measure.decode_rows,
            "memory": measure.memory_rows, "scaling": measure.scaling_rows,
-           "live": measure.live_rows}
+           "live": measure.live_rows, "fleet": fleet_rows}
     for g in groups:
         if g in fns:
             rows += fns[g](b)

@@ -1,28 +1,19 @@
-"""``crankbeat events``: every firing event of a run as CSV or JSON."""
+"""``crankbeat events``: every firing event of a run, to stdout or a file (format by suffix)."""
 
 from __future__ import annotations
 
 import argparse
-import csv
-import json
-import math
 import sys
+from pathlib import Path
 
-import numpy as np
-
-from crankbeat.dsp.events import MISFIRE, VERDICT_NAMES
-from crankbeat.errors import CrankbeatError, UsageError
+from crankbeat.dsp.events import VERDICT_NAMES
+from crankbeat.errors import UsageError
 from crankbeat.logger.cli.common import add_store_argument, open_store
-from crankbeat.logger.store import jsonable
+from crankbeat.logger.export.table import EVENT_COLUMNS as COLUMNS
 
 NAME = "events"
-HELP = "write every firing event of a run (CSV or JSON), masked and unusable ones included"
-
-#: Output columns; ``misfire`` is 0/1 and ``verdict`` the verdict's name.
-COLUMNS = (
-    "t", "cycle", "cylinder", "misfire", "verdict", "rpm", "throttle", "metric", "threshold",
-    "confidence", "interval_deg", "expected_interval_deg", "contribution",
-)
+HELP = ("write every firing event of a run (CSV, JSON, JSON lines, Parquet, MDF4), masked and "
+        "unusable ones included")
 
 
 def add_arguments(parser: argparse.ArgumentParser) -> None:
@@ -33,51 +24,32 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--cylinder", type=int, metavar="N", help="only cylinder N (from 1)")
     parser.add_argument("--verdict", metavar="V",
                         help="only one verdict: " + ", ".join(VERDICT_NAMES.values()))
-    parser.add_argument("--out", metavar="FILE", help="write to FILE instead of stdout")
+    parser.add_argument("--out", metavar="FILE",
+                        help="write to FILE instead of stdout, its format by suffix: .csv, "
+                             ".json, .jsonl, .parquet, .mf4 (an MDF4 file holds the run's time "
+                             "channels too; .parquet and .mf4 need crankbeat[export])")
     parser.epilog = ("example: crankbeat events last --cylinder 2 --verdict misfire > mis.csv\n"
                      "columns: " + ", ".join(COLUMNS) + "\n"
                      "t is the cylinder's firing TDC in s on the CAN log's time base")
 
 
-def _rows(ev: np.ndarray):
-    names = [VERDICT_NAMES.get(int(v), str(int(v))) for v in ev["verdict"]]
-    cols = {c: ev[c].tolist() for c in ev.dtype.names}
-    for i in range(len(ev)):
-        yield {
-            "t": cols["t"][i], "cycle": cols["cycle"][i], "cylinder": cols["cylinder"][i],
-            "misfire": int(ev["verdict"][i] == MISFIRE), "verdict": names[i],
-            **{c: cols[c][i] for c in COLUMNS[5:]},
-        }
-
-
-def _csv_value(v: object, col: str) -> object:
-    if isinstance(v, float):
-        if not math.isfinite(v):
-            return ""
-        return f"{v:.6f}" if col == "t" else f"{v:.6g}"
-    return v
-
-
 def run(args: argparse.Namespace) -> int:
+    from crankbeat.logger.export import channels_table, events_table, open_writer, run_meta
+
     if args.cylinder is not None and args.cylinder < 1:
         raise UsageError(f"--cylinder counts from 1, got {args.cylinder}")
+    suffix = Path(args.out).suffix.lower() if args.out else f".{args.format}"
+    if args.out and not suffix:
+        suffix = f".{args.format}"
     with open_store(args) as store:
         run_id = store.resolve_run(args.run)
         ev = store.events(run_id, cylinder=args.cylinder, verdict=args.verdict)
-    try:
-        out = open(args.out, "w", newline="", encoding="utf-8") if args.out else sys.stdout
-    except OSError as exc:
-        raise CrankbeatError(f"cannot write '{args.out}': {exc.strerror}") from None
-    try:
-        if args.format == "json":
-            json.dump(jsonable(list(_rows(ev))), out, allow_nan=False)
-            out.write("\n")
-        else:
-            w = csv.writer(out, lineterminator="\n")
-            w.writerow(COLUMNS)
-            for row in _rows(ev):
-                w.writerow([_csv_value(row[c], c) for c in COLUMNS])
-    finally:
-        if out is not sys.stdout:
-            out.close()
+        meta = run_meta(store, run_id)
+        # a container format takes the run's time channels beside the events
+        channels = store.channels(run_id) if suffix in (".mf4", ".mdf") else {}
+    target = args.out if args.out else sys.stdout
+    with open_writer(target, suffix=suffix) as writer:
+        writer.write(events_table(ev, meta=meta))
+        if channels:
+            writer.write(channels_table(channels, meta=meta))
     return 0

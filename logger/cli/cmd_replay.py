@@ -15,7 +15,6 @@ from crankbeat.logger.cli.common import (
     stderr,
 )
 from crankbeat.logger.cli.summary import render_run, run_digest
-from crankbeat.logger.store import sha256_file
 
 NAME = "replay"
 HELP = "analyse a recorded ride (CAN log + accelerometer captures) into the store"
@@ -83,15 +82,7 @@ def run(args: argparse.Namespace) -> int:
         _check_file(path, f"capture for sensor '{name}'")
 
     with open_store(args, create=True) as store:
-        run_id = None
-        if not args.force:
-            hashes = [sha256_file(can_path)] + [sha256_file(p) for p in accel.values()]
-            run_id = store.find_run_by_sources(hashes)
-            if run_id is not None:
-                stderr(f"these files were analysed before as run {run_id} "
-                       "(--force analyses them again)")
-        if run_id is None:
-            run_id = _analyse(args, rig, can_path, accel, store)
+        run_id = _analyse(args, rig, can_path, accel, store)
         if args.json:
             print_json(run_digest(store, run_id))
         else:
@@ -100,6 +91,7 @@ def run(args: argparse.Namespace) -> int:
 
 
 def _analyse(args, rig, can_path: Path, accel: dict[str, Path], store) -> int:
+    """The run's id: a new analysis, or the earlier run of the same files (said on stderr)."""
     from rich.console import Console
     from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
 
@@ -120,16 +112,7 @@ def _analyse(args, rig, can_path: Path, accel: dict[str, Path], store) -> int:
             earlier = getattr(exc, "run_id", None)
             if earlier is None:
                 raise
-            stderr(f"these files were analysed before as run {earlier}")
+            stderr(f"these files were analysed before as run {earlier} "
+                   "(--force analyses them again)")
             return int(earlier)
-    run_id = int(result.run_id)
-    # A candump log keeps wall-clock receive times: the ride's own start is the run's date
-    # (trends by date then follow the rides, not the day they were replayed).
-    t_start = (result.summary or {}).get("t_start")
-    if isinstance(t_start, int | float) and _PLAUSIBLE_EPOCH[0] < t_start < _PLAUSIBLE_EPOCH[1]:
-        store.update_run(run_id, started_at=float(t_start))
-    return run_id
-
-
-#: Epoch seconds that can be a ride's start (2001 .. 2100); logs with relative times start near 0.
-_PLAUSIBLE_EPOCH = (1.0e9, 4.1e9)
+    return int(result.run_id)

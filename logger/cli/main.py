@@ -28,9 +28,11 @@ COMMANDS: tuple[str, ...] = (
     "crankbeat.logger.cli.cmd_runs",
     "crankbeat.logger.cli.cmd_show",
     "crankbeat.logger.cli.cmd_events",
+    "crankbeat.logger.cli.cmd_channels",
     "crankbeat.logger.cli.cmd_trend",
     "crankbeat.logger.cli.cmd_compare",
     "crankbeat.logger.cli.cmd_report",
+    "crankbeat.logger.cli.cmd_batch",
     "crankbeat.logger.cli.cmd_synth",
     "crankbeat.logger.cli.cmd_bringup",
 )

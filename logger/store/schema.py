@@ -169,7 +169,18 @@ def _v3(db: sqlite_utils.Database) -> None:
     db["events"].create_index(["run", "t"])
 
 
-MIGRATIONS: list[Callable[[sqlite_utils.Database], None]] = [_v1, _v2, _v3]
+def _v4(db: sqlite_utils.Database) -> None:
+    """The analyser version of each run, and the run's status channels (10 Hz, long format)."""
+    db["runs"].add_column("analyser", str)  # NULL: a run analysed before versions were kept
+    db["runs"].create_index(["source_key", "analyser"])
+    db["channels"].create(
+        {"run": int, "name": str, "t": float, "value": float},
+        foreign_keys=[("run", "runs", "id")],
+    )
+    db["channels"].create_index(["run", "name", "t"])
+
+
+MIGRATIONS: list[Callable[[sqlite_utils.Database], None]] = [_v1, _v2, _v3, _v4]
 
 #: The version a file has after every migration ran.
 SCHEMA_VERSION = len(MIGRATIONS)

@@ -261,13 +261,16 @@ class Store:
         odometer_km: float | None = None,
         sources: Iterable[tuple] = (),
         started_at: datetime | float | str | None = None,
+        analyser: str | None = None,
+        commit: bool = True,
     ) -> int:
         """Start a run (status "incomplete") and return its id.
 
         ``sources`` holds ``(path, sha256)`` or ``(path, sha256, kind)`` per input file; kind is
         e.g. "can" or "accel:bar_left" (default: "can" for the first, "accel" for the others).
         The run, its rig and sources are committed at once so that even a ride killed in its
-        first second leaves a visible run.
+        first second leaves a visible run (``commit=False``: a writer storing a whole analysis
+        commits once, at :meth:`finish_run`). ``analyser`` names the analyser version.
         """
         if odometer_km is not None and not (
             isinstance(odometer_km, int | float) and math.isfinite(odometer_km) and odometer_km >= 0
@@ -283,8 +286,8 @@ class Store:
         key = source_key([s[1] for s in src]) if src else None
         cur = self.db.execute(
             "INSERT INTO runs (rig_id, started_at, label, notes, odometer_km, status, created,"
-            " source_key) VALUES (?, ?, ?, ?, ?, 'incomplete', ?, ?)",
-            (rig_id, utc_iso(started_at), label, notes, odometer_km, utc_iso(), key),
+            " source_key, analyser) VALUES (?, ?, ?, ?, ?, 'incomplete', ?, ?, ?)",
+            (rig_id, utc_iso(started_at), label, notes, odometer_km, utc_iso(), key, analyser),
         )
         run_id = int(cur.lastrowid)
         self.db.conn.executemany(
@@ -292,19 +295,60 @@ class Store:
             [(run_id, *s) for s in src],
         )
         self._seq[run_id] = 0
-        self.commit()
+        if commit:
+            self.commit()
         return run_id
 
-    def find_run_by_sources(self, hashes: Iterable[str]) -> int | None:
-        """The newest run analysed from exactly this set of source files, or None."""
+    def find_run_by_sources(self, hashes: Iterable[str], *, analyser: str | None = None,
+                            rig: Any = None, complete: bool = False) -> int | None:
+        """The newest run analysed from exactly this set of source files, or None.
+
+        ``analyser``: only runs of that analyser version; ``rig``: only runs analysed with this
+        very rig text; ``complete``: only finished runs.
+        """
         hashes = list(hashes)
         if not hashes:
             return None
+        where, params = ["runs.source_key = ?"], [source_key(hashes)]
+        if analyser is not None:
+            where.append("runs.analyser = ?")
+            params.append(analyser)
+        if rig is not None:
+            where.append("rigs.file_hash = ?")
+            params.append(hashlib.sha256(_rig_text(rig).encode("utf-8")).hexdigest())
+        if complete:
+            where.append("runs.status = 'complete'")
         row = self.db.execute(
-            "SELECT id FROM runs WHERE source_key = ? ORDER BY id DESC LIMIT 1",
-            (source_key(hashes),),
+            "SELECT runs.id FROM runs JOIN rigs ON rigs.id = runs.rig_id"
+            f" WHERE {' AND '.join(where)} ORDER BY runs.id DESC LIMIT 1", params,
         ).fetchone()
         return int(row[0]) if row else None
+
+    def add_channels(self, run_id: int, channels: Mapping[str, tuple]) -> int:
+        """Append status-channel rows: ``{name: (t, value)}`` (arrays, s and the channel's unit)."""
+        rows = []
+        for name, (t, v) in channels.items():
+            t, v = np.asarray(t, float), np.asarray(v, float)
+            rows += [(run_id, str(name), float(a), None if not math.isfinite(b) else float(b))
+                     for a, b in zip(t.tolist(), v.tolist())]
+        self.db.conn.executemany(
+            "INSERT INTO channels (run, name, t, value) VALUES (?, ?, ?, ?)", rows)
+        return len(rows)
+
+    def channels(self, run_id: int, *, names: Iterable[str] | None = None
+                 ) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+        """The run's status channels, ``{name: (t, value)}`` in time order (NaN for a gap)."""
+        self._check_run(run_id)
+        rows = self.db.execute(
+            "SELECT name, t, value FROM channels WHERE run = ? ORDER BY name, t", (run_id,)
+        ).fetchall()
+        want = None if names is None else set(names)
+        grouped: dict[str, list] = {}
+        for name, t, v in rows:
+            if want is None or name in want:
+                grouped.setdefault(name, []).append((t, np.nan if v is None else v))
+        return {n: (np.array([r[0] for r in g], float), np.array([r[1] for r in g], float))
+                for n, g in grouped.items()}
 
     def _check_run(self, run_id: int) -> None:
         if self.db.execute("SELECT 1 FROM runs WHERE id = ?", (run_id,)).fetchone() is None:
@@ -442,17 +486,21 @@ class Store:
                 f"add_order_map: amplitude shape {amp.shape} does not match "
                 f"{len(lo)} bands x {len(orders)} orders"
             )
-        visited = ~np.all(np.isnan(amp), axis=1)
-        # NaN (no block of this order in a visited band) is stored as NULL
-        vals = np.where(np.isfinite(amp), amp, np.nan).tolist()
-        ords = orders.tolist()
-        recs = [
-            (sensor, axis, float(lo[b]), float(hi[b]), ords[k], None if v != v else v)
-            for b in np.flatnonzero(visited).tolist()
-            for k, v in enumerate(vals[b])
-        ]
-        cols = ("sensor", "axis", "rpm_lo", "rpm_hi", "ord", "amplitude")
-        return self._insert("order_map", cols, run_id, recs)
+        visited = np.flatnonzero(~np.all(np.isnan(amp), axis=1))
+        # NaN (no block of this order in a visited band) is stored as NULL; rows are built
+        # column-wise (a map is ~10^4 rows per sensor and axis: a per-cell loop dominated)
+        self._check_run(run_id)
+        n_ord = len(orders)
+        vals = [None if v != v else v
+                for v in np.where(np.isfinite(amp[visited]), amp[visited], np.nan).ravel().tolist()]
+        self.db.conn.executemany(
+            "INSERT INTO order_map (run, sensor, axis, rpm_lo, rpm_hi, ord, amplitude)"
+            " VALUES (?, ?, ?, ?, ?, ?, ?)",
+            zip([run_id] * len(vals), [sensor] * len(vals), [axis] * len(vals),
+                np.repeat(lo[visited], n_ord).tolist(), np.repeat(hi[visited], n_ord).tolist(),
+                np.tile(orders, len(visited)).tolist(), vals),
+        )
+        return len(vals)
 
     def _insert(self, table: str, cols: Sequence[str], run_id: int, recs: list[tuple]) -> int:
         self._check_run(run_id)
@@ -525,8 +573,16 @@ class Store:
 
     # -- reading -------------------------------------------------------------------------
     def resolve_run(self, spec: int | str) -> int:
-        """Run id from an id, a label or "last" (the newest run)."""
+        """Run id from an id, a label or "last" (the newest run).
+
+        A label shared by re-analyses of one ride (same source files) names the newest of
+        them; ``LABEL@ANALYSER`` names the one of that analyser version.
+        """
         text = str(spec).strip()
+        if "@" in text and not text.isdigit():
+            from crankbeat.logger.store.versions import resolve_versioned
+
+            return resolve_versioned(self, text)
         if text == "last":
             row = self.db.execute("SELECT MAX(id) FROM runs").fetchone()
             if row[0] is None:
@@ -542,6 +598,11 @@ class Store:
                 f"no run with id or label '{text}' in store '{self.path}' (see 'crankbeat runs')"
             )
         if len(ids) > 1:
+            from crankbeat.logger.store.versions import newest_analysis
+
+            newest = newest_analysis(self, ids)
+            if newest is not None:
+                return newest
             raise RunNotFoundError(
                 f"label '{text}' names runs {', '.join(map(str, ids))}: give the run id"
             )
@@ -569,7 +630,7 @@ class Store:
     def _run_rows(self, where: str, params: tuple) -> list[dict]:
         sql = (
             "SELECT runs.id, rigs.name AS rig, runs.started_at, runs.label, runs.notes,"
-            " runs.odometer_km, runs.status, runs.summary, runs.created,"
+            " runs.odometer_km, runs.status, runs.summary, runs.created, runs.analyser,"
             " (SELECT COUNT(*) FROM events e WHERE e.run = runs.id) AS n_events,"
             f" (SELECT COUNT(*) FROM events e WHERE e.run = runs.id AND e.verdict = "
             f"{_VERDICT_CODES['misfire']}) AS n_misfires"

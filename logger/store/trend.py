@@ -27,6 +27,8 @@ from typing import TYPE_CHECKING, Literal
 
 from crankbeat.dsp.events import FIRED, MISFIRE
 from crankbeat.errors import UsageError
+from crankbeat.logger.store.channel_filter import channel_event_metric, parse_channel_filter
+from crankbeat.logger.store.versions import pick_analyses
 
 if TYPE_CHECKING:
     from crankbeat.logger.store.store import Store
@@ -70,7 +72,8 @@ def parse_rpm_band(text: str) -> tuple[float, float]:
     return lo, hi
 
 
-def _runs(store: Store, rig: str | None, by: str, last: int | None) -> list[dict]:
+def _runs(store: Store, rig: str | None, by: str, last: int | None,
+          analyser: str | None = None) -> list[dict]:
     where, params = [], []
     if rig:
         where.append("rigs.name = ?")
@@ -86,6 +89,8 @@ def _runs(store: Store, rig: str | None, by: str, last: int | None) -> list[dict
         f"{' WHERE ' + ' AND '.join(where) if where else ''} ORDER BY {order}"
     )
     rows = list(store.db.query(sql, params))
+    shown = pick_analyses(store, [r["id"] for r in rows], analyser)
+    rows = [r for r in rows if r["id"] in shown]
     return rows[-last:] if last else rows
 
 
@@ -107,9 +112,15 @@ def trend(
     rpm_band: str | tuple[float, float] | None = None,
     by: Literal["date", "odometer"] = "date",
     last: int | None = None,
+    channel: str | None = None,
+    analyser: str | None = None,
 ) -> list[TrendPoint]:
     """Values of ``metric`` per run, in ``by`` order (runs without an odometer reading are left
-    out of ``by="odometer"``); ``last`` keeps the last N runs of that order."""
+    out of ``by="odometer"``); ``last`` keeps the last N runs of that order.
+
+    A ride analysed several times counts once: its newest analysis, or the one of ``analyser``
+    (then only runs of that analyser version). ``channel`` filters events by a status channel,
+    ``"gear=3"`` or ``"coolant=80-95"`` (:mod:`logger.store.channel_filter`)."""
     if metric not in METRICS:
         raise UsageError(f"unknown trend metric '{metric}', expected one of {', '.join(METRICS)}")
     if by not in ("date", "odometer"):
@@ -119,11 +130,16 @@ def trend(
     if cylinder is not None and metric == "bar_vibration":
         raise UsageError("--cylinder does not apply to bar_vibration (it is per sensor)")
     band = parse_rpm_band(rpm_band) if isinstance(rpm_band, str) else rpm_band
+    flt = parse_channel_filter(channel) if channel is not None else None
+    if flt is not None and metric == "bar_vibration":
+        raise UsageError("a channel filter applies to event metrics, not to bar_vibration")
     unit = METRICS[metric][0]
     out: list[TrendPoint] = []
-    for run in _runs(store, rig, by, last):
+    for run in _runs(store, rig, by, last, analyser):
         if metric == "bar_vibration":
             values = _bar_vibration(store, run, band)
+        elif flt is not None:
+            values = channel_event_metric(store, metric, run["id"], cylinder, band, flt)
         else:
             values = _event_metric(store, metric, run["id"], cylinder, band)
         for series, value, n in values:
