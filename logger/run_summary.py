@@ -241,8 +241,16 @@ class RunSummary:
         # layouts with the same interval pattern cannot be told apart by it (270° twin, 90° V)
         matches = best is None or best == self.layout_name or (
             layout_signature(self.candidates[best]) == layout_signature(self.engine))
+        # layouts firing alike as the best fit: one family ("twin-360 / boxer-twin")
+        family = [] if best is None else [
+            name for name, _ in scores
+            if layout_signature(self.candidates[name]) == layout_signature(self.candidates[best])]
+        if best is not None and matches and self.layout_name not in family:
+            family.insert(0, self.layout_name)
         return {
             "t_start": self._t[0] if math.isfinite(self._t[0]) else None,
+            # intervals before this CAN time (s) are on the uncorrected wheel: left out
+            "intervals_from_t": self._intervals_from,
             "t_end": self._t[1] if math.isfinite(self._t[1]) else None,
             "rpm": {"min": self._rpm[0] if self._rpm[3] else None,
                     "max": self._rpm[1] if self._rpm[3] else None,
@@ -258,6 +266,7 @@ class RunSummary:
             "layout_check": {
                 "rig_layout": self.layout_name,
                 "best": best,
+                "same_firing": family,
                 "scores": {k: round(v, 4) for k, v in scores},
                 "matches_rig": bool(matches),
             },

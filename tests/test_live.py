@@ -89,12 +89,12 @@ def test_caution_lines_come_first():
 
 def test_tally_counts_and_the_rolling_200_rev_window():
     import numpy as np
-    from test_store_fill import m1_like_rig, make_events
+    from test_store_fill import larch_like_rig, make_events
 
     from crankbeat.logger.chunks import StreamHealth
     from crankbeat.logger.live import LiveTally
 
-    rig = m1_like_rig()
+    rig = larch_like_rig()
     # Cylinder 2 misfires on every 10th cycle for the first 1000 cycles, then never.
     ev = make_events(1500, misfire_every={2: 10}, interval_offset={2: 1.0}, special=False)
     late = ev["cycle"] >= 1000

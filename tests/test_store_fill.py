@@ -17,7 +17,7 @@ from crankbeat.logger.rig.model import CanBus, Rig
 EXPECTED = {1: 450.0, 2: 270.0}  # interval ending at this cylinder's firing
 
 
-def m1_like_rig() -> Rig:
+def larch_like_rig() -> Rig:
     """A rig object carrying the Larch preset's file text (source "preset:larch")."""
     engine = Engine(name="twin-270", stroke_cycle=4, pin_deg=(0.0, 270.0), bank_deg=(0.0, 0.0),
                     position_m=(-0.04, 0.04), firing_order=(1, 2))
@@ -69,7 +69,7 @@ def make_events(n_cycles: int = 2000, *, misfire_every: dict[int, int] | None = 
 
 def fill_run(store, ev, *, label=None, odometer_km=None, started_at=None, sources=(),
              vibration=None, status="complete") -> int:
-    run_id = store.begin_run(m1_like_rig(), label=label, odometer_km=odometer_km,
+    run_id = store.begin_run(larch_like_rig(), label=label, odometer_km=odometer_km,
                              started_at=started_at, sources=sources)
     store.add_events(run_id, ev)
     if vibration is not None:

@@ -4,7 +4,10 @@ from __future__ import annotations
 
 import argparse
 
+from crankbeat.dsp.layout import layout_signature
+from crankbeat.errors import UsageError
 from crankbeat.logger.cli.common import add_store_argument, fmt, open_store, print_json, table
+from crankbeat.logger.figures import run_engine
 from crankbeat.logger.store import Store
 
 NAME = "compare"
@@ -66,9 +69,23 @@ def comparison(store: Store, a: int, b: int) -> dict:
             "vibration": vibration}
 
 
+def same_engine(store: Store, a: int, b: int) -> str | None:
+    """None when the two runs' engines fire alike; else why their rows do not correspond."""
+    ea, eb = run_engine(store, a), run_engine(store, b)
+    ra, rb = store.run(a)["rig"], store.run(b)["rig"]
+    if ea.n_cylinders != eb.n_cylinders or layout_signature(ea) != layout_signature(eb):
+        return (f"run {a} is rig '{ra}' ({ea.name}, {ea.n_cylinders} cylinders) and run {b} is "
+                f"rig '{rb}' ({eb.name}, {eb.n_cylinders} cylinders): their cylinders and "
+                "firing intervals do not correspond; compare runs of one engine layout")
+    return None
+
+
 def run(args: argparse.Namespace) -> int:
     with open_store(args) as store:
         a, b = store.resolve_run(args.run_a), store.resolve_run(args.run_b)
+        why = same_engine(store, a, b)
+        if why:
+            raise UsageError(why)
         cmp = comparison(store, a, b)
     if args.json:
         for side in ("a", "b"):
@@ -76,6 +93,8 @@ def run(args: argparse.Namespace) -> int:
         print_json(cmp)
         return 0
     ra, rb = cmp["a"], cmp["b"]
+    if ra["rig"] != rb["rig"]:
+        print(f"note: rigs differ ('{ra['rig']}' and '{rb['rig']}'), same engine layout")
     print(f"A = run {a} ({ra['label'] or ra['started_at']}), B = run {b} "
           f"({rb['label'] or rb['started_at']}); diff = B - A")
     print()

@@ -13,6 +13,7 @@ import numpy as np
 from crankbeat.dsp.events import MISFIRE, VERDICT_NAMES
 from crankbeat.errors import CrankbeatError, UsageError
 from crankbeat.logger.cli.common import add_store_argument, open_store
+from crankbeat.logger.figures import run_engine
 from crankbeat.logger.store import jsonable
 
 NAME = "events"
@@ -63,6 +64,11 @@ def run(args: argparse.Namespace) -> int:
         raise UsageError(f"--cylinder counts from 1, got {args.cylinder}")
     with open_store(args) as store:
         run_id = store.resolve_run(args.run)
+        if args.cylinder is not None:
+            n_cyl = run_engine(store, run_id).n_cylinders
+            if args.cylinder > n_cyl:
+                raise UsageError(f"--cylinder {args.cylinder}: run {run_id} is of a "
+                                 f"{n_cyl}-cylinder engine (cylinders 1..{n_cyl})")
         ev = store.events(run_id, cylinder=args.cylinder, verdict=args.verdict)
     try:
         out = open(args.out, "w", newline="", encoding="utf-8") if args.out else sys.stdout

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from crankbeat.logger.cli.common import fmt, table
+from crankbeat.logger.figures import cylinder_name, cylinder_pairs
 from crankbeat.logger.report.text import summary_lines
 from crankbeat.logger.store import Store
 
@@ -19,7 +20,7 @@ def run_digest(store: Store, run_id: int) -> dict:
     }
 
 
-def render_run(store: Store, run_id: int) -> str:
+def render_run(store: Store, run_id: int, *, riding_hours: float | None = None) -> str:
     d = run_digest(store, run_id)
     info = d["run"]
     out = [
@@ -38,11 +39,16 @@ def render_run(store: Store, run_id: int) -> str:
         out.append(f"  source {src['kind']}: {src['path']}")
 
     out.append("")
+    pairs = cylinder_pairs(store, run_id)
     out.append("per cylinder (rate = misfires / (fired + misfires))")
+    if pairs:
+        out.append("  720° phase unknown (no cam, even firing): '2/3' = cylinder 2, or 3 if the "
+                   "phase is the other way round")
     out.append(table(
         ["cyl", "events", "fired", "misfires", "rate %", "masked", "unusable", "fuel cut",
          "contrib", "interval err deg"],
-        [[c["cylinder"], c["events"], c["fired"], c["misfires"], fmt(c["rate_pct"], ".2f"),
+        [[cylinder_name(c["cylinder"], pairs), c["events"], c["fired"], c["misfires"],
+          fmt(c["rate_pct"], ".2f"),
           c["masked"], c["unusable"], c["fuel_cut"], fmt(c["contribution"], ".3f"),
           fmt(c["interval_error_deg"], "+.2f")] for c in d["cylinders"]],
     ) if d["cylinders"] else "  (no events)")
@@ -57,7 +63,8 @@ def render_run(store: Store, run_id: int) -> str:
               "OFF" if i["flagged"] else "ok"] for i in d["intervals"]],
         ))
 
-    summed = [v for v in d["vibration"] if v["axis"] == "sum"] or d["vibration"]
+    measured = [v for v in d["vibration"] if v["n"]]  # rows of 0 samples say nothing
+    summed = [v for v in measured if v["axis"] == "sum"] or measured
     if summed:
         out.append("")
         out.append("vibration (r.m.s., m/s²; rpm 'all' = the whole run)")
@@ -67,7 +74,7 @@ def render_run(store: Store, run_id: int) -> str:
              for v in summed],
         ))
 
-    lines = summary_lines(info.get("summary"))
+    lines = summary_lines(info.get("summary"), riding_hours=riding_hours)
     if lines:
         out.append("")
         out.extend(lines)

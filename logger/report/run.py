@@ -9,6 +9,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from crankbeat.errors import CrankbeatError
+from crankbeat.logger.figures import interval_error_by_cylinder
 from crankbeat.logger.report import run_plots
 from crankbeat.logger.report.text import summary_lines
 from crankbeat.logger.report.trend import plot_trend
@@ -57,7 +58,8 @@ def make_run_report(store: Store, run_id: int, out_dir: str | Path) -> RunReport
             store, run_id, ev, out / f"{stem}_windows.png",
             alert_pct=limits.get("misfire_alert_pct"))),
         ("Firing intervals", run_plots.plot_intervals(
-            ev, out / f"{stem}_intervals.png", tolerance_deg=limits.get("interval_tolerance_deg"))),
+            ev, out / f"{stem}_intervals.png", tolerance_deg=limits.get("interval_tolerance_deg"),
+            summary=info.get("summary"), checked=interval_error_by_cylinder(store, run_id))),
         ("Contribution per cylinder",
          run_plots.plot_contribution(ev, out / f"{stem}_contribution.png")),
         ("Order map", run_plots.plot_order_map(store, run_id, out / f"{stem}_orders.png")),
