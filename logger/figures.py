@@ -25,6 +25,15 @@ def intervals_from_t(summary: dict | None) -> float | None:
     return float(value) if isinstance(value, int | float) else None
 
 
+def wheel_corrected(summary: dict | None) -> bool:
+    """Whether the run's firing intervals are on a corrected wheel (a correction from an
+    earlier run, or one learnt during this run); runs stored without that record count as yes."""
+    teeth = (summary or {}).get("tooth_errors")
+    if not isinstance(teeth, dict):
+        return True
+    return bool(teeth.get("applied_from_earlier_run") or teeth.get("applied_during_run"))
+
+
 def interval_events(ev: np.ndarray, summary: dict | None) -> np.ndarray:
     """Fired events with an observed and expected interval, from the corrected part only."""
     ok = (ev["verdict"] == FIRED) & np.isfinite(ev["interval_deg"]) & \

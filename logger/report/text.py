@@ -19,13 +19,17 @@ def fmt(value: Any, spec: str = ".2f", missing: str = "-") -> str:
     return str(value)
 
 
-def summary_lines(summary: dict | None, *, riding_hours: float | None = None) -> list[str]:
+def summary_lines(summary: dict | None, *, riding_hours: float | None = None,
+                  started_at: str | None = None) -> list[str]:
     """The pipeline's known sections in a line or two each, then anything else as key: value.
 
     ``riding_hours`` restates the daily exposure A(8) for that riding time (the run stored it
-    for the rig's stated time).
+    for the rig's stated time). ``started_at`` (ISO 8601, the run's start) is where times in the
+    notes count from when the summary holds no CAN start time.
     """
     rest = {k: v for k, v in dict(summary or {}).items() if k not in FROM_TABLES}
+    if not isinstance(rest.get("t_start"), int | float) and started_at:
+        rest["_start_fallback"] = _epoch(started_at)
     lines = _known_sections(rest, riding_hours)
     return lines + _nested(rest, "  ")
 
@@ -87,15 +91,25 @@ def _known_sections(summary: dict, riding_hours: float | None = None) -> list[st
             out.append(f"  serial {sensor}: frames " + ", ".join(parts))
     notes = summary.pop("notes", None)
     summary.pop("intervals_from_t", None)
+    fallback = summary.pop("_start_fallback", None)
     if isinstance(notes, list) and notes:
         out.append("notes (times in s into the ride):")
-        start = t0 if isinstance(t0, int | float) else None
+        start = t0 if isinstance(t0, int | float) else fallback
         out.extend(f"  - {ride_time(str(n), start)}" for n in notes)
     return out
 
 
 # a time on a wall-clock base (s since 1970) inside a note: "t=1767225628.4 s"
 _EPOCH_TIME = re.compile(r"(?:host )?t=(\d{9,}(?:\.\d+)?) s")
+
+
+def _epoch(iso: str) -> float | None:
+    from datetime import datetime
+
+    try:
+        return datetime.fromisoformat(iso).timestamp()
+    except (TypeError, ValueError):
+        return None
 
 
 def ride_time(note: str, t_start: float | None) -> str:
