@@ -130,7 +130,7 @@ def m1_frames(rig, *, seconds: float = 1.0, rpm: float = 3000.0, t0: float = 1_7
               extra_ids: bool = False) -> list[can.Message]:
     """Tooth and status frames of the Larch rig at a steady speed, laid out by the rig's signals.
 
-    The tooth periods follow a 60-2 wheel (the gap period three times the others, RIG.md);
+    The tooth periods follow a 60-2 wheel (the gap period three times the others, docs/rig.md);
     this is test data to carry bits end to end, not physics.
     """
     from crankbeat.logger.can.bits import encode_signal

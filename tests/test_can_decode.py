@@ -58,7 +58,7 @@ def test_tooth_and_status_values_from_cantools_frames(larch):
                                 "coolant": 88, "road_speed": 61.37, "status_counter": 9})))
     dec = FrameDecoder(larch)
     teeth, status = dec.push(_batch(msgs))
-    # the rig's unit is 0.25 us (RIG.md): values within half a step of what went in
+    # the rig's unit is 0.25 us (docs/rig.md): values within half a step of what went in
     np.testing.assert_allclose(teeth.periods, periods, atol=0.125e-6)
     assert teeth.cam.tolist() == [1, 0] and teeth.lost_before.tolist() == [0, 0]
     assert teeth.frame_index.tolist() == [0, 1]
@@ -71,7 +71,7 @@ def test_tooth_and_status_values_from_cantools_frames(larch):
 
 
 def test_saturated_period_is_nan(larch):
-    # RIG.md: 0xFFFF (65535 x 0.25 us = 16.38375 ms) means saturated
+    # docs/rig.md: 0xFFFF (65535 x 0.25 us = 16.38375 ms) means saturated
     msgs = _tooth_msgs(larch, [[1e-3, 16.38375e-3, 1e-3]], [0], [0], [T0])
     teeth, _ = FrameDecoder(larch).push(_batch(msgs))
     assert np.isnan(teeth.periods[0, 1]) and not np.isnan(teeth.periods[0, 0])

@@ -30,8 +30,8 @@ TWIN_270 = Engine("twin-270", 4, (0.0, 270.0), (0.0, 0.0), (-0.04, 0.04), (1, 2)
 TWIN_360 = Engine("twin-360", 4, (0.0, 0.0), (0.0, 0.0), (-0.04, 0.04), (1, 2))
 SINGLE_2T = Engine("single-2t", 2, (0.0,), (0.0,), (0.0,), (1,))
 LARCH_WHEEL = ToothWheel(60, 2, 96.0, "window", 1)
-UNIT = 0.25e-6  # s, period resolution of the Larch tooth frame (RIG.md)
-SAT = 16.38e-3  # s, saturated period (RIG.md: 0xFFFF means >= 16.38 ms)
+UNIT = 0.25e-6  # s, period resolution of the Larch tooth frame (docs/rig.md)
+SAT = 16.38e-3  # s, saturated period (docs/rig.md: 0xFFFF means >= 16.38 ms)
 
 
 @dataclass
@@ -200,7 +200,7 @@ def firing_speed(base_rpm, engine=TWIN_270, *, swing=0.03):
 
 
 def test_speed_sweep_idle_to_rev_limit():
-    # Larch: idle 1300 rpm, rev limit 10 500 rpm (RIG.md); speed linear in angle over 600 revs
+    # Larch: idle 1300 rpm, rev limit 10 500 rpm (docs/rig.md); speed linear in angle over 600 revs
     phi_end = 360.0 * 600
     base = lambda phi: 1300.0 + (10500.0 - 1300.0) * np.clip((phi + 300) / (phi_end + 300), 0, 1)
     tr = tooth_edges(firing_speed(base), phi_end, LARCH_WHEEL, step_deg=0.05)
@@ -338,7 +338,7 @@ def test_two_stroke_needs_no_phase():
 
 
 def test_saturated_periods_while_cranking_no_sync_until_regular_teeth():
-    # cranking at 40 rpm: a 6° tooth takes 25 ms, beyond the 16.38 ms full scale (RIG.md)
+    # cranking at 40 rpm: a 6° tooth takes 25 ms, beyond the 16.38 ms full scale (docs/rig.md)
     def omega(phi):
         return np.where(phi < 360.0, 40.0, np.minimum(40.0 + (phi - 360.0) * 3.0, 1500.0))
 
@@ -429,7 +429,7 @@ def test_bad_input_one_line_errors():
 
 # --- simulated rides of the Larch (logger.sim: true edges, tooth numbers, cam levels, angles) --
 def sim_frames(ride, *, seed: int = 0, k: int = 3, latency=(0.1e-3, 1e-3)) -> Frames:
-    """Tooth frames from a SimRide's true edges, built like make_frames (RIG.md layout)."""
+    """Tooth frames from a SimRide's true edges, built like make_frames (docs/rig.md layout)."""
     t = ride.tooth_time - ride.start_time  # seconds since the ride start keep full precision
     truth = Truth(t, ride.tooth_angle, ride.tooth_number.astype(np.int64), np.zeros(len(t)))
     rng = np.random.default_rng(seed)

@@ -282,7 +282,7 @@ def test_dsp_results_are_stored_as_they_come(tmp_path):
     assert [w["misfires"] for w in whole] == [50, 50, 50]
     assert [w["idx"] for w in cyl2] == [0, 1, 2]
     assert all(w["rate"] == pytest.approx(10.0) for w in cyl2)  # every 10th cycle, arithmetic
-    # RIG.md: 270 deg from cylinder 1 to 2; the synthetic offset of +1 deg is seen
+    # docs/rig.md: 270 deg from cylinder 1 to 2; the synthetic offset of +1 deg is seen
     assert iv[(1, 2)]["expected_deg"] == 270.0
     assert iv[(1, 2)]["observed_deg"] == pytest.approx(271.0, abs=0.1)
     assert iv[(2, 1)]["observed_deg"] == pytest.approx(450.0, abs=0.1)

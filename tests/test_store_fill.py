@@ -1,6 +1,6 @@
 """Synthetic runs for the store, CLI and report tests (no tests in this file).
 
-Events of an Larch-like 270° twin (RIG.md: cylinder 2 fires 270° after cylinder 1, then 450° back
+Events of an Larch-like 270° twin (docs/rig: cylinder 2 fires 270° after cylinder 1, then 450° back
 to cylinder 1), with misfires placed at known events so every count is known exactly.
 """
 
@@ -13,7 +13,7 @@ from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.events import FIRED, FUEL_CUT, MASKED, MISFIRE, UNUSABLE, empty_events
 from crankbeat.logger.rig.model import CanBus, Rig
 
-# RIG.md: 270° crank twin -> intervals 270 (1->2) and 450 (2->1); common practice.
+# docs/rig.md: 270° crank twin -> intervals 270 (1->2) and 450 (2->1); common practice.
 EXPECTED = {1: 450.0, 2: 270.0}  # interval ending at this cylinder's firing
 
 
