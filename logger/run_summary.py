@@ -215,7 +215,14 @@ class RunSummary:
                 self._scores = identify_layout(profile, self.candidates, expected=self.layout_name)
             except InputError as exc:  # no usable crank data at all
                 return [f"layout check not possible: {exc}"]
+        if self._scores and self._fires_like_rig(self._scores[0][0]):
+            return []  # a layout that fires alike (twin-360 and boxer-twin) is no mismatch
         return [str(w.message) for w in caught]
+
+    def _fires_like_rig(self, name: str) -> bool:
+        return name == self.layout_name or (
+            name in self.candidates
+            and layout_signature(self.candidates[name]) == layout_signature(self.engine))
 
     def layout_scores(self) -> list[tuple[str, float]]:
         return list(self._scores)
@@ -245,8 +252,8 @@ class RunSummary:
         family = [] if best is None else [
             name for name, _ in scores
             if layout_signature(self.candidates[name]) == layout_signature(self.candidates[best])]
-        if best is not None and matches and self.layout_name not in family:
-            family.insert(0, self.layout_name)
+        if best is not None and matches:  # the rig's own name first: it is what was meant
+            family = [self.layout_name] + [n for n in family if n != self.layout_name]
         return {
             "t_start": self._t[0] if math.isfinite(self._t[0]) else None,
             # intervals before this CAN time (s) are on the uncorrected wheel: left out
