@@ -179,3 +179,22 @@ def test_notes_count_seconds_into_the_ride_and_riding_hours_scale_a8(demo_store,
     a8_4h = float(re.search(r"A\(8\) for 4 h riding: bar_left ([\d.]+)", out4).group(1))
     # ISO 5349-1: A(8) = a_hv * sqrt(T / 8 h), so 4 h gives twice the 1 h value
     assert a8_4h == pytest.approx(2 * a8_1h, abs=0.011)
+
+
+def test_a_location_without_weighting_is_never_titled_weighted(tmp_path, capsys):
+    # the Alder's seat board moved to the tank: ISO 5349-1 / 2631-1 weight hands and seats only
+    rig = tmp_path / "alder-tank.toml"
+    text = open("logger/presets/alder.toml", encoding="utf-8").read()
+    assert 'location = "seat"' in text
+    rig.write_text(text.replace('location = "seat"', 'location = "tank"'), encoding="utf-8")
+    db = str(tmp_path / "t.db")
+    assert cli(capsys, "replay", "--store", db, "--rig", str(rig), "--can",
+               f"{FIX}/alder/alder.asc", "--accel", f"{FIX}/alder/alder.seat.acraw")[0] == 0
+    _, out, _ = cli(capsys, "show", "last", "--store", db)
+    assert "seat not weighted (its location has no rider weighting)" in out
+    assert " Wh " not in out and " Wk " not in out
+    from crankbeat.logger.report.run_plots import _vibration_title
+
+    assert _vibration_title({"none"}).startswith("Unweighted vibration")
+    assert _vibration_title({"Wh"}).startswith("Weighted vibration")
+    assert "Weighted" not in _vibration_title({"Wh", "none"})

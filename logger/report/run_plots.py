@@ -270,9 +270,22 @@ def plot_vibration(store: Store, run_id: int, path: Path) -> Path | None:
         ax.plot(x, y, style, marker="o", ms=3, color=cyl_colour(j + 1), label=label)
     ax.set_xlabel("engine speed, band centre [rpm]")
     ax.set_ylabel("r.m.s. acceleration [m/s²]")
-    ax.set_title("Weighted vibration against engine speed\n(Wh: hand-arm, ISO 5349-1; "
-                 "Wk, Wd: whole-body, ISO 2631-1)")
+    ax.set_title(_vibration_title({k[1] for k in shown}))
     ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
     ax.set_ylim(bottom=0)
     save(fig, path)
     return path
+
+
+def _vibration_title(weightings: set[str]) -> str:
+    """Says "weighted" only of weighted values, and names only the standards behind them."""
+    named = []
+    if "Wh" in weightings:
+        named.append("Wh: hand-arm, ISO 5349-1")
+    if weightings & {"Wk", "Wd"}:
+        named.append("Wk, Wd: whole-body, ISO 2631-1")
+    if "none" in weightings:
+        named.append("unweighted: the location has no rider weighting")
+    head = ("Weighted vibration" if "none" not in weightings
+            else "Unweighted vibration" if weightings == {"none"} else "Vibration")
+    return f"{head} against engine speed\n(" + "; ".join(named) + ")"
