@@ -7,7 +7,7 @@ import argparse
 from crankbeat.dsp.layout import layout_signature
 from crankbeat.errors import UsageError
 from crankbeat.logger.cli.common import add_store_argument, fmt, open_store, print_json, table
-from crankbeat.logger.figures import run_engine
+from crankbeat.logger.figures import cylinder_name, cylinder_pairs, run_engine
 from crankbeat.logger.store import Store
 
 NAME = "compare"
@@ -87,6 +87,8 @@ def run(args: argparse.Namespace) -> int:
         if why:
             raise UsageError(why)
         cmp = comparison(store, a, b)
+        # a cylinder whose phase is unknown in either run is named with its 360° partner
+        pairs = cylinder_pairs(store, a) or cylinder_pairs(store, b)
     if args.json:
         for side in ("a", "b"):
             cmp[side].pop("summary", None)
@@ -102,7 +104,7 @@ def run(args: argparse.Namespace) -> int:
     print(table(
         ["cyl", "rate% A", "rate% B", "diff", "contrib A", "contrib B", "diff",
          "int.err A", "int.err B", "diff"],
-        [[c["cylinder"],
+        [[cylinder_name(c["cylinder"], pairs),
           fmt(c["rate_pct_a"]), fmt(c["rate_pct_b"]), fmt(c["rate_pct_diff"], "+.2f"),
           fmt(c["contribution_a"], ".3f"), fmt(c["contribution_b"], ".3f"),
           fmt(c["contribution_diff"], "+.3f"),

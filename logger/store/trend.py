@@ -149,6 +149,12 @@ def trend(
             values = _checked_intervals(store, run["id"], cylinder)
         else:
             values = _event_metric(store, metric, run["id"], cylinder, band)
+        if metric != "bar_vibration":  # phase unknown: a cylinder is named with its partner
+            from crankbeat.logger.figures import cylinder_name, cylinder_pairs
+
+            pairs = cylinder_pairs(store, run["id"])
+            values = [(f"cyl {cylinder_name(int(s.split()[1]), pairs)}", v, n)
+                      for s, v, n in values]
         for series, value, n in values:
             out.append(
                 TrendPoint(run["id"], run["label"], run["started_at"], run["odometer_km"],
