@@ -57,11 +57,12 @@ def make_run_report(store: Store, run_id: int, out_dir: str | Path) -> RunReport
     ev = store.events(run_id)
     limits = _limits(store.rig_toml(run_id))
     stem = f"run{run_id}"
+    names = cylinder_pairs(store, run_id)
     figures: list[tuple[str, Path | None]] = [
-        ("Per-event metric", run_plots.plot_metric(ev, out / f"{stem}_metric.png")),
+        ("Per-event metric", run_plots.plot_metric(ev, out / f"{stem}_metric.png", names=names)),
         ("Misfire rate per 1000 revolutions", run_plots.plot_windows(
             store, run_id, ev, out / f"{stem}_windows.png",
-            alert_pct=limits.get("misfire_alert_pct"))),
+            alert_pct=limits.get("misfire_alert_pct"), names=names)),
         ("Firing intervals", run_plots.plot_intervals(
             ev, out / f"{stem}_intervals.png", tolerance_deg=limits.get("interval_tolerance_deg"),
             summary=info.get("summary"), checked=interval_error_by_cylinder(store, run_id))),

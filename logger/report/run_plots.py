@@ -24,8 +24,12 @@ from crankbeat.logger.store import Store
 _MAX_DOTS = 40_000
 
 
-def plot_metric(ev: np.ndarray, path: Path) -> Path | None:
-    """Per-event metric over time, one panel per cylinder, threshold and misfires marked."""
+def plot_metric(ev: np.ndarray, path: Path, *, names: dict[int, str] | None = None
+                ) -> Path | None:
+    """Per-event metric over time, one panel per cylinder, threshold and misfires marked.
+
+    ``names``: cylinder -> shown name ("2/3" where the run's 720° phase is unknown)."""
+    names = names or {}
     cyls = sorted(set(ev["cylinder"].tolist()))
     if not cyls:
         return None
@@ -52,7 +56,7 @@ def plot_metric(ev: np.ndarray, path: Path) -> Path | None:
                 label=f"misfire ({len(mis)})")
         ax.plot(e["t"], e["threshold"], "-", lw=1.0, color=THRESHOLD_COLOUR, label="threshold")
         _robust_ylim(ax, e)
-        ax.set_title(f"cylinder {c}", loc="left", fontsize=9)
+        ax.set_title(f"cylinder {names.get(c, c)}", loc="left", fontsize=9)
         ax.set_ylabel("metric [-]")
         # Outside the axes, so that no marker is hidden behind the legend.
         ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), markerscale=2, frameon=False)
@@ -85,7 +89,8 @@ def _robust_ylim(ax, e: np.ndarray) -> None:
 
 
 def plot_windows(store: Store, run_id: int, ev: np.ndarray, path: Path,
-                 *, alert_pct: float | None = None) -> Path | None:
+                 *, alert_pct: float | None = None, names: dict[int, str] | None = None
+                 ) -> Path | None:
     """Misfire rate per 1000-revolution window and cylinder (None when the run holds no whole
     window: a shorter ride is not judged)."""
     summary = store.run(run_id).get("summary") or {}
@@ -103,7 +108,7 @@ def plot_windows(store: Store, run_id: int, ev: np.ndarray, path: Path,
         w = [r for r in rows if r["cylinder"] == c]
         x = np.array([r["idx"] for r in w], dtype=float) + (j - (len(cyls) - 1) / 2) * width
         y = [np.nan if r["rate"] is None else r["rate"] for r in w]
-        ax.bar(x, y, width=width, color=cyl_colour(c), label=f"cyl {c}")
+        ax.bar(x, y, width=width, color=cyl_colour(c), label=f"cyl {(names or {}).get(c, c)}")
     if alert_pct is not None:
         ax.axhline(alert_pct, color=MISFIRE_COLOUR, lw=1, ls="--",
                    label=f"rig alert level {alert_pct:g} %")
