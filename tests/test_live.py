@@ -196,3 +196,7 @@ def test_tally_follows_a_real_analysis_for_wheel_and_vibration():
     assert seen_unlearnt  # the demo's first fuel cut comes some 28 s into the ride
     assert weighting == "Wh"  # a handlebar sensor is hand-arm weighted (ISO 5349-1)
     assert 0.0 < tally.vibration["bar_left"] < 50.0
+
+
+def test_the_cautions_fit_an_80_column_terminal_one_line_each():
+    assert all(len(f"CAUTION: {line}") <= 80 for line in CAUTION_LINES)

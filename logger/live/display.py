@@ -18,12 +18,12 @@ from rich.table import Table
 from rich.text import Text
 
 #: Shown before every live ride, on the terminal and at the top of the display.
-CAUTION_LINES = (
+CAUTION_LINES = (  # each fits an 80-column terminal with its "CAUTION: " prefix
     "Ride only on a closed course, or on roads where this testing is legal.",
-    "Never operate the laptop while riding: read this screen only when stopped.",
-    "Secure the laptop, sensors and cables clear of the controls, chain and hot parts.",
-    "Sustained misfire can overheat the catalyst and start a fire: on the alert, stop safely.",
-    "Follow your local rules and your organisation's qualified test practice.",
+    "Never operate the laptop while riding: read this screen when stopped.",
+    "Secure the laptop, sensors and cables clear of controls, chain, heat.",
+    "Misfire can overheat the catalyst and start a fire: on alert, stop.",
+    "Follow local rules and your organisation's qualified test practice.",
 )
 
 
