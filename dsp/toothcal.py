@@ -23,7 +23,7 @@ revolution's middle in revolutions) and a half-order harmonic series of the cycl
 1/ω̄² for the air spring. It is linear in every unknown: each revolution's level is projected
 out and the normal equations of the rest are accumulated, so memory stays fixed however long
 the fuel cut lasts. The free
-constant of ``z`` is fixed by the spacings summing to 360° (REFERENCES.md: common practice);
+constant of ``z`` is fixed by the spacings summing to 360° (tests/reference: common practice);
 ``error_deg[n]`` is then the position of tooth n minus ``n · pitch``, tooth 0 being the reference.
 """
 

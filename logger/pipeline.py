@@ -163,6 +163,7 @@ def analyse_live(
                 rpm=float(vals["engine_speed"][-1]) if "engine_speed" in vals else None,
                 throttle=float(vals["throttle"][-1]) if "throttle" in vals else None)
         tally.set_health(chunk.health)
+        tally.follow(analysis)  # wheel learnt yet, recent vibration
         now = time.monotonic()
         if display is not None and now - last_draw[0] >= 0.25:
             display.update(tally.state(now - t0, recording=str(record_dir) if record_dir else None))

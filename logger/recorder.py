@@ -2,7 +2,7 @@
 capture files, flushed to disk at least once a second (a power cut loses at most ~1 s).
 
 Files in ``out_dir``: ``<stem><can_suffix>`` (candump ``.log`` by default; any suffix python-can
-writes) and ``<stem>.<sensor>.acraw`` per serial sensor (RIG.md's capture format). Replaying
+writes) and ``<stem>.<sensor>.acraw`` per serial sensor (docs/rig.md's capture format). Replaying
 them through :func:`logger.stream.replay` gives the same chunks as the live run.
 """
 

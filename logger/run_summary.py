@@ -215,7 +215,14 @@ class RunSummary:
                 self._scores = identify_layout(profile, self.candidates, expected=self.layout_name)
             except InputError as exc:  # no usable crank data at all
                 return [f"layout check not possible: {exc}"]
+        if self._scores and self._fires_like_rig(self._scores[0][0]):
+            return []  # a layout that fires alike (twin-360 and boxer-twin) is no mismatch
         return [str(w.message) for w in caught]
+
+    def _fires_like_rig(self, name: str) -> bool:
+        return name == self.layout_name or (
+            name in self.candidates
+            and layout_signature(self.candidates[name]) == layout_signature(self.engine))
 
     def layout_scores(self) -> list[tuple[str, float]]:
         return list(self._scores)
@@ -241,8 +248,16 @@ class RunSummary:
         # layouts with the same interval pattern cannot be told apart by it (270° twin, 90° V)
         matches = best is None or best == self.layout_name or (
             layout_signature(self.candidates[best]) == layout_signature(self.engine))
+        # layouts firing alike as the best fit: one family ("twin-360 / boxer-twin")
+        family = [] if best is None else [
+            name for name, _ in scores
+            if layout_signature(self.candidates[name]) == layout_signature(self.candidates[best])]
+        if best is not None and matches:  # the rig's own name first: it is what was meant
+            family = [self.layout_name] + [n for n in family if n != self.layout_name]
         return {
             "t_start": self._t[0] if math.isfinite(self._t[0]) else None,
+            # intervals before this CAN time (s) are on the uncorrected wheel: left out
+            "intervals_from_t": self._intervals_from,
             "t_end": self._t[1] if math.isfinite(self._t[1]) else None,
             "rpm": {"min": self._rpm[0] if self._rpm[3] else None,
                     "max": self._rpm[1] if self._rpm[3] else None,
@@ -258,6 +273,7 @@ class RunSummary:
             "layout_check": {
                 "rig_layout": self.layout_name,
                 "best": best,
+                "same_firing": family,
                 "scores": {k: round(v, 4) for k, v in scores},
                 "matches_rig": bool(matches),
             },

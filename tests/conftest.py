@@ -126,11 +126,11 @@ def larch():
     return load_rig("larch")
 
 
-def m1_frames(rig, *, seconds: float = 1.0, rpm: float = 3000.0, t0: float = 1_767_225_600.0,
+def larch_frames(rig, *, seconds: float = 1.0, rpm: float = 3000.0, t0: float = 1_767_225_600.0,
               extra_ids: bool = False) -> list[can.Message]:
     """Tooth and status frames of the Larch rig at a steady speed, laid out by the rig's signals.
 
-    The tooth periods follow a 60-2 wheel (the gap period three times the others, RIG.md);
+    The tooth periods follow a 60-2 wheel (the gap period three times the others, docs/rig.md);
     this is test data to carry bits end to end, not physics.
     """
     from crankbeat.logger.can.bits import encode_signal
@@ -167,7 +167,7 @@ def m1_frames(rig, *, seconds: float = 1.0, rpm: float = 3000.0, t0: float = 1_7
                         data=d) for t, i, d in msgs]
 
 
-def m1_serial(rig, *, seconds: float = 1.0, t0: float = 1_767_225_600.0,
+def larch_serial(rig, *, seconds: float = 1.0, t0: float = 1_767_225_600.0,
               read_every: float = 0.004) -> list[tuple[float, bytes]]:
     """Serial reads (host_time, bytes) of the Larch board: frames cut into USB-sized reads."""
     from crankbeat.logger.serial.frames import encode_frames

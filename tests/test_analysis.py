@@ -27,7 +27,7 @@ from crankbeat.errors import InputError
 sim = pytest.importorskip("crankbeat.logger.sim")
 rig_mod = pytest.importorskip("crankbeat.logger.rig")
 
-UNIT = 0.25e-6  # s per raw period count (RIG.md, crank teeth frame)
+UNIT = 0.25e-6  # s per raw period count (docs/rig.md, crank teeth frame)
 
 
 def ride_frames(ride, *, per_frame=3, seed=0):

@@ -86,7 +86,7 @@ def test_decode_delivers_every_frame_and_sample(rides):
     ride = rides["short"]
     _wall, _cpu, count = decode(load_rig("larch"), ride.can, ride.captures)
     assert count.can_frames == _pycan_frames(ride.can)  # reference: python-can's reader
-    # the board runs at 2000 samples/s (RIG.md); the aligner may hold none back at the end
+    # the board runs at 2000 samples/s (docs/rig.md); the aligner may hold none back at the end
     assert count.samples == pytest.approx(2.0 * 2000, abs=40)
 
 

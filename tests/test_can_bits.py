@@ -126,7 +126,7 @@ def test_motorola_worked_example():
 
 
 def test_reference_rig_tooth_frame():
-    # RIG.md: bytes 2..7 carry three uint16 LE periods in 0.25 us; 0xFFFF = saturated.
+    # docs/rig.md: bytes 2..7 carry three uint16 LE periods in 0.25 us; 0xFFFF = saturated.
     sig = CanSignal("p", start_bit=16, length=16, count=3, scale=0.25e-6,
                     saturated_raw=0xFFFF)
     data = np.array([[7, 1, 0x40, 0x1F, 0xFF, 0xFF, 0x10, 0x27]], dtype=np.uint8)

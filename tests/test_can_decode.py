@@ -10,7 +10,7 @@ import cantools.database.can as cdb
 import numpy as np
 import pytest
 from cantools.database.conversion import BaseConversion
-from conftest import m1_frames
+from conftest import larch_frames
 
 from crankbeat.logger.can.decode import FrameDecoder
 from crankbeat.logger.can.sources.base import FrameBatch
@@ -58,7 +58,7 @@ def test_tooth_and_status_values_from_cantools_frames(larch):
                                 "coolant": 88, "road_speed": 61.37, "status_counter": 9})))
     dec = FrameDecoder(larch)
     teeth, status = dec.push(_batch(msgs))
-    # the rig's unit is 0.25 us (RIG.md): values within half a step of what went in
+    # the rig's unit is 0.25 us (docs/rig.md): values within half a step of what went in
     np.testing.assert_allclose(teeth.periods, periods, atol=0.125e-6)
     assert teeth.cam.tolist() == [1, 0] and teeth.lost_before.tolist() == [0, 0]
     assert teeth.frame_index.tolist() == [0, 1]
@@ -71,7 +71,7 @@ def test_tooth_and_status_values_from_cantools_frames(larch):
 
 
 def test_saturated_period_is_nan(larch):
-    # RIG.md: 0xFFFF (65535 x 0.25 us = 16.38375 ms) means saturated
+    # docs/rig.md: 0xFFFF (65535 x 0.25 us = 16.38375 ms) means saturated
     msgs = _tooth_msgs(larch, [[1e-3, 16.38375e-3, 1e-3]], [0], [0], [T0])
     teeth, _ = FrameDecoder(larch).push(_batch(msgs))
     assert np.isnan(teeth.periods[0, 1]) and not np.isnan(teeth.periods[0, 0])
@@ -90,7 +90,7 @@ def test_counter_gaps_are_lost_frames_and_wrap_is_not(larch):
 
 
 def test_state_carries_across_batches_identically(larch):
-    msgs = m1_frames(larch, seconds=0.5, extra_ids=True)
+    msgs = larch_frames(larch, seconds=0.5, extra_ids=True)
     del msgs[100:103]  # a loss the counter must see across a batch boundary
     whole = FrameDecoder(larch)
     t_all, s_all = whole.push(_batch(msgs))
@@ -107,7 +107,7 @@ def test_state_carries_across_batches_identically(larch):
 
 
 def test_unknown_error_remote_and_bad_length_are_counted_and_skipped(larch):
-    good = m1_frames(larch, seconds=0.05)
+    good = larch_frames(larch, seconds=0.05)
     odd = [
         can.Message(timestamp=T0 + 0.0101, arbitration_id=0x555, is_extended_id=False, data=b"1"),
         can.Message(timestamp=T0 + 0.0102, is_error_frame=True),
@@ -137,7 +137,7 @@ def test_unknown_error_remote_and_bad_length_are_counted_and_skipped(larch):
 
 
 def test_backwards_time_and_silent_periodic_message(larch):
-    msgs = m1_frames(larch, seconds=0.3)
+    msgs = larch_frames(larch, seconds=0.3)
     status = [m for m in msgs if m.arbitration_id == 0x100]
     late = [can.Message(timestamp=m.timestamp + 2.0, arbitration_id=0x100, is_extended_id=False,
                         data=m.data) for m in status[:3]]
@@ -173,7 +173,7 @@ def _with_teeth_signal(rig, **changes):
 
 
 def test_wrong_byte_order_in_the_rig_is_noted(larch):
-    msgs = m1_frames(larch, seconds=0.5)
+    msgs = larch_frames(larch, seconds=0.5)
     right = FrameDecoder(larch)
     right.push(_batch(msgs))
     right.finish()
@@ -194,7 +194,7 @@ def test_cam_in_another_message_is_held(larch):
     rig = dataclasses.replace(larch, messages=(
         dataclasses.replace(teeth_msg, signals=tuple(s for s in teeth_msg.signals if s is not cam)),
         *larch.messages[1:], cam_msg))
-    msgs = m1_frames(larch, seconds=0.05)
+    msgs = larch_frames(larch, seconds=0.05)
     t_cam = msgs[20].timestamp + 1e-7
     msgs.insert(21, can.Message(timestamp=t_cam, arbitration_id=0x200, is_extended_id=False,
                                 data=b"\x01"))

@@ -161,7 +161,7 @@ def test_fixture_logs_fast_equals_python_can(log):
 
 @pytest.mark.parametrize("suffix", [".asc", ".blf", ".csv", ".log.gz", ".asc.gz"])
 def test_python_can_formats_round_trip(tmp_path, suffix):
-    msgs = _variety()[:-2]  # no CAN FD: .csv drops its flags (DESIGN.md)
+    msgs = _variety()[:-2]  # no CAN FD: .csv drops its flags
     src = open_log(_write(tmp_path / f"x{suffix}", msgs))
     got = _read(src)
     assert len(got) == len(msgs)

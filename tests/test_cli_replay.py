@@ -163,7 +163,7 @@ def test_killed_replay_leaves_an_incomplete_run_with_its_events(tmp_path, ride):
         assert run["status"] == "incomplete" and run["label"] == "killed"
         ev = st.events(run["id"])
     assert len(ev) > 0
-    assert set(ev["cylinder"].tolist()) <= {1, 2}  # RIG.md: the Larch is a twin
+    assert set(ev["cylinder"].tolist()) <= {1, 2}  # docs/rig.md: the Larch is a twin
     assert np.isfinite(ev["t"]).all()
 
 

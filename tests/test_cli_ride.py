@@ -2,7 +2,7 @@
 
 A recorded ride is played onto the virtual bus and through a local TCP server at its own pace;
 the command records, analyses and stores it; then the recording is replayed and must give the
-same events (live and replay are one code path, DESIGN.md).
+same events (live and replay are one code path, DEVELOPERS.md "Data flow").
 """
 
 from __future__ import annotations

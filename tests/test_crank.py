@@ -29,9 +29,9 @@ from crankbeat.errors import InputError, PhaseUnknownWarning
 TWIN_270 = Engine("twin-270", 4, (0.0, 270.0), (0.0, 0.0), (-0.04, 0.04), (1, 2))
 TWIN_360 = Engine("twin-360", 4, (0.0, 0.0), (0.0, 0.0), (-0.04, 0.04), (1, 2))
 SINGLE_2T = Engine("single-2t", 2, (0.0,), (0.0,), (0.0,), (1,))
-M1_WHEEL = ToothWheel(60, 2, 96.0, "window", 1)
-UNIT = 0.25e-6  # s, period resolution of the Larch tooth frame (RIG.md)
-SAT = 16.38e-3  # s, saturated period (RIG.md: 0xFFFF means >= 16.38 ms)
+LARCH_WHEEL = ToothWheel(60, 2, 96.0, "window", 1)
+UNIT = 0.25e-6  # s, period resolution of the Larch tooth frame (docs/rig.md)
+SAT = 16.38e-3  # s, saturated period (docs/rig.md: 0xFFFF means >= 16.38 ms)
 
 
 @dataclass
@@ -108,7 +108,7 @@ def make_frames(truth: Truth, wheel: ToothWheel, *, seed: int = 0, k: int = 3,
                   Truth(t_e[ek], phi_e[ek], tooth_e[ek], rev_e[ek]))
 
 
-def run(fr: Frames, wheel=M1_WHEEL, engine=TWIN_270, **opt) -> CrankAngles:
+def run(fr: Frames, wheel=LARCH_WHEEL, engine=TWIN_270, **opt) -> CrankAngles:
     return reconstruct_crank(fr.frame_time, fr.periods, fr.cam, fr.lost_before, wheel, engine,
                              **opt)
 
@@ -129,8 +129,8 @@ def rpm_const(w):
 
 # ---------------------------------------------------------------------------------------------
 def test_constant_speed_angles_times_and_phase():
-    tr = tooth_edges(rpm_const(3000), 360 * 60, M1_WHEEL)
-    fr = make_frames(tr, M1_WHEEL, seed=1)
+    tr = tooth_edges(rpm_const(3000), 360 * 60, LARCH_WHEEL)
+    fr = make_frames(tr, LARCH_WHEEL, seed=1)
     out = run(fr, latency_floor_s=0.1e-3)
     off, amax, tmax = angle_errors(out, fr)
     # every synced angle is the true one: the tooth count is exact (common practice: a 60-2
@@ -162,8 +162,8 @@ def test_hard_linear_acceleration(accel):
     def omega(phi):
         return np.sqrt((6 * w0) ** 2 + 2 * a * (phi + 300.0)) / 6.0
 
-    tr = tooth_edges(omega, phi_end, M1_WHEEL)
-    fr = make_frames(tr, M1_WHEEL, seed=2)
+    tr = tooth_edges(omega, phi_end, LARCH_WHEEL)
+    fr = make_frames(tr, LARCH_WHEEL, seed=2)
     out = run(fr, latency_floor_s=0.1e-3)
     off, amax, tmax = angle_errors(out, fr)
     assert amax < 1e-9 and off % 720 == 0
@@ -200,11 +200,11 @@ def firing_speed(base_rpm, engine=TWIN_270, *, swing=0.03):
 
 
 def test_speed_sweep_idle_to_rev_limit():
-    # Larch: idle 1300 rpm, rev limit 10 500 rpm (RIG.md); speed linear in angle over 600 revs
+    # Larch: idle 1300 rpm, rev limit 10 500 rpm (docs/rig.md); speed linear in angle over 600 revs
     phi_end = 360.0 * 600
     base = lambda phi: 1300.0 + (10500.0 - 1300.0) * np.clip((phi + 300) / (phi_end + 300), 0, 1)
-    tr = tooth_edges(firing_speed(base), phi_end, M1_WHEEL, step_deg=0.05)
-    fr = make_frames(tr, M1_WHEEL, seed=3)
+    tr = tooth_edges(firing_speed(base), phi_end, LARCH_WHEEL, step_deg=0.05)
+    fr = make_frames(tr, LARCH_WHEEL, seed=3)
     out = run(fr, latency_floor_s=0.1e-3)
     off, amax, tmax = angle_errors(out, fr)
     assert amax < 1e-9 and off % 720 == 0
@@ -215,8 +215,8 @@ def test_speed_sweep_idle_to_rev_limit():
 
 def test_sinusoidal_cycle_fluctuation_5pct():
     w = lambda phi: 2500.0 * (1 + 0.05 * np.sin(2 * np.pi * phi / 720.0))
-    tr = tooth_edges(w, 360.0 * 80, M1_WHEEL)
-    fr = make_frames(tr, M1_WHEEL, seed=4)
+    tr = tooth_edges(w, 360.0 * 80, LARCH_WHEEL)
+    fr = make_frames(tr, LARCH_WHEEL, seed=4)
     out = run(fr, latency_floor_s=0.1e-3)
     off, amax, tmax = angle_errors(out, fr)
     assert amax < 1e-9 and off % 720 == 0
@@ -225,10 +225,10 @@ def test_sinusoidal_cycle_fluctuation_5pct():
 
 
 def test_lost_frames_short_loss_keeps_count_long_loss_resyncs():
-    tr = tooth_edges(firing_speed(4000.0), 360.0 * 120, M1_WHEEL)
+    tr = tooth_edges(firing_speed(4000.0), 360.0 * 120, LARCH_WHEEL)
     # 2 frames dropped (counter says 2: the count is trusted); 300 frames dropped while the
     # 8-bit rolling counter can only say 300 % 256 = 44 (the count must not be trusted)
-    fr = make_frames(tr, M1_WHEEL, seed=5, lost={400: 2, 1200: 300})
+    fr = make_frames(tr, LARCH_WHEEL, seed=5, lost={400: 2, 1200: 300})
     j_long = np.flatnonzero(fr.lost_before == 300)[0]
     fr.lost_before[j_long] = 300 % 256
     out = run(fr, latency_floor_s=0.1e-3)
@@ -260,11 +260,11 @@ def _delete_edge(tr: Truth, i: int) -> Truth:
 
 @pytest.mark.parametrize("where", ["tooth", "gap"])
 def test_noisy_extra_edge_never_gives_wrong_angles(where):
-    tr = tooth_edges(firing_speed(3000.0), 360.0 * 40, M1_WHEEL)
+    tr = tooth_edges(firing_speed(3000.0), 360.0 * 40, LARCH_WHEEL)
     gap_edges = np.flatnonzero(tr.tooth == 0)
     i = gap_edges[10] + (25 if where == "tooth" else 0)  # a spurious edge inside a tooth or gap
     tr = _insert_edge(tr, int(i), 0.3)
-    fr = make_frames(tr, M1_WHEEL, seed=6)
+    fr = make_frames(tr, LARCH_WHEEL, seed=6)
     out = run(fr)
     spurious = ~np.isfinite(fr.truth.phi)
     assert spurious.sum() == 1 and not out.valid[spurious].any()
@@ -277,9 +277,9 @@ def test_noisy_extra_edge_never_gives_wrong_angles(where):
 
 
 def test_missing_edge_never_gives_wrong_angles():
-    tr = tooth_edges(firing_speed(3000.0), 360.0 * 40, M1_WHEEL)
+    tr = tooth_edges(firing_speed(3000.0), 360.0 * 40, LARCH_WHEEL)
     i = int(np.flatnonzero(tr.tooth == 30)[12])
-    fr = make_frames(_delete_edge(tr, i), M1_WHEEL, seed=7)
+    fr = make_frames(_delete_edge(tr, i), LARCH_WHEEL, seed=7)
     out = run(fr)
     off, amax, _ = angle_errors(out, fr)
     assert amax < 1e-9 and off % 720 == 0
@@ -338,12 +338,12 @@ def test_two_stroke_needs_no_phase():
 
 
 def test_saturated_periods_while_cranking_no_sync_until_regular_teeth():
-    # cranking at 40 rpm: a 6° tooth takes 25 ms, beyond the 16.38 ms full scale (RIG.md)
+    # cranking at 40 rpm: a 6° tooth takes 25 ms, beyond the 16.38 ms full scale (docs/rig.md)
     def omega(phi):
         return np.where(phi < 360.0, 40.0, np.minimum(40.0 + (phi - 360.0) * 3.0, 1500.0))
 
-    tr = tooth_edges(omega, 360.0 * 30, M1_WHEEL)
-    fr = make_frames(tr, M1_WHEEL, seed=12)
+    tr = tooth_edges(omega, 360.0 * 30, LARCH_WHEEL)
+    fr = make_frames(tr, LARCH_WHEEL, seed=12)
     out = run(fr)
     sat = ~np.isfinite(out.period)
     assert sat.sum() > 20
@@ -357,8 +357,8 @@ def test_saturated_periods_while_cranking_no_sync_until_regular_teeth():
 def test_tooth_correction_is_applied():
     err = 0.2 * np.sin(np.arange(58) * 0.7)
     err -= err[0]  # tooth 0 is the reference of the wheel's TDC offset
-    tr = tooth_edges(firing_speed(3000.0), 360.0 * 20, M1_WHEEL, errors_deg=err)
-    fr = make_frames(tr, M1_WHEEL, seed=13)
+    tr = tooth_edges(firing_speed(3000.0), 360.0 * 20, LARCH_WHEEL, errors_deg=err)
+    fr = make_frames(tr, LARCH_WHEEL, seed=13)
     plain = run(fr)
     fixed = run(fr, tooth_correction_deg=err)
     _, a_plain, _ = angle_errors(plain, fr)
@@ -369,13 +369,13 @@ def test_tooth_correction_is_applied():
 def test_chunked_pushes_give_identical_numbers():
     phi_end = 360.0 * 150
     base = lambda phi: 2000.0 + 4000.0 * (phi > 20000) + 2000.0 * np.sin(phi / 9000.0)
-    tr = tooth_edges(firing_speed(base), phi_end, M1_WHEEL)
+    tr = tooth_edges(firing_speed(base), phi_end, LARCH_WHEEL)
     tr = _insert_edge(tr, 3000, 0.5)
-    fr = make_frames(tr, M1_WHEEL, seed=14, lost={500: 1, 1500: 3, 2000: 280})
+    fr = make_frames(tr, LARCH_WHEEL, seed=14, lost={500: 1, 1500: 3, 2000: 280})
     whole = run(fr)
     rng = np.random.default_rng(15)
     for _ in range(4):
-        trk = CrankTracker(M1_WHEEL, TWIN_270)
+        trk = CrankTracker(LARCH_WHEEL, TWIN_270)
         parts, a = [], 0
         while a < len(fr.frame_time):
             b = a + int(rng.integers(0, 400))
@@ -391,9 +391,9 @@ def test_chunked_pushes_give_identical_numbers():
 
 
 def test_held_back_edges_are_bounded():
-    tr = tooth_edges(firing_speed(3000.0), 360.0 * 60, M1_WHEEL)
-    fr = make_frames(tr, M1_WHEEL, seed=16)
-    trk = CrankTracker(M1_WHEEL, TWIN_270)
+    tr = tooth_edges(firing_speed(3000.0), 360.0 * 60, LARCH_WHEEL)
+    fr = make_frames(tr, LARCH_WHEEL, seed=16)
+    trk = CrankTracker(LARCH_WHEEL, TWIN_270)
     pushed = got = 0
     for a in range(0, len(fr.frame_time), 10):
         sl = slice(a, a + 10)
@@ -416,20 +416,20 @@ def test_phase_from_pattern_direct():
 
 
 def test_bad_input_one_line_errors():
-    trk = CrankTracker(M1_WHEEL, TWIN_270)
+    trk = CrankTracker(LARCH_WHEEL, TWIN_270)
     with pytest.raises(InputError, match=r"shape \(m, k\)"):
         trk.push(np.zeros(3), np.zeros(3), np.zeros(3), np.zeros(3))
     with pytest.raises(InputError, match="frame 1 has"):
         trk.push(np.array([0.0, np.nan]), np.ones((2, 3)) * 1e-4, np.zeros(2), np.zeros(2))
     with pytest.raises(InputError, match="58 finite values"):
-        CrankTracker(M1_WHEEL, TWIN_270, tooth_correction_deg=np.zeros(60))
+        CrankTracker(LARCH_WHEEL, TWIN_270, tooth_correction_deg=np.zeros(60))
     with pytest.raises(InputError, match="missing teeth"):
         ToothWheel(60, 0)
 
 
 # --- simulated rides of the Larch (logger.sim: true edges, tooth numbers, cam levels, angles) --
 def sim_frames(ride, *, seed: int = 0, k: int = 3, latency=(0.1e-3, 1e-3)) -> Frames:
-    """Tooth frames from a SimRide's true edges, built like make_frames (RIG.md layout)."""
+    """Tooth frames from a SimRide's true edges, built like make_frames (docs/rig.md layout)."""
     t = ride.tooth_time - ride.start_time  # seconds since the ride start keep full precision
     truth = Truth(t, ride.tooth_angle, ride.tooth_number.astype(np.int64), np.zeros(len(t)))
     rng = np.random.default_rng(seed)
@@ -530,8 +530,8 @@ def test_simulated_m1_ride_with_lost_frames_chunked(m1_ride):
 def test_cam_that_contradicts_the_count_moves_the_phase_forward():
     # the cam polarity flips half way (as if the count had slipped a revolution unseen): after
     # two contradicting revolutions the tracker follows the cam, always moving the angle forward
-    tr = tooth_edges(firing_speed(3000.0), 360.0 * 40, M1_WHEEL)
-    fr = make_frames(tr, M1_WHEEL, seed=17)
+    tr = tooth_edges(firing_speed(3000.0), 360.0 * 40, LARCH_WHEEL)
+    fr = make_frames(tr, LARCH_WHEEL, seed=17)
     half = len(fr.cam) // 2
     fr.cam[half:] = 1 - fr.cam[half:]
     out = run(fr)
@@ -546,9 +546,9 @@ def test_cam_that_contradicts_the_count_moves_the_phase_forward():
 
 
 def test_angles_always_increase():
-    tr = tooth_edges(firing_speed(2500.0), 360.0 * 80, M1_WHEEL)
+    tr = tooth_edges(firing_speed(2500.0), 360.0 * 80, LARCH_WHEEL)
     tr = _insert_edge(tr, 2000, 0.4)
-    fr = make_frames(tr, M1_WHEEL, seed=18, lost={100: 1, 300: 290, 500: 2})
+    fr = make_frames(tr, LARCH_WHEEL, seed=18, lost={100: 1, 300: 290, 500: 2})
     fr.lost_before[fr.lost_before == 290] = 290 % 256
     out = run(fr)
     fin = np.isfinite(out.angle)
@@ -558,8 +558,8 @@ def test_angles_always_increase():
 
 
 def test_auto_phase_falls_back_to_the_pattern_when_the_frames_carry_no_cam():
-    tr = tooth_edges(firing_speed(3500.0), 360.0 * 40, M1_WHEEL)
-    fr = make_frames(tr, M1_WHEEL, seed=19, cam=False)  # the rig says "window", frames say -1
+    tr = tooth_edges(firing_speed(3500.0), 360.0 * 40, LARCH_WHEEL)
+    fr = make_frames(tr, LARCH_WHEEL, seed=19, cam=False)  # the rig says "window", frames say -1
     out = run(fr)
     off, amax, _ = angle_errors(out, fr)
     assert off % 720 == 0 and amax < 1e-9

@@ -1,7 +1,7 @@
 """Observed firing intervals and layout identification on simulated rides.
 
 Expected intervals are those of the layouts (common practice: 270/450 for a 270° twin; a 90° V-twin
-on one pin fires (360 + 90)/(360 − 90) = 450/270, REFERENCES.md; 360/360; 180/540).
+on one pin fires (360 + 90)/(360 − 90) = 450/270, tests/reference/README.md; 360/360; 180/540).
 """
 
 from __future__ import annotations

@@ -19,7 +19,7 @@ from crankbeat.dsp.kinematics import (
 )
 from crankbeat.errors import InputError
 
-R, L = 0.031, 0.124  # m: the Larch's crank radius (62 mm stroke / 2) and con-rod (RIG.md)
+R, L = 0.031, 0.124  # m: the Larch's crank radius (62 mm stroke / 2) and con-rod (docs/rig.md)
 
 
 def heywood_distance_from_crank_axis(theta_rad, r, l):

@@ -1,9 +1,9 @@
 """Firing intervals and reciprocating balance of common layouts.
 
-Interval patterns are common practice (DESIGN.md, REFERENCES.md): a 360° twin 360/360, a 180° twin
+Interval patterns are common practice (tests/reference/README.md): a 360° twin 360/360, a 180° twin
 180/540, a 270° twin 270/450, a V-twin of vee γ on one pin (360+γ)/(360−γ), an inline triple
 240×3, a flat-plane four 180×4, a cross-plane four 90/180/270/180, a 2-stroke 180° twin 180/180.
-Balance figures: REFERENCES.md table, "textbook results, e.g. Heywood and Taylor vol. 2, from
+Balance figures: tests/reference table, "textbook results, e.g. Heywood and Taylor vol. 2, from
 memory, checked numerically"; the triple's √3 couples are common practice.
 """
 
@@ -39,7 +39,7 @@ LAYOUTS = {
     "twin-360": (engine((0, 0)), (360, 360)),
     "twin-180": (engine((0, 180)), (180, 540)),
     "twin-270": (engine((0, 270)), (270, 450)),
-    "vtwin-90": (engine((0, 0), (0, 90)), (270, 450)),  # = 270° twin, REFERENCES.md
+    "vtwin-90": (engine((0, 0), (0, 90)), (270, 450)),  # = 270° twin, tests/reference/README.md
     "vtwin-60": (engine((0, 0), (0, 60)), (300, 420)),  # (360-γ)/(360+γ), γ=60
     "boxer-twin": (engine((0, 180), (0, 180)), (360, 360)),
     "twin-180-2stroke": (engine((0, 180), stroke_cycle=2), (180, 180)),
@@ -61,13 +61,13 @@ def test_interval_pattern_of_common_layouts(name):
 
 
 def test_270_twin_fires_cylinder_2_270_after_cylinder_1():
-    # RIG.md: "cylinder 2 fires 270° after cylinder 1, then 450° to the next firing of cylinder 1"
+    # docs/rig.md: cylinder 2 fires 270° after cylinder 1, cylinder 1 again 450° later
     np.testing.assert_allclose(firing_angles(LAYOUTS["twin-270"][0]), [0.0, 270.0])
     np.testing.assert_allclose(firing_intervals(LAYOUTS["twin-270"][0]), [270.0, 450.0])
 
 
 def test_vtwin_fires_360_plus_vee_after_front_cylinder():
-    # REFERENCES.md: a V-twin of vee γ on one pin fires at (360 + γ)/(360 − γ)
+    # tests/reference/README.md: a V-twin of vee γ on one pin fires at (360 + γ)/(360 − γ)
     np.testing.assert_allclose(firing_intervals(LAYOUTS["vtwin-90"][0]), [450.0, 270.0])
 
 
@@ -111,7 +111,7 @@ def test_balance_180_twin():
 
 
 def test_balance_270_twin():
-    # REFERENCES.md gives √2·m·r·ω² for the primary force: we find it is a one-plane (inline)
+    # tests/reference gives √2·m·r·ω² for the primary force: we find it is a one-plane (inline)
     # oscillating force of that amplitude, peaking 45° after cylinder 1's TDC.
     t = _terms(LAYOUTS["twin-270"][0])
     assert t[1, "force"].magnitude == pytest.approx(np.sqrt(2) * M * R)

@@ -24,7 +24,7 @@ def _state(**kw) -> LiveState:
         cylinders=[CylinderState(1, events=9000, misfires=3, rate200_pct=0.5, contribution=1.01),
                    CylinderState(2, events=9000, misfires=41, rate200_pct=1.5,
                                  contribution=0.97)],
-        # RIG.md: the Larch's 270° crank fires at 270 then 450 degrees
+        # docs/rig.md: the Larch's 270° crank fires at 270 then 450 degrees
         intervals=[IntervalState(1, 2, 270.0, 270.8), IntervalState(2, 1, 450.0, 449.2)],
         vibration={"bar_left": 8.31}, can_frames=123456, can_lost=2, serial_crc_errors=5,
         serial_reconnects=1, recording="rides/",
@@ -38,7 +38,7 @@ def test_everything_a_rider_needs_is_on_screen():
     assert "6120 rpm" in text and "throttle  42 %" in text and "ride 12:34" in text
     lines = text.splitlines()
     cyl2 = next(line for line in lines if "│ " in line and " 41 " in line)
-    assert "9000" in cyl2 and "1.5 %" in cyl2
+    assert "9000" in cyl2 and " 1.5 " in cyl2  # the column is headed "200r %"
     assert "1>2" in text and "270.8" in text and "ok" in text
     assert "bar_left: 8.31 m/s²" in text
     assert "CAN frames 123456, lost 2" in text
@@ -89,12 +89,12 @@ def test_caution_lines_come_first():
 
 def test_tally_counts_and_the_rolling_200_rev_window():
     import numpy as np
-    from test_store_fill import m1_like_rig, make_events
+    from test_store_fill import larch_like_rig, make_events
 
     from crankbeat.logger.chunks import StreamHealth
     from crankbeat.logger.live import LiveTally
 
-    rig = m1_like_rig()
+    rig = larch_like_rig()
     # Cylinder 2 misfires on every 10th cycle for the first 1000 cycles, then never.
     ev = make_events(1500, misfire_every={2: 10}, interval_offset={2: 1.0}, special=False)
     late = ev["cycle"] >= 1000
@@ -113,7 +113,7 @@ def test_tally_counts_and_the_rolling_200_rev_window():
     # The last 200 revolutions are the last 100 cycles of a 4-stroke (common practice): clean.
     assert c2.rate200_pct == 0.0
     pairs = {(i.from_cyl, i.to_cyl): i for i in s.intervals}
-    assert pairs[(1, 2)].expected_deg == 270.0  # RIG.md, 270° crank
+    assert pairs[(1, 2)].expected_deg == 270.0  # docs/rig.md, 270° crank
     assert abs(pairs[(1, 2)].observed_deg - 271.0) < 0.1
     assert (s.can_lost, s.serial_crc_errors, s.serial_reconnects) == (3, 4, 1)
     assert s.rpm == ev["rpm"][-1] and s.vibration == {"bar_left": 7.0}
@@ -136,3 +136,67 @@ def test_plain_mode_prints_every_few_seconds_and_at_once_on_an_alert():
     text = d.console.export_text()
     assert text.count("crankbeat ride") == 3  # at 0 s, 5.5 s and on the alert at 6.2 s
     assert "MISFIRE ALERT cyl 1: 4.5 %" in text
+
+
+def test_interval_notices_wait_for_the_wheel_and_stay_apart_from_alerts():
+    off = [IntervalState(1, 2, 270.0, 446.3), IntervalState(2, 1, 450.0, 273.5)]
+    text = _text(_display(), _state(intervals=off, wheel_learnt=False))
+    assert "wheel not learnt yet" in text and "not yet" in text
+    assert "INTERVAL" not in text and "ALERT" not in text and "OFF" not in text
+    d = _display()
+    learnt = _state(intervals=off, wheel_learnt=True,
+                    cylinders=[CylinderState(1, 500, 12, 2.5)])
+    assert d.alerts(learnt) == ["MISFIRE ALERT cyl 1: 2.5 % over 200 revs (limit 2 %)",
+                                d.alerts(learnt)[1]]
+    assert "stop safely" in d.alerts(learnt)[1].lower()
+    assert "local rules" in d.alerts(learnt)[1].lower()
+    assert [n.split()[1] for n in d.notices(learnt)] == ["1>2", "2>1"]
+
+
+def test_the_screen_fits_80_by_24_with_headers_whole_and_the_caution_kept():
+    # a four with every alert, notices and notes: the worst case a rider meets
+    four = [CylinderState(c, 1234567, 12345, 15.9, 0.93) for c in (1, 2, 3, 4)]
+    ivals = [IntervalState(a, b, 180.0, 195.5) for a, b in ((1, 3), (3, 4), (4, 2), (2, 1))]
+    state = _state(cylinders=four, intervals=ivals, synced=False, recording="rides/larch-2026",
+                   notes=["a very long note " * 8, "another one"],
+                   vibration={"bar_left": 1.37, "tank": 2.5},
+                   vibration_weighting={"bar_left": "Wh", "tank": "none"})
+    console = Console(record=True, width=80, height=24, color_system=None)
+    console.print(LiveDisplay(console, live=False).render(state))
+    lines = console.export_text().rstrip("\n").splitlines()
+    assert len(lines) <= 24, "\n".join(lines)
+    assert max(len(line) for line in lines) <= 80
+    header = next(line for line in lines if line.startswith("│ cyl "))
+    for col in ("cyl", "events", "misf", "200r %", "contr", "pair", "exp", "seen", "check"):
+        assert f" {col} " in header + " ", col
+    assert "on an alert stop safely" in lines[-1]
+    assert "tank: 2.50 m/s² unweighted" in "\n".join(lines)
+
+
+def test_tally_follows_a_real_analysis_for_wheel_and_vibration():
+    from crankbeat.logger import stream
+    from crankbeat.logger.live import LiveTally
+    from crankbeat.logger.pipeline import RunAnalysis
+    from crankbeat.logger.rig import load_rig
+
+    rig = load_rig("larch")
+    analysis = RunAnalysis(rig)  # no stored correction: the wheel is learnt on the fuel cut
+    tally = LiveTally(rig.engine)
+    seen_unlearnt, weighting = False, None
+    with stream.replay(rig, "fixtures/demo/demo.log",
+                       {"bar_left": "fixtures/demo/demo.bar_left.acraw"}) as chunks:
+        for i, chunk in enumerate(chunks):
+            out = analysis.push(chunk)
+            tally.push_events(out.events)
+            tally.follow(analysis)
+            seen_unlearnt |= not tally.wheel_learnt
+            weighting = tally.vibration_weighting.get("bar_left", weighting)
+            if i > 200:
+                break
+    assert seen_unlearnt  # the demo's first fuel cut comes some 28 s into the ride
+    assert weighting == "Wh"  # a handlebar sensor is hand-arm weighted (ISO 5349-1)
+    assert 0.0 < tally.vibration["bar_left"] < 50.0
+
+
+def test_the_cautions_fit_an_80_column_terminal_one_line_each():
+    assert all(len(f"CAUTION: {line}") <= 80 for line in CAUTION_LINES)

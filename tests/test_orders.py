@@ -169,7 +169,7 @@ def twin(pin2: float, name: str) -> Engine:
 
 def test_compare_orders_flags_half_order_of_a_weak_cylinder():
     # a 360° twin fires every 360°: torque orders 1, 2, ... and balance orders 1, 2
-    # (REFERENCES.md balance table; firing intervals 360/360). Half-order content is unexpected.
+    # (tests/reference balance table; firing intervals 360/360). Half-order content is unexpected.
     eng = twin(0.0, "twin-360")
     pred = predicted_orders(eng)
     assert sorted({p["order"] for p in pred}) == [1.0, 2.0, 3.0, 4.0, 5.0, 6.0]

@@ -112,10 +112,10 @@ def test_verdict_codes_are_those_of_dsp_events():
 
 def test_tooth_errors_learnt_on_fuel_cut_correct_the_rest_of_the_run_and_the_next(tmp_path):
     # A wheel with 0.1° rms spacing errors biases the observed firing interval; the errors are
-    # learnt on the overrun fuel cut (REFERENCES.md, common practice: learnt while no cylinder
+    # learnt on the overrun fuel cut (tests/reference, common practice: learnt while no cylinder
     # fires), applied from a few seconds after the cut on, and to the next run of the rig from
     # its start: both must then see the Larch's 270/450 within ±3° (the figure; intervals
-    # from RIG.md).
+    # from docs/rig.md).
     from crankbeat.logger.sim import WheelSpec
 
     rig = load_rig("larch")

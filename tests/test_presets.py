@@ -48,28 +48,28 @@ def test_unknown_layout_lists_the_known_ones() -> None:
         load_layout("v-twin")
 
 
-# --- larch is the bike of RIG.md ("The reference rig", /work/shared/RIG.md) -----------------------
+# --- larch is the reference rig of docs/rig.md ------------------------------------------
 
 
 def test_m1_engine_is_rig_md() -> None:
     e = load_rig("larch").engine
-    # RIG.md "The bike": pins 0/270, bore 84, stroke 62, con-rod 124 mm, 0.42 kg, 0.021 kg·m²
+    # docs/rig.md, engine: pins 0/270, bore 84, stroke 62, con-rod 124 mm, 0.42 kg, 0.021 kg·m²
     assert e.stroke_cycle == 4 and e.pin_deg == (0.0, 270.0) and e.firing_order == (1, 2)
     assert (e.bore_m, e.stroke_m, e.conrod_m) == pytest.approx((0.084, 0.062, 0.124))
     assert (e.recip_mass_kg, e.inertia_kgm2) == pytest.approx((0.42, 0.021))
-    # RIG.md: "cylinder 2 fires 270° after cylinder 1, then 450° to the next firing of cylinder 1"
+    # docs/rig.md: cylinder 2 fires 270° after cylinder 1, cylinder 1 again 450° later
     assert firing_intervals(e).tolist() == pytest.approx([270.0, 450.0])
 
 
 def test_m1_wheel_limits_and_bus_are_rig_md() -> None:
     rig = load_rig("larch")
-    # RIG.md: 60-2 wheel, TDC 96° after tooth 0's falling edge, one-window cam, active level 1
+    # docs/rig.md: 60-2 wheel, TDC 96° after tooth 0's falling edge, one-window cam, active level 1
     w = rig.wheel
     assert (w.teeth, w.missing, w.real_teeth, w.tdc_offset_deg) == (60, 2, 58, 96.0)
     assert (w.cam, w.cam_active_level) == ("window", 1)
-    # RIG.md: idle 1300 rpm, rev limit 10 500 rpm
+    # docs/rig.md: idle 1300 rpm, rev limit 10 500 rpm
     assert (rig.limits.idle_rpm, rig.limits.rev_limit_rpm) == (1300.0, 10500.0)
-    # RIG.md: classic CAN, 11-bit ids, 1 Mbit/s
+    # docs/rig.md: classic CAN, 11-bit ids, 1 Mbit/s
     assert rig.can_bus.bitrate == 1_000_000 and not rig.can_bus.fd
     assert all(not m.extended and m.length == 8 for m in rig.messages)
 
@@ -80,21 +80,21 @@ def byte_bits(first: int, last: int) -> set[int]:
 
 def test_m1_crank_frame_is_rig_md() -> None:
     msg = load_rig("larch").message_for("tooth_periods")
-    assert msg is not None and msg.can_id == 0x0A0  # RIG.md table, id 0x0A0
+    assert msg is not None and msg.can_id == 0x0A0  # docs/rig.md table, id 0x0A0
     counter, cam, teeth = (msg.signal_for(r) for r in ("counter", "cam_level", "tooth_periods"))
-    # RIG.md: byte 0 rolling counter 0..255; byte 1 bit 0 cam; bytes 2..7 three uint16 periods
+    # docs/rig.md: byte 0 rolling counter 0..255; byte 1 bit 0 cam; bytes 2..7 three uint16 periods
     assert occupied_bits(counter) == byte_bits(0, 0) and counter.modulo == 256
     assert occupied_bits(cam) == {8}
     assert occupied_bits(teeth) == byte_bits(2, 7) and teeth.count == 3
-    # RIG.md: unit 0.25 µs, 0xFFFF saturated, little-endian (Intel), unsigned
+    # docs/rig.md: unit 0.25 µs, 0xFFFF saturated, little-endian (Intel), unsigned
     assert teeth.scale == pytest.approx(0.25e-6) and teeth.saturated_raw == 0xFFFF
     assert teeth.byte_order == "little" and not teeth.signed
 
 
 def test_m1_status_frame_is_rig_md() -> None:
     msg = load_rig("larch").message_for("engine_speed")
-    assert msg is not None and msg.can_id == 0x100 and msg.rate_hz == 100  # RIG.md: 100 Hz
-    # RIG.md row 0x100: (role, bytes, scale, offset)
+    assert msg is not None and msg.can_id == 0x100 and msg.rate_hz == 100  # docs/rig.md: 100 Hz
+    # docs/rig.md row 0x100: (role, bytes, scale, offset)
     table = {
         "engine_speed": ((0, 1), 0.25, 0.0),
         "throttle": ((2, 2), 0.5, 0.0),
@@ -112,20 +112,20 @@ def test_m1_status_frame_is_rig_md() -> None:
 
 def test_m1_accelerometer_is_rig_md() -> None:
     s = load_rig("larch").sensors[0]
-    # RIG.md "Serial accelerometer": 921 600 baud, 2000 samples/s, 16-byte frames, sync A5 5A
+    # docs/rig.md "Serial accelerometer": 921 600 baud, 2000 samples/s, 16-byte frames, sync A5 5A
     assert (s.baud, s.sample_rate_hz, s.frame_length, s.sync) == (921600, 2000.0, 16, b"\xa5\x5a")
-    # RIG.md: left handlebar clamp; axes x forward, y left, z up
+    # docs/rig.md: left handlebar clamp; axes x forward, y left, z up
     assert s.location == "bar" and s.axes == ("forward", "left", "up")
-    # RIG.md byte table: (role, offset, dtype); all LE; ax..az 1/2048 g per bit
+    # docs/rig.md byte table: (role, offset, dtype); all LE; ax..az 1/2048 g per bit
     for role, offset, dtype in (("sequence", 2, "u16"), ("device_time", 4, "u32"),
                                 ("accel_x", 8, "i16"), ("accel_y", 10, "i16"),
                                 ("accel_z", 12, "i16")):
         f = s.field_for(role)
         assert f is not None and (f.offset, f.dtype, f.byte_order) == (offset, dtype, "little")
     assert s.field_for("accel_y").scale == 1 / 2048  # type: ignore[union-attr]
-    # RIG.md: device time µs, wraps at 2**32; sequence +1 per frame, wraps at 2**16
+    # docs/rig.md: device time µs, wraps at 2**32; sequence +1 per frame, wraps at 2**16
     assert (s.device_time_unit_s, s.device_time_modulo, s.sequence_modulo) == (1e-6, 2**32, 2**16)
-    # RIG.md: CRC-16/CCITT-FALSE over bytes 2..13, stored LE at 14..15
+    # docs/rig.md: CRC-16/CCITT-FALSE over bytes 2..13, stored LE at 14..15
     c = s.checksum
     assert (c.kind, c.start, c.end, c.at, c.byte_order) == ("crc16-ccitt-false", 2, 14, 14,
                                                             "little")
@@ -144,7 +144,7 @@ def test_example_four_is_the_rig_it_claims() -> None:
 
 # --- layouts fire and shake as the trade says ------------------------------------------------
 
-# Firing intervals of common layouts (common practice; DESIGN.md "Firing pattern from layout"
+# Firing intervals of common layouts (common practice
 # lists the twins, the triple and both fours). V-twins with one shared pin: 360 ± V angle.
 INTERVALS = {
     "single": [720],

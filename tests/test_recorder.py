@@ -5,7 +5,7 @@ from __future__ import annotations
 import can
 import numpy as np
 import pytest
-from conftest import m1_frames, m1_serial
+from conftest import larch_frames, larch_serial
 
 import crankbeat.logger.recorder as recorder_mod
 from crankbeat.errors import UsageError
@@ -16,8 +16,8 @@ from crankbeat.logger.serial.capture import CaptureReader
 
 @pytest.mark.parametrize("suffix", [".log", ".asc", ".blf", ".csv"])
 def test_frames_and_serial_reads_come_back(tmp_path, larch, suffix):
-    msgs = m1_frames(larch, seconds=0.2, extra_ids=True)
-    reads = m1_serial(larch, seconds=0.2) + [(1_767_225_600.5, b"")]  # b"": a link break
+    msgs = larch_frames(larch, seconds=0.2, extra_ids=True)
+    reads = larch_serial(larch, seconds=0.2) + [(1_767_225_600.5, b"")]  # b"": a link break
     with Recorder(tmp_path, larch, can_suffix=suffix, stem="x") as rec:
         rec.write_can(FrameBatch.from_messages(msgs[:50], range(50)))
         rec.write_can(msgs[50:])
@@ -39,8 +39,8 @@ def test_frames_and_serial_reads_come_back(tmp_path, larch, suffix):
 
 def test_data_reach_the_disk_before_close(tmp_path, larch, monkeypatch):
     monkeypatch.setattr(recorder_mod, "FLUSH_EVERY_S", 0.0)  # flush after every write
-    msgs = m1_frames(larch, seconds=0.05)
-    reads = m1_serial(larch, seconds=0.05)
+    msgs = larch_frames(larch, seconds=0.05)
+    reads = larch_serial(larch, seconds=0.05)
     with Recorder(tmp_path, larch, stem="p") as rec:
         rec.write_can(msgs)
         rec.write_serial("bar_left", reads)
@@ -52,7 +52,7 @@ def test_data_reach_the_disk_before_close(tmp_path, larch, monkeypatch):
 
 def test_explicit_flush(tmp_path, larch):
     with Recorder(tmp_path, larch, stem="f") as rec:
-        rec.write_can(m1_frames(larch, seconds=0.02))
+        rec.write_can(larch_frames(larch, seconds=0.02))
         rec.flush()
         assert rec.can_path.read_text().count("\n") == rec.frames
 

@@ -12,7 +12,6 @@ import pytest
 from test_store_fill import fill_run, make_events
 
 from crankbeat.logger.report import make_run_report, plot_trend
-from crankbeat.logger.report.run_plots import windows_from_events
 from crankbeat.logger.store import Store
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (RFC 2083), section 3.1
@@ -82,9 +81,9 @@ def test_run_report_embeds_every_figure(filled, tmp_path):
 def test_a_run_without_data_says_what_is_missing(filled, tmp_path):
     path, _ = filled
     with Store.open(path) as st:
-        from test_store_fill import m1_like_rig
+        from test_store_fill import larch_like_rig
 
-        empty = st.begin_run(m1_like_rig(), label="killed-at-once")  # incomplete, no events
+        empty = st.begin_run(larch_like_rig(), label="killed-at-once")  # incomplete, no events
         rep = make_run_report(st, empty, tmp_path / "o2")
     text = rep.html.read_text()
     assert ("Not drawn (no data in the store): Per-event metric, Misfire rate per 1000 "
@@ -94,18 +93,24 @@ def test_a_run_without_data_says_what_is_missing(filled, tmp_path):
     assert "incomplete" in text
 
 
-def test_windows_from_events_counts_1000_revolutions():
+def test_window_rows_without_stored_windows_are_dsp_window_rates(tmp_path):
     # A 4-stroke turns twice per working cycle (common practice): 1000 revolutions = 500 cycles.
+    # A run stored without windows gets dsp.analysis.window_rates on its events, with the
+    # engine of its own stored rig: the report has no second way of counting windows.
+    from crankbeat.dsp.analysis import window_rates
+    from crankbeat.logger.figures import run_engine, window_rows
+
     ev = make_events(1500, misfire_every={2: 10}, special=False)
-    rows = [r for r in windows_from_events(ev, revolutions=1000) if r["cylinder"] == 2]
+    with Store.open(tmp_path / "w.db") as st:
+        run = fill_run(st, ev)
+        assert st.windows(run) == []
+        rows = [r for r in window_rows(st, run, ev, revolutions=1000) if r["cylinder"] == 2]
+        windows, per_cyl = window_rates(ev, revolutions=1000, engine=run_engine(st, run))
     assert [r["idx"] for r in rows] == [0, 1, 2]
-    assert [r["events"] for r in rows] == [500, 500, 500]
     # every 10th cycle of cylinder 2 misfires -> 50 of 500 = 10 %
-    assert [r["misfires"] for r in rows] == [50, 50, 50]
-    assert rows[0]["rate"] == pytest.approx(10.0)
-    # 200-revolution windows (the catalyst-damage window of the OBD rule, from memory): 100 cycles
-    short = [r for r in windows_from_events(ev, revolutions=200) if r["cylinder"] == 2]
-    assert len(short) == 15 and all(r["misfires"] == 10 for r in short)
+    assert [r["rate"] for r in rows] == pytest.approx([10.0, 10.0, 10.0])
+    assert [r["rate"] for r in rows] == pytest.approx(per_cyl[:, 1].tolist())
+    assert [r["complete"] for r in rows] == windows["complete"].tolist()
 
 
 def test_trend_plot_by_odometer(tmp_path):

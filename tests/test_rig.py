@@ -436,8 +436,8 @@ def test_can_bus_flags_then_environment_then_file() -> None:
     assert resolve_can_bus(rig, env={}) == rig.can_bus  # file only
     from_env = resolve_can_bus(rig, env=env)
     assert (from_env.interface, from_env.channel, from_env.bitrate) == ("virtual", "vcan7", 500000)
-    flags = resolve_can_bus(rig, interface="pcan", channel="PCAN_USBBUS1", bitrate=250000, env=env)
-    assert (flags.interface, flags.channel, flags.bitrate) == ("pcan", "PCAN_USBBUS1", 250000)
+    flags = resolve_can_bus(rig, interface="socketcand", channel="can0", bitrate=250000, env=env)
+    assert (flags.interface, flags.channel, flags.bitrate) == ("socketcand", "can0", 250000)
     mixed = resolve_can_bus(rig, channel="vcan1", env={"CRANKBEAT_CAN_BITRATE": "125000"})
     assert (mixed.interface, mixed.channel, mixed.bitrate) == ("socketcan", "vcan1", 125000)
 

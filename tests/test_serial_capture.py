@@ -22,7 +22,7 @@ def _write(path, records):
 
 
 def test_layout_is_magic_then_float64_uint32_bytes(tmp_path):
-    # RIG.md: magic "ACCRAW1\n", then per record float64 LE time, uint32 LE n, n bytes.
+    # docs/rig.md: magic "ACCRAW1\n", then per record float64 LE time, uint32 LE n, n bytes.
     path = tmp_path / "a.accraw"
     _write(path, RECORDS)
     want = MAGIC + b"".join(struct.pack("<dI", t, len(d)) + d for t, d in RECORDS)

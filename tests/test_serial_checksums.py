@@ -14,7 +14,7 @@ from crankbeat.logger.serial.checksums import crc16_ccitt_false, sum8, xor8
 
 
 def test_crc16_ccitt_false_check_value():
-    # Check value 0x29B1 over b"123456789": RIG.md, and the CRC catalogue entry for
+    # Check value 0x29B1 over b"123456789": docs/rig.md, and the CRC catalogue entry for
     # CRC-16/CCITT-FALSE (a.k.a. CRC-16/IBM-3740), from memory.
     assert crc16_ccitt_false(b"123456789") == 0x29B1
 

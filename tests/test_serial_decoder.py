@@ -3,7 +3,7 @@
 The simulated board below samples at 2 kHz on its own clock (30 ppm off the host clock, common
 practice for a crystal), its port reads arrive 1-16 ms apart with 0-3 ms of jitter; the bytes go
 through a real capture file and come back in arbitrary batches. Truth: each sample's instant on
-the host clock, and the acceleration counts that were encoded (RIG.md: 1/2048 g per bit).
+the host clock, and the acceleration counts that were encoded (docs/rig.md: 1/2048 g per bit).
 """
 
 from __future__ import annotations

@@ -15,7 +15,7 @@ from crankbeat.logger.serial.frames import FrameLayout, encode_frames
 
 
 def test_m1_frame_bytes_match_struct_layout():
-    # RIG.md table: sync A5 5A | seq u16 LE | time u32 LE | ax ay az i16 LE | CRC over 2..13 LE.
+    # docs/rig table: sync A5 5A | seq u16 LE | time u32 LE | ax ay az i16 LE | CRC over 2..13 LE.
     seq = np.array([0, 1, 65535, 65536 + 7])
     t = np.array([0, 500, 2**32 - 1, 2**32 + 12])
     acc = np.array([[0, 0, 2048], [-1, 2, -2048], [32767, -32768, 5], [1, 2, 3]])

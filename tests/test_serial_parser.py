@@ -193,7 +193,7 @@ def test_frame_split_across_reads_gets_time_of_completing_read():
 
 
 def test_sequence_and_device_time_unwrap():
-    # Sequence wraps at 65536, device time (µs, u32) wraps at 2^32 (RIG.md).
+    # Sequence wraps at 65536, device time (µs, u32) wraps at 2^32 (docs/rig.md).
     n = 400
     seq0, t0 = 65536 - 100, 2**32 - 30_000
     stream, _ = _frames(Larch, n, seq0=seq0, t0=t0)

@@ -14,7 +14,7 @@ from pathlib import Path
 
 from crankbeat.logger.rig.model import Checksum, SerialField, SerialSensor
 
-_G = 1.0 / 2048.0  # RIG.md: 1/2048 g per bit
+_G = 1.0 / 2048.0  # docs/rig.md: 1/2048 g per bit
 
 Larch = SerialSensor(
     name="bar_left",

@@ -37,7 +37,7 @@ def twins():
 
 
 def test_primary_force_of_a_360_twin_and_not_of_a_180_twin(twins):
-    # Textbook balance (REFERENCES.md; Heywood, Taylor vol. 2, from memory): a 360° twin has a
+    # Textbook balance (tests/reference; Heywood, Taylor vol. 2, from memory): a 360° twin has a
     # primary force 2·m·r·ω², a 180° twin none (only a primary couple m·r·ω²·a, which reaches
     # the bar through the small rocking path).
     a360 = _order_amplitude(twins["twin-360"], 1, 2)
@@ -46,7 +46,7 @@ def test_primary_force_of_a_360_twin_and_not_of_a_180_twin(twins):
 
 
 def test_secondary_force_is_the_same_for_both_twins(twins):
-    # Both have the secondary force 2·λ·m·r·ω² (REFERENCES.md), no secondary couple.
+    # Both have the secondary force 2·λ·m·r·ω² (tests/reference/README.md), no secondary couple.
     a360 = _order_amplitude(twins["twin-360"], 2, 2)
     a180 = _order_amplitude(twins["twin-180"], 2, 2)
     assert a180 == pytest.approx(a360, rel=0.2)
@@ -60,7 +60,7 @@ def test_bar_level_and_gravity():
     assert np.mean(xyz[:, 2]) == pytest.approx(1.0, abs=0.05)
     rms = np.std(xyz, axis=0)
     assert 0.3 < rms[2] < 5.0
-    assert np.all(np.abs(xyz) < 16.0)  # inside the ±16 g range of the board (RIG.md)
+    assert np.all(np.abs(xyz) < 16.0)  # inside the ±16 g range of the board (docs/rig.md)
 
 
 def test_rough_road_shakes_the_sensor_and_the_crank():

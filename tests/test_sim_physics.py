@@ -126,7 +126,7 @@ def test_misfire_shows_a_speed_drop_in_the_following_expansion_window():
     ride = _steady(4000, 20.0, 3, faults=(Fault("misfire", 2, cycles=cycles),))
     ev = ride.events
     assert set(ev["cycle"][~ev["fired"]]) == set(c for c in cycles if c in set(ev["cycle"]))
-    fire = {1: 0.0, 2: 270.0}  # RIG.md: cylinder 2 fires 270° after cylinder 1
+    fire = {1: 0.0, 2: 270.0}  # docs/rig.md: cylinder 2 fires 270° after cylinder 1
     tdc = 720.0 * ev["cycle"] + np.vectorize(fire.get)(ev["cylinder"])
     th = np.radians(ride.tooth_angle)
     w0 = np.interp(np.radians(tdc + 10), th, ride.tooth_omega)

@@ -1,4 +1,4 @@
-"""Scenario files, the ride profile and the simulated wheel, against RIG.md and layout facts."""
+"""Scenario files, the ride profile and the simulated wheel, against docs/rig and layout facts."""
 
 from __future__ import annotations
 
@@ -147,7 +147,7 @@ def _steady(rpm=3000, **kw):
 
 
 def test_wheel_edges_and_cam_window_follow_rig_md():
-    # RIG.md: 60-2 wheel, tooth 0 first after the gap, cylinder 1 TDC 96° after tooth 0's edge
+    # docs/rig.md: 60-2 wheel, tooth 0 first after the gap, cylinder 1 TDC 96° after tooth 0's edge
     # (= tooth 16's edge, 16 × 6°); cylinder 2 fires 270° later (= tooth 1 of the next
     # revolution, 366°); cam level 1 during the revolution holding cylinder 1's firing TDC.
     ride = simulate(Larch, _steady())
@@ -181,7 +181,7 @@ def test_wheel_errors_are_seeded_and_move_the_edges():
 
 @pytest.mark.parametrize("layout", ["twin-360", "twin-180", "twin-270", "vtwin-90"])
 def test_true_layout_sets_the_firing_intervals(layout):
-    # Intervals of the common layouts (DESIGN.md, common practice): 360/360, 180/540, 270/450, and
+    # Intervals of the common layouts (common practice): 360/360, 180/540, 270/450, and
     # a 90° V-twin like a 270° twin; taken here from the truth's TDC times at steady speed.
     sc = _steady(rpm=2400, engine=EngineSpec(true_layout=layout))
     ride = simulate(Larch, sc)

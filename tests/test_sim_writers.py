@@ -69,7 +69,7 @@ def _cantools_message(msg):
 
 @pytest.mark.parametrize("fmt", [".log", ".asc", ".blf", ".csv", ".trc", ".log.gz", ".asc.gz"])
 def test_python_can_reads_back_every_frame(ride, frames, tmp_path, fmt):
-    # Reference: python-can's own LogReader for each format (DESIGN.md lists the quirks: .asc
+    # Reference: python-can's own LogReader for each format (the quirks: .asc
     # timestamps are relative to the first frame unless asked otherwise).
     path = write_can(ride, tmp_path / f"r{fmt}", frames=frames)
     with can.LogReader(path) as reader:
@@ -95,7 +95,7 @@ def test_unwritable_formats_are_refused(ride, tmp_path):
 
 
 def test_tooth_frames_decode_with_cantools(ride, frames):
-    # Reference bit layout: cantools, from the rig's signal definitions (RIG.md: three uint16
+    # Reference bit layout: cantools, from the rig's signal definitions (docs/rig.md: three uint16
     # periods at 0.25 µs, oldest first, rolling counter in byte 0, cam in byte 1 bit 0).
     msg = Larch.message_for("tooth_periods")
     ref = _cantools_message(msg)
@@ -108,7 +108,7 @@ def test_tooth_frames_decode_with_cantools(ride, frames):
     assert np.all(np.diff(counters) % 256 == 1)
     cam = np.array([d["cam_level"] for d in dec])
     assert np.array_equal(cam, ride.tooth_cam[1:][2 : 3 * len(dec) : 3])
-    # The gap period is about 3 of its neighbours (RIG.md, common practice for 60-2).
+    # The gap period is about 3 of its neighbours (docs/rig.md, common practice for 60-2).
     teeth = ride.tooth_number[1 : 1 + 3 * len(dec)]
     p = true.ravel()
     gap = p[teeth == 0]
@@ -161,8 +161,8 @@ def test_live_iterators_match_the_files(ride, frames, tmp_path):
 
 
 def test_capture_frames_carry_valid_crc_and_the_true_samples(ride, tmp_path):
-    # CRC-16/CCITT-FALSE over bytes 2..13 (RIG.md); binascii.crc_hqx(data, 0xFFFF) computes it
-    # (REFERENCES.md: check value 0x29B1 over "123456789").
+    # CRC-16/CCITT-FALSE over bytes 2..13 (docs/rig.md); binascii.crc_hqx(data, 0xFFFF) computes it
+    # (tests/reference/README.md: check value 0x29B1 over "123456789").
     assert binascii.crc_hqx(b"123456789", 0xFFFF) == 0x29B1
     paths = write_ride(ride, tmp_path)
     with CaptureReader(paths.captures["bar_left"]) as r:

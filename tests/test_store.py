@@ -8,7 +8,7 @@ import sqlite3
 import numpy as np
 import pytest
 import sqlite_utils
-from test_store_fill import counts, fill_run, m1_like_rig, make_events
+from test_store_fill import counts, fill_run, larch_like_rig, make_events
 
 from crankbeat.dsp.events import EVENT_DTYPE, MISFIRE
 from crankbeat.errors import RunNotFoundError, StoreError, UsageError
@@ -40,7 +40,7 @@ def test_new_store_has_every_table_wal_and_version(tmp_path):
 def test_events_round_trip_every_field_and_nan(tmp_path):
     ev = make_events(300)
     with Store.open(tmp_path / "p.db") as st:
-        run = st.begin_run(m1_like_rig(), label="a")
+        run = st.begin_run(larch_like_rig(), label="a")
         # Two chunks, as the live pipeline writes them.
         st.add_events(run, ev[:101])
         st.add_events(run, ev[101:])
@@ -58,7 +58,7 @@ def test_events_seen_by_an_independent_reader_only_after_commit(tmp_path):
     ev = make_events(50)
     st = Store.open(path)
     try:
-        run = st.begin_run(m1_like_rig())
+        run = st.begin_run(larch_like_rig())
         st.add_events(run, ev)
         other = sqlite_utils.Database(path)
         try:
@@ -76,7 +76,7 @@ def test_events_seen_by_an_independent_reader_only_after_commit(tmp_path):
 def test_add_events_rejects_a_foreign_array(tmp_path):
     bad = np.zeros(3, dtype=[("t", "f8"), ("cylinder", "i2")])
     with Store.open(tmp_path / "p.db") as st:
-        run = st.begin_run(m1_like_rig())
+        run = st.begin_run(larch_like_rig())
         with pytest.raises(StoreError, match="lacks field"):
             st.add_events(run, bad)
         with pytest.raises(RunNotFoundError):
@@ -102,7 +102,7 @@ def test_finish_run_stores_plain_json(tmp_path):
     summary = {"rate": np.float64(1.5), "n": np.int64(3), "bad": float("nan"),
                "arr": np.arange(3), "nested": {"t": (1.0, float("inf"))}}
     with Store.open(tmp_path / "p.db") as st:
-        run = st.begin_run(m1_like_rig())
+        run = st.begin_run(larch_like_rig())
         st.finish_run(run, summary)
     reader = sqlite_utils.Database(tmp_path / "p.db")
     try:
@@ -118,12 +118,12 @@ def test_finish_run_stores_plain_json(tmp_path):
 
 def test_find_run_by_sources_matches_the_whole_set_in_any_order(tmp_path):
     with Store.open(tmp_path / "p.db") as st:
-        run = st.begin_run(m1_like_rig(), sources=[("a.log", "aa", "can"),
+        run = st.begin_run(larch_like_rig(), sources=[("a.log", "aa", "can"),
                                                    ("b.acraw", "bb", "accel:bar_left")])
         assert st.find_run_by_sources(["bb", "aa"]) == run
         assert st.find_run_by_sources(["aa"]) is None
         assert st.find_run_by_sources(["aa", "bb", "cc"]) is None
-        again = st.begin_run(m1_like_rig(), sources=[("a.log", "aa"), ("b.acraw", "bb")])
+        again = st.begin_run(larch_like_rig(), sources=[("a.log", "aa"), ("b.acraw", "bb")])
         assert st.find_run_by_sources(["aa", "bb"]) == again  # the newest
 
 
@@ -133,15 +133,15 @@ def test_sources_record_size_and_hash(tmp_path):
     # FIPS 180-2 appendix B.1 test vector: SHA-256("abc").
     assert sha256_file(f) == "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
     with Store.open(tmp_path / "p.db") as st:
-        run = st.begin_run(m1_like_rig(), sources=[(str(f), sha256_file(f), "can")])
+        run = st.begin_run(larch_like_rig(), sources=[(str(f), sha256_file(f), "can")])
         (src,) = st.run(run)["sources"]
     assert src["bytes"] == 3 and src["kind"] == "can"
 
 
 def test_rig_text_is_kept_once_per_version(tmp_path):
     with Store.open(tmp_path / "p.db") as st:
-        a = st.begin_run(m1_like_rig())
-        b = st.begin_run(m1_like_rig())
+        a = st.begin_run(larch_like_rig())
+        b = st.begin_run(larch_like_rig())
         text = st.rig_toml(a)
         assert st.db["rigs"].count == 1
         assert st.rig_toml(b) == text
@@ -168,7 +168,7 @@ def test_summary_rows_in_every_accepted_shape(tmp_path):
     arr["index"], arr["cylinder"], arr["events"], arr["misfires"] = [0, 1], 1, 400, [4, 0]
     arr["rate"] = [1.0, 0.0]
     with Store.open(tmp_path / "p.db") as st:
-        run = st.begin_run(m1_like_rig())
+        run = st.begin_run(larch_like_rig())
         st.add_windows(run, arr, kind="rev200")
         st.add_windows(run, {"kind": ["rpm-band"], "band": ["5000-5500"], "cylinder": [0],
                              "events": [10], "misfires": [1], "rate": [10.0]})
@@ -198,14 +198,18 @@ def test_summary_rows_in_every_accepted_shape(tmp_path):
 
 def test_resolve_run_by_id_label_and_last(tmp_path):
     with Store.open(tmp_path / "p.db") as st:
-        with pytest.raises(RunNotFoundError, match="no runs yet"):
+        with pytest.raises(RunNotFoundError, match="no run with events yet"):
             st.resolve_run("last")
-        a = st.begin_run(m1_like_rig(), label="warm-up")
-        b = st.begin_run(m1_like_rig(), label="dup")
-        c = st.begin_run(m1_like_rig(), label="dup")
+        a = st.begin_run(larch_like_rig(), label="warm-up")
+        b = st.begin_run(larch_like_rig(), label="dup")
+        c = st.begin_run(larch_like_rig(), label="dup")
         assert st.resolve_run(str(a)) == a
         assert st.resolve_run("warm-up") == a
-        assert st.resolve_run("last") == c
+        # "last" is the newest run holding events: a failed replay (no events) is passed over
+        with pytest.raises(RunNotFoundError, match="no run with events yet"):
+            st.resolve_run("last")
+        st.add_events(b, make_events(20))
+        assert st.resolve_run("last") == b
         with pytest.raises(RunNotFoundError, match=f"runs {b}, {c}"):
             st.resolve_run("dup")
         with pytest.raises(RunNotFoundError, match="'nope'") as info:
@@ -261,7 +265,7 @@ def test_dsp_results_are_stored_as_they_come(tmp_path):
     from crankbeat.dsp.analysis import window_rates
     from crankbeat.dsp.intervals import interval_check
 
-    rig = m1_like_rig()
+    rig = larch_like_rig()
     ev = make_events(1500, misfire_every={2: 10}, interval_offset={2: 1.0}, special=False)
     windows, per_cyl = window_rates(ev, revolutions=1000, engine=rig.engine)
     results = interval_check(ev, rig.engine, tolerance_deg=3.0)
@@ -278,7 +282,7 @@ def test_dsp_results_are_stored_as_they_come(tmp_path):
     assert [w["misfires"] for w in whole] == [50, 50, 50]
     assert [w["idx"] for w in cyl2] == [0, 1, 2]
     assert all(w["rate"] == pytest.approx(10.0) for w in cyl2)  # every 10th cycle, arithmetic
-    # RIG.md: 270 deg from cylinder 1 to 2; the synthetic offset of +1 deg is seen
+    # docs/rig.md: 270 deg from cylinder 1 to 2; the synthetic offset of +1 deg is seen
     assert iv[(1, 2)]["expected_deg"] == 270.0
     assert iv[(1, 2)]["observed_deg"] == pytest.approx(271.0, abs=0.1)
     assert iv[(2, 1)]["observed_deg"] == pytest.approx(450.0, abs=0.1)
@@ -305,7 +309,7 @@ def test_mask_events_changes_only_judged_events_inside_spans(tmp_path):
 
 def test_update_run_fields(tmp_path):
     with Store.open(tmp_path / "p.db") as st:
-        run = st.begin_run(m1_like_rig(), label="a", started_at="2026-01-01T00:00:00+00:00")
+        run = st.begin_run(larch_like_rig(), label="a", started_at="2026-01-01T00:00:00+00:00")
         # 1767225600 s after the Unix epoch is 2026-01-01T00:00:00Z (date arithmetic)
         st.update_run(run, started_at=1767225600.0 + 86400.0, notes="wet")
         info = st.run(run)
@@ -336,7 +340,7 @@ def test_add_events_matches_fields_by_name(tmp_path):
     for n in names:
         shuffled[n] = ev[n]
     with Store.open(tmp_path / "p.db") as st:
-        run = st.begin_run(m1_like_rig())
+        run = st.begin_run(larch_like_rig())
         st.add_events(run, shuffled)
         back = st.events(run)
     for n in EVENT_DTYPE.names:

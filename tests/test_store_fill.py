@@ -1,6 +1,6 @@
 """Synthetic runs for the store, CLI and report tests (no tests in this file).
 
-Events of an Larch-like 270° twin (RIG.md: cylinder 2 fires 270° after cylinder 1, then 450° back
+Events of an Larch-like 270° twin (docs/rig: cylinder 2 fires 270° after cylinder 1, then 450° back
 to cylinder 1), with misfires placed at known events so every count is known exactly.
 """
 
@@ -13,11 +13,11 @@ from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.events import FIRED, FUEL_CUT, MASKED, MISFIRE, UNUSABLE, empty_events
 from crankbeat.logger.rig.model import CanBus, Rig
 
-# RIG.md: 270° crank twin -> intervals 270 (1->2) and 450 (2->1); common practice.
+# docs/rig.md: 270° crank twin -> intervals 270 (1->2) and 450 (2->1); common practice.
 EXPECTED = {1: 450.0, 2: 270.0}  # interval ending at this cylinder's firing
 
 
-def m1_like_rig() -> Rig:
+def larch_like_rig() -> Rig:
     """A rig object carrying the Larch preset's file text (source "preset:larch")."""
     engine = Engine(name="twin-270", stroke_cycle=4, pin_deg=(0.0, 270.0), bank_deg=(0.0, 0.0),
                     position_m=(-0.04, 0.04), firing_order=(1, 2))
@@ -69,7 +69,7 @@ def make_events(n_cycles: int = 2000, *, misfire_every: dict[int, int] | None = 
 
 def fill_run(store, ev, *, label=None, odometer_km=None, started_at=None, sources=(),
              vibration=None, status="complete") -> int:
-    run_id = store.begin_run(m1_like_rig(), label=label, odometer_km=odometer_km,
+    run_id = store.begin_run(larch_like_rig(), label=label, odometer_km=odometer_km,
                              started_at=started_at, sources=sources)
     store.add_events(run_id, ev)
     if vibration is not None:

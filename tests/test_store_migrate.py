@@ -87,9 +87,9 @@ def test_migrated_file_takes_new_runs_and_reopens_unchanged(tmp_path):
     ddl_before = sorted(r[0] for r in conn.execute("SELECT sql FROM sqlite_master") if r[0])
     conn.close()
     with Store.open(path) as st:  # second open: nothing left to migrate
-        from test_store_fill import m1_like_rig, make_events
+        from test_store_fill import larch_like_rig, make_events
 
-        run = st.begin_run(m1_like_rig(), sources=[("n.log", "cccc")])
+        run = st.begin_run(larch_like_rig(), sources=[("n.log", "cccc")])
         st.add_events(run, make_events(20))
         st.add_order_map(run, sensor="bar_left", rpm_lo=[3000], rpm_hi=[3500], orders=[1.0],
                          amplitude=[[0.4]])

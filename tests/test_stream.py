@@ -11,7 +11,7 @@ from pathlib import Path
 import can
 import numpy as np
 import pytest
-from conftest import m1_frames, m1_serial
+from conftest import larch_frames, larch_serial
 
 import crankbeat.logger.stream as stream_mod
 from crankbeat.errors import FormatError, SourceError, UsageError
@@ -57,11 +57,11 @@ def assert_same_chunks(a, b, *, accel=True):
 def _write_ride(tmp_path, rig, seconds=2.0):
     log = tmp_path / "r.log"
     with can.Logger(str(log)) as w:
-        for m in m1_frames(rig, seconds=seconds, extra_ids=True):
+        for m in larch_frames(rig, seconds=seconds, extra_ids=True):
             w.on_message_received(m)
     acc = tmp_path / "r.acraw"
     with CaptureWriter(acc) as w:
-        for t, b in m1_serial(rig, seconds=seconds):
+        for t, b in larch_serial(rig, seconds=seconds):
             w.write(t, b)
     return log, acc
 
@@ -127,7 +127,7 @@ def test_progress_and_health_snapshots(tmp_path, larch):
         done, total = s.progress
     assert total == log.stat().st_size and done == total
     frames = [h for _, h in seen]
-    assert frames == sorted(frames) and frames[-1] == len(m1_frames(larch, seconds=1.0,
+    assert frames == sorted(frames) and frames[-1] == len(larch_frames(larch, seconds=1.0,
                                                                     extra_ids=True))
 
 

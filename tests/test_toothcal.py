@@ -18,7 +18,7 @@ import pytest
 
 sys.path.insert(0, str(Path(__file__).parent))
 from test_crank import (  # noqa: E402
-    M1_WHEEL,
+    LARCH_WHEEL,
     TWIN_270,
     firing_speed,
     m1_scenario,
@@ -70,9 +70,9 @@ def motoring_speed(rpm_start: float, rpm_end: float, phi_span: float, engine: En
 
 def coast_down(engine, err, seed, *, revs=150, rpm=(9000.0, 2500.0)):
     phi_end = 360.0 * revs
-    tr = tooth_edges(motoring_speed(*rpm, phi_end, engine), phi_end, M1_WHEEL, errors_deg=err,
+    tr = tooth_edges(motoring_speed(*rpm, phi_end, engine), phi_end, LARCH_WHEEL, errors_deg=err,
                      step_deg=0.05)
-    fr = make_frames(tr, M1_WHEEL, seed=seed)
+    fr = make_frames(tr, LARCH_WHEEL, seed=seed)
     return run(fr, engine=engine)
 
 
@@ -86,7 +86,7 @@ def coasts():
 def test_learnt_errors_match_the_wheel(coasts, engine):
     err, outs = coasts
     out = outs[engine.name]
-    res = learn_tooth_errors(out, np.ones(len(out), bool), M1_WHEEL, engine)
+    res = learn_tooth_errors(out, np.ones(len(out), bool), LARCH_WHEEL, engine)
     miss = np.sqrt(np.mean((res.error_deg - err) ** 2))
     rms_true = np.sqrt(np.mean(err**2))
     print(f"{engine.name}: rms error {rms_true:.4f} deg, rms miss {miss:.5f} deg, "
@@ -105,8 +105,8 @@ def test_inertia_model_is_what_separates_teeth_from_the_reciprocating_swing(coas
     err, outs = coasts
     out = outs[TWIN_270.name]
     mask = np.ones(len(out), bool)
-    with_model = learn_tooth_errors(out, mask, M1_WHEEL, TWIN_270)
-    without = learn_tooth_errors(out, mask, M1_WHEEL, TWIN_270, inertia="none")
+    with_model = learn_tooth_errors(out, mask, LARCH_WHEEL, TWIN_270)
+    without = learn_tooth_errors(out, mask, LARCH_WHEEL, TWIN_270, inertia="none")
     miss = lambda r: np.sqrt(np.mean((r.error_deg - err) ** 2))
     assert miss(without) > 10 * miss(with_model)
 
@@ -114,8 +114,8 @@ def test_inertia_model_is_what_separates_teeth_from_the_reciprocating_swing(coas
 def test_chunked_pushes_and_time_spans(coasts):
     err, outs = coasts
     out = outs[TRIPLE.name]
-    whole = learn_tooth_errors(out, np.ones(len(out), bool), M1_WHEEL, TRIPLE)
-    learner = ToothErrorLearner(M1_WHEEL, TRIPLE)
+    whole = learn_tooth_errors(out, np.ones(len(out), bool), LARCH_WHEEL, TRIPLE)
+    learner = ToothErrorLearner(LARCH_WHEEL, TRIPLE)
     rng = np.random.default_rng(3)
     cuts = np.sort(rng.integers(0, len(out), 25))
     for a, b in zip(np.concatenate(([0], cuts)), np.concatenate((cuts, [len(out)]))):
@@ -127,7 +127,7 @@ def test_chunked_pushes_and_time_spans(coasts):
     np.testing.assert_allclose(res.error_deg, whole.error_deg, atol=1e-9)
     # only the spans given count
     half = out.t[len(out) // 2]
-    learner = ToothErrorLearner(M1_WHEEL, TRIPLE)
+    learner = ToothErrorLearner(LARCH_WHEEL, TRIPLE)
     learner.push(out, np.array([[out.t[0], half]]))
     assert abs(learner.result().n_revolutions - whole.n_revolutions / 2) <= 3
 
@@ -135,7 +135,7 @@ def test_chunked_pushes_and_time_spans(coasts):
 def test_one_speed_only_lowers_confidence():
     err = wheel_errors(4)
     out = coast_down(TRIPLE, err, seed=5, revs=60, rpm=(4000.0, 3900.0))
-    res = learn_tooth_errors(out, np.ones(len(out), bool), M1_WHEEL, TRIPLE)
+    res = learn_tooth_errors(out, np.ones(len(out), bool), LARCH_WHEEL, TRIPLE)
     # at one speed the air spring's 1/omega^2 and the teeth cannot be told apart
     assert res.confidence < 0.5
 
@@ -157,10 +157,10 @@ def _segment_spread(out, engine, window=(0.0, 120.0)):
 def test_correction_reduces_the_spread_of_the_fired_metric(coasts):
     err, outs = coasts
     learnt = learn_tooth_errors(outs[TRIPLE.name], np.ones(len(outs[TRIPLE.name]), bool),
-                                M1_WHEEL, TRIPLE)
+                                LARCH_WHEEL, TRIPLE)
     # a fired run at a steady 5000 rpm, same wheel: identical cylinders on different teeth
-    tr = tooth_edges(firing_speed(5000.0, TRIPLE), 360.0 * 60, M1_WHEEL, errors_deg=err)
-    fr = make_frames(tr, M1_WHEEL, seed=6)
+    tr = tooth_edges(firing_speed(5000.0, TRIPLE), 360.0 * 60, LARCH_WHEEL, errors_deg=err)
+    fr = make_frames(tr, LARCH_WHEEL, seed=6)
     raw = _segment_spread(run(fr, engine=TRIPLE), TRIPLE)
     fixed = _segment_spread(run(fr, engine=TRIPLE, tooth_correction_deg=learnt.error_deg),
                             TRIPLE)
@@ -171,7 +171,7 @@ def test_correction_reduces_the_spread_of_the_fired_metric(coasts):
 
 
 def test_bad_input():
-    learner = ToothErrorLearner(M1_WHEEL, TRIPLE)
+    learner = ToothErrorLearner(LARCH_WHEEL, TRIPLE)
     res = learner.result()
     assert res.n_revolutions == 0 and res.confidence == 0.0
     from crankbeat.dsp.crank import CrankAngles
@@ -181,7 +181,7 @@ def test_bad_input():
     with pytest.raises(InputError, match="no_combustion must be"):
         learner.push(a, np.ones(5, bool))
     with pytest.raises(InputError, match="inertia"):
-        ToothErrorLearner(M1_WHEEL, TRIPLE, inertia="maybe")
+        ToothErrorLearner(LARCH_WHEEL, TRIPLE, inertia="maybe")
 
 
 def test_simulated_m1_overrun():

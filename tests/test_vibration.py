@@ -176,7 +176,7 @@ def twins():
 
 
 def test_simulated_twins_show_the_predicted_orders(twins):
-    # Balance of two-cylinder layouts (REFERENCES.md; Heywood, Taylor; from memory, checked
+    # Balance of two-cylinder layouts (tests/reference; Heywood, Taylor; from memory, checked
     # numerically): 360° twin primary force 2·m·r·ω²; 180° twin no primary force (couple
     # only);
     # 270° twin √2·m·r·ω². Firing 360/360 gives whole orders only; 180/540 and 270/450 add

@@ -22,14 +22,14 @@ from crankbeat.dsp.weighting import (
 from crankbeat.errors import InputError
 
 # ISO 5349-1:2001, Table A.2 (Wh at one-third-octave centres), as transcribed in
-# /work/shared/REFERENCES.md; the standard rounds them to 3 significant figures.
+# tests/reference/README.md; the standard rounds them to 3 significant figures.
 WH_TABLE_A2 = {
     6.3: 0.727, 8: 0.873, 10: 0.951, 12.5: 0.958, 16: 0.896, 20: 0.782, 25: 0.647, 31.5: 0.519,
     40: 0.411, 50: 0.324, 63: 0.256, 80: 0.202, 100: 0.160, 125: 0.127, 160: 0.101,
     200: 0.0799, 250: 0.0634, 315: 0.0503, 400: 0.0398, 500: 0.0314, 630: 0.0245, 800: 0.0186,
     1000: 0.0135, 1250: 0.00894,
 }
-# ISO 2631-1:1997, Table 3 (factors x 1000), transcribed from a secondary source (REFERENCES.md).
+# ISO 2631-1:1997, Table 3 (factors x 1000), transcribed from a secondary source (tests/reference).
 ISO2631_TABLE3_HZ = (0.5, 1, 2, 4, 5, 6.3, 8, 10, 12.5, 16, 31.5, 80)
 WK_TABLE3 = (418, 482, 531, 967, 1039, 1054, 1036, 988, 902, 768, 405, 132)
 WD_TABLE3 = (853, 1011, 890, 512, 409, 323, 253, 212, 161, 125, 63.2, 21.1)

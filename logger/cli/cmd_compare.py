@@ -4,7 +4,10 @@ from __future__ import annotations
 
 import argparse
 
+from crankbeat.dsp.layout import layout_signature
+from crankbeat.errors import UsageError
 from crankbeat.logger.cli.common import add_store_argument, fmt, open_store, print_json, table
+from crankbeat.logger.figures import cylinder_name, cylinder_pairs, run_engine
 from crankbeat.logger.store import Store
 
 NAME = "compare"
@@ -66,16 +69,34 @@ def comparison(store: Store, a: int, b: int) -> dict:
             "vibration": vibration}
 
 
+def same_engine(store: Store, a: int, b: int) -> str | None:
+    """None when the two runs' engines fire alike; else why their rows do not correspond."""
+    ea, eb = run_engine(store, a), run_engine(store, b)
+    ra, rb = store.run(a)["rig"], store.run(b)["rig"]
+    if ea.n_cylinders != eb.n_cylinders or layout_signature(ea) != layout_signature(eb):
+        return (f"run {a} is rig '{ra}' ({ea.name}, {ea.n_cylinders} cylinders) and run {b} is "
+                f"rig '{rb}' ({eb.name}, {eb.n_cylinders} cylinders): their cylinders and "
+                "firing intervals do not correspond; compare runs of one engine layout")
+    return None
+
+
 def run(args: argparse.Namespace) -> int:
     with open_store(args) as store:
         a, b = store.resolve_run(args.run_a), store.resolve_run(args.run_b)
+        why = same_engine(store, a, b)
+        if why:
+            raise UsageError(why)
         cmp = comparison(store, a, b)
+        # a cylinder whose phase is unknown in either run is named with its 360° partner
+        pairs = cylinder_pairs(store, a) or cylinder_pairs(store, b)
     if args.json:
         for side in ("a", "b"):
             cmp[side].pop("summary", None)
         print_json(cmp)
         return 0
     ra, rb = cmp["a"], cmp["b"]
+    if ra["rig"] != rb["rig"]:
+        print(f"note: rigs differ ('{ra['rig']}' and '{rb['rig']}'), same engine layout")
     print(f"A = run {a} ({ra['label'] or ra['started_at']}), B = run {b} "
           f"({rb['label'] or rb['started_at']}); diff = B - A")
     print()
@@ -83,7 +104,7 @@ def run(args: argparse.Namespace) -> int:
     print(table(
         ["cyl", "rate% A", "rate% B", "diff", "contrib A", "contrib B", "diff",
          "int.err A", "int.err B", "diff"],
-        [[c["cylinder"],
+        [[cylinder_name(c["cylinder"], pairs),
           fmt(c["rate_pct_a"]), fmt(c["rate_pct_b"]), fmt(c["rate_pct_diff"], "+.2f"),
           fmt(c["contribution_a"], ".3f"), fmt(c["contribution_b"], ".3f"),
           fmt(c["contribution_diff"], "+.3f"),

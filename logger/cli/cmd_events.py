@@ -10,6 +10,7 @@ from crankbeat.dsp.events import VERDICT_NAMES
 from crankbeat.errors import UsageError
 from crankbeat.logger.cli.common import add_store_argument, open_store
 from crankbeat.logger.export.table import EVENT_COLUMNS as COLUMNS
+from crankbeat.logger.figures import run_engine
 
 NAME = "events"
 HELP = ("write every firing event of a run (CSV, JSON, JSON lines, Parquet, MDF4), masked and "
@@ -43,6 +44,11 @@ def run(args: argparse.Namespace) -> int:
         suffix = f".{args.format}"
     with open_store(args) as store:
         run_id = store.resolve_run(args.run)
+        if args.cylinder is not None:
+            n_cyl = run_engine(store, run_id).n_cylinders
+            if args.cylinder > n_cyl:
+                raise UsageError(f"--cylinder {args.cylinder}: run {run_id} is of a "
+                                 f"{n_cyl}-cylinder engine (cylinders 1..{n_cyl})")
         ev = store.events(run_id, cylinder=args.cylinder, verdict=args.verdict)
         meta = run_meta(store, run_id)
         # a container format takes the run's time channels beside the events

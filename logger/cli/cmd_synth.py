@@ -70,6 +70,24 @@ def quick_scenario(args: argparse.Namespace):
                     rig=args.rig)
 
 
+def check_against_rig(sc, rig) -> None:
+    """Faults on cylinders the engine has, speeds within its rev limit: else one clear line."""
+    n_cyl = rig.engine.n_cylinders
+    for fault in sc.faults:
+        cyl = getattr(fault, "cylinder", None)
+        if isinstance(cyl, int) and not 1 <= cyl <= n_cyl:
+            raise UsageError(f"misfire cylinder {cyl}: rig '{rig.name}' has {n_cyl} cylinders "
+                             f"(1..{n_cyl})")
+    limit = rig.limits.rev_limit_rpm
+    for i, seg in enumerate(sc.segments, start=1):
+        rpm = getattr(seg, "rpm", None) or ()
+        if any(r > limit for r in rpm):
+            raise UsageError(f"segment {i}: {max(rpm):g} rpm is above the rev limit of rig "
+                             f"'{rig.name}' ({limit:g} rpm, [limits] rev_limit_rpm)")
+        if any(r <= 0 for r in rpm):
+            raise UsageError(f"segment {i}: rpm must be above 0, got {min(rpm):g}")
+
+
 class _Progress:
     """A one-line progress display on stderr (only when it is a terminal or asked for)."""
 
@@ -104,6 +122,7 @@ def run(args: argparse.Namespace) -> int:
     rig_spec = args.rig or sc.rig or "larch"
     rig = load_rig(rig_spec)
     sc = replace(sc, rig=rig_spec)
+    check_against_rig(sc, rig)
     progress = _Progress(not args.quiet and sys.stderr.isatty())
     ride = simulate(rig, sc, progress=progress)
     progress("writing", 1.0)

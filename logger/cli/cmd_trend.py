@@ -7,6 +7,7 @@ from pathlib import Path
 
 from crankbeat.logger.cli.common import add_store_argument, fmt, open_store, print_json, table
 from crankbeat.logger.store import METRICS
+from crankbeat.logger.store.labels import parse_tag
 
 NAME = "trend"
 HELP = "follow a metric across runs (misfire rate, interval error, bar vibration, contribution)"
@@ -17,6 +18,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("metric", metavar="METRIC", choices=sorted(METRICS),
                         help="one of: " + ", ".join(METRICS))
     parser.add_argument("--rig", help="only runs of this rig")
+    parser.add_argument("--tag", metavar="KEY=VALUE", action="append", default=[],
+                        help="only runs tagged so (see 'crankbeat tag'; may be repeated)")
     parser.add_argument("--cylinder", type=int, metavar="N", help="only cylinder N (from 1)")
     parser.add_argument("--rpm", metavar="LO-HI", help="only this rpm band, e.g. 5000-6000")
     parser.add_argument("--by", choices=("date", "odometer"), default="date",
@@ -32,7 +35,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     with open_store(args) as store:
         points = store.trend(args.metric, rig=args.rig, cylinder=args.cylinder,
-                             rpm_band=args.rpm, by=args.by, last=args.last)
+                             rpm_band=args.rpm, by=args.by, last=args.last,
+                             tags=dict(parse_tag(t) for t in args.tag))
         if args.plot:
             from crankbeat.logger.report.trend import plot_trend
 
@@ -45,6 +49,8 @@ def run(args: argparse.Namespace) -> int:
         print(f"no runs with {args.metric} data")
         return 0
     unit = METRICS[args.metric][0]
+    tags = "".join(f", tag {t}" for t in args.tag)
+    print(f"rig {points[0].rig}{tags}")
     x_head = "km" if args.by == "odometer" else "started"
     print(table(
         ["run", "label", x_head, "series", f"{args.metric}{f' [{unit}]' if unit else ''}", "n"],

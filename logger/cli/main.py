@@ -31,6 +31,8 @@ COMMANDS: tuple[str, ...] = (
     "crankbeat.logger.cli.cmd_channels",
     "crankbeat.logger.cli.cmd_trend",
     "crankbeat.logger.cli.cmd_compare",
+    "crankbeat.logger.cli.cmd_tag",
+    "crankbeat.logger.cli.cmd_delete",
     "crankbeat.logger.cli.cmd_report",
     "crankbeat.logger.cli.cmd_batch",
     "crankbeat.logger.cli.cmd_synth",
@@ -60,6 +62,7 @@ def build_parser() -> argparse.ArgumentParser:
         description="Ride-test analysis: misfire per cylinder, firing intervals, rider vibration.",
         epilog="example: crankbeat replay --rig larch --can ride.log --accel ride.bar_left.acraw",
     )
+    parser.add_argument("--version", action="version", version=f"crankbeat {_version()}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", title="commands")
     for mod in command_modules():
         p = sub.add_parser(
@@ -71,6 +74,15 @@ def build_parser() -> argparse.ArgumentParser:
         mod.add_arguments(p)
         p.set_defaults(_run=mod.run)
     return parser
+
+
+def _version() -> str:
+    try:
+        from importlib.metadata import version
+
+        return version("crankbeat")
+    except Exception:  # not installed (running from a source tree)
+        return "unknown"
 
 
 #: Exit code of an unexpected failure inside crankbeat (EX_SOFTWARE of sysexits.h).

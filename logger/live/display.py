@@ -18,13 +18,20 @@ from rich.table import Table
 from rich.text import Text
 
 #: Shown before every live ride, on the terminal and at the top of the display.
-CAUTION_LINES = (
+CAUTION_LINES = (  # each fits an 80-column terminal with its "CAUTION: " prefix
     "Ride only on a closed course, or on roads where this testing is legal.",
-    "Never operate the laptop while riding: read this screen only when stopped.",
-    "Secure the laptop, sensors and cables clear of the controls, chain and hot parts.",
-    "Sustained misfire can overheat the catalyst and start a fire: on the alert, stop safely.",
-    "Follow your local rules and your organisation's qualified test practice.",
+    "Never operate the laptop while riding: read this screen when stopped.",
+    "Secure the laptop, sensors and cables clear of controls, chain, heat.",
+    "Misfire can overheat the catalyst and start a fire: on alert, stop.",
+    "Follow local rules and your organisation's qualified test practice.",
 )
+
+
+#: Kept at the foot of the live screen at all times (the full cautions scroll away).
+CAUTION_FOOTER = "read only when stopped · on an alert stop safely · local rules apply"
+
+#: Added under a misfire alert: what to do, without overriding local rules or test practice.
+STOP_ADVICE = "Stop safely when the road allows (local rules, qualified test practice)."
 
 
 def caution_text() -> str:
@@ -70,6 +77,10 @@ class LiveState:
     synced: bool = True
     recording: str | None = None  # folder being recorded into
     notes: list[str] = field(default_factory=list)
+    # intervals are judged only once the wheel's tooth spacing errors are corrected (a stored
+    # correction, or one learnt on the ride's first fuel cut): before, they show the wheel
+    wheel_learnt: bool = True
+    vibration_weighting: dict[str, str] = field(default_factory=dict)  # sensor -> "Wh", "none"
 
 
 # Our own palette: amber for attention, deep red for the alert, teal for good.
@@ -133,37 +144,53 @@ class LiveDisplay:
         self.console.print(self.render(state))
 
     def alerts(self, state: LiveState) -> list[str]:
-        """One line per reason to stop and look: misfire over the limit, interval off, no sync."""
+        """One line per reason to stop: misfire over the limit, no crank sync."""
         out = []
-        for c in state.cylinders:
-            if c.rate200_pct is not None and c.rate200_pct > self.alert_pct:
-                out.append(f"MISFIRE ALERT cyl {c.cylinder}: {c.rate200_pct:.1f} % over 200 revs "
-                           f"(limit {self.alert_pct:g} %)")
-        for i in state.intervals:
-            if i.observed_deg is not None and abs(i.observed_deg - i.expected_deg) > \
-                    state.interval_tolerance_deg:
-                out.append(f"INTERVAL {i.from_cyl}>{i.to_cyl} {i.observed_deg:.1f} deg, expected "
-                           f"{i.expected_deg:.0f} +- {state.interval_tolerance_deg:g}")
+        over = [f"cyl {c.cylinder}: {c.rate200_pct:.1f} %" for c in state.cylinders
+                if c.rate200_pct is not None and c.rate200_pct > self.alert_pct]
+        if over:  # one line for all cylinders: the screen must hold a four's alerts
+            out.append(f"MISFIRE ALERT {', '.join(over)} over 200 revs "
+                       f"(limit {self.alert_pct:g} %)")
+            out.append(STOP_ADVICE)
         if not state.synced:
             out.append("NO CRANK SYNC: events are not being judged")
         return out
 
+    def notices(self, state: LiveState) -> list[str]:
+        """Firing intervals off the layout: worth a look when stopped, not a reason to stop.
+        None before the wheel is learnt (then the intervals show the wheel's own errors)."""
+        if not state.wheel_learnt:
+            return []
+        return [f"INTERVAL {i.from_cyl}>{i.to_cyl} {i.observed_deg:.1f} deg, expected "
+                f"{i.expected_deg:.0f} +- {state.interval_tolerance_deg:g}"
+                for i in state.intervals
+                if i.observed_deg is not None and abs(i.observed_deg - i.expected_deg) >
+                state.interval_tolerance_deg]
+
     def render(self, state: LiveState) -> RenderableType:
+        """The screen; it fits an 80 x 24 terminal (a four-cylinder rig with two notes)."""
         parts: list[RenderableType] = [self._headline(state)]
         alerts = self.alerts(state)
         if alerts:
-            parts.append(Panel(Text("\n".join(alerts), style=_ALERT), border_style="#9b1c1c"))
+            parts.append(Text("\n".join(alerts), style=_ALERT))
+        notices = self.notices(state)
+        if len(notices) > 2:  # a four's whole pattern off: one line, the table has the figures
+            notices = [f"INTERVALS OFF: {len(notices)} of {len(state.intervals)} beyond "
+                       f"+- {state.interval_tolerance_deg:g} deg (table below)"]
+        if notices:
+            parts.append(Text("\n".join(notices), style=_WARN))
         # Cylinders and intervals side by side: the whole screen fits a small laptop window.
-        row = Table.grid(padding=(0, 3))
+        row = Table.grid(padding=(0, 2))
         if state.intervals:
             row.add_row(self._cylinders(state), self._intervals(state))
         else:
             row.add_row(self._cylinders(state))
         parts.append(row)
         parts.append(self._health(state))
-        for note in state.notes[-3:]:
-            parts.append(Text(f"note: {note}", style=_DIM))
-        return Panel(Group(*parts), title="crankbeat ride", border_style="#2bb3a3")
+        for note in state.notes[-2:]:
+            parts.append(Text(f"note: {note}", style=_DIM, no_wrap=True, overflow="ellipsis"))
+        return Panel(Group(*parts), title="crankbeat ride", border_style="#2bb3a3",
+                     subtitle=Text(CAUTION_FOOTER, style=_WARN), padding=(0, 1))
 
     def _headline(self, s: LiveState) -> Text:
         rpm = "----" if s.rpm is None or not math.isfinite(s.rpm) else f"{s.rpm:5.0f}"
@@ -176,15 +203,18 @@ class LiveDisplay:
         if s.recording:
             t.append(f"   REC {s.recording}", style=_WARN)
         for sensor, rms in s.vibration.items():
-            t.append(f"\nvibration {sensor}: {rms:.2f} m/s² weighted", style="white")
+            kind = s.vibration_weighting.get(sensor, "weighted")
+            how = "unweighted (no rider weighting here)" if kind == "none" else kind
+            t.append(f"\nvibration {sensor}: {rms:.2f} m/s² {how}, last 2 s", style="white")
         return t
 
     def _cylinders(self, s: LiveState) -> Table:
-        tab = Table(title="misfires per cylinder", title_justify="left", box=box.SIMPLE_HEAD)
-        for col in ("cyl", "events", "misfires", "rate 200r", "contrib"):
-            tab.add_column(col, justify="right")
+        tab = Table(title="misfires per cylinder", title_justify="left", box=box.SIMPLE_HEAD,
+                    pad_edge=False, padding=(0, 1), show_edge=False)
+        for col in ("cyl", "events", "misf", "200r %", "contr"):
+            tab.add_column(col, justify="right", no_wrap=True)
         for c in s.cylinders:
-            rate = "-" if c.rate200_pct is None else f"{c.rate200_pct:.1f} %"
+            rate = "-" if c.rate200_pct is None else f"{c.rate200_pct:.1f}"
             over = c.rate200_pct is not None and c.rate200_pct > self.alert_pct
             style = _ALERT if over else (_OK if c.rate200_pct is not None else _DIM)
             contrib = "-" if c.contribution is None else f"{c.contribution:.2f}"
@@ -193,23 +223,28 @@ class LiveDisplay:
         return tab
 
     def _intervals(self, s: LiveState) -> Table:
-        tab = Table(title="firing intervals, deg", title_justify="left", box=box.SIMPLE_HEAD)
-        for col in ("pair", "expected", "observed", "check"):
-            tab.add_column(col, justify="right")
+        title = "firing intervals, deg" if s.wheel_learnt else "intervals: wheel not learnt yet"
+        tab = Table(title=title, title_justify="left", box=box.SIMPLE_HEAD, pad_edge=False,
+                    padding=(0, 1), min_width=len(title), show_edge=False)
+        for col in ("pair", "exp", "seen", "check"):
+            tab.add_column(col, justify="right", no_wrap=True)
         for i in s.intervals:
             if i.observed_deg is None:
                 obs, check = "-", Text("waiting", style=_DIM)
             else:
                 obs = f"{i.observed_deg:.1f}"
                 off = abs(i.observed_deg - i.expected_deg) > s.interval_tolerance_deg
-                check = Text("OFF", style=_WARN) if off else Text("ok", style=_OK)
+                if not s.wheel_learnt:
+                    check = Text("not yet", style=_DIM)
+                else:
+                    check = Text("OFF", style=_WARN) if off else Text("ok", style=_OK)
             tab.add_row(f"{i.from_cyl}>{i.to_cyl}", f"{i.expected_deg:.0f}", obs, check)
         return tab
 
     def _health(self, s: LiveState) -> Text:
         bad = s.can_lost or s.serial_crc_errors or s.serial_reconnects
         return Text(
-            f"streams: CAN frames {s.can_frames}, lost {s.can_lost}; serial CRC errors "
+            f"CAN frames {s.can_frames}, lost {s.can_lost}; serial CRC errors "
             f"{s.serial_crc_errors}, reconnects {s.serial_reconnects}",
             style=_WARN if bad else _DIM,
         )

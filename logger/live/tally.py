@@ -16,6 +16,7 @@ from crankbeat.dsp.events import FIRED, MISFIRE, UNUSABLE
 from crankbeat.errors import InputError
 from crankbeat.logger.chunks import StreamHealth
 from crankbeat.logger.live.display import CylinderState, IntervalState, LiveState
+from crankbeat.logger.report.text import ride_time
 
 
 class LiveTally:
@@ -54,6 +55,10 @@ class LiveTally:
         self.throttle: float | None = None
         self.health = StreamHealth()
         self.vibration: dict[str, float] = {}
+        self.vibration_weighting: dict[str, str] = {}
+        self._vib_last: dict[str, tuple[float, int]] = {}  # sensor -> (sum of squares, n)
+        self.wheel_learnt = True
+        self.t_start: float | None = None  # CAN time of the first event: notes count from it
         self.notes: list[str] = []
 
     def push_events(self, events: np.ndarray) -> None:
@@ -74,6 +79,8 @@ class LiveTally:
                 self._expected[c] = exp
             if np.isfinite(con):
                 self._contrib[c].append(con)
+        if self.t_start is None and np.isfinite(events["t"]).any():
+            self.t_start = float(np.nanmin(events["t"]))
         self._recent.extend(zip(events["cycle"].tolist(), events["cylinder"].tolist(),
                                 events["verdict"].tolist(), strict=True))
         newest = self._recent[-1][0]
@@ -93,8 +100,35 @@ class LiveTally:
     def set_health(self, health: StreamHealth) -> None:
         self.health = health
 
-    def set_vibration(self, sensor: str, weighted_rms: float) -> None:
+    def set_vibration(self, sensor: str, weighted_rms: float, weighting: str = "Wh") -> None:
+        """The sensor's recent r.m.s. (m/s²) and its weighting ("none" = location unweighted)."""
         self.vibration[sensor] = float(weighted_rms)
+        self.vibration_weighting[sensor] = weighting
+
+    def set_wheel_learnt(self, learnt: bool) -> None:
+        """Whether the tooth spacing errors are corrected; intervals seen before are dropped."""
+        if learnt and not self.wheel_learnt:
+            for q in self._intervals.values():
+                q.clear()
+        self.wheel_learnt = bool(learnt)
+
+    def follow(self, analysis, *, every_samples_s: float = 2.0) -> None:
+        """Take the wheel state and each board's recent vibration from a running
+        :class:`logger.pipeline.RunAnalysis` (called after each step)."""
+        self.set_wheel_learnt(bool(analysis.tooth_correction_applied))
+        vib = getattr(analysis, "vibration", None)
+        for name, board in (getattr(vib, "boards", None) or {}).items():
+            k = np.asarray(board.spec.vector_k(), dtype=float)
+            total = float(np.sum(k**2 * board.tot_w))  # weighted vector-sum energy so far
+            last = self._vib_last.get(name)
+            if last is None:
+                self._vib_last[name] = (total, board.tot_n)
+                continue
+            n = board.tot_n - last[1]
+            if n >= every_samples_s * board.spec.fs:  # a fresh value every couple of seconds
+                kind = board.kinds[0]
+                self.set_vibration(name, float(np.sqrt((total - last[0]) / n)), kind)
+                self._vib_last[name] = (total, board.tot_n)
 
     def state(self, elapsed_s: float, *, recording: str | None = None) -> LiveState:
         n = self.engine.n_cylinders
@@ -125,5 +159,6 @@ class LiveTally:
             serial_crc_errors=sum(h.serial_corrupt.values()),
             serial_reconnects=sum(h.serial_reconnects.values()),
             synced=self._last_verdict != UNUSABLE, recording=recording,
-            notes=list(h.notes[-3:]) + self.notes[-3:],
+            notes=[ride_time(str(n), self.t_start) for n in list(h.notes[-3:]) + self.notes[-3:]],
+            wheel_learnt=self.wheel_learnt, vibration_weighting=dict(self.vibration_weighting),
         )

@@ -9,6 +9,12 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from crankbeat.errors import CrankbeatError
+from crankbeat.logger.figures import (
+    cylinder_name,
+    cylinder_pairs,
+    interval_error_by_cylinder,
+    wheel_corrected,
+)
 from crankbeat.logger.report import run_plots
 from crankbeat.logger.report.text import summary_lines
 from crankbeat.logger.report.trend import plot_trend
@@ -51,13 +57,15 @@ def make_run_report(store: Store, run_id: int, out_dir: str | Path) -> RunReport
     ev = store.events(run_id)
     limits = _limits(store.rig_toml(run_id))
     stem = f"run{run_id}"
+    names = cylinder_pairs(store, run_id)
     figures: list[tuple[str, Path | None]] = [
-        ("Per-event metric", run_plots.plot_metric(ev, out / f"{stem}_metric.png")),
+        ("Per-event metric", run_plots.plot_metric(ev, out / f"{stem}_metric.png", names=names)),
         ("Misfire rate per 1000 revolutions", run_plots.plot_windows(
             store, run_id, ev, out / f"{stem}_windows.png",
-            alert_pct=limits.get("misfire_alert_pct"))),
+            alert_pct=limits.get("misfire_alert_pct"), names=names)),
         ("Firing intervals", run_plots.plot_intervals(
-            ev, out / f"{stem}_intervals.png", tolerance_deg=limits.get("interval_tolerance_deg"))),
+            ev, out / f"{stem}_intervals.png", tolerance_deg=limits.get("interval_tolerance_deg"),
+            summary=info.get("summary"), checked=interval_error_by_cylinder(store, run_id))),
         ("Contribution per cylinder",
          run_plots.plot_contribution(ev, out / f"{stem}_contribution.png")),
         ("Order map", run_plots.plot_order_map(store, run_id, out / f"{stem}_orders.png")),
@@ -121,6 +129,8 @@ def _table(headers: list[str], rows: list[list[object]]) -> str:
 def _page(store: Store, run_id: int, info: dict, figures: list[tuple[str, Path]],
           missing: list[str]) -> str:
     cyl = store.cylinder_stats(run_id)
+    pairs = cylinder_pairs(store, run_id)
+    corrected = wheel_corrected(info.get("summary"))
     parts = [
         "<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
         f"<title>crankbeat run {run_id}</title><style>{_CSS}</style></head><body>",
@@ -135,23 +145,36 @@ def _page(store: Store, run_id: int, info: dict, figures: list[tuple[str, Path]]
         "<h2>Per cylinder</h2>",
         _table(["cyl", "events", "fired", "misfires", "rate %", "masked", "unusable",
                 "fuel cut", "contribution", "interval error deg"],
-               [[c["cylinder"], c["events"], c["fired"], c["misfires"], c["rate_pct"],
-                 c["masked"], c["unusable"], c["fuel_cut"], c["contribution"],
+               [[cylinder_name(c["cylinder"], pairs), c["events"], c["fired"], c["misfires"],
+                 c["rate_pct"], c["masked"], c["unusable"], c["fuel_cut"], c["contribution"],
                  c["interval_error_deg"]] for c in cyl]),
     ]
+    if pairs:
+        parts.append("<p class='muted'>720° phase unknown (no cam, even firing): '2/3' is "
+                     "cylinder 2, or 3 if the phase is the other way round.</p>")
+    if not corrected:
+        parts.append("<p class='off'>Interval figures UNCORRECTED: this run's wheel tooth "
+                     "spacing errors were never learnt; they include them.</p>")
     intervals = store.intervals(run_id)
     if intervals:
         parts += ["<h2>Firing intervals</h2>", _table(
             ["from", "to", "expected deg", "observed deg", "± deg", "n", "check"],
             [[i["from_cyl"], i["to_cyl"], i["expected_deg"], i["observed_deg"],
-              i["stderr_deg"], i["n"], "OFF" if i["flagged"] else "ok"] for i in intervals])]
-    lines = summary_lines(info.get("summary"))
+              i["stderr_deg"], i["n"],
+              ("OFF" if i["flagged"] else "ok") if corrected else "not judged"]
+             for i in intervals])]
+    lines = summary_lines(info.get("summary"), started_at=info.get("started_at"))
     if lines:
         parts += ["<h2>Summary</h2>", f"<pre>{html.escape(chr(10).join(lines))}</pre>"]
     for title, path in figures:
         data = base64.b64encode(path.read_bytes()).decode("ascii")
         parts.append(f"<h2>{html.escape(title)}</h2>"
                      f"<img alt='{html.escape(title)}' src='data:image/png;base64,{data}'>")
+    judged = ((info.get("summary") or {}).get("misfire") or {}).get("worst_rev1000_pct", 0)
+    if judged is None and "Misfire rate per 1000 revolutions" in missing:
+        missing = [m for m in missing if m != "Misfire rate per 1000 revolutions"]
+        parts.append("<p class='muted'>Misfire rate per 1000 revolutions: not judged (the run "
+                     "holds no whole 1000-revolution window).</p>")
     if missing:
         parts.append("<p class='muted'>Not drawn (no data in the store): "
                      + html.escape(", ".join(missing)) + "</p>")

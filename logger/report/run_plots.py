@@ -9,6 +9,7 @@ from matplotlib.colors import LogNorm
 from matplotlib.ticker import MaxNLocator
 
 from crankbeat.dsp.events import FIRED, MISFIRE
+from crankbeat.logger.figures import interval_events, window_rows
 from crankbeat.logger.report.style import (
     MISFIRE_COLOUR,
     MUTED_COLOUR,
@@ -23,8 +24,12 @@ from crankbeat.logger.store import Store
 _MAX_DOTS = 40_000
 
 
-def plot_metric(ev: np.ndarray, path: Path) -> Path | None:
-    """Per-event metric over time, one panel per cylinder, threshold and misfires marked."""
+def plot_metric(ev: np.ndarray, path: Path, *, names: dict[int, str] | None = None
+                ) -> Path | None:
+    """Per-event metric over time, one panel per cylinder, threshold and misfires marked.
+
+    ``names``: cylinder -> shown name ("2/3" where the run's 720° phase is unknown)."""
+    names = names or {}
     cyls = sorted(set(ev["cylinder"].tolist()))
     if not cyls:
         return None
@@ -51,7 +56,7 @@ def plot_metric(ev: np.ndarray, path: Path) -> Path | None:
                 label=f"misfire ({len(mis)})")
         ax.plot(e["t"], e["threshold"], "-", lw=1.0, color=THRESHOLD_COLOUR, label="threshold")
         _robust_ylim(ax, e)
-        ax.set_title(f"cylinder {c}", loc="left", fontsize=9)
+        ax.set_title(f"cylinder {names.get(c, c)}", loc="left", fontsize=9)
         ax.set_ylabel("metric [-]")
         # Outside the axes, so that no marker is hidden behind the legend.
         ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), markerscale=2, frameon=False)
@@ -83,38 +88,17 @@ def _robust_ylim(ax, e: np.ndarray) -> None:
                 ha="right", va="bottom", fontsize=7, color="#555555")
 
 
-def windows_from_events(ev: np.ndarray, *, revolutions: int = 1000) -> list[dict]:
-    """Misfire rate per cylinder over revolution windows, from the events alone.
-
-    Used when the pipeline stored no windows of that size. The crank revolutions per working
-    cycle follow from the expected intervals: one cycle is n_cyl times their mean.
-    """
-    if not len(ev):
-        return []
-    n_cyl = len(set(ev["cylinder"].tolist()))
-    expected = ev["expected_interval_deg"]
-    cycle_deg = n_cyl * float(np.nanmean(expected)) if np.isfinite(expected).any() else 720.0
-    rev = (ev["cycle"] - ev["cycle"].min()) * (cycle_deg / 360.0)
-    win = np.floor(rev / revolutions).astype(int)
-    out = []
-    for c in sorted(set(ev["cylinder"].tolist())):
-        for k in np.unique(win):
-            sel = (win == k) & (ev["cylinder"] == c)
-            mis = int(np.sum(ev["verdict"][sel] == MISFIRE))
-            counted = int(np.sum(np.isin(ev["verdict"][sel], (FIRED, MISFIRE))))
-            out.append({"idx": int(k), "cylinder": int(c), "events": counted, "misfires": mis,
-                        "rate": 100.0 * mis / counted if counted else None,
-                        "t_start": float(ev["t"][sel].min()) if sel.any() else None})
-    return out
-
-
 def plot_windows(store: Store, run_id: int, ev: np.ndarray, path: Path,
-                 *, alert_pct: float | None = None) -> Path | None:
-    """Misfire rate per 1000-revolution window and cylinder."""
-    rows = [w for w in store.windows(run_id, kind="rev1000") if w["cylinder"]]
-    source = "stored windows"
-    if not rows:
-        rows, source = windows_from_events(ev, revolutions=1000), "computed from the events"
+                 *, alert_pct: float | None = None, names: dict[int, str] | None = None
+                 ) -> Path | None:
+    """Misfire rate per 1000-revolution window and cylinder (None when the run holds no whole
+    window: a shorter ride is not judged)."""
+    summary = store.run(run_id).get("summary") or {}
+    if (summary.get("misfire") or {}).get("worst_rev1000_pct", 0) is None:
+        return None
+    rows = window_rows(store, run_id, ev, revolutions=1000)
+    source = "stored windows" if store.windows(run_id, kind="rev1000") else \
+        "computed from the events"
     if not rows:
         return None
     fig, ax = new_figure(10.0, 3.4)
@@ -124,7 +108,7 @@ def plot_windows(store: Store, run_id: int, ev: np.ndarray, path: Path,
         w = [r for r in rows if r["cylinder"] == c]
         x = np.array([r["idx"] for r in w], dtype=float) + (j - (len(cyls) - 1) / 2) * width
         y = [np.nan if r["rate"] is None else r["rate"] for r in w]
-        ax.bar(x, y, width=width, color=cyl_colour(c), label=f"cyl {c}")
+        ax.bar(x, y, width=width, color=cyl_colour(c), label=f"cyl {(names or {}).get(c, c)}")
     if alert_pct is not None:
         ax.axhline(alert_pct, color=MISFIRE_COLOUR, lw=1, ls="--",
                    label=f"rig alert level {alert_pct:g} %")
@@ -138,14 +122,19 @@ def plot_windows(store: Store, run_id: int, ev: np.ndarray, path: Path,
     return path
 
 
-def plot_intervals(ev: np.ndarray, path: Path, *, tolerance_deg: float | None = None
-                   ) -> Path | None:
-    """Histogram of observed firing intervals of fired events, one panel per expected value."""
-    ok = (ev["verdict"] == FIRED) & np.isfinite(ev["interval_deg"]) & \
-        np.isfinite(ev["expected_interval_deg"])
-    e = ev[ok]
+def plot_intervals(ev: np.ndarray, path: Path, *, tolerance_deg: float | None = None,
+                   summary: dict | None = None,
+                   checked: dict[int, tuple[float, int]] | None = None) -> Path | None:
+    """Histogram of observed firing intervals of fired events, one panel per expected value.
+
+    Only the events the run's interval check used (from the tooth-error correction on); the
+    legend gives each cylinder's figure from that check (``checked``: to_cyl -> (error, n)),
+    the same number ``show`` prints.
+    """
+    e = interval_events(ev, summary)
     if not len(e):
         return None
+    checked = checked or {}
     groups = sorted({round(float(v), 1) for v in e["expected_interval_deg"]})
     fig, axes = new_figure(6.0 * len(groups) + 0.6, 3.4, ncols=len(groups), squeeze=False)
     for ax, g in zip(axes[0], groups, strict=True):
@@ -154,8 +143,11 @@ def plot_intervals(ev: np.ndarray, path: Path, *, tolerance_deg: float | None = 
         span = max(6.0, float(np.nanpercentile(np.abs(obs - g), 99.5)) * 1.2)
         bins = np.linspace(g - span, g + span, 61)
         for c in sorted(set(sel["cylinder"].tolist())):
+            label = f"ending at cyl {c}"
+            if c in checked:
+                label += f": mean {g + checked[c][0]:.2f}°"
             ax.hist(np.clip(obs[sel["cylinder"] == c], bins[0], bins[-1]), bins=bins,
-                    histtype="step", lw=1.3, color=cyl_colour(c), label=f"ending at cyl {c}")
+                    histtype="step", lw=1.3, color=cyl_colour(c), label=label)
         ax.axvline(g, color=THRESHOLD_COLOUR, lw=1.2, ls="--", label=f"expected {g:g}°")
         if tolerance_deg:
             ax.axvspan(g - tolerance_deg, g + tolerance_deg, color="#2bb3a3", alpha=0.12,
@@ -166,7 +158,7 @@ def plot_intervals(ev: np.ndarray, path: Path, *, tolerance_deg: float | None = 
                     transform=ax.transAxes, ha="right", va="top", fontsize=7, color="#555555")
         ax.set_xlabel("observed firing interval [crank deg]")
         ax.set_ylabel("events")
-        ax.set_title(f"interval expected {g:g}°, mean {np.mean(obs):.2f}°")
+        ax.set_title(f"interval expected {g:g}° (means: the run's interval check)")
         ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
     save(fig, path)
     return path
@@ -185,7 +177,10 @@ def plot_contribution(ev: np.ndarray, path: Path) -> Path | None:
     # Dots with spread rather than bars from zero: a few per cent between cylinders must show.
     ax.errorbar(x, means, yerr=sds, fmt="none", ecolor="#555555", capsize=5, lw=1)
     ax.scatter(x, means, s=60, c=[cyl_colour(c) for c in cyls], zorder=3)
-    ax.axhline(1.0, color=THRESHOLD_COLOUR, lw=1, ls="--", label="cylinder mean = 1")
+    # 1.0 is the engine's typical firing event (a running reference), not the mean of these dots
+    ax.axhline(1.0, color=THRESHOLD_COLOUR, lw=1, ls="--", label="1 = typical firing event")
+    ax.axhline(float(np.mean(means)), color=MUTED_COLOUR, lw=1, ls=":",
+               label=f"mean of the cylinders {np.mean(means):.3f}")
     for i, m in enumerate(means):
         ax.annotate(f"{m:.3f}", (x[i], m), textcoords="offset points", xytext=(9, -3),
                     fontsize=8)
@@ -198,7 +193,7 @@ def plot_contribution(ev: np.ndarray, path: Path) -> Path | None:
     ax.set_xlabel("cylinder")
     ax.set_ylabel("relative contribution [-]")
     ax.set_title("Contribution per cylinder (fired events, mean ± 1 s.d.)")
-    ax.legend(loc="lower right")
+    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
     save(fig, path)
     return path
 
@@ -280,9 +275,22 @@ def plot_vibration(store: Store, run_id: int, path: Path) -> Path | None:
         ax.plot(x, y, style, marker="o", ms=3, color=cyl_colour(j + 1), label=label)
     ax.set_xlabel("engine speed, band centre [rpm]")
     ax.set_ylabel("r.m.s. acceleration [m/s²]")
-    ax.set_title("Weighted vibration against engine speed\n(Wh: hand-arm, ISO 5349-1; "
-                 "Wk, Wd: whole-body, ISO 2631-1)")
+    ax.set_title(_vibration_title({k[1] for k in shown}))
     ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
     ax.set_ylim(bottom=0)
     save(fig, path)
     return path
+
+
+def _vibration_title(weightings: set[str]) -> str:
+    """Says "weighted" only of weighted values, and names only the standards behind them."""
+    named = []
+    if "Wh" in weightings:
+        named.append("Wh: hand-arm, ISO 5349-1")
+    if weightings & {"Wk", "Wd"}:
+        named.append("Wk, Wd: whole-body, ISO 2631-1")
+    if "none" in weightings:
+        named.append("unweighted: the location has no rider weighting")
+    head = ("Weighted vibration" if "none" not in weightings
+            else "Unweighted vibration" if weightings == {"none"} else "Vibration")
+    return f"{head} against engine speed\n(" + "; ".join(named) + ")"

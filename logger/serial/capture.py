@@ -1,6 +1,6 @@
 """Serial capture files: the raw bytes of a port with their host arrival times.
 
-Format (crankbeat's own, see RIG.md): the 8-byte magic ``ACCRAW1\\n``, then records of
+Format (crankbeat's own, see docs/rig.md): the 8-byte magic ``ACCRAW1\\n``, then records of
 ``float64 LE host time (s) | uint32 LE byte count n | n raw bytes``. Host times are on the
 same clock as the CAN log's timestamps (``time.time()`` for live python-can buses), so a replay
 sees exactly what the live run saw. A zero-length record marks a break in the link (the

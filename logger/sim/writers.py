@@ -4,7 +4,7 @@
 
 * ``<stem><can_format>``: every CAN frame through python-can's own writer for the suffix
   (``.log`` candump, ``.asc``, ``.blf``, ``.csv``, ``.trc``; the text ones also ``+ .gz``);
-* ``<stem>.<sensor>.acraw``: each sensor's serial capture file (RIG.md format);
+* ``<stem>.<sensor>.acraw``: each sensor's serial capture file (docs/rig.md format);
 * ``<stem>.truth.csv``: the ground truth of every firing event;
 * ``<stem>.scenario.toml``: the scenario, which regenerates the ride bit for bit.
 

@@ -180,7 +180,14 @@ def _v4(db: sqlite_utils.Database) -> None:
     db["channels"].create_index(["run", "name", "t"])
 
 
-MIGRATIONS: list[Callable[[sqlite_utils.Database], None]] = [_v1, _v2, _v3, _v4]
+def _v5(db: sqlite_utils.Database) -> None:
+    """Tags on runs (key=value: bike, build, tyre, fuel ...) for bookkeeping and trend filters."""
+    db["run_tags"].create({"run": int, "key": str, "value": str}, pk=("run", "key"),
+                          foreign_keys=[("run", "runs", "id")])
+    db["run_tags"].create_index(["key", "value"])
+
+
+MIGRATIONS: list[Callable[[sqlite_utils.Database], None]] = [_v1, _v2, _v3, _v4, _v5]
 
 #: The version a file has after every migration ran.
 SCHEMA_VERSION = len(MIGRATIONS)

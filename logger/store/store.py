@@ -573,7 +573,7 @@ class Store:
 
     # -- reading -------------------------------------------------------------------------
     def resolve_run(self, spec: int | str) -> int:
-        """Run id from an id, a label or "last" (the newest run).
+        """Run id from an id, a label or "last" (the newest run holding events).
 
         A label shared by re-analyses of one ride (same source files) names the newest of
         them; ``LABEL@ANALYSER`` names the one of that analyser version.
@@ -584,10 +584,9 @@ class Store:
 
             return resolve_versioned(self, text)
         if text == "last":
-            row = self.db.execute("SELECT MAX(id) FROM runs").fetchone()
-            if row[0] is None:
-                raise RunNotFoundError(f"store '{self.path}' holds no runs yet")
-            return int(row[0])
+            from crankbeat.logger.store.labels import last_run
+
+            return last_run(self)
         if text.isdigit():
             run_id = int(text)
             self._check_run(run_id)

@@ -1,14 +1,16 @@
 """Trend queries: one number per run (and per cylinder or sensor) across the run history.
 
-Metrics (all computed from the stored rows, never from the summary JSON, so that runs of
-different crankbeat versions compare on the same terms):
+Metrics (computed from the stored rows, so that runs of different crankbeat versions compare on
+the same terms; the summary gives only where a tooth-error correction started):
 
 ``misfire_rate``
     % misfires of the counted events (fired + misfire; masked, unusable and fuel-cut events are
     not counted), per cylinder. Filters: ``cylinder``, ``rpm_band`` (event rpm).
 ``interval_error``
-    Mean observed minus expected firing interval of fired events, degrees, per cylinder (the
-    interval that ends at that cylinder's firing). Filters: ``cylinder``, ``rpm_band``.
+    Observed minus expected firing interval, degrees, per cylinder (the interval that ends at
+    that cylinder's firing): the run's interval check, as ``show`` prints it; with ``rpm_band``,
+    the mean over the fired events in the band from the run's tooth-error correction on.
+    Filters: ``cylinder``, ``rpm_band``.
 ``bar_vibration``
     Hand-arm weighted (Wh) r.m.s. vector sum at the bar sensors, m/s², per sensor; bands inside
     ``rpm_band`` are pooled by energy (sqrt of the sample-weighted mean square). Without a band,
@@ -56,6 +58,7 @@ class TrendPoint:
     value: float | None
     n: int
     unit: str
+    rig: str | None = None
 
 
 _BAND = re.compile(r"^\s*(\d+(?:\.\d*)?)\s*-\s*(\d+(?:\.\d*)?)\s*$")
@@ -73,7 +76,7 @@ def parse_rpm_band(text: str) -> tuple[float, float]:
 
 
 def _runs(store: Store, rig: str | None, by: str, last: int | None,
-          analyser: str | None = None) -> list[dict]:
+          analyser: str | None = None, tags: dict[str, str] | None = None) -> list[dict]:
     where, params = [], []
     if rig:
         where.append("rigs.name = ?")
@@ -84,13 +87,20 @@ def _runs(store: Store, rig: str | None, by: str, last: int | None,
     else:
         order = "runs.started_at, runs.id"
     sql = (
-        "SELECT runs.id, runs.label, runs.started_at, runs.odometer_km, runs.status, rigs.toml"
+        "SELECT runs.id, runs.label, runs.started_at, runs.odometer_km, runs.status, rigs.toml,"
+        " rigs.name AS rig, EXISTS (SELECT 1 FROM events e WHERE e.run = runs.id) AS n_events"
         " FROM runs JOIN rigs ON rigs.id = runs.rig_id"
         f"{' WHERE ' + ' AND '.join(where) if where else ''} ORDER BY {order}"
     )
     rows = list(store.db.query(sql, params))
     shown = pick_analyses(store, [r["id"] for r in rows], analyser)
     rows = [r for r in rows if r["id"] in shown]
+    if tags:
+        from crankbeat.logger.store.labels import runs_with_tags
+
+        keep = runs_with_tags(store, tags)
+        rows = [r for r in rows if r["id"] in keep]
+    rows = [r for r in rows if r["n_events"]]  # failed or empty runs have nothing to trend
     return rows[-last:] if last else rows
 
 
@@ -114,13 +124,18 @@ def trend(
     last: int | None = None,
     channel: str | None = None,
     analyser: str | None = None,
+    tags: dict[str, str] | None = None,
 ) -> list[TrendPoint]:
     """Values of ``metric`` per run, in ``by`` order (runs without an odometer reading are left
-    out of ``by="odometer"``); ``last`` keeps the last N runs of that order.
+    out of ``by="odometer"``); ``last`` keeps the last N runs of that order; ``tags`` keeps the
+    runs carrying all of them.
 
     A ride analysed several times counts once: its newest analysis, or the one of ``analyser``
     (then only runs of that analyser version). ``channel`` filters events by a status channel,
-    ``"gear=3"`` or ``"coolant=80-95"`` (:mod:`logger.store.channel_filter`)."""
+    ``"gear=3"`` or ``"coolant=80-95"`` (:mod:`logger.store.channel_filter`).
+
+    Runs of different rigs never share one trend (a twin's cylinder 2 is not a four's): without
+    ``rig`` the store must hold runs of one rig only, else a :class:`UsageError` names them."""
     if metric not in METRICS:
         raise UsageError(f"unknown trend metric '{metric}', expected one of {', '.join(METRICS)}")
     if by not in ("date", "odometer"):
@@ -135,24 +150,57 @@ def trend(
         raise UsageError("a channel filter applies to event metrics, not to bar_vibration")
     unit = METRICS[metric][0]
     out: list[TrendPoint] = []
-    for run in _runs(store, rig, by, last, analyser):
+    runs = _runs(store, rig, by, last, analyser, tags)
+    rigs = sorted({r["rig"] for r in runs})
+    if len(rigs) > 1:
+        raise UsageError(f"the runs are of {len(rigs)} rigs ({', '.join(rigs)}): a trend follows "
+                         "one rig, give --rig NAME")
+    for run in runs:
         if metric == "bar_vibration":
             values = _bar_vibration(store, run, band)
         elif flt is not None:
             values = channel_event_metric(store, metric, run["id"], cylinder, band, flt)
+        elif metric == "interval_error" and band is None:
+            values = _checked_intervals(store, run["id"], cylinder)
         else:
             values = _event_metric(store, metric, run["id"], cylinder, band)
+        if metric != "bar_vibration":  # phase unknown: a cylinder is named with its partner
+            from crankbeat.logger.figures import cylinder_name, cylinder_pairs
+
+            pairs = cylinder_pairs(store, run["id"])
+            values = [(f"cyl {cylinder_name(int(s.split()[1]), pairs)}", v, n)
+                      for s, v, n in values]
         for series, value, n in values:
             out.append(
                 TrendPoint(run["id"], run["label"], run["started_at"], run["odometer_km"],
-                           run["status"], series, value, n, unit)
+                           run["status"], series, value, n, unit, run["rig"])
             )
     return out
+
+
+def _checked_intervals(store: Store, run_id: int, cylinder: int | None
+                       ) -> list[tuple[str, float | None, int]]:
+    """The run's interval check, the figure ``show`` prints (see :mod:`logger.figures`)."""
+    from crankbeat.logger.figures import interval_error_by_cylinder
+
+    checked = interval_error_by_cylinder(store, run_id)
+    if not checked:  # a run stored without an interval check: from its events
+        return _event_metric(store, "interval_error", run_id, cylinder, None)
+    return [(f"cyl {c}", err, n) for c, (err, n) in sorted(checked.items())
+            if cylinder is None or c == cylinder]
 
 
 def _event_metric(store: Store, metric: str, run_id: int, cylinder: int | None,
                   band: tuple[float, float] | None) -> list[tuple[str, float | None, int]]:
     where, params = ["run = ?"], [run_id]
+    if metric == "interval_error":
+        # intervals before a mid-run tooth-error correction carry the wheel's errors
+        from crankbeat.logger.figures import intervals_from_t
+
+        t0 = intervals_from_t(store.run(run_id).get("summary"))
+        if t0 is not None:
+            where.append("t >= ?")
+            params.append(t0)
     if cylinder is not None:
         where.append("cylinder = ?")
         params.append(int(cylinder))
