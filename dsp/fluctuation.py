@@ -60,6 +60,7 @@ RAW_EVENT_DTYPE = np.dtype(
         ("rpm", "f8"),  # mean speed over the window
         ("energy", "f8"),  # J, mean kinetic energy ½Jω² over the window
         ("work", "f8"),  # J, indicated-work estimate of the window (see module docstring)
+        ("swing", "f8"),  # J, energy change over the window minus the speed trend (no balance)
         ("rise_deg", "f8"),  # deg after TDC where the window's energy rise is centred
         ("usable", "?"),  # every input needed was there and valid
     ]
@@ -318,6 +319,7 @@ class FluctuationStage:
         out["rpm"] = L / 6.0 / (tb - ta)
         if a.size < 3:
             out["work"] = np.nan
+            out["swing"] = np.nan
             out["energy"] = np.nan
             out["rise_deg"] = np.nan
             return out
@@ -355,6 +357,7 @@ class FluctuationStage:
         energy_mean, clean_win = self._window(mid, e, good, pa, pb)
         usable = np.isfinite(work) & clean_win
         out["work"] = np.where(usable, work, np.nan)
+        out["swing"] = np.where(usable, x, np.nan)
         out["energy"] = energy_mean
         out["rise_deg"] = np.where(usable, rise - theta, np.nan)
         out["usable"] = usable & np.isfinite(out["t"]) & np.isfinite(out["rpm"])
