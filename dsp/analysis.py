@@ -27,6 +27,7 @@ from crankbeat.dsp.events import (
     empty_events,
 )
 from crankbeat.dsp.fluctuation import RAW_EVENT_DTYPE, FluctuationStage, WindowSpec
+from crankbeat.dsp.inertia import InertiaEstimator
 from crankbeat.dsp.intervals import SpeedProfile
 from crankbeat.dsp.misfire import MisfireDetector, MisfireSettings
 from crankbeat.errors import InputError
@@ -93,6 +94,7 @@ class EventAnalyzer:
             wheel, engine, tooth_correction_deg=tooth_correction_deg, **(tracker_options or {})
         )
         self.fluct = FluctuationStage(engine, wheel.pitch_deg, window=window)
+        self.inertia = InertiaEstimator(engine, wheel.pitch_deg)
         self.detector = MisfireDetector(engine, settings=self.settings)
         self.max_age = float(max_status_age_s)
         #: running crank-speed profile of the cycle, for :func:`dsp.intervals.identify_layout`
@@ -144,6 +146,7 @@ class EventAnalyzer:
     def _step(self, crank: CrankAngles, *, final: bool) -> AnalyzerStep:
         notes = [e.message for e in crank.events]
         self.profile.add(crank)
+        self.inertia.push(crank.t, crank.angle, crank.valid)
         raw = self.fluct.push(crank.t, crank.angle, crank.valid, crank.period)
         if final:
             raw = np.concatenate((raw, self.fluct.finish()))
@@ -166,7 +169,12 @@ class EventAnalyzer:
         beside the rig file's (``inertia_kgm2``: estimate or None, ``rig_inertia_kgm2``)."""
         out = self.detector.report()
         out["rig_inertia_kgm2"] = float(self.engine.inertia_kgm2)
-        out["inertia_kgm2"] = None
+        out["inertia_kgm2"] = est = self.inertia.result()
+        if est is not None:
+            out["notes"].append(
+                f"effective rotating inertia from the crank speed: {est:.4f} kg m^2 (rig file "
+                f"{self.engine.inertia_kgm2:.4f}; a rough estimate from {self.inertia.cycles} "
+                "cycles at speed)")
         return out
 
     def _ready_count(self) -> int:

@@ -63,6 +63,7 @@ class CylinderState:
         self.flags: deque[bool] = deque(maxlen=pattern_events)  # candidate misfire or not
         self.misfire_dev: dict[int, deque[float]] = {}  # rpm cell → deviations of misfires, J
         self.motored: dict[int, deque[float]] = {}  # rpm cell → work on fuel cut, J
+        self.level = float("nan")  # median of ``recent``
         self.ever_healthy = False  # an event judged fired after the warm-up
         self.shares: deque[float] = deque(maxlen=spread_events)  # contribution when fired
         self.run: list[float] = []  # contributions of the current run of misfires
@@ -93,10 +94,15 @@ class CylinderState:
 
     def spreads(self) -> tuple[float, float]:
         """Robust spreads of the self and cross deviations (cached until a value is added)."""
-        if self._spread_cache is None or self._spread_cache[0] != self._n_added:
+        # refreshed every 4th new value once the spread has settled: a MAD moves slowly, and
+        # two sorts per event were most of the decision's time
+        stale = self._spread_cache is None or (
+            self._n_added - self._spread_cache[0] >= (8 if len(self.dev) >= 16 else 1))
+        if stale:
             s = robust_spread(self.dev) if self.dev else float("nan")
             sx = robust_spread(self.dev_x) if self.dev_x else float("nan")
             self._spread_cache = (self._n_added, s, sx)
+        assert self._spread_cache is not None
         return self._spread_cache[1], self._spread_cache[2]
 
     def accept(self, x: float, y: float, d: float, dx: float) -> None:
@@ -109,6 +115,11 @@ class CylinderState:
         if dx == dx:
             self.dev_x.append(dx)
             self._n_added += 1
+
+    def add_recent(self, x: float) -> None:
+        """A counted event's work, flagged or not (for the dead-cylinder check)."""
+        self.recent.append(x)
+        self.level = median(self.recent)
 
     # -- depth scale ----------------------------------------------------------------------------
     def add_misfire(self, cell: int, dev: float, keep: int) -> None:

@@ -204,10 +204,14 @@ class MisfireDetector:
     def _sequential(self, i0, i1, w_all, y_all, others, fc_sure, fc_maybe, out, detail) -> None:
         """Decide events i0..i1 one by one (each updates the cylinder state the next ones use)."""
         s, n, z_thr = self.s, self.n, self._z
-        cyl0 = self._raw["cylinder"].astype(np.int64) - 1
-        rpm = self._raw["rpm"]
-        gidx = self._raw["index"]
+        # plain Python lists: the loop reads single values, far cheaper than numpy scalars
+        cyl0 = (self._raw["cylinder"].astype(np.int64) - 1).tolist()
+        rpm = self._raw["rpm"].tolist()
+        gidx = self._raw["index"].tolist()
         size = w_all.size
+        w_all, y_all, others = w_all.tolist(), y_all.tolist(), others.tolist()
+        fc_sure, fc_maybe = fc_sure.tolist(), fc_maybe.tolist()
+        times, shares = out["t"].tolist(), out["contribution"].tolist()
         metric = np.full(i1 - i0, np.nan)
         conf = np.zeros(i1 - i0)
         verdict = np.full(i1 - i0, UNUSABLE, dtype=np.int8)
@@ -215,24 +219,25 @@ class MisfireDetector:
         depth = np.full(i1 - i0, np.nan)
         for k in range(i0, i1):
             o = k - i0
-            x = float(w_all[k])
-            c = int(cyl0[k])
+            x = w_all[k]
+            c = cyl0[k]
             st = self._cyl[c]
             if x != x:
                 cause[o] = CAUSE_CRANK
                 continue
-            y = float(y_all[k])
+            y = y_all[k]
             ahead = [k + n * a for a in range(1, s.lookahead_cycles + 1) if k + n * a < size]
-            ax = [float(w_all[j]) for j in ahead if w_all[j] == w_all[j]]
-            ay = [float(y_all[j]) for j in ahead if y_all[j] == y_all[j]]
+            ax = [w_all[j] for j in ahead if w_all[j] == w_all[j]]
+            ay = [y_all[j] for j in ahead if y_all[j] == y_all[j]]
             sd, sx = st.spreads()
             ready = len(st.dev) >= s.warmup_cycles
-            level = max(abs(median(st.hx)) if st.hx else abs(x), abs(float(others[o]))
+            hx_med = median(st.hx) if st.hx else float("nan")
+            level = max(abs(hx_med) if st.hx else abs(x), abs(others[o])
                         if others[o] == others[o] else 0.0)
             floor = s.spread_floor * level + 1e-12
             sd = max(sd, floor) if sd == sd else floor
             sx = max(sx, floor) if sx == sx else floor
-            screen = median(st.hx) - z_thr * sd if ready else None
+            screen = hx_med - z_thr * sd if ready else None
             b = st.baseline(ax, screen_below=screen)
             d = x - b
             z = -d / sd
@@ -245,15 +250,20 @@ class MisfireDetector:
             # throttle change shifts every score the same way, and is no disturbance)
             calm = (robust_spread(self._recent_z) / s.local_scatter
                     if len(self._recent_z) >= 4 else 0.0)
-            cand = (ready and z > z_thr * max(1.0, calm)
+            # within two cycles of an event lost to bad crank data the loss balance of the
+            # window work is patched (dsp.fluctuation): the score is less sure there
+            near_gap = any(w_all[j] != w_all[j]
+                           for j in range(max(k - 2 * n, 0), min(k + 2 * n + 1, size)))
+            margin = s.gap_margin if near_gap else 1.0
+            cand = (ready and z > z_thr * max(margin, calm)
                     and (n == 1 or not zx == zx or zx > s.cross_threshold))
-            gi = int(gidx[k])
+            gi = gidx[k]
             if cand and c != self._ring_cyl and gi - self._ring_from <= 2 * n:
                 # the driveline rings for a few events after a misfire: another cylinder's
                 # event then must stand out by a share of that misfire's own score too
                 cand = z > s.ring_share * self._ring_z
-            share = float(out["contribution"][o])
-            dead = self._dead(c, x, share, cand, float(out["t"][o]))
+            share = shares[o]
+            dead = self._dead(c, x, share, cand, times[o])
             cell = int(rpm[k] // 1000.0) if rpm[k] == rpm[k] else -1
             metric[o] = z if ready else np.nan
             if fc_sure[o] or (fc_maybe[o] and (cand or dead)):
@@ -261,7 +271,7 @@ class MisfireDetector:
                 st.add_motored(cell, x, s.depth_history)
                 conf[o] = 1.0
                 continue
-            st.recent.append(x)
+            st.add_recent(x)
             st.flags.append(bool(cand or dead))
             why = None if dead else st.pattern_implausible(min_events=s.pattern_events)
             if why is not None:
@@ -315,7 +325,7 @@ class MisfireDetector:
         if self.n < 2:
             return False
         st.run = st.run + [contrib] if cand else []
-        lv = [median(o.recent) for i, o in enumerate(self._cyl) if i != c and len(o.recent) >= 4]
+        lv = [o.level for i, o in enumerate(self._cyl) if i != c and len(o.recent) >= 4]
         lv_o = median(lv) if lv else float("nan")
         lim = self.s.dead_ratio * lv_o
         if st.dead_since is not None:

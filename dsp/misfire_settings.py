@@ -46,6 +46,9 @@ class MisfireSettings:
     local_scatter : float
         When the recent fired events of all cylinders scatter more than this many times their
         usual robust spread (a rough road), the threshold rises in proportion.
+    gap_margin : float
+        Within two cycles of an event without a metric (lost frames), the threshold is this much
+        higher.
     ring_share : float
         Within two cycles after a misfire, another cylinder's misfire must also score above
         this share of that misfire's score (the driveline rings after a misfire).
@@ -73,6 +76,7 @@ class MisfireSettings:
     pattern_events: int = 32
     ring_share: float = 0.4
     local_scatter: float = 1.5
+    gap_margin: float = 1.3
     dead_run: int = 6
     dead_scatter: float = 0.75
     closed_throttle_pct: float = 2.0
