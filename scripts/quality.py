@@ -77,7 +77,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--label", help="name of the output files (default: current or the rev)")
     ap.add_argument("--out", default=str(ROOT / "bench-out" / "quality"), help="output folder")
     args = ap.parse_args(argv)
-    out = Path(args.out)
+    out = Path(args.out).resolve()
     out.mkdir(parents=True, exist_ok=True)
     pythonpath = _source_tree(args.analyser_rev, out) if args.analyser_rev else None
     label = args.label or (f"rev-{args.analyser_rev}" if args.analyser_rev else "current")

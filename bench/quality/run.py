@@ -55,9 +55,11 @@ def _simulate_cached(rig, scenario, ride_dir: Path) -> tuple[dict, bool]:
     return paths, False
 
 
-def _cli(args: list[str], env: dict | None, where: str) -> str:
+def _cli(args: list[str], env: dict | None, where: str, cwd: Path) -> str:
+    # Run in the ride's work folder: ``python -c`` puts the current folder first on sys.path,
+    # and a source tree there would shadow the analyser asked for.
     r = subprocess.run([sys.executable, "-c", _CLI, *args], capture_output=True, text=True,
-                       env=env)
+                       env=env, cwd=cwd)
     if r.returncode != 0:
         last = (r.stderr.strip().splitlines() or ["(no message)"])[-1]
         raise RuntimeError(f"{where}: crankbeat {args[0]} exit {r.returncode}: {last}")
@@ -86,7 +88,7 @@ def run_ride(task: dict) -> dict:
     rig = load_rig(task["rig"])
     sc = build_scenario(task["kind"], task["rig"], rig, task["seed"], quick=task["quick"])
     key = ride_key(sc)
-    out = Path(task["out"])
+    out = Path(task["out"]).resolve()
     ride_dir = out / "rides" / key
     paths, cached = _simulate_cached(rig, sc, ride_dir)
     t_sim = time.perf_counter() - t0
@@ -102,10 +104,11 @@ def run_ride(task: dict) -> dict:
             "--store", db, "--json"]
     for name, cap in paths["captures"].items():
         args += ["--accel", f"{name}={ride_dir / cap}"]
-    _cli(args, env, where)
+    _cli(args, env, where, work)
     ev_csv = work / "events.csv"
-    _cli(["events", "last", "--store", db, "--format", "csv", "--out", str(ev_csv)], env, where)
-    show = json.loads(_cli(["show", "last", "--store", db, "--json"], env, where))
+    _cli(["events", "last", "--store", db, "--format", "csv", "--out", str(ev_csv)], env,
+         where, work)
+    show = json.loads(_cli(["show", "last", "--store", db, "--json"], env, where, work))
     truth = read_truth(ride_dir / paths["truth"])
     engine = simulated_engine(rig, sc)
     result = score.score_ride(
