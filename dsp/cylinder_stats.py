@@ -133,18 +133,26 @@ class CylinderState:
 
         From the cylinder's motored level on fuel cut in the same rpm cell (offset-free: the same
         per-cylinder bias is in both), else from its own misfires in that cell (the upper half of
-        their deviations, so that partial burns among them do not shrink the scale).
+        their deviations, so that partial burns among them do not shrink the scale); failing
+        both, from the cell below or above (1000 rpm apart: the bias changes little).
         """
-        mot = self.motored.get(cell)
-        if mot is not None and len(mot) >= min_count:
-            scale = baseline - median(mot)
-            if scale > 0:
-                return scale
-        mis = self.misfire_dev.get(cell)
-        if mis is not None and len(mis) >= min_count:
-            s = sorted(mis)
-            return median(s[len(s) // 2 :])
+        for near in (cell, cell - 1, cell + 1):  # the cell, else a neighbouring one
+            mot = self.motored.get(near)
+            if mot is not None and len(mot) >= min_count:
+                scale = baseline - median(mot)
+                if scale > 0:
+                    return scale
+            mis = self.misfire_dev.get(near)
+            if mis is not None and len(mis) >= min_count:
+                s = sorted(mis)
+                return median(s[len(s) // 2 :])
         return float("nan")
+
+    def misfire_scatter(self, cell: int) -> float:
+        """Robust spread of the cylinder's misfire deviations near this rpm cell, J (inf when
+        fewer than 8: too few to say how tight the misfires are)."""
+        vals = [v for near in (cell - 1, cell, cell + 1) for v in self.misfire_dev.get(near, ())]
+        return robust_spread(vals) if len(vals) >= 8 else float("inf")
 
     # -- self-check -----------------------------------------------------------------------------
     def pattern_implausible(self, *, min_events: int) -> str | None:

@@ -286,7 +286,15 @@ class MisfireDetector:
                     st.add_misfire(cell, -d, s.depth_history)
             elif cand:
                 self._ring_from, self._ring_cyl, self._ring_z = gi, c, z
-                partial = depth[o] == depth[o] and depth[o] < s.partial_depth
+                # a partial burn only where it is clearly short of a whole misfire: by depth and
+                # by partial_gap robust sigma, on a scale from fuel cut here or from misfires
+                # that agree among themselves (at low signal to noise, at high speed and light
+                # load, whole misfires scatter from 0.4 to 1.4 of their median)
+                scale = -d / depth[o] if depth[o] == depth[o] and depth[o] > 0 else 0.0
+                calibrated_here = bool(st.motored.get(cell)) or (
+                    st.misfire_scatter(cell) < s.partial_tight * scale)
+                partial = (calibrated_here and depth[o] < s.partial_depth
+                           and (1.0 - depth[o]) * scale > s.partial_gap * sd)
                 verdict[o] = PARTIAL if partial else MISFIRE
                 conf[o] = min(1.0, (z - z_thr) / z_thr + 0.5)
                 if not partial:

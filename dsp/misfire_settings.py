@@ -34,6 +34,11 @@ class MisfireSettings:
         A cylinder whose recent level is below this share of the other cylinders' is dead.
     partial_depth : float
         A flagged event with a calibrated depth below this is a partial burn.
+    partial_gap : float
+        ... and when its missing work falls short of a whole misfire's by this many robust sigma.
+    partial_tight : float
+        A depth scale from the run's own misfires is used for partial burns only when their
+        robust spread is below this share of it (fuel cut in the same rpm cell always is).
     depth_min_count, depth_history : int
         Fuel-cut events or misfires per cell needed for a depth scale; values kept per cell.
     pattern_events : int
@@ -70,7 +75,9 @@ class MisfireSettings:
     spread_floor: float = 0.005
     warmup_cycles: int = 8
     dead_ratio: float = 0.3
-    partial_depth: float = 0.6
+    partial_depth: float = 0.7
+    partial_gap: float = 6.0
+    partial_tight: float = 0.2
     depth_min_count: int = 4
     depth_history: int = 16
     pattern_events: int = 32
