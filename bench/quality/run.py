@@ -42,7 +42,8 @@ def _simulate_cached(rig, scenario, ride_dir: Path) -> tuple[dict, bool]:
     meta = ride_dir / "paths.json"
     if meta.exists():
         return json.loads(meta.read_text()), True
-    tmp = ride_dir.with_name(ride_dir.name + ".tmp")
+    # A folder of this process's own: two runs (a before and an after) may meet on one ride.
+    tmp = ride_dir.with_name(f"{ride_dir.name}.tmp{os.getpid()}")
     shutil.rmtree(tmp, ignore_errors=True)
     ride = simulate(rig, scenario)
     p = write_ride(ride, tmp, stem="ride")
@@ -50,8 +51,10 @@ def _simulate_cached(rig, scenario, ride_dir: Path) -> tuple[dict, bool]:
              "captures": {k: v.name for k, v in p.captures.items()},
              "effective_inertia_kgm2": ride.effective_inertia_kgm2}
     (tmp / "paths.json").write_text(json.dumps(paths))
-    shutil.rmtree(ride_dir, ignore_errors=True)
-    tmp.rename(ride_dir)
+    try:
+        tmp.rename(ride_dir)
+    except OSError:  # another run finished the same ride first: the same bytes, keep theirs
+        shutil.rmtree(tmp, ignore_errors=True)
     return paths, False
 
 

@@ -1,6 +1,6 @@
 """Score one analysed ride against its truth: counts per speed band, layout, intervals.
 
-Rules (decided here, documented in bench/README.md):
+Rules (decided here, documented in bench/quality/README.md):
 
 * Events are matched with :func:`dsp.scoring.score_misfire` (per cylinder, nearest in time). The
   analyser's times are on the CAN receive time base (latency and jitter on top of the true edge
