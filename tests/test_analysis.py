@@ -30,11 +30,19 @@ rig_mod = pytest.importorskip("crankbeat.logger.rig")
 UNIT = 0.25e-6  # s per raw period count (RIG.md, crank teeth frame)
 
 
-def ride_frames(ride, *, per_frame=3, seed=0):
-    """Tooth frames of a SimRide: (frame_time, periods, cam, lost_before)."""
+def ride_frames(ride, *, per_frame=None, seed=0):
+    """Tooth frames of a SimRide: (frame_time, periods, cam, lost_before).
+
+    Periods are quantised to the rig's own unit and packed as many per frame as its tooth
+    message holds (the Larch: three of 0.25 µs; the Alder counts whole microseconds).
+    """
+    sig = ride.rig.message_for("tooth_periods").signal_for("tooth_periods")
+    unit = float(sig.scale) if sig is not None else UNIT
+    per_frame = per_frame or (int(sig.count) if sig is not None else 3)
     t = ride.tooth_time
-    raw = np.round(np.diff(t) / UNIT)
-    per = np.where(raw >= 0xFFFF, np.nan, raw * UNIT)
+    raw = np.round(np.diff(t) / unit)
+    full = 2 ** int(sig.length) - 1 if sig is not None else 0xFFFF
+    per = np.where(raw >= full, np.nan, raw * unit)
     m = per.size // per_frame
     periods = per[: m * per_frame].reshape(m, per_frame)
     last = t[1:][per_frame - 1 : m * per_frame : per_frame]
