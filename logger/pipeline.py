@@ -32,6 +32,7 @@ from crankbeat.dsp.analysis import EventAnalyzer
 from crankbeat.dsp.crank import CrankAngles
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.events import FIRED, FUEL_CUT, MASKED, MISFIRE
+from crankbeat.dsp.firing_check import FiringCheck
 from crankbeat.dsp.intervals import SpeedProfile
 from crankbeat.dsp.misfire import MisfireSettings
 from crankbeat.dsp.toothcal import ToothErrorLearner
@@ -160,6 +161,8 @@ class RunAnalysis:
         # tooth-error correction learnt mid-run takes effect (uncorrected teeth bend the profile)
         self.profile = self.events.profile
         self._profile_from: float | None = None
+        self.firing = FiringCheck(engine, rig.wheel.pitch_deg, layout_candidates(engine),
+                                  rig.limits.interval_tolerance_deg)
 
     @property
     def tooth_correction_applied(self) -> bool:
@@ -177,6 +180,7 @@ class RunAnalysis:
         self.teeth.push(step.crank, step.events)
         self._maybe_correct_teeth()
         self._add_to_profile(step.crank)
+        self.firing.push(step.crank)
         out = StepOutput(step.events, notes=list(step.notes))
         new_spans = []
         if self.vibration is not None:
@@ -197,6 +201,7 @@ class RunAnalysis:
         step = self.events.finish()
         self.teeth.push(step.crank, step.events, final=True)
         self._add_to_profile(step.crank)
+        self.firing.push(step.crank)
         out = StepOutput(step.events, notes=list(step.notes))
         new_spans = []
         if self.vibration is not None:
@@ -233,6 +238,7 @@ class RunAnalysis:
         old = self.events.profile
         self.profile = SpeedProfile(old.cycle_deg, old.bin_deg)
         self._profile_from = from_time
+        self.firing.restart(from_time)
         self.corrected_in_run = True
         self._correction = learnt.error_deg
         self.notes.append(
@@ -408,9 +414,15 @@ def _write(store: Store, run_id: int, out: StepOutput, summary: RunSummary) -> N
 def _finish(analysis: RunAnalysis, store: Store, run_id: int, *, status: str = "complete"
             ) -> dict:
     s = analysis.summary
-    analysis.notes += s.score_layouts(analysis.profile)
-    store.add_intervals(run_id, s.interval_rows())
+    rows, iv_notes = analysis.firing.interval_rows(analysis.tooth_correction_applied)
+    store.add_intervals(run_id, rows)
+    analysis.notes += iv_notes
     summary = s.as_dict()
+    layout = analysis.firing.layout()
+    if layout is not None:
+        summary["layout_check"].update(best=layout.families[0][0], matches_rig=layout.fits_rig,
+                                       scores={n: round(v, 4) for n, v in layout.families})
+        analysis.notes += [layout.note()] if layout.note() else []
     vib = analysis.vib_summary
     if vib is not None:
         store.add_vibration(run_id, _vibration_rows(vib))
@@ -426,10 +438,6 @@ def _finish(analysis: RunAnalysis, store: Store, run_id: int, *, status: str = "
         summary["vibration_exposure"] = {
             "riding_hours": vib.riding_hours, "a8_m_s2": vib.exposure}
     summary["tooth_errors"] = teeth = _save_tooth_errors(analysis, store, run_id)
-    if not analysis.tooth_correction_applied and not summary["layout_check"]["matches_rig"]:
-        analysis.notes.insert(0,
-            "the layout check ran on an uncorrected wheel: tooth spacing errors bend the speed "
-            "profile, so its verdict is doubtful until they are learnt (an overrun fuel cut)")
     if not analysis.tooth_correction_applied and not teeth["kept_for_next_runs"]:
         analysis.notes.insert(0,
             "the wheel's tooth spacing errors are not known yet (no earlier run of this rig learnt "
@@ -447,7 +455,8 @@ def _finish(analysis: RunAnalysis, store: Store, run_id: int, *, status: str = "
     summary["notes"] = _first_notes(analysis.notes + analysis.health.notes)
     limit = analysis.rig.limits.misfire_alert_pct
     worst = summary["misfire"]["worst_rev200_pct"]
-    summary["misfire"]["alert"] = bool(worst is not None and worst > limit)
+    summary["misfire"]["alert"] = bool(worst is not None and worst > limit
+                                       and summary["layout_check"]["matches_rig"])
     summary["misfire"]["alert_limit_pct"] = limit
     store.finish_run(run_id, summary, status=status)
     return summary
