@@ -37,6 +37,7 @@ from crankbeat.dsp.intervals import SpeedProfile
 from crankbeat.dsp.misfire import MisfireSettings
 from crankbeat.dsp.toothcal import ToothErrorLearner
 from crankbeat.dsp.vibration import SensorSpec, VibrationAnalyzer, VibrationSummary, merge_spans
+from crankbeat.dsp.wheel_learner import RidingWheelLearner
 from crankbeat.errors import CrankbeatWarning, DuplicateRunError
 from crankbeat.logger import stream
 from crankbeat.logger.chunks import Chunk, StreamHealth
@@ -161,6 +162,7 @@ class RunAnalysis:
         # tooth-error correction learnt mid-run takes effect (uncorrected teeth bend the profile)
         self.profile = self.events.profile
         self._profile_from: float | None = None
+        self.riding = RidingWheelLearner(rig.wheel, engine)  # the wheel from ordinary riding
         self.firing = FiringCheck(engine, rig.wheel.pitch_deg, layout_candidates(engine),
                                   rig.limits.interval_tolerance_deg)
 
@@ -179,6 +181,7 @@ class RunAnalysis:
         self.health = chunk.health
         self.teeth.push(step.crank, step.events)
         self._maybe_correct_teeth()
+        self._learn_wheel_riding(step.crank)
         self._add_to_profile(step.crank)
         self.firing.push(step.crank)
         out = StepOutput(step.events, notes=list(step.notes))
@@ -245,6 +248,26 @@ class RunAnalysis:
             f"tooth spacing errors of {learnt.rms_deg:.3f} deg rms learnt on the fuel cut ending "
             f"at t={closed_at:.1f} s are applied from t={from_time:.1f} s; the firing intervals "
             "of this run are taken from then on")
+
+    def _learn_wheel_riding(self, crank: CrankAngles) -> None:
+        est = self.riding.push(crank)
+        if not est.learnt or self.tooth_correction_applied or not len(crank.t):
+            return
+        from_time = float(crank.t[-1]) + IN_RUN_DELAY_S
+        self.events.tracker.schedule_tooth_correction(est.errors.error_deg, from_time)
+        self.summary.intervals_from(from_time)
+        self.firing.restart(from_time)
+        self.corrected_in_run, self._correction = True, est.errors.error_deg
+        self.notes.append(
+            f"tooth spacing errors of {est.errors.rms_deg:.3f} deg rms learnt from riding "
+            f"({est.errors.n_revolutions} revolutions) are applied from t={from_time:.1f} s; "
+            "the firing intervals of this run are taken from then on")
+
+    def learnt_teeth(self):
+        """The run's best tooth errors: the fuel cut's when confident, else riding's if learnt."""
+        cut = self.teeth.result()
+        est = self.riding.estimate()
+        return est.errors if est.learnt and cut.confidence < TOOTH_CONFIDENCE_MIN else cut
 
     def _add_to_profile(self, crank: CrankAngles) -> None:
         if self._profile_from is None or not len(crank):
@@ -464,7 +487,7 @@ def _finish(analysis: RunAnalysis, store: Store, run_id: int, *, status: str = "
 
 def _save_tooth_errors(analysis: RunAnalysis, store: Store, run_id: int) -> dict:
     """Keep the tooth errors learnt on this run's fuel cuts for the next runs of the rig."""
-    learnt = analysis.teeth.result()
+    learnt = analysis.learnt_teeth()
     keep = learnt.n_revolutions > 0 and learnt.confidence >= TOOTH_CONFIDENCE_MIN
     if keep:
         store.save_tooth_errors(analysis.rig.name, wheel_key(analysis.rig), learnt.error_deg,
