@@ -284,6 +284,12 @@ class MisfireDetector:
                 verdict[o], cause[o], conf[o] = MISFIRE, CAUSE_DEAD, 1.0
                 if ready and z > z_thr:
                     st.add_misfire(cell, -d, s.depth_history)
+            elif cand and len(st.run) > s.dead_run and st.ever_healthy:
+                # a long run of low scores whose share of the engine's work did not collapse is
+                # no dead spell but a drift of this cylinder's level (a driveline mode moving with
+                # speed): the baseline follows it instead of locking the cylinder into misfires
+                verdict[o] = FIRED
+                st.accept(x, y, d, dx)
             elif cand:
                 self._ring_from, self._ring_cyl, self._ring_z = gi, c, z
                 # a partial burn only where it is clearly short of a whole misfire: by depth and
