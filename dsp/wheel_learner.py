@@ -12,9 +12,11 @@ every revolution of the ride, fired or not. Measured on simulated 60 s rides (20
 loads 15-70 %, no fuel cut, 0.15 deg rms tooth errors): estimate within 0.006-0.025 deg rms of the
 true errors on the twin and the four.
 
-"Learnt" rests on three things: the learner's own confidence (standard error against the
-pattern's size, times the spread of 1/ω² seen), enough revolutions, and a settled estimate: the
-r.m.s. change since the last check (every ``check_every`` revolutions) below ``settle_deg``.
+"Learnt" rests on four things: a small standard error of the estimate (``max_se_deg``; not the
+pattern's size against it, so that a perfect wheel is learnt too), a spread of 1/ω² of at least
+``min_spread`` (one speed cannot tell the teeth from the engine), enough revolutions, and a
+settled estimate: the r.m.s. change since the last check (every ``check_every`` revolutions)
+below ``settle_deg``.
 The errors sum to zero round the wheel by construction (tooth 0 is the reference).
 """
 
@@ -43,7 +45,7 @@ class WheelEstimate:
     change_deg : float
         r.m.s. change of the estimate over the last check interval, deg (NaN before two checks).
     learnt : bool
-        Confident, enough revolutions, and settled.
+        Small standard error, speeds spread, enough revolutions, and settled.
     """
 
     errors: ToothErrors
@@ -58,8 +60,10 @@ class RidingWheelLearner:
     ----------
     wheel : ToothWheel
     engine : Engine
-    min_confidence : float
-        Least :attr:`ToothErrors.confidence` (0..1).
+    max_se_deg : float
+        Largest r.m.s. standard error of the estimate, deg.
+    min_spread : float
+        Least relative spread (standard deviation / mean) of 1/ω̄² over the revolutions used.
     min_revolutions : int
         Least revolutions used.
     check_every : int
@@ -68,15 +72,15 @@ class RidingWheelLearner:
         Largest r.m.s. change between two checks for a settled estimate, deg.
     """
 
-    def __init__(self, wheel: ToothWheel, engine: Engine, *, min_confidence: float = 0.9,
-                 min_revolutions: int = 1500, check_every: int = 500,
+    def __init__(self, wheel: ToothWheel, engine: Engine, *, max_se_deg: float = 0.01,
+                 min_spread: float = 0.25, min_revolutions: int = 1500, check_every: int = 500,
                  settle_deg: float = 0.01) -> None:
-        if not (0 < min_confidence <= 1 and min_revolutions > 0 and check_every > 0
+        if not (max_se_deg > 0 and min_spread > 0 and min_revolutions > 0 and check_every > 0
                 and settle_deg > 0):
-            raise InputError("wheel learner: confidence in (0, 1], revolutions, check interval "
-                             "and settle threshold > 0 expected")
+            raise InputError("wheel learner: standard error, speed spread, revolutions, check "
+                             "interval and settle threshold must be > 0")
         self.learner = ToothErrorLearner(wheel, engine, harmonics=16)
-        self.min_confidence = float(min_confidence)
+        self.max_se_deg, self.min_spread = float(max_se_deg), float(min_spread)
         self.min_revolutions = int(min_revolutions)
         self.check_every = int(check_every)
         self.settle_deg = float(settle_deg)
@@ -101,7 +105,10 @@ class RidingWheelLearner:
         res = self._current
         if res is None:
             res = ToothErrors(np.zeros(self.learner.L), 0, 0.0, 0.0)
-        learnt = bool(res.confidence >= self.min_confidence
+        n = max(self.learner.n_revs, 1)
+        mean = self.learner.s_sum / n
+        spread = np.sqrt(max(self.learner.s_sq / n - mean**2, 0.0)) / mean if mean > 0 else 0.0
+        learnt = bool(res.se_deg <= self.max_se_deg and spread >= self.min_spread
                       and res.n_revolutions >= self.min_revolutions
                       and np.isfinite(self._change) and self._change <= self.settle_deg)
         return WheelEstimate(res, self._change, learnt)

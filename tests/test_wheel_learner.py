@@ -79,4 +79,4 @@ def test_one_operating_point_does_not_learn():
 def test_bad_settings():
     rig = rig_with_wheel("larch")
     with pytest.raises(InputError):
-        RidingWheelLearner(rig.wheel, rig.engine, min_confidence=0.0)
+        RidingWheelLearner(rig.wheel, rig.engine, max_se_deg=0.0)
