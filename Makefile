@@ -4,7 +4,7 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
-.PHONY: demo test bench fixtures lint clean
+.PHONY: demo test bench quality fixtures lint clean
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -20,6 +20,10 @@ test: $(STAMP)
 
 bench: $(STAMP)
 	$(BIN)/python scripts/bench.py
+
+# Misfire/layout/interval verdicts on simulated rides the analyser is not told (~15-20 min).
+quality: $(STAMP)
+	$(BIN)/python scripts/quality.py
 
 fixtures: $(STAMP)
 	$(BIN)/python scripts/make_fixtures.py

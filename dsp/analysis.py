@@ -18,8 +18,16 @@ import numpy as np
 
 from crankbeat.dsp.crank import CrankAngles, CrankTracker, ToothWheel
 from crankbeat.dsp.engine import Engine
-from crankbeat.dsp.events import FIRED, MISFIRE, VERDICT_NAMES, empty_events
+from crankbeat.dsp.events import (
+    FIRED,
+    MISFIRE,
+    PARTIAL,
+    VERDICT_NAMES,
+    empty_detail,
+    empty_events,
+)
 from crankbeat.dsp.fluctuation import RAW_EVENT_DTYPE, FluctuationStage, WindowSpec
+from crankbeat.dsp.inertia import InertiaEstimator
 from crankbeat.dsp.intervals import SpeedProfile
 from crankbeat.dsp.misfire import MisfireDetector, MisfireSettings
 from crankbeat.errors import InputError
@@ -37,11 +45,14 @@ class AnalyzerStep:
         The tooth edges of this push (for order tracking).
     notes : list of str
         One-line messages (sync gained/lost, phase).
+    detail : ndarray of :data:`dsp.events.EVENT_DETAIL_DTYPE` or None
+        Per-event depth and cause, same length and order as ``events``.
     """
 
     events: np.ndarray
     crank: CrankAngles
     notes: list[str] = field(default_factory=list)
+    detail: np.ndarray | None = None
 
 
 class EventAnalyzer:
@@ -83,6 +94,7 @@ class EventAnalyzer:
             wheel, engine, tooth_correction_deg=tooth_correction_deg, **(tracker_options or {})
         )
         self.fluct = FluctuationStage(engine, wheel.pitch_deg, window=window)
+        self.inertia = InertiaEstimator(engine, wheel.pitch_deg)
         self.detector = MisfireDetector(engine, settings=self.settings)
         self.max_age = float(max_status_age_s)
         #: running crank-speed profile of the cycle, for :func:`dsp.intervals.identify_layout`
@@ -141,6 +153,7 @@ class EventAnalyzer:
     def _step(self, crank: CrankAngles, *, final: bool) -> AnalyzerStep:
         notes = [e.message for e in crank.events]
         self.profile.add(crank)
+        self.inertia.push(crank.t, crank.angle, crank.valid)
         raw = self.fluct.push(crank.t, crank.angle, crank.valid, crank.period)
         if final:
             raw = np.concatenate((raw, self.fluct.finish()))
@@ -152,9 +165,24 @@ class EventAnalyzer:
         events = self.detector.push(go, self._throttle_at(go["t"]))
         if final:
             events = np.concatenate((events, self.detector.finish()))
+        detail = self.detector.take_detail()
         self._trim_status()
         return AnalyzerStep(events=events if events.size else empty_events(0), crank=crank,
-                            notes=notes)
+                            notes=notes, detail=detail if detail.size else empty_detail(0))
+
+    def verdict_report(self) -> dict:
+        """Run-level findings of the misfire decision so far (see
+        :meth:`dsp.misfire.MisfireDetector.report`), with the effective inertia the data shows
+        beside the rig file's (``inertia_kgm2``: estimate or None, ``rig_inertia_kgm2``)."""
+        out = self.detector.report()
+        out["rig_inertia_kgm2"] = float(self.engine.inertia_kgm2)
+        out["inertia_kgm2"] = est = self.inertia.result()
+        if est is not None:
+            out["notes"].append(
+                f"effective rotating inertia from the crank speed: {est:.4f} kg m^2 (rig file "
+                f"{self.engine.inertia_kgm2:.4f}; a rough estimate from {self.inertia.cycles} "
+                "cycles at speed)")
+        return out
 
     def _ready_count(self) -> int:
         if not self._has_status or not self._pending.size:
@@ -217,7 +245,8 @@ def analyse_ride(
     return AnalyzerStep(
         events=np.concatenate((a.events, b.events)),
         crank=CrankAngles.concat([a.crank, b.crank]),
-        notes=a.notes + b.notes,
+        notes=a.notes + b.notes + an.verdict_report()["notes"],
+        detail=np.concatenate((a.detail, b.detail)),
     )
 
 
@@ -228,9 +257,9 @@ PATTERNS = ("isolated", "consecutive", "alternating", "random")
 
 
 def _counted(events: np.ndarray) -> np.ndarray:
-    """Events that count for rates: fired or misfire (not masked, fuel cut or unusable)."""
+    """Events that count for rates: fired, partial or misfire (not masked, fuel cut, unusable)."""
     v = events["verdict"]
-    return (v == FIRED) | (v == MISFIRE)
+    return (v == FIRED) | (v == MISFIRE) | (v == PARTIAL)
 
 
 def misfire_counts(events: np.ndarray, n_cyl: int) -> dict[str, np.ndarray]:
@@ -243,8 +272,9 @@ def misfire_counts(events: np.ndarray, n_cyl: int) -> dict[str, np.ndarray]:
 
     Returns
     -------
-    dict with (n_cyl,) arrays ``fired``, ``misfire``, ``masked``, ``unusable``, ``fuel_cut`` (int)
-    and ``rate_pct`` (misfires / (fired + misfires), %, NaN when nothing was counted), and the
+    dict with (n_cyl,) arrays ``fired``, ``misfire``, ``masked``, ``unusable``, ``fuel_cut``,
+    ``partial`` (int) and ``rate_pct`` (misfires / (fired + partial + misfires), %, NaN when
+    nothing was counted), and the
     totals under ``total_misfire`` and ``total_rate_pct``.
     """
     if int(n_cyl) < 1:
@@ -255,7 +285,7 @@ def misfire_counts(events: np.ndarray, n_cyl: int) -> dict[str, np.ndarray]:
     out: dict[str, np.ndarray] = {}
     for code, name in VERDICT_NAMES.items():
         out[name] = np.bincount(cyl[events["verdict"] == code], minlength=n_cyl)
-    denom = out["fired"] + out["misfire"]
+    denom = out["fired"] + out["misfire"] + out["partial"]
     with np.errstate(invalid="ignore", divide="ignore"):
         out["rate_pct"] = np.where(denom > 0, 100.0 * out["misfire"] / denom, np.nan)
     tot = int(denom.sum())

@@ -14,6 +14,7 @@ MISFIRE = 1  # no (or too little) combustion
 MASKED = 2  # rough road or another disturbance: neither counted as fired nor as misfire
 UNUSABLE = 3  # crank angle not trustworthy (sync lost, lost frames, saturated periods)
 FUEL_CUT = 4  # overrun with the throttle closed: no combustion expected, not a misfire
+PARTIAL = 5  # combustion, but clearly less than the cylinder's own (a partial burn)
 
 VERDICT_NAMES = {
     FIRED: "fired",
@@ -21,6 +22,7 @@ VERDICT_NAMES = {
     MASKED: "masked",
     UNUSABLE: "unusable",
     FUEL_CUT: "fuel_cut",
+    PARTIAL: "partial",
 }
 
 EVENT_DTYPE = np.dtype(
@@ -30,9 +32,9 @@ EVENT_DTYPE = np.dtype(
         ("cylinder", "i2"),  # 1-based
         ("rpm", "f8"),  # mean crank speed over the event's window, rpm
         ("throttle", "f8"),  # % (NaN when the rig has no throttle signal)
-        ("metric", "f8"),  # normalised speed-fluctuation metric; larger = weaker combustion
-        ("threshold", "f8"),  # decision threshold applied to ``metric``
-        ("verdict", "i1"),  # FIRED, MISFIRE, MASKED, UNUSABLE or FUEL_CUT
+        ("metric", "f8"),  # robust z-score of the missing work; larger = weaker combustion
+        ("threshold", "f8"),  # decision threshold applied to ``metric`` (robust sigma)
+        ("verdict", "i1"),  # FIRED, MISFIRE, MASKED, UNUSABLE, FUEL_CUT or PARTIAL
         ("confidence", "f4"),  # 0..1, how clear the verdict is
         ("interval_deg", "f8"),  # observed crank angle since the previous firing (NaN: none)
         ("expected_interval_deg", "f8"),  # what the layout promises for that interval
@@ -47,4 +49,36 @@ def empty_events(n: int = 0) -> np.ndarray:
     for name in EVENT_DTYPE.names or ():
         if EVENT_DTYPE[name].kind == "f":
             out[name] = np.nan
+    return out
+
+
+#: Why an event got its verdict, where the verdict alone does not say (``cause`` of
+#: :data:`EVENT_DETAIL_DTYPE`).
+CAUSE_NONE = 0
+CAUSE_CRANK = 1  # the crank data did not allow a metric (sync lost, lost frames, run ends)
+CAUSE_WARMUP = 2  # the cylinder's own statistics were not in yet (first cycles of the run)
+CAUSE_DEAD = 3  # the cylinder's level collapsed against the others: no combustion for a while
+CAUSE_IMPLAUSIBLE = 4  # the cylinder's metric failed the self-check (see the run's notes)
+
+CAUSE_NAMES = {
+    CAUSE_NONE: "",
+    CAUSE_CRANK: "crank data",
+    CAUSE_WARMUP: "warm-up",
+    CAUSE_DEAD: "dead cylinder",
+    CAUSE_IMPLAUSIBLE: "implausible metric",
+}
+
+#: Per-event detail beside :data:`EVENT_DTYPE` (same length and order; not kept by the store).
+EVENT_DETAIL_DTYPE = np.dtype(
+    [
+        ("depth", "f8"),  # missing work as a share of a complete misfire; NaN: not calibrated
+        ("cause", "u1"),  # CAUSE_* code
+    ]
+)
+
+
+def empty_detail(n: int = 0) -> np.ndarray:
+    """A detail array of length ``n``: depth NaN (not calibrated), no cause."""
+    out = np.zeros(n, dtype=EVENT_DETAIL_DTYPE)
+    out["depth"] = np.nan
     return out

@@ -60,6 +60,7 @@ RAW_EVENT_DTYPE = np.dtype(
         ("rpm", "f8"),  # mean speed over the window
         ("energy", "f8"),  # J, mean kinetic energy ½Jω² over the window
         ("work", "f8"),  # J, indicated-work estimate of the window (see module docstring)
+        ("swing", "f8"),  # J, energy change over the window minus the speed trend (no balance)
         ("rise_deg", "f8"),  # deg after TDC where the window's energy rise is centred
         ("usable", "?"),  # every input needed was there and valid
     ]
@@ -311,13 +312,14 @@ class FluctuationStage:
         s0 = max(int(np.searchsorted(self._ang, theta[0] + self._reach_lo - margin)) - 1, 0)
         s1 = int(np.searchsorted(self._ang, theta[-1] + self._reach_hi + margin)) + 1
         a, t = self._ang[s0:s1], self._t[s0:s1]
-        out["t"] = _interp_or_nan(theta, a, t)
+        out["t"] = _time_at(theta, a, t)
         pa = theta + w.start_deg
         pb = pa + L
         ta, tb = _interp_or_nan(pa, a, t), _interp_or_nan(pb, a, t)
         out["rpm"] = L / 6.0 / (tb - ta)
         if a.size < 3:
             out["work"] = np.nan
+            out["swing"] = np.nan
             out["energy"] = np.nan
             out["rise_deg"] = np.nan
             return out
@@ -355,6 +357,7 @@ class FluctuationStage:
         energy_mean, clean_win = self._window(mid, e, good, pa, pb)
         usable = np.isfinite(work) & clean_win
         out["work"] = np.where(usable, work, np.nan)
+        out["swing"] = np.where(usable, x, np.nan)
         out["energy"] = energy_mean
         out["rise_deg"] = np.where(usable, rise - theta, np.nan)
         out["usable"] = usable & np.isfinite(out["t"]) & np.isfinite(out["rpm"])
@@ -403,6 +406,20 @@ class FluctuationStage:
         with np.errstate(invalid="ignore", divide="ignore"):
             rise = pa + (c * wgt).sum(axis=1) / m0
         return np.where(m0 > 0, rise, np.nan)
+
+
+def _time_at(theta: np.ndarray, a: np.ndarray, t: np.ndarray) -> np.ndarray:
+    """Time of each angle: interpolated between edges, or carried on at the speed of the nearest
+    few edges just beyond the first or last one (the run's ends: every event gets a time)."""
+    out = _interp_or_nan(theta, a, t)
+    ok = np.isfinite(a) & np.isfinite(t)
+    a, t = a[ok], t[ok]
+    if a.size < 4:
+        return out
+    lo, hi = theta < a[0], theta > a[-1]
+    out[lo] = t[0] - (a[0] - theta[lo]) * (t[3] - t[0]) / (a[3] - a[0])
+    out[hi] = t[-1] + (theta[hi] - a[-1]) * (t[-1] - t[-4]) / (a[-1] - a[-4])
+    return out
 
 
 def _interp_or_nan(x: np.ndarray, xp: np.ndarray, fp: np.ndarray) -> np.ndarray:

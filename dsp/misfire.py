@@ -1,253 +1,72 @@
-"""Misfire decision per firing event, with thresholds learnt from the run itself.
+"""Misfire decision per firing event, on each cylinder's own robust statistics.
 
-Metric
-------
-``metric_k = 1 − W_k / ref_k``: 0 for a typical fired event, near 1 for a complete misfire
-(the window keeps only the compression work that comes back, a small fraction). ``W_k`` is the
-indicated-work estimate of :mod:`dsp.fluctuation`. ``ref_k`` is what this cylinder should have
-delivered *now*: the mean of the upper half of the ``4n`` events around it (two cycles before,
-two after), times this cylinder's factor (its typical share, learnt per cell). Taking the
-neighbours tracks load and rpm changes at once (a throttle snap changes every cylinder
-together), and taking their upper half keeps a neighbouring misfire, or a burst on one cylinder,
-out of the reference. A disturbance that hits all cylinders (a road bump through the driveline)
-lowers the reference with the event and does not make a misfire; a misfire is low against its
-neighbours on both sides (the second-difference idea of the classic monitors).
+Feature
+-------
+``x_k``: the window-work estimate of :mod:`dsp.fluctuation` (J). It carries a per-cylinder
+additive bias (tooth-spacing errors at the window ends, an inertia that differs from the rig
+file's, compression work outside the window) that grows with speed squared and differs between
+cylinders, and a scale set by the rig file's inertia. Neither matters here: every decision
+compares an event only with the same cylinder's neighbouring cycles, where the bias is the same,
+and measures the difference in that cylinder's own robust spread, where the scale cancels.
 
-Decision
---------
-``MISFIRE`` when ``metric > threshold``. The threshold is learnt per cylinder and per cell of
-rpm and load (load from the reference work itself, in bar of the swept volume, so it needs no
-throttle signal): the fired events' median plus the larger of ``spread_k`` robust standard
-deviations (MAD) and ``misfire_share`` of the way to a complete misfire (1), clipped to
-``[threshold_min, threshold_max]``; a cell not learnt yet uses its cylinder's pooled threshold,
-and ``default_threshold`` before that. Statistics are updated per block of events counted from
-the run's first event (16, 32, 64, then ``block``), and every event uses the statistics of the
-blocks before its own: the decision is causal with a look-ahead of two cycles plus the window's,
-and it does not depend on how the stream was chunked. The first ``warmup_events`` events get no
-decision (the monitor's enable condition). After a misfire the driveline rings for a few events:
-during ``holdoff_events`` events after one, a misfire on another cylinder must clear the
-threshold by ``holdoff_margin`` of the way to 1 (a burst on one cylinder is not held off).
-``z_local`` (off by default) also asks a misfire to stand out of the current spread of its
-neighbours.
+Decision (per event ``k`` of cylinder ``c``, in event order)
+---------------------------------------------------------
+* self baseline ``B``: median of ``x`` over the cylinder's last ``history_cycles`` events judged
+  fired (misfires, partial burns, fuel cut and dead spells never enter it) and its next
+  ``lookahead_cycles`` events (those that are not themselves far below the history);
+* ``z = (B − x_k) / s``, ``s`` the robust spread (1.4826·MAD) of the cylinder's recent accepted
+  deviations, floored at ``spread_floor`` of the work level;
+* the same against the other cylinders around the event (``x − median of the others``, with its
+  own baseline and spread): a disturbance that slows the crank for every cylinder at once (a
+  bump through the driveline) is not one cylinder's misfire;
+* ``MISFIRE`` when ``z > z_threshold`` and the cross score is above ``cross_threshold`` (for a
+  single cylinder the self score alone decides);
+* a cylinder whose level collapses against the other cylinders (below ``dead_ratio`` of theirs,
+  or by more than half of them against its own earlier share) is dead: every event ``MISFIRE``,
+  from the first cycles of a ride or mid-ride; its baseline is frozen, never adapted to it;
+* depth = missing work ÷ the work of a complete misfire, where an offset-free scale exists (the
+  cylinder's motored level on fuel cut, else the upper half of its own misfires in the rpm cell):
+  a flagged event shallower than ``partial_depth`` is ``PARTIAL``; without a scale, depth is NaN
+  ("not calibrated") and the event stays ``MISFIRE``;
+* self-check: a cylinder whose candidate flags swing every other cycle, or cover a large share of
+  its events with no runs, gets ``UNUSABLE`` events (reason in :meth:`MisfireDetector.report`),
+  never misfires;
+* the first ``warmup_cycles`` cycles of each cylinder are ``UNUSABLE`` (its statistics fill up).
+
+Each event is decided once the next ``lookahead_cycles`` cycles have arrived; the state is updated
+event by event, so streaming equals whole-array whatever the chunking.
 
 ``FUEL_CUT`` when the rpm is at least ``fuel_cut_min_rpm`` and either the throttle is closed (or
 unknown) and no cylinder around fires, or the throttle is (or was within ``fuel_cut_hold_s``)
-seen closed and the event has no combustion: the ECU's overrun cut, gear changes. ``UNUSABLE``
-when the crank data did not allow a metric, and during the warm-up.
+seen closed and the event has no combustion: the ECU's overrun cut, gear changes.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from collections import deque
 
 import numpy as np
-from scipy.special import ndtri
 
+from crankbeat.dsp.cylinder_stats import CylinderState, median, robust_spread
 from crankbeat.dsp.engine import Engine
-from crankbeat.dsp.events import FIRED, FUEL_CUT, MISFIRE, UNUSABLE, empty_events
+from crankbeat.dsp.events import (
+    CAUSE_CRANK,
+    CAUSE_DEAD,
+    CAUSE_IMPLAUSIBLE,
+    CAUSE_WARMUP,
+    FIRED,
+    FUEL_CUT,
+    MISFIRE,
+    PARTIAL,
+    UNUSABLE,
+    empty_detail,
+    empty_events,
+)
 from crankbeat.dsp.fluctuation import RAW_EVENT_DTYPE
 from crankbeat.dsp.layout import firing_sequence
+from crankbeat.dsp.misfire_prep import fuel_cut_flags, neighbour_levels
+from crankbeat.dsp.misfire_settings import MisfireSettings
 from crankbeat.errors import InputError
-
-
-@dataclass(frozen=True)
-class MisfireSettings:
-    """Options of the misfire decision (the rig file may override any of them).
-
-    Attributes
-    ----------
-    threshold : float or None
-        A fixed threshold on the metric; None = learn it from the run.
-    default_threshold : float
-        Threshold used before a cell has ``min_cell_events`` fired events.
-    threshold_min, threshold_max : float
-        Bounds of a learnt threshold.
-    spread_k : float
-        Robust standard deviations of the fired metric above its median.
-    misfire_share : float
-        The threshold lies at least this share of the way from the fired median to a complete
-        misfire (metric 1): a partial burn that still delivers more than about this share of
-        the work counts as fired (a weak cylinder, seen in the contribution), not as a misfire.
-    min_cell_events, history : int
-        Fired events a cell needs before its own threshold is used; events it keeps.
-    rpm_bin : float
-        Width of the rpm cells, rpm.
-    load_edges_bar : tuple of float
-        Cell edges of the load, as the reference window work over the swept volume, bar.
-    closed_throttle_pct, fuel_cut_min_rpm, fuel_cut_work_bar : float
-        Fuel-cut recognition: throttle at or below, rpm at or above, and mean window work of the
-        events around below this (bar of swept volume).
-    fuel_cut_hold_s : float
-        For this long after the throttle was last seen closed (and within two cycles before
-        it), an event without combustion is still the ECU's cut (gear changes, cut exit).
-    holdoff_events : int or None
-        Events after a misfire during which a further misfire on another cylinder must clear
-        the threshold by ``holdoff_margin`` of the way to 1 (None = 2 cycles).
-    holdoff_margin : float
-    block : int
-        Events per statistics update.
-    warmup_events : int
-        Events at the start of a run that get no decision (UNUSABLE): the monitor's enable
-        condition, until the first statistics block is in.
-    learn_below : float
-        Events with a metric below this feed the fired statistics even if they were called
-        misfires (so that a steady weak pattern is learnt, while complete misfires are not).
-    z_local : float
-        A misfire must exceed this many relative standard deviations of the neighbours that
-        form its reference (rough road, ringing driveline).
-    min_misfires, misfire_history : int
-        Clear misfires a cell needs before their typical metric is kept; misfires kept.
-    """
-
-    threshold: float | None = None
-    default_threshold: float = 0.6
-    threshold_min: float = 0.35
-    threshold_max: float = 0.85
-    spread_k: float = 4.5
-    misfire_share: float = 0.6
-    min_cell_events: int = 24
-    history: int = 96
-    rpm_bin: float = 1000.0
-    load_edges_bar: tuple[float, ...] = (1.5, 3.0, 5.0, 8.0)
-    closed_throttle_pct: float = 2.0
-    fuel_cut_min_rpm: float = 1600.0
-    fuel_cut_work_bar: float = 1.0
-    fuel_cut_hold_s: float = 0.15
-    holdoff_events: int | None = None
-    holdoff_margin: float = 0.15
-    block: int = 128
-    min_misfires: int = 5
-    z_local: float = 0.0
-    learn_below: float = 0.8
-    warmup_events: int = 16
-    misfire_history: int = 16
-
-    def __post_init__(self) -> None:
-        if self.threshold is not None and not 0 < self.threshold < 2:
-            raise InputError(f"misfire threshold must be in (0, 2), got {self.threshold!r}")
-        if not 0 < self.threshold_min <= self.default_threshold <= self.threshold_max:
-            raise InputError(
-                "need 0 < threshold_min <= default_threshold <= threshold_max, got "
-                f"{self.threshold_min!r}, {self.default_threshold!r}, {self.threshold_max!r}"
-            )
-        for name in ("min_cell_events", "history", "block"):
-            if int(getattr(self, name)) < 1:
-                raise InputError(f"{name} must be >= 1, got {getattr(self, name)!r}")
-        if self.rpm_bin <= 0:
-            raise InputError(f"rpm_bin must be > 0, got {self.rpm_bin!r}")
-
-
-def _fmedian(x: np.ndarray) -> float:
-    """Median of the finite values (NaN when there are none)."""
-    v = x[np.isfinite(x)]
-    return float(np.median(v)) if v.size else float("nan")
-
-
-class _Cells:
-    """Per (cylinder, rpm cell, load cell) history of fired events: metric and work ratio."""
-
-    def __init__(self, n_cyl: int, settings: MisfireSettings):
-        self.s = settings
-        self.n_load = len(settings.load_edges_bar) + 1
-        self.n_rpm = 24
-        shape = (n_cyl, self.n_rpm, self.n_load)
-        self.metric = np.full(shape + (settings.history,), np.nan)
-        self.ratio = np.full(shape + (settings.history,), np.nan)
-        self.fill = np.zeros(shape, dtype=np.int64)  # values ever written
-        self.thr = np.full(shape, settings.default_threshold)
-        self.sigma = np.full(shape, 0.1)
-        self.med = np.zeros(shape)
-        self.mis = np.ones(shape)
-        self.mis_metric = np.full(shape + (settings.misfire_history,), np.nan)
-        self.mis_fill = np.zeros(shape, dtype=np.int64)
-        self.factor = np.ones(shape)
-        # per-cylinder factor over all cells, for cells with too little data
-        self.cyl_ratio = np.full((n_cyl, settings.history), np.nan)
-        self.cyl_fill = np.zeros(n_cyl, dtype=np.int64)
-        self.cyl_factor = np.ones(n_cyl)
-        # per-cylinder metric spread over all cells: the threshold of cells not learnt yet
-        self.cyl_metric = np.full((n_cyl, settings.history), np.nan)
-        self.cyl_thr = np.full(n_cyl, settings.default_threshold)
-        self.cyl_sigma = np.full(n_cyl, 0.1)
-
-    def cell(self, rpm: np.ndarray, load_bar: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        r = np.clip(np.nan_to_num(rpm / self.s.rpm_bin), 0, self.n_rpm - 1).astype(np.int64)
-        ld = np.searchsorted(np.asarray(self.s.load_edges_bar), np.nan_to_num(load_bar))
-        return r, ld.astype(np.int64)
-
-    def update(self, cyl0, rc, lc, metric, ratio) -> None:
-        h = self.s.history
-        for c in np.unique(cyl0):
-            sel = cyl0 == c
-            vals = ratio[sel]
-            k = self.cyl_fill[c]
-            pos = (k + np.arange(vals.size)) % h
-            self.cyl_ratio[c, pos[-h:]] = vals[-h:]
-            self.cyl_fill[c] = k + vals.size
-            self.cyl_factor[c] = float(_fmedian(self.cyl_ratio[c]))
-            self.cyl_metric[c, pos[-h:]] = metric[sel][-h:]
-            hist = self.cyl_metric[c]
-            if np.isfinite(hist).sum() >= max(8, self.s.min_cell_events // 3):
-                med = float(_fmedian(hist))
-                sig = max(1.4826 * float(_fmedian(np.abs(hist - med))), 0.01)
-                thr = med + max(self.s.spread_k * sig, self.s.misfire_share * (1.0 - med))
-                self.cyl_sigma[c] = sig
-                self.cyl_thr[c] = float(
-                    np.clip(thr, max(self.s.threshold_min, self.s.default_threshold),
-                            self.s.threshold_max)
-                )
-        key = (cyl0 * self.n_rpm + rc) * self.n_load + lc
-        for u in np.unique(key):
-            sel = key == u
-            c, rest = divmod(int(u), self.n_rpm * self.n_load)
-            r, ld = divmod(rest, self.n_load)
-            k = self.fill[c, r, ld]
-            m = metric[sel][-h:]
-            q = ratio[sel][-h:]
-            pos = (k + np.arange(m.size)) % h
-            self.metric[c, r, ld, pos] = m
-            self.ratio[c, r, ld, pos] = q
-            self.fill[c, r, ld] = k + int(sel.sum())
-            if self.fill[c, r, ld] < self.s.min_cell_events:
-                continue
-            self.factor[c, r, ld] = float(_fmedian(self.ratio[c, r, ld]))
-            hist = self.metric[c, r, ld]
-            if np.isfinite(hist).sum() >= 8:
-                med = float(_fmedian(hist))
-                sig = 1.4826 * float(_fmedian(np.abs(hist - med)))
-                self.med[c, r, ld] = med
-                self.sigma[c, r, ld] = max(sig, 0.01)
-                self._threshold(c, r, ld)
-
-    def update_misfires(self, cyl0, rc, lc, metric) -> None:
-        """Keep the metric of clear misfires per cell (for the hold-off and reports)."""
-        hm = self.s.misfire_history
-        key = (cyl0 * self.n_rpm + rc) * self.n_load + lc
-        for u in np.unique(key):
-            sel = key == u
-            c, rest = divmod(int(u), self.n_rpm * self.n_load)
-            r, ld = divmod(rest, self.n_load)
-            k = self.mis_fill[c, r, ld]
-            m = metric[sel][-hm:]
-            pos = (k + np.arange(m.size)) % hm
-            self.mis_metric[c, r, ld, pos] = m
-            self.mis_fill[c, r, ld] = k + int(sel.sum())
-            self._threshold(c, r, ld)
-
-    def _threshold(self, c: int, r: int, ld: int) -> None:
-        s = self.s
-        if self.fill[c, r, ld] < s.min_cell_events:
-            return
-        med, sig = self.med[c, r, ld], self.sigma[c, r, ld]
-        if self.mis_fill[c, r, ld] >= s.min_misfires:
-            self.mis[c, r, ld] = float(_fmedian(self.mis_metric[c, r, ld]))
-        # far enough above the fired spread (false alarms) and at least misfire_share of the way
-        # to a complete misfire (1: partial burns and disturbances); where the spread is wide the
-        # first term wins. The misfire level seen in the run is kept for reports, not for the
-        # threshold: misfires scatter widely (a second one in a row keeps more work) and a threshold
-        # pushed up by the clear ones would miss the others.
-        thr = med + max(s.spread_k * sig, s.misfire_share * (1.0 - med))
-        self.thr[c, r, ld] = float(np.clip(thr, s.threshold_min, s.threshold_max))
 
 
 class MisfireDetector:
@@ -262,38 +81,33 @@ class MisfireDetector:
     -----
     ``push(raw, throttle)`` takes raw events in order (``throttle`` in %, one per event, NaN when
     unknown) and returns the events that are final, as :data:`dsp.events.EVENT_DTYPE`: each raw
-    event comes out exactly once, at most ``n_cyl`` events later. ``finish()`` flushes the rest.
+    event comes out exactly once, ``lookahead_cycles`` cycles later. ``finish()`` flushes the
+    rest. :meth:`take_detail` returns the :data:`dsp.events.EVENT_DETAIL_DTYPE` rows of the
+    events returned since its last call; :meth:`report` the run-level findings.
     """
 
     def __init__(self, engine: Engine, *, settings: MisfireSettings | None = None):
         self.engine = engine
         self.s = settings or MisfireSettings()
         self.n = engine.n_cylinders
-        self._cells = _Cells(self.n, self.s)
         self._vd = np.pi / 4 * engine.bore_m**2 * engine.stroke_m  # m³, swept volume per cylinder
-        cyls, angles = firing_sequence(engine)
+        _, angles = firing_sequence(engine)
         iv = np.diff(np.concatenate((angles, [angles[0] + engine.cycle_deg])))
-        # expected interval *before* each position of the firing sequence
-        self._expected_before = np.roll(iv, 1)
-        self._holdoff = self.s.holdoff_events if self.s.holdoff_events is not None else 2 * self.n
-        self._nn = 2 * self.n  # neighbours on each side: two cycles
-        # expected distance between the 2nd largest and the nn-th largest of 2nn normal values
-        # (Blom's approximation of normal order statistics), to turn the range into a sigma
-        m = 2 * self._nn
-        blom = lambda i: ndtri((m - i + 1 - 0.375) / (m + 0.25))  # noqa: E731  i-th largest
-        self._range_scale = float(blom(2) - blom(self._nn)) if self._nn > 2 else 1.0
+        self._expected_before = np.roll(iv, 1)  # expected interval *before* each position
+        self._ahead = self.s.lookahead_cycles * self.n  # events of look-ahead
+        self._back = max(2 * self.n, self._ahead)  # events of history kept in the buffer
+        self._z = float(self.s.threshold if self.s.threshold is not None else self.s.z_threshold)
+        self._cyl = [CylinderState(self.s.history_cycles, self.s.spread_events,
+                                   self.s.pattern_events) for _ in range(self.n)]
         self._raw = np.zeros(0, dtype=RAW_EVENT_DTYPE)
         self._thr_in = np.zeros(0)
         self._done_upto: int | None = None  # global index of the next event to decide
-        self._origin = 0
-        self._last_misfire = -(10**18)
-        self._last_cyl = 0
         self._last_closed_t = -np.inf
-        self._prev: np.ndarray | None = None  # the last decided event (for intervals)
-        self._prev_index = -1
-        self._block_acc: list[np.ndarray] = []
-        self._mis_acc: list[np.ndarray] = []
-        self._block_id: int | None = None
+        self._prev_at = np.nan  # rise angle of the last decided event (for intervals)
+        self._prev_index = -2
+        self._detail: list[np.ndarray] = []
+        self._ring_from, self._ring_cyl, self._ring_z = -(10**18), -1, 0.0  # last misfire
+        self._recent_z: deque[float] = deque(maxlen=4 * self.n)  # z of recent fired events
 
     # -- streaming ------------------------------------------------------------------------------
     def push(self, raw: np.ndarray, throttle: np.ndarray | None = None) -> np.ndarray:
@@ -313,225 +127,255 @@ class MisfireDetector:
         self._thr_in = np.concatenate((self._thr_in, thr))
         if self._done_upto is None and self._raw.size:
             self._done_upto = int(self._raw["index"][0])
-            self._origin = self._done_upto
         return self._decide(final=False)
 
     def finish(self) -> np.ndarray:
         return self._decide(final=True)
+
+    def take_detail(self) -> np.ndarray:
+        """Detail rows of the events returned since the last call, in the same order."""
+        out = np.concatenate(self._detail) if self._detail else empty_detail(0)
+        self._detail = []
+        return out
+
+    def report(self) -> dict:
+        """Run-level findings: dead and unusable cylinders with reasons, depth calibration.
+
+        Returns
+        -------
+        dict with ``unusable`` ({cylinder: reason}), ``dead`` ({cylinder: first time seen, s}),
+        ``depth_calibrated`` ({cylinder: bool}) and ``notes`` (one line each).
+        """
+        unusable = {c + 1: st.unusable_reason for c, st in enumerate(self._cyl)
+                    if st.unusable_reason}
+        dead = {c + 1: st.first_dead for c, st in enumerate(self._cyl) if st.first_dead is not None}
+        k = self.s.depth_min_count
+        calibrated = {c + 1: any(len(v) >= k for v in (*st.motored.values(),
+                                                        *st.misfire_dev.values()))
+                      for c, st in enumerate(self._cyl)}
+        notes = [f"cylinder {c}: events unusable, {why}" for c, why in unusable.items()]
+        notes += [f"cylinder {c}: no combustion for a stretch (first seen at t = {t:.2f} s): "
+                  "every event of it counted as misfire" for c, t in dead.items()]
+        if not all(calibrated.values()):
+            which = ", ".join(str(c) for c, ok in calibrated.items() if not ok)
+            notes.append(f"misfire depth not calibrated on cylinder(s) {which} (no fuel cut and "
+                         "no clear misfire seen): partial burns are not told from misfires there")
+        return {"unusable": unusable, "dead": dead, "depth_calibrated": calibrated,
+                "notes": notes}
 
     def _decide(self, *, final: bool) -> np.ndarray:
         if self._done_upto is None or not self._raw.size:
             return empty_events(0)
         first = int(self._raw["index"][0])
         last = int(self._raw["index"][-1])
-        ready_hi = last + 1 if final else last + 1 - self._nn  # events < ready_hi are decidable
-        outs = []
-        while self._done_upto < ready_hi:
-            end = self._block_end(self._done_upto)
-            seg_hi = min(ready_hi, end)
-            outs.append(self._segment(self._done_upto - first, seg_hi - first))
-            self._done_upto = seg_hi
-            if seg_hi == end:
-                self._close_block()
-        # keep n events of history before the next undecided one
-        keep_from = max(self._done_upto - first - self._nn, 0)
+        ready_hi = last + 1 if final else last + 1 - self._ahead
+        out = empty_events(0)
+        if self._done_upto < ready_hi:
+            out = self._segment(self._done_upto - first, ready_hi - first)
+            self._done_upto = ready_hi
+        keep_from = max(self._done_upto - first - self._back, 0)
         self._raw = self._raw[keep_from:]
         self._thr_in = self._thr_in[keep_from:]
-        if final:
-            self._close_block()
-        return np.concatenate(outs) if outs else empty_events(0)
-
-    def _block_end(self, i: int) -> int:
-        """End (exclusive) of the statistics block holding event i: blocks of 16, 32, 64 events
-        from the run's first event let the statistics start early, then ``block`` each."""
-        rel = i - self._origin
-        b = self.s.block
-        for edge in (16, 48, 112):
-            if rel < edge and edge < b:
-                return self._origin + edge
-        start = 112 if b > 64 else 0
-        return self._origin + start + ((rel - start) // b + 1) * b
-
-    def _close_block(self) -> None:
-        if self._block_acc:
-            acc = np.concatenate(self._block_acc)
-            self._block_acc = []
-            if acc.size:
-                self._cells.update(acc["c"], acc["r"], acc["l"], acc["m"], acc["q"])
-        if self._mis_acc:
-            macc = np.concatenate(self._mis_acc)
-            self._mis_acc = []
-            if macc.size:
-                self._cells.update_misfires(macc["c"], macc["r"], macc["l"], macc["m"])
-
-    # -- one vectorised segment (inside one statistics block) -----------------------------------
-    def _segment(self, i0: int, i1: int) -> np.ndarray:
-        n, s, cells = self.n, self.s, self._cells
-        raw = self._raw
-        idx = np.arange(i0, i1)
-        ev = raw[i0:i1]
-        out = empty_events(idx.size)
-        out["t"] = ev["t"]
-        out["cycle"] = ev["cycle"]
-        out["cylinder"] = ev["cylinder"]
-        out["rpm"] = ev["rpm"]
-        out["throttle"] = self._thr_in[i0:i1]
-        cyl0 = ev["cylinder"].astype(np.int64) - 1
-        work = np.where(ev["usable"], ev["work"], np.nan)
-        # neighbours k-n..k+n without k (missing ones at the edges of the buffer are NaN)
-        nn = self._nn
-        offs = np.concatenate((np.arange(-nn, 0), np.arange(1, nn + 1)))
-        j = idx[:, None] + offs[None, :]
-        inb = (j >= 0) & (j < raw.size)
-        jc = np.clip(j, 0, raw.size - 1)
-        w_all = np.where(raw["usable"], raw["work"], np.nan)
-        nb = np.where(inb, w_all[jc], np.nan)
-        # upper half of the neighbours (NaN sorts last: count the finite ones)
-        nb_sorted = np.sort(np.where(np.isfinite(nb), nb, -np.inf), axis=1)[:, ::-1]
-        cnt = np.isfinite(nb).sum(axis=1)
-        half = np.maximum(cnt // 2, 1)
-        take = np.arange(2 * nn)[None, :] < half[:, None]
-        base = np.where(take & np.isfinite(nb_sorted), nb_sorted, 0.0).sum(axis=1) / half
-        base = np.where(cnt >= max(2, nn), base, np.nan)
-        # the spread of the neighbours (each over its cylinder's factor) says how disturbed the
-        # crank is right now: a rough road or a ringing driveline widens it, and then a misfire
-        # must stand out by z_local of it. The spread is the range between the second largest
-        # and the median-rank value, which leaves out a rebound just after a misfire (largest)
-        # and neighbouring misfires (lowest).
-        nbn = nb / cells.cyl_factor[raw["cylinder"].astype(np.int64)[jc] - 1]
-        nbn_sorted = np.sort(np.where(np.isfinite(nbn), nbn, -np.inf), axis=1)[:, ::-1]
-        full = cnt == 2 * nn
-        with np.errstate(invalid="ignore", divide="ignore"):
-            rng_ = nbn_sorted[:, 1] - nbn_sorted[:, nn - 1]
-            local_rel = rng_ / self._range_scale / np.abs(nbn_sorted[:, 1:nn].mean(axis=1))
-        local_rel = np.where(full & np.isfinite(local_rel), local_rel, 0.0)
-        load_bar = base / self._vd / 1e5
-        rc, lc = cells.cell(ev["rpm"], load_bar)
-        sigma = np.where(
-            cells.fill[cyl0, rc, lc] >= s.min_cell_events,
-            cells.sigma[cyl0, rc, lc],
-            cells.cyl_sigma[cyl0],
-        )
-        factor = np.where(
-            cells.fill[cyl0, rc, lc] >= s.min_cell_events,
-            cells.factor[cyl0, rc, lc],
-            cells.cyl_factor[cyl0],
-        )
-        ref = base * factor
-        with np.errstate(invalid="ignore", divide="ignore"):
-            metric = np.where(ref > 0, 1.0 - work / ref, np.nan)
-            contribution = work / base
-        if s.threshold is not None:
-            thr = np.full(idx.size, float(s.threshold))
-        else:
-            learnt = cells.fill[cyl0, rc, lc] >= s.min_cell_events
-            thr = np.where(learnt, cells.thr[cyl0, rc, lc], cells.cyl_thr[cyl0])
-        # enable condition: no decision before the run has shown its first statistics block
-        warm = np.isfinite(metric) & (ev["index"] - self._origin < s.warmup_events)
-        ok = np.isfinite(metric) & ~warm
-        verdict = np.where(ok, FIRED, UNUSABLE).astype(np.int8)
-        # fuel cut: closed (or unknown) throttle, rpm above the overrun limit, nothing fires
-        tp = out["throttle"]
-        closed = ~(tp > s.closed_throttle_pct)
-        # the ECU cuts and restores fuel around a closed throttle (gear changes, overrun entry
-        # and exit) faster than a 100 Hz status signal shows: a closed throttle within two
-        # cycles counts for an event that has no work
-        thr_nb = np.where(inb, self._thr_in[jc], np.nan)
-        closed_near = closed | (thr_nb <= s.closed_throttle_pct).any(axis=1)
-        seen_closed = np.where(tp <= s.closed_throttle_pct, ev["t"], -np.inf)
-        t_closed = np.maximum.accumulate(np.concatenate(([self._last_closed_t], seen_closed)))
-        self._last_closed_t = float(t_closed[-1])
-        closed_near |= ev["t"] - t_closed[1:] <= s.fuel_cut_hold_s
-        gi = idx[:, None] + np.arange(-n + 1, n)[None, :]
-        gin = (gi >= 0) & (gi < raw.size)
-        around = np.where(gin, w_all[np.clip(gi, 0, raw.size - 1)], np.nan)
-        n_around = np.isfinite(around).sum(axis=1)
-        around_sum = np.where(np.isfinite(around), around, 0.0).sum(axis=1)
-        around_mean = around_sum / np.maximum(n_around, 1)
-        around_mean = np.where(n_around > 0, around_mean, np.nan)
-        # with the throttle closed above the cut speed, an event without work is the ECU's
-        # overrun cut (alone at the start and end of a cut, or with its neighbours in it)
-        none_fire = around_mean / self._vd / 1e5 < s.fuel_cut_work_bar
-        no_fire = none_fire | (work / self._vd / 1e5 < s.fuel_cut_work_bar)
-        # with the throttle seen closed (now or moments ago) above the cut speed no combustion
-        # is expected: an event without it is the ECU's cut, not a misfire. With no throttle
-        # signal only "no cylinder fires" tells a cut.
-        known_closed = tp <= s.closed_throttle_pct
-        weak = ok & (metric > thr)
-        fuel_cut = (closed & none_fire) | (known_closed & no_fire)
-        fuel_cut |= closed_near & (no_fire | weak) & ~np.isnan(tp)
-        fuel_cut &= (ev["rpm"] >= s.fuel_cut_min_rpm) & np.isfinite(around_mean)
-        # only the part of the local spread beyond twice the cell's usual spread counts
-        excess = np.sqrt(np.maximum(local_rel**2 - (3.0 * sigma) ** 2, 0.0))
-        cand = ok & ~fuel_cut & (metric > thr) & (metric > s.z_local * excess)
-        verdict[fuel_cut] = FUEL_CUT
-        verdict[cand] = MISFIRE
-        # ring-down hold-off: sequential, but only over the (rare) candidates
-        gidx = ev["index"]
-        strict = thr + s.holdoff_margin * np.maximum(1.0 - thr, 0.0)
-        cyl_now = ev["cylinder"]
-        for k in np.flatnonzero(cand):
-            # a burst on one cylinder is real; the ring-down shows on the other cylinders' events
-            ring = gidx[k] - self._last_misfire <= self._holdoff and cyl_now[k] != self._last_cyl
-            if ring and metric[k] <= strict[k]:
-                verdict[k] = FIRED
-            else:
-                self._last_misfire = int(gidx[k])
-                self._last_cyl = int(cyl_now[k])
-        out["metric"] = metric
-        out["threshold"] = thr
-        out["verdict"] = verdict
-        scale = np.maximum(3.0 * sigma, 0.05)
-        conf = np.clip(np.abs(metric - thr) / scale, 0.0, 1.0)
-        conf[fuel_cut] = np.clip(
-            (s.fuel_cut_work_bar - around_mean[fuel_cut] / self._vd / 1e5) / s.fuel_cut_work_bar,
-            0,
-            1,
-        )
-        out["confidence"] = np.where(np.isfinite(conf), conf, 0.0)
-        out["contribution"] = contribution
-        self._intervals(out, ev)
-        # statistics from fired, usable events of this segment (applied when the block closes)
-        # a steady pattern that makes one cylinder look weak (a driveline resonance, a weak
-        # cylinder) is learnt too: events below ``learn_below`` feed the cylinder factor even
-        # when the current threshold calls them misfires; complete misfires never do ...
-        fired = (verdict == FIRED) | (((verdict == MISFIRE) | warm) & (metric < s.learn_below))
-        fired &= np.isfinite(base)
-        acc = np.zeros(
-            int(fired.sum()),
-            dtype=[("c", "i8"), ("r", "i8"), ("l", "i8"), ("m", "f8"), ("q", "f8")],
-        )
-        acc["c"], acc["r"], acc["l"] = cyl0[fired], rc[fired], lc[fired]
-        # ... but only into the cylinder factor: the spread (and so the threshold) is learnt from
-        # events called fired, so that a burst of misfires cannot widen it and hide itself
-        acc["m"] = np.where((verdict == FIRED) | warm, metric, np.nan)[fired]
-        acc["q"] = (work / base)[fired]
-        self._block_acc.append(acc)
-        clear = (verdict == MISFIRE) & (conf >= 0.5) & np.isfinite(base)
-        mdt = [("c", "i8"), ("r", "i8"), ("l", "i8"), ("m", "f8")]
-        macc = np.zeros(int(clear.sum()), dtype=mdt)
-        macc["c"], macc["r"], macc["l"] = cyl0[clear], rc[clear], lc[clear]
-        macc["m"] = metric[clear]
-        self._mis_acc.append(macc)
         return out
+
+    # -- one run of events ------------------------------------------------------------------------
+    def _segment(self, i0: int, i1: int) -> np.ndarray:
+        s, raw = self.s, self._raw
+        ev = raw[i0:i1]
+        out = empty_events(i1 - i0)
+        detail = empty_detail(i1 - i0)
+        for name in ("t", "cycle", "cylinder", "rpm"):
+            out[name] = ev[name]
+        out["throttle"] = self._thr_in[i0:i1]
+        w_all = np.where(raw["usable"], raw[s.feature], np.nan)
+        hi = min(i1 + self._ahead, raw.size)
+        others, base = neighbour_levels(w_all, i0, hi, self.n)
+        y_all = np.full(raw.size, np.nan)
+        y_all[i0:hi] = w_all[i0:hi] - others
+        with np.errstate(invalid="ignore", divide="ignore"):
+            out["contribution"] = w_all[i0:i1] / base[: i1 - i0]
+        fc_sure, fc_maybe, self._last_closed_t = fuel_cut_flags(
+            ev, w_all, self._thr_in, i0, i1, self.n, self._vd, s, self._last_closed_t)
+        self._sequential(i0, i1, w_all, y_all, others, fc_sure, fc_maybe, out, detail)
+        self._intervals(out, ev)
+        self._detail.append(detail)
+        return out
+
+    def _sequential(self, i0, i1, w_all, y_all, others, fc_sure, fc_maybe, out, detail) -> None:
+        """Decide events i0..i1 one by one (each updates the cylinder state the next ones use)."""
+        s, n, z_thr = self.s, self.n, self._z
+        # plain Python lists: the loop reads single values, far cheaper than numpy scalars
+        cyl0 = (self._raw["cylinder"].astype(np.int64) - 1).tolist()
+        rpm = self._raw["rpm"].tolist()
+        gidx = self._raw["index"].tolist()
+        size = w_all.size
+        w_all, y_all, others = w_all.tolist(), y_all.tolist(), others.tolist()
+        fc_sure, fc_maybe = fc_sure.tolist(), fc_maybe.tolist()
+        times, shares = out["t"].tolist(), out["contribution"].tolist()
+        metric = np.full(i1 - i0, np.nan)
+        conf = np.zeros(i1 - i0)
+        verdict = np.full(i1 - i0, UNUSABLE, dtype=np.int8)
+        cause = np.zeros(i1 - i0, dtype=np.uint8)
+        depth = np.full(i1 - i0, np.nan)
+        for k in range(i0, i1):
+            o = k - i0
+            x = w_all[k]
+            c = cyl0[k]
+            st = self._cyl[c]
+            if x != x:
+                cause[o] = CAUSE_CRANK
+                continue
+            y = y_all[k]
+            ahead = [k + n * a for a in range(1, s.lookahead_cycles + 1) if k + n * a < size]
+            ax = [w_all[j] for j in ahead if w_all[j] == w_all[j]]
+            ay = [y_all[j] for j in ahead if y_all[j] == y_all[j]]
+            sd, sx = st.spreads()
+            ready = len(st.dev) >= s.warmup_cycles
+            hx_med = median(st.hx) if st.hx else float("nan")
+            level = max(abs(hx_med) if st.hx else abs(x), abs(others[o])
+                        if others[o] == others[o] else 0.0)
+            floor = s.spread_floor * level + 1e-12
+            sd = max(sd, floor) if sd == sd else floor
+            sx = max(sx, floor) if sx == sx else floor
+            screen = hx_med - z_thr * sd if ready else None
+            b = st.baseline(ax, screen_below=screen)
+            d = x - b
+            z = -d / sd
+            screen_y = median(st.hy) - z_thr * sx if ready and st.hy else None
+            by = st.cross_baseline(ay, screen_below=screen_y) if y == y else float("nan")
+            dx = y - by
+            zx = -dx / sx
+            # a rough road or a ringing driveline scatters every event around: then the
+            # threshold rises with the recent scatter (about their median: a baseline lagging a
+            # throttle change shifts every score the same way, and is no disturbance)
+            calm = (robust_spread(self._recent_z) / s.local_scatter
+                    if len(self._recent_z) >= 4 else 0.0)
+            # within two cycles of an event lost to bad crank data the loss balance of the
+            # window work is patched (dsp.fluctuation): the score is less sure there
+            near_gap = any(w_all[j] != w_all[j]
+                           for j in range(max(k - 2 * n, 0), min(k + 2 * n + 1, size)))
+            margin = s.gap_margin if near_gap else 1.0
+            cand = (ready and z > z_thr * max(margin, calm)
+                    and (n == 1 or not zx == zx or zx > s.cross_threshold))
+            gi = gidx[k]
+            if cand and c != self._ring_cyl and gi - self._ring_from <= 2 * n:
+                # the driveline rings for a few events after a misfire: another cylinder's
+                # event then must stand out by a share of that misfire's own score too
+                cand = z > s.ring_share * self._ring_z
+            share = shares[o]
+            dead = self._dead(c, x, share, cand, times[o])
+            cell = int(rpm[k] // 1000.0) if rpm[k] == rpm[k] else -1
+            metric[o] = z if ready else np.nan
+            if fc_sure[o] or (fc_maybe[o] and (cand or dead)):
+                verdict[o] = FUEL_CUT
+                st.add_motored(cell, x, s.depth_history)
+                conf[o] = 1.0
+                continue
+            st.add_recent(x)
+            st.flags.append(bool(cand or dead))
+            why = None if dead else st.pattern_implausible(min_events=s.pattern_events)
+            if why is not None:
+                st.unusable_reason = why
+                verdict[o], cause[o] = UNUSABLE, CAUSE_IMPLAUSIBLE
+                continue
+            scale = st.depth_scale(cell, b, min_count=s.depth_min_count)
+            depth[o] = -d / scale if scale == scale else np.nan
+            if dead:
+                verdict[o], cause[o], conf[o] = MISFIRE, CAUSE_DEAD, 1.0
+                if ready and z > z_thr:
+                    st.add_misfire(cell, -d, s.depth_history)
+            elif cand and len(st.run) > s.dead_run and st.ever_healthy:
+                # a long run of low scores whose share of the engine's work did not collapse is
+                # no dead spell but a drift of this cylinder's level (a driveline mode moving with
+                # speed): the baseline follows it instead of locking the cylinder into misfires
+                verdict[o] = FIRED
+                st.accept(x, y, d, dx)
+            elif cand:
+                self._ring_from, self._ring_cyl, self._ring_z = gi, c, z
+                # a partial burn only where it is clearly short of a whole misfire: by depth and
+                # by partial_gap robust sigma, on a scale from fuel cut here or from misfires
+                # that agree among themselves (at low signal to noise, at high speed and light
+                # load, whole misfires scatter from 0.4 to 1.4 of their median)
+                scale = -d / depth[o] if depth[o] == depth[o] and depth[o] > 0 else 0.0
+                calibrated_here = bool(st.motored.get(cell)) or (
+                    st.misfire_scatter(cell) < s.partial_tight * scale)
+                partial = (calibrated_here and depth[o] < s.partial_depth
+                           and (1.0 - depth[o]) * scale > s.partial_gap * sd)
+                verdict[o] = PARTIAL if partial else MISFIRE
+                conf[o] = min(1.0, (z - z_thr) / z_thr + 0.5)
+                if not partial:
+                    st.add_misfire(cell, -d, s.depth_history)
+            elif ready:
+                verdict[o] = FIRED
+                self._recent_z.append(z)
+                conf[o] = min(1.0, (z_thr - z) / z_thr)
+                st.accept(x, y, d, dx)
+                st.ever_healthy = True
+                if share == share:
+                    st.shares.append(share)
+            else:
+                cause[o] = CAUSE_WARMUP
+                st.accept(x, y, d, dx)
+        out["metric"] = metric
+        out["threshold"] = z_thr
+        out["verdict"] = verdict
+        out["confidence"] = np.clip(conf, 0.0, 1.0)
+        detail["depth"] = depth
+        detail["cause"] = cause
+
+    def _dead(self, c: int, x: float, contrib: float, cand: bool, t: float) -> bool:
+        """Cylinder c is in a dead spell: no combustion for a while, from the start or mid-ride.
+
+        Mid-ride, a run of ``dead_run`` misfires in a row starts a spell; it lasts while the
+        cylinder's share of the engine's work (``contribution``) stays below halfway between its
+        healthy share (before the run) and its share in the run: a frozen baseline in joules
+        drifts as speed and load change, a share of the others' work does not. A cylinder that
+        never fired has no healthy share: it is told by its level far below the others' (under
+        ``dead_ratio`` of it) and the lack of the combustion scatter they show (a per-cylinder
+        bias at high speed, or a driveline mode near the firing frequency, can put a firing
+        cylinder that low, but not take its scatter away).
+        """
+        st = self._cyl[c]
+        if self.n < 2:
+            return False
+        st.run = st.run + [contrib] if cand else []
+        lv = [o.level for i, o in enumerate(self._cyl) if i != c and len(o.recent) >= 4]
+        lv_o = median(lv) if lv else float("nan")
+        lim = self.s.dead_ratio * lv_o
+        if st.dead_since is not None:
+            dead = contrib < st.spell_mid if st.spell_mid == st.spell_mid else lv_o > 0 and x < lim
+        elif st.ever_healthy:
+            dead = False
+            if len(st.run) >= self.s.dead_run and len(st.shares) >= 8:
+                healthy, entry = median(st.shares), median(st.run)
+                if healthy - entry > 0.3:
+                    st.spell_mid, dead = 0.5 * (healthy + entry), True
+        else:
+            own = list(st.recent)[-15:] + [x]
+            sp = [robust_spread(o.recent) for i, o in enumerate(self._cyl)
+                  if i != c and len(o.recent) >= 4]
+            dead = (len(own) >= 4 and bool(sp) and lv_o > 0 and x < lim and median(own) < lim
+                    and lv_o - median(own) > self._z * median(sp)
+                    and robust_spread(own) < self.s.dead_scatter * median(sp))
+            st.spell_mid = float("nan")
+        if dead and st.dead_since is None:
+            st.dead_since = t
+            st.first_dead = t if st.first_dead is None else st.first_dead
+        elif not dead:
+            st.dead_since = None
+        return dead
 
     def _intervals(self, out: np.ndarray, ev: np.ndarray) -> None:
         pos_in_seq = np.mod(ev["index"], self.n)
         out["expected_interval_deg"] = self._expected_before[pos_in_seq]
-        at = ev["theta"] + ev["rise_deg"]
-        fired = out["verdict"] == FIRED
-        at = np.where(fired, at, np.nan)
-        if self._prev is not None:
-            prev_at = np.concatenate(([self._prev[0]], at[:-1]))
-            prev_idx = np.concatenate(([self._prev_index], ev["index"][:-1]))
-        else:
-            prev_at = np.concatenate(([np.nan], at[:-1]))
-            prev_idx = np.concatenate(([-2], ev["index"][:-1]))
-        iv = at - prev_at
-        out["interval_deg"] = np.where(prev_idx == ev["index"] - 1, iv, np.nan)
-        if ev.size:
-            self._prev = np.array([at[-1]])
-            self._prev_index = int(ev["index"][-1])
+        at = np.where(out["verdict"] == FIRED, ev["theta"] + ev["rise_deg"], np.nan)
+        if not ev.size:
+            return
+        prev_at = np.concatenate(([self._prev_at], at[:-1]))
+        prev_idx = np.concatenate(([self._prev_index], ev["index"][:-1]))
+        out["interval_deg"] = np.where(prev_idx == ev["index"] - 1, at - prev_at, np.nan)
+        self._prev_at = float(at[-1])
+        self._prev_index = int(ev["index"][-1])
 
 
 def detect_misfires(

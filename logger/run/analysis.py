@@ -25,6 +25,7 @@ import numpy as np
 from crankbeat.dsp.analysis import EventAnalyzer
 from crankbeat.dsp.crank import CrankAngles
 from crankbeat.dsp.engine import Engine
+from crankbeat.dsp.firing_check import FiringCheck
 from crankbeat.dsp.intervals import SpeedProfile
 from crankbeat.dsp.misfire import MisfireSettings
 from crankbeat.dsp.vibration import SensorSpec, VibrationAnalyzer, VibrationSummary
@@ -121,6 +122,9 @@ class RunAnalysis:
         # tooth-error correction learnt mid-run takes effect (uncorrected teeth bend the profile)
         self.profile = self.events.profile
         self._profile_from: float | None = None
+        # firing intervals and the layout verdict from the run's averaged crank cycle
+        self.firing = FiringCheck(engine, rig.wheel.pitch_deg, layout_candidates(engine),
+                                  rig.limits.interval_tolerance_deg)
 
     @property
     def tooth_correction_applied(self) -> bool:
@@ -144,6 +148,7 @@ class RunAnalysis:
         if switch is not None:
             self._apply_correction(switch.error_deg, switch.from_time)
         self._add_to_profile(step.crank)
+        self.firing.push(step.crank)
         self.channels.push(chunk.status)
         new_spans = []
         if self.vibration is not None:
@@ -162,6 +167,7 @@ class RunAnalysis:
         self._note_start(step.crank)
         self.teeth.push(step.crank, step.events, final=True)
         self._add_to_profile(step.crank)
+        self.firing.push(step.crank)
         self.channels.finish()
         new_spans = []
         if self.vibration is not None:
@@ -209,6 +215,7 @@ class RunAnalysis:
         old = self.events.profile
         self.profile = SpeedProfile(old.cycle_deg, old.bin_deg)
         self._profile_from = from_time
+        self.firing.restart(from_time)
 
     def _add_to_profile(self, crank: CrankAngles) -> None:
         if self._profile_from is None or not len(crank):

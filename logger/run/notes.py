@@ -5,7 +5,7 @@ from __future__ import annotations
 from crankbeat.logger.chunks import StreamHealth
 
 
-def tooth_notes(*, applied: bool, layout_matches: bool, learnt, ) -> list[str]:
+def tooth_notes(*, applied: bool, learnt) -> list[str]:
     """Notes on the wheel's tooth errors, most important first.
 
     ``applied``: some correction applied to the run; ``learnt``: :class:`LearntTeeth`.
@@ -22,10 +22,6 @@ def tooth_notes(*, applied: bool, layout_matches: bool, learnt, ) -> list[str]:
             "the wheel's tooth spacing errors are not known yet (no earlier run of this rig learnt "
             "them, and this run had no usable overrun fuel cut): firing intervals are not "
             "corrected for them and may be off by several degrees")
-    if not applied and not layout_matches:
-        notes.append(
-            "the layout check ran on an uncorrected wheel: tooth spacing errors bend the speed "
-            "profile, so its verdict is doubtful until they are learnt (an overrun fuel cut)")
     return notes
 
 

@@ -104,8 +104,23 @@ def conclude(analysis) -> RunTail:
     """The tail of a finished :class:`logger.run.analysis.RunAnalysis` (no I/O)."""
     s = analysis.summary
     notes = list(analysis.notes)
-    notes += s.score_layouts(analysis.profile)
+    interval_rows, interval_notes = analysis.firing.interval_rows(
+        analysis.tooth_correction_applied)
+    notes += interval_notes
     summary = s.as_dict()
+    found = analysis.events.verdict_report()  # dead/unusable cylinders, depth scale, inertia
+    summary["detector"] = {
+        "inertia_kgm2": found["inertia_kgm2"], "rig_inertia_kgm2": found["rig_inertia_kgm2"],
+        "dead_since_s": {str(c): t for c, t in found["dead"].items()},
+        "unusable": {str(c): why for c, why in found["unusable"].items()},
+        "depth_calibrated": {str(c): ok for c, ok in found["depth_calibrated"].items()},
+    }
+    notes = found["notes"] + notes
+    layout = analysis.firing.layout()
+    if layout is not None:
+        summary["layout_check"].update(best=layout.families[0][0], matches_rig=layout.fits_rig,
+                                       scores={n: round(v, 4) for n, v in layout.families})
+        notes += [layout.note()] if layout.note() else []
     vib = analysis.vib_summary
     vibration, order_maps = [], []
     if vib is not None:
@@ -115,9 +130,7 @@ def conclude(analysis) -> RunTail:
             "riding_hours": vib.riding_hours, "a8_m_s2": vib.exposure}
     teeth = analysis.teeth.learnt()
     summary["tooth_errors"] = teeth.as_dict()
-    notes = tooth_notes(applied=analysis.tooth_correction_applied,
-                        layout_matches=bool(summary["layout_check"]["matches_rig"]),
-                        learnt=teeth) + notes
+    notes = tooth_notes(applied=analysis.tooth_correction_applied, learnt=teeth) + notes
     rough = list(analysis.rough_spans)
     summary["rough_road"] = {"spans": len(rough), "seconds": float(sum(b - a for a, b in rough))}
     health: StreamHealth = analysis.health
@@ -125,9 +138,11 @@ def conclude(analysis) -> RunTail:
     summary["notes"] = first_notes(notes + list(health.notes))
     limit = analysis.rig.limits.misfire_alert_pct
     worst = summary["misfire"]["worst_rev200_pct"]
-    summary["misfire"]["alert"] = bool(worst is not None and worst > limit)
+    # no alert from a rig file whose layout the engine does not fit
+    summary["misfire"]["alert"] = bool(worst is not None and worst > limit
+                                       and summary["layout_check"]["matches_rig"])
     summary["misfire"]["alert_limit_pct"] = limit
-    return RunTail(s.interval_rows(), vibration, order_maps, teeth, summary, rough,
+    return RunTail(interval_rows, vibration, order_maps, teeth, summary, rough,
                    summary["notes"])
 
 

@@ -16,6 +16,7 @@ from crankbeat.dsp.crank import CrankAngles
 from crankbeat.dsp.events import FIRED, FUEL_CUT
 from crankbeat.dsp.misfire import MisfireSettings
 from crankbeat.dsp.toothcal import ToothErrorLearner
+from crankbeat.dsp.wheel_learner import RidingWheelLearner
 from crankbeat.logger.rig.model import Rig
 
 #: Learnt tooth errors are kept for later runs when the fit is at least this confident (0..1).
@@ -58,6 +59,8 @@ class ToothCorrectionPolicy:
 
     def __init__(self, rig: Rig, settings: MisfireSettings, prior_deg=None) -> None:
         self.learner = FuelCutLearner(ToothErrorLearner(rig.wheel, rig.engine), settings)
+        self.riding = RidingWheelLearner(rig.wheel, rig.engine)  # the wheel from any riding
+        self._blocks = AngleBlocks(360.0 * self.riding.check_every)
         self.from_prior = prior_deg is not None
         self.current = None if prior_deg is None else np.asarray(prior_deg, dtype=float)
         self.corrected_in_run = False
@@ -73,6 +76,28 @@ class ToothCorrectionPolicy:
              ) -> CorrectionSwitch | None:
         """Feed a step's edges and events; return a switch when the run's own errors take over."""
         self.learner.push(crank, events, final=final)
+        switch = self._from_fuel_cut(final)
+        riding = self._from_riding(crank) if not final else None
+        return switch if switch is not None else riding
+
+    def _from_riding(self, crank: CrankAngles) -> CorrectionSwitch | None:
+        # whole blocks of crank angle: the learner's checks (and a switch) fall on the same
+        # edges however the stream is chunked, so live and replay stay equal
+        switch = None
+        for block in self._blocks.push(crank):
+            est = self.riding.push(block)
+            if switch is not None or not est.learnt or self.applied:
+                continue
+            from_time = float(block.t[-1]) + IN_RUN_DELAY_S
+            self.corrected_in_run, self.current = True, est.errors.error_deg
+            self.notes.append(
+                f"tooth spacing errors of {est.errors.rms_deg:.3f} deg rms learnt from riding "
+                f"({est.errors.n_revolutions} revolutions) are applied from t={from_time:.1f} s; "
+                "the firing intervals of this run are taken from then on")
+            switch = CorrectionSwitch(est.errors.error_deg, from_time)
+        return switch
+
+    def _from_fuel_cut(self, final: bool) -> CorrectionSwitch | None:
         closed_at = self.learner.take_closed()
         if closed_at is None or self.corrected_in_run or final:
             return None
@@ -99,8 +124,12 @@ class ToothCorrectionPolicy:
         return CorrectionSwitch(learnt.error_deg, from_time)
 
     def learnt(self) -> LearntTeeth:
-        """What the run learnt, and whether it is good enough to keep for later runs."""
+        """What the run learnt, and whether it is good enough to keep for later runs: the fuel
+        cut's errors when confident, else riding's when learnt."""
         r = self.learner.result()
+        est = self.riding.estimate()
+        if est.learnt and r.confidence < TOOTH_CONFIDENCE_MIN:
+            r = est.errors
         keep = r.n_revolutions > 0 and r.confidence >= TOOTH_CONFIDENCE_MIN
         return LearntTeeth(
             error_deg=np.asarray(r.error_deg, dtype=float) if keep else None,
@@ -208,6 +237,44 @@ class FuelCutLearner:
         """Time of the event that ended the latest fuel-cut stretch, once; None if none."""
         closed, self._closed_at = self._closed_at, None
         return closed
+
+
+class AngleBlocks:
+    """Cuts a stream of crank edges into whole blocks of ``block_deg`` of unwrapped crank angle.
+
+    A block is handed out once an edge of the next block arrives; edges not synced yet (angle
+    NaN) ride along with the block they arrive in. The blocks are the same whatever the chunking.
+    """
+
+    def __init__(self, block_deg: float) -> None:
+        self.block_deg = float(block_deg)
+        self._parts: list[CrankAngles] = []
+        self._current: float | None = None  # index of the block being filled
+
+    def push(self, crank: CrankAngles) -> list[CrankAngles]:
+        if len(crank):
+            self._parts.append(crank)
+        if not self._parts:
+            return []
+        edges = CrankAngles.concat(self._parts)
+        index = np.floor(edges.angle / self.block_deg)
+        out = []
+        while True:
+            if self._current is None:
+                finite = np.flatnonzero(np.isfinite(index))
+                if not finite.size:
+                    break
+                self._current = float(index[finite[0]])
+            with np.errstate(invalid="ignore"):
+                later = np.flatnonzero(index > self._current)
+            if not later.size:
+                break
+            cut = int(later[0])
+            out.append(take_edges(edges, 0, cut))
+            edges, index = take_edges(edges, cut, len(edges)), index[cut:]
+            self._current = float(index[0])
+        self._parts = [edges] if len(edges) else []
+        return out
 
 
 def take_edges(c: CrankAngles, a: int, b: int) -> CrankAngles:

@@ -39,10 +39,25 @@ TAPER_S = 0.25  # the mode dies out over this after the clutch opens
 ROUGH_KICK = 0.005  # rms road momentum kick per unit roughness, share of J_v ω
 
 
+def referred_stiffness(scenario: Scenario, j_engine: float, gear: int) -> float:
+    """Driveline stiffness referred to the crank in ``gear``, N·m/rad.
+
+    From ``driveline_stiffness`` (at the rear wheel, / overall ratio²), or, when ``driveline_hz``
+    is set, the stiffness that puts the two-inertia mode there:
+    k = (2π f)² J_e J_v / (J_e + J_v).
+    """
+    phys = scenario.physics
+    if phys.driveline_hz > 0:
+        j_v = vehicle_inertia(scenario, gear)
+        w = 2.0 * np.pi * phys.driveline_hz
+        return float(w * w * j_engine * j_v / (j_engine + j_v))
+    g = float(overall_ratio(phys, gear))
+    return phys.driveline_stiffness / g**2
+
+
 def mode_frequency(scenario: Scenario, j_engine: float, gear: int) -> float:
     """Driveline mode frequency in ``gear``, Hz."""
-    g = float(overall_ratio(scenario.physics, gear))
-    k = scenario.physics.driveline_stiffness / g**2
+    k = referred_stiffness(scenario, j_engine, gear)
     j_v = vehicle_inertia(scenario, gear)
     return float(np.sqrt(k * (1.0 / j_engine + 1.0 / j_v)) / (2.0 * np.pi))
 
@@ -50,8 +65,7 @@ def mode_frequency(scenario: Scenario, j_engine: float, gear: int) -> float:
 def transfer(scenario: Scenario, j_engine: float, gear: int):
     """Continuous (num, den) of H_a and H_q in ``gear``."""
     phys = scenario.physics
-    g = float(overall_ratio(phys, gear))
-    k = phys.driveline_stiffness / g**2
+    k = referred_stiffness(scenario, j_engine, gear)
     j_v = vehicle_inertia(scenario, gear)
     j_red = j_engine * j_v / (j_engine + j_v)
     wn = np.sqrt(k / j_red)

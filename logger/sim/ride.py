@@ -12,7 +12,7 @@ from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.layout import firing_angles
 from crankbeat.errors import InputError
 from crankbeat.logger.rig.model import Rig
-from crankbeat.logger.sim import crank, driveline, firing
+from crankbeat.logger.sim import crank, driveline, firing, geared
 from crankbeat.logger.sim.profile import Profile
 from crankbeat.logger.sim.scenario import Scenario
 from crankbeat.logger.sim.teeth import cam_levels, edges_between, hermite, wheel_errors
@@ -76,6 +76,12 @@ class SimRide:
     #: (c,) load on the crank (shaft: controller, road, vehicle inertia), N·m
     cycle_load: np.ndarray = field(default_factory=lambda: np.empty(0))
     seeds: dict[str, np.random.SeedSequence] = field(default_factory=dict, repr=False)
+
+    @property
+    def effective_inertia_kgm2(self) -> float:
+        """Mean crank inertia as simulated: crank, flywheel, reciprocating share, geared part."""
+        j = float(np.mean(crank.inertia_table(self.engine)[:-1]))
+        return j + geared.referred_inertia(self.scenario.physics)
 
     @property
     def start_time(self) -> float:
@@ -270,9 +276,14 @@ def simulate(
     edges, cycle_t = _engine_alone(scenario, engine, gas, track, wheel, errors, say)
     say("driveline", 0.0)
     j_mean = float(np.mean(crank.inertia_table(engine)))
+    t_g, om_g = geared.apply(
+        scenario.physics, j_mean, theta_rad=np.radians(edges["ang"]), t_alone=edges["t"],
+        omega_alone=edges["om"], cycle_t=cycle_t,
+    )
     t, omega, _, _ = driveline.apply(
-        scenario, track, j_mean, theta_rad=np.radians(edges["ang"]), t_alone=edges["t"],
-        omega_alone=edges["om"], cycle_t=cycle_t, rng=np.random.default_rng(seeds["road"]),
+        scenario, track, j_mean + geared.referred_inertia(scenario.physics),
+        theta_rad=np.radians(edges["ang"]), t_alone=t_g, omega_alone=om_g, cycle_t=cycle_t,
+        rng=np.random.default_rng(seeds["road"]),
     )
     events = _truth(scenario, engine, params, fire, edges["ang"], t, omega, n)
     cycle_true = hermite(np.radians(720.0 * np.arange(len(cycle_t))), np.radians(edges["ang"]),

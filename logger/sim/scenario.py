@@ -27,6 +27,7 @@ scenario file (TOML, crankbeat's own layout):
     probability = 1.0              # chance per firing event inside the span
     # cycles = [40, 41, 57]        # or explicit working-cycle indices (misfire / partial_burn)
     # fraction = 0.4               # partial_burn: share of the charge that burns
+    # a dead cylinder: kind = "misfire", probability = 1.0 over its span
     # degrees = 8.0                # retard: ignition later by this much
 
     [engine]
@@ -34,11 +35,16 @@ scenario file (TOML, crankbeat's own layout):
     fuel_cut_rpm = 1800            # overrun cut: no fuel once throttle < fuel_cut_throttle ...
     fuel_cut_throttle = 1.0        # ... with the crank faster than fuel_cut_rpm, until it opens
     fuel_cut_hysteresis_rpm = 300  # ... or the crank falls below fuel_cut_rpm minus this
+    fuel_cut = false               # this ECU never cuts fuel on the overrun
 
     [physics]                      # variations; every key optional (see Physics for defaults)
     inertia_scale = 1.0
     driveline_stiffness = 9000.0   # N·m/rad at the rear wheel
     combustion_cov = 0.03
+    driveline_hz = 12.0            # driveline mode in every gear (instead of the stiffness)
+    geared_inertia_kgm2 = 0.05     # clutch basket + gearbox input at their shaft
+    geared_ratio = 1.9             # crank turns per shaft turn (default: primary_ratio)
+    geared_hz = 180.0              # mode of crank against the geared part
 
     [wheel]
     error_rms_deg = 0.05           # tooth spacing errors of the trigger wheel, rms, seeded
@@ -171,12 +177,27 @@ class Physics:
     mount_damping: float = 0.06
     road_noise_g: float = 0.08  # rms road noise at the sensor on a smooth road, g
     rough_gain: float = 1.0  # scales the crank-speed disturbance of rough sections
+    # The driveline mode in every gear, Hz; 0 = from driveline_stiffness (the mode then moves
+    # with the gear). A set frequency picks the referred stiffness gear by gear.
+    driveline_hz: float = 0.0
+    # A geared part on the crank (clutch basket, primary, gearbox input): inertia at its own
+    # shaft, crank turns per shaft turn (0 = primary_ratio), the crank-to-part mode and its
+    # damping ratio. 0 kg·m² = none (the crank turns alone, as the rig file says).
+    geared_inertia_kgm2: float = 0.0
+    geared_ratio: float = 0.0
+    geared_hz: float = 180.0
+    geared_damping: float = 0.05
 
     def __post_init__(self) -> None:
         for name in ("inertia_scale", "driveline_stiffness", "compression_ratio",
                      "vehicle_mass_kg", "wheel_radius_m"):
             if not getattr(self, name) > 0:
                 raise InputError(f"physics {name} must be > 0, got {getattr(self, name)!r}")
+        for name in ("driveline_hz", "geared_inertia_kgm2", "geared_ratio"):
+            if not getattr(self, name) >= 0:
+                raise InputError(f"physics {name} must be >= 0, got {getattr(self, name)!r}")
+        if not 0.0 < self.geared_hz <= 2000.0:
+            raise InputError(f"physics geared_hz must be within 0..2000, got {self.geared_hz!r}")
         if not 0.0 <= self.combustion_cov < 0.5:
             raise InputError(
                 f"physics combustion_cov must be within 0..0.5, got {self.combustion_cov!r}"

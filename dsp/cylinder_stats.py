@@ -1,0 +1,180 @@
+"""Per-cylinder robust statistics behind the misfire verdict (pure Python state, no I/O).
+
+Every number here is the cylinder's own: the baseline of its window work taken from its own
+neighbouring cycles, the robust spread of its deviations, the depth scale of its misfires, the
+levels used to see a cylinder die. Keeping each cylinder apart removes every deterministic
+per-cylinder pattern (tooth-spacing errors at the window ends, an inertia that differs from the
+rig file's, compression work outside the window): those move the cylinder's level, slowly and
+smoothly with speed, and a difference between neighbouring cycles of the same cylinder cancels
+them. What is left is the cycle-to-cycle scatter, against which a misfire is judged in units of
+robust standard deviations.
+
+Robust spread: ``1.4826 · median(|d − median(d)|)``, the median absolute deviation scaled to the
+standard deviation of a normal distribution (standard statistics; scipy.stats.median_abs_deviation
+with ``scale='normal'`` uses the same constant, 1/Φ⁻¹(3/4)).
+
+The classes are streaming state updated one event at a time, in event order, so that a run gives
+the same numbers however it is cut into chunks.
+"""
+
+from __future__ import annotations
+
+from collections import deque
+
+#: 1 / Φ⁻¹(3/4): MAD → standard deviation of a normal distribution (standard statistics)
+MAD_TO_SIGMA = 1.4826
+
+
+def median(values) -> float:
+    """Median of a short sequence of floats (NaN when empty); plain Python, cheap for n < 100."""
+    s = sorted(values)
+    m = len(s)
+    if not m:
+        return float("nan")
+    h = m // 2
+    return s[h] if m % 2 else 0.5 * (s[h - 1] + s[h])
+
+
+def robust_spread(values) -> float:
+    """``MAD_TO_SIGMA · median(|v − median(v)|)`` (NaN when empty)."""
+    med = median(values)
+    return MAD_TO_SIGMA * median([abs(v - med) for v in values])
+
+
+class CylinderState:
+    """What one cylinder has shown so far.
+
+    Parameters
+    ----------
+    history : int
+        Accepted (not flagged) events kept for the baseline, in cycles.
+    spread_events : int
+        Deviations kept for the robust spread.
+    pattern_events : int
+        Candidate flags kept for the self-check.
+    """
+
+    def __init__(self, history: int, spread_events: int, pattern_events: int) -> None:
+        self.hx: deque[float] = deque(maxlen=history)  # accepted window work, J
+        self.hy: deque[float] = deque(maxlen=history)  # accepted work minus the others', J
+        self.dev: deque[float] = deque(maxlen=spread_events)  # accepted self deviations, J
+        self.dev_x: deque[float] = deque(maxlen=spread_events)  # accepted cross deviations, J
+        self.recent: deque[float] = deque(maxlen=2 * history)  # every counted work, flagged or not
+        self.flags: deque[bool] = deque(maxlen=pattern_events)  # candidate misfire or not
+        self.misfire_dev: dict[int, deque[float]] = {}  # rpm cell → deviations of misfires, J
+        self.motored: dict[int, deque[float]] = {}  # rpm cell → work on fuel cut, J
+        self.level = float("nan")  # median of ``recent``
+        self.ever_healthy = False  # an event judged fired after the warm-up
+        self.shares: deque[float] = deque(maxlen=spread_events)  # contribution when fired
+        self.run: list[float] = []  # contributions of the current run of misfires
+        self.spell_mid = float("nan")  # share below which a dead spell goes on
+        self.dead_since: float | None = None  # start of the current dead spell, s
+        self.first_dead: float | None = None  # start of the first dead spell, s
+        self.unusable_reason: str | None = None
+        self._spread_cache: tuple[int, float, float] | None = None
+        self._n_added = 0
+
+    # -- baselines ------------------------------------------------------------------------------
+    def baseline(self, ahead: list[float], *, screen_below: float | None) -> float:
+        """Median of the accepted history and the look-ahead values not below ``screen_below``."""
+        vals = list(self.hx)
+        if screen_below is None:
+            vals += ahead
+        else:
+            vals += [a for a in ahead if a >= screen_below]
+        return median(vals)
+
+    def cross_baseline(self, ahead: list[float], *, screen_below: float | None) -> float:
+        vals = list(self.hy)
+        if screen_below is None:
+            vals += ahead
+        else:
+            vals += [a for a in ahead if a >= screen_below]
+        return median(vals)
+
+    def spreads(self) -> tuple[float, float]:
+        """Robust spreads of the self and cross deviations (cached until a value is added)."""
+        # refreshed every 4th new value once the spread has settled: a MAD moves slowly, and
+        # two sorts per event were most of the decision's time
+        stale = self._spread_cache is None or (
+            self._n_added - self._spread_cache[0] >= (8 if len(self.dev) >= 16 else 1))
+        if stale:
+            s = robust_spread(self.dev) if self.dev else float("nan")
+            sx = robust_spread(self.dev_x) if self.dev_x else float("nan")
+            self._spread_cache = (self._n_added, s, sx)
+        assert self._spread_cache is not None
+        return self._spread_cache[1], self._spread_cache[2]
+
+    def accept(self, x: float, y: float, d: float, dx: float) -> None:
+        """An event judged fired joins the baselines and the spreads."""
+        self.hx.append(x)
+        self.hy.append(y)
+        if d == d:  # not NaN
+            self.dev.append(d)
+            self._n_added += 1
+        if dx == dx:
+            self.dev_x.append(dx)
+            self._n_added += 1
+
+    def add_recent(self, x: float) -> None:
+        """A counted event's work, flagged or not (for the dead-cylinder check)."""
+        self.recent.append(x)
+        self.level = median(self.recent)
+
+    # -- depth scale ----------------------------------------------------------------------------
+    def add_misfire(self, cell: int, dev: float, keep: int) -> None:
+        self.misfire_dev.setdefault(cell, deque(maxlen=keep)).append(dev)
+
+    def add_motored(self, cell: int, x: float, keep: int) -> None:
+        self.motored.setdefault(cell, deque(maxlen=keep)).append(x)
+
+    def depth_scale(self, cell: int, baseline: float, *, min_count: int) -> float:
+        """Work a complete misfire of this cylinder takes away here, J (NaN: not calibrated).
+
+        From the cylinder's motored level on fuel cut in the same rpm cell (offset-free: the same
+        per-cylinder bias is in both), else from its own misfires in that cell (the upper half of
+        their deviations, so that partial burns among them do not shrink the scale); failing
+        both, from the cell below or above (1000 rpm apart: the bias changes little).
+        """
+        for near in (cell, cell - 1, cell + 1):  # the cell, else a neighbouring one
+            mot = self.motored.get(near)
+            if mot is not None and len(mot) >= min_count:
+                scale = baseline - median(mot)
+                if scale > 0:
+                    return scale
+            mis = self.misfire_dev.get(near)
+            if mis is not None and len(mis) >= min_count:
+                s = sorted(mis)
+                return median(s[len(s) // 2 :])
+        return float("nan")
+
+    def misfire_scatter(self, cell: int) -> float:
+        """Robust spread of the cylinder's misfire deviations near this rpm cell, J (inf when
+        fewer than 8: too few to say how tight the misfires are)."""
+        vals = [v for near in (cell - 1, cell, cell + 1) for v in self.misfire_dev.get(near, ())]
+        return robust_spread(vals) if len(vals) >= 8 else float("inf")
+
+    # -- self-check -----------------------------------------------------------------------------
+    def pattern_implausible(self, *, min_events: int) -> str | None:
+        """Why the recent candidate flags fit no misfire pattern (None when they do).
+
+        A real fault misfires at random (a low rate), in bursts, or on every event (a dead
+        cylinder). Flags on about every other event of one cylinder, or on a large share of its
+        events with no run among them, come from a metric that swings between two levels: a
+        bias or a beat, not combustion.
+        """
+        f = self.flags
+        if len(f) < min_events:
+            return None
+        k = sum(f)
+        share = k / len(f)
+        if share < 0.2 or share > 0.85:
+            return None
+        changes = sum(1 for a, b in zip(f, list(f)[1:]) if a != b)
+        if changes >= 0.6 * (len(f) - 1):
+            return (f"its metric swings every other cycle ({100 * share:.0f} % of its last "
+                    f"{len(f)} events would be misfires, alternating)")
+        if share > 0.4 and changes >= 0.3 * (len(f) - 1):
+            return (f"{100 * share:.0f} % of its last {len(f)} events would be misfires, "
+                    "scattered rather than in runs")
+        return None

@@ -1,0 +1,114 @@
+"""Options of the misfire decision (:mod:`dsp.misfire`); the rig file may set the threshold."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from crankbeat.errors import InputError
+
+
+@dataclass(frozen=True)
+class MisfireSettings:
+    """Options of the misfire decision (the rig file may override the threshold).
+
+    Attributes
+    ----------
+    threshold : float or None
+        A fixed threshold on the metric (robust sigma); None = ``z_threshold``.
+    feature : str
+        Raw-event field judged: ``work`` (the window's work with the loss balance) or ``swing``
+        (the window's energy change minus the speed trend, without the balance).
+    z_threshold : float
+        Robust standard deviations below the cylinder's own baseline for a misfire.
+    cross_threshold : float
+        Robust standard deviations a misfire must also lie below the other cylinders' level.
+    history_cycles, lookahead_cycles : int
+        Cycles of the cylinder's accepted history and of look-ahead in its baseline.
+    spread_events : int
+        Deviations per cylinder behind its robust spread.
+    spread_floor : float
+        Smallest spread, as a share of the work level around the event.
+    warmup_cycles : int
+        Accepted deviations a cylinder needs before its events are decided.
+    dead_ratio : float
+        A cylinder whose recent level is below this share of the other cylinders' is dead.
+    partial_depth : float
+        A flagged event with a calibrated depth below this is a partial burn.
+    partial_gap : float
+        ... and when its missing work falls short of a whole misfire's by this many robust sigma.
+    partial_tight : float
+        A depth scale from the run's own misfires is used for partial burns only when their
+        robust spread is below this share of it (fuel cut in the same rpm cell always is).
+    depth_min_count, depth_history : int
+        Fuel-cut events or misfires per cell needed for a depth scale; values kept per cell.
+    pattern_events : int
+        Candidate flags per cylinder behind the self-check.
+    dead_run : int
+        Misfires in a row on one cylinder that start a dead spell (see ``_dead``).
+    dead_scatter : float
+        A cylinder dead from the ride's start scatters less than this share of the others'
+        robust spread (it lacks their cycle-to-cycle combustion scatter).
+    local_scatter : float
+        When the recent fired events of all cylinders scatter more than this many times their
+        usual robust spread (a rough road), the threshold rises in proportion.
+    gap_margin : float
+        Within two cycles of an event without a metric (lost frames), the threshold is this much
+        higher.
+    ring_share : float
+        Within two cycles after a misfire, another cylinder's misfire must also score above
+        this share of that misfire's score (the driveline rings after a misfire).
+    closed_throttle_pct, fuel_cut_min_rpm, fuel_cut_work_bar : float
+        Fuel-cut recognition: throttle at or below, rpm at or above, and mean window work of the
+        events around below this (bar of swept volume).
+    fuel_cut_hold_s : float
+        For this long after the throttle was last seen closed, an event without combustion is
+        still the ECU's cut (gear changes, cut exit).
+    """
+
+    threshold: float | None = None
+    feature: str = "work"
+    z_threshold: float = 5.0
+    cross_threshold: float = 3.0
+    history_cycles: int = 8
+    lookahead_cycles: int = 2
+    spread_events: int = 48
+    spread_floor: float = 0.005
+    warmup_cycles: int = 8
+    dead_ratio: float = 0.3
+    partial_depth: float = 0.7
+    partial_gap: float = 6.0
+    partial_tight: float = 0.2
+    depth_min_count: int = 4
+    depth_history: int = 16
+    pattern_events: int = 32
+    ring_share: float = 0.4
+    local_scatter: float = 1.5
+    gap_margin: float = 1.3
+    dead_run: int = 6
+    dead_scatter: float = 0.75
+    closed_throttle_pct: float = 2.0
+    fuel_cut_min_rpm: float = 1600.0
+    fuel_cut_work_bar: float = 1.0
+    fuel_cut_hold_s: float = 0.15
+
+    def __post_init__(self) -> None:
+        if self.threshold is not None and not self.threshold > 0:
+            raise InputError(
+                f"misfire threshold must be > 0 (robust sigma), got {self.threshold!r}"
+            )
+        if self.feature not in ("work", "swing"):
+            raise InputError(f"feature must be 'work' or 'swing', got {self.feature!r}")
+        if not self.z_threshold > 0 or not self.cross_threshold >= 0:
+            raise InputError(
+                "need z_threshold > 0 and cross_threshold >= 0, got "
+                f"{self.z_threshold!r}, {self.cross_threshold!r}"
+            )
+        for name in ("history_cycles", "lookahead_cycles", "spread_events", "warmup_cycles",
+                     "depth_min_count", "depth_history", "pattern_events"):
+            if int(getattr(self, name)) < 1:
+                raise InputError(f"{name} must be >= 1, got {getattr(self, name)!r}")
+        if not 0 < self.dead_ratio < 1 or not 0 < self.partial_depth < 1:
+            raise InputError(
+                f"dead_ratio and partial_depth must be in (0, 1), got {self.dead_ratio!r}, "
+                f"{self.partial_depth!r}"
+            )
