@@ -100,7 +100,7 @@ def _known_sections(summary: dict, riding_hours: float | None = None) -> list[st
 
 
 # a time on a wall-clock base (s since 1970) inside a note: "t=1767225628.4 s"
-_EPOCH_TIME = re.compile(r"(?:host )?t=(\d{9,}(?:\.\d+)?) s")
+_EPOCH_TIME = re.compile(r"(?:host )?t ?= ?(\d{9,}(?:\.\d+)?) s")
 
 
 def _epoch(iso: str) -> float | None:
