@@ -158,10 +158,11 @@ class CylinderState:
     def pattern_implausible(self, *, min_events: int) -> str | None:
         """Why the recent candidate flags fit no misfire pattern (None when they do).
 
-        A real fault misfires at random (a low rate), in bursts, or on every event (a dead
-        cylinder). Flags on about every other event of one cylinder, or on a large share of its
-        events with no run among them, come from a metric that swings between two levels: a
-        bias or a beat, not combustion.
+        A real fault misfires at random (at any rate: a failing coil can miss every other
+        event at random), in bursts, or on every event (a dead cylinder). Flags that change
+        state on more than 60 % of consecutive events are beyond what random misfiring at any
+        rate gives (2p(1 - p) <= 0.5 changes per event): a metric that swings between two
+        levels, a bias or a beat, not combustion.
         """
         f = self.flags
         if len(f) < min_events:
@@ -174,7 +175,4 @@ class CylinderState:
         if changes >= 0.6 * (len(f) - 1):
             return (f"its metric swings every other cycle ({100 * share:.0f} % of its last "
                     f"{len(f)} events would be misfires, alternating)")
-        if share > 0.4 and changes >= 0.3 * (len(f) - 1):
-            return (f"{100 * share:.0f} % of its last {len(f)} events would be misfires, "
-                    "scattered rather than in runs")
         return None

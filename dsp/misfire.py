@@ -263,8 +263,12 @@ class MisfireDetector:
                 # event then must stand out by a share of that misfire's own score too
                 cand = z > s.ring_share * self._ring_z
             share = shares[o]
-            dead = self._dead(c, x, share, cand, times[o])
             cell = int(rpm[k] // 1000.0) if rpm[k] == rpm[k] else -1
+            # where a depth scale exists, an event clearly short of a whole misfire is a
+            # partial burn: a run of them is a weak cylinder, never a dead spell
+            scale_here = st.depth_scale(cell, b, min_count=s.depth_min_count)
+            partial_like = bool(scale_here == scale_here and -d / scale_here < s.partial_depth)
+            dead = self._dead(c, x, share, cand, times[o], partial_like=partial_like)
             metric[o] = z if ready else np.nan
             if fc_sure[o] or (fc_maybe[o] and (cand or dead)):
                 verdict[o] = FUEL_CUT
@@ -323,10 +327,12 @@ class MisfireDetector:
         detail["depth"] = depth
         detail["cause"] = cause
 
-    def _dead(self, c: int, x: float, contrib: float, cand: bool, t: float) -> bool:
+    def _dead(self, c: int, x: float, contrib: float, cand: bool, t: float, *,
+              partial_like: bool = False) -> bool:
         """Cylinder c is in a dead spell: no combustion for a while, from the start or mid-ride.
 
-        Mid-ride, a run of ``dead_run`` misfires in a row starts a spell; it lasts while the
+        Mid-ride, a run of ``dead_run`` misfires in a row (the last one not ``partial_like``:
+        short of a whole misfire on a calibrated depth scale) starts a spell; it lasts while the
         cylinder's share of the engine's work (``contribution``) stays below halfway between its
         healthy share (before the run) and its share in the run: a frozen baseline in joules
         drifts as speed and load change, a share of the others' work does not. A cylinder that
@@ -348,7 +354,7 @@ class MisfireDetector:
             dead = False
             if len(st.run) >= self.s.dead_run and len(st.shares) >= 8:
                 healthy, entry = median(st.shares), median(st.run)
-                if healthy - entry > 0.3:
+                if healthy - entry > 0.3 and not partial_like:
                     st.spell_mid, dead = 0.5 * (healthy + entry), True
         else:
             own = list(st.recent)[-15:] + [x]
