@@ -39,8 +39,10 @@ from crankbeat.dsp.vibration import SensorSpec, VibrationAnalyzer, VibrationSumm
 from crankbeat.errors import CrankbeatWarning, DuplicateRunError
 from crankbeat.logger import stream
 from crankbeat.logger.chunks import Chunk, StreamHealth
+from crankbeat.logger.notes import decisive_notes, ranked_notes, stream_fields
 from crankbeat.logger.rig import list_layouts, load_layout
 from crankbeat.logger.rig.model import CanBus, Rig
+from crankbeat.logger.run_gate import RunWatch, log_census, settle_failed_run
 from crankbeat.logger.run_summary import WINDOW_KINDS, RunSummary
 from crankbeat.logger.store import Store, sha256_file
 
@@ -143,6 +145,8 @@ class RunAnalysis:
                                   tolerance_deg=rig.limits.interval_tolerance_deg)
         self.health = StreamHealth()
         self.notes: list[str] = []
+        self.watch = RunWatch(rig)  # the gate's crank count, accelerometer breaks
+        self.live_fields: dict = {}  # live faults (link, store, recording), stored with the run
         self._held: list[np.ndarray] = []  # events waiting for the rough-road verdict
         self._spans: list[tuple[float, float]] = []  # closed spans that may still touch held events
         self._accel_done = {s.name: -np.inf for s in specs}  # accelerometer accounted up to, s
@@ -191,6 +195,7 @@ class RunAnalysis:
                 new_spans += spans
         self._hold(step.events, new_spans, out, end_time=chunk.end_time)
         self.notes += out.notes
+        self.watch.push(chunk, step.events)
         return out
 
     def finish(self) -> StepOutput:
@@ -206,6 +211,7 @@ class RunAnalysis:
             self.vib_summary = self.vibration.finish()
             new_spans = self.vib_summary.rough_spans_all
         self._hold(step.events, new_spans, out, end_time=np.inf, final=True)
+        self.watch.finish(step.events)
         self.summary.finish()
         self.notes += out.notes
         return out
@@ -443,8 +449,9 @@ def _finish(analysis: RunAnalysis, store: Store, run_id: int, *, status: str = "
             "to apply them")
     summary["rough_road"] = {"spans": len(analysis.rough_spans),
                              "seconds": float(sum(b - a for a, b in analysis.rough_spans))}
-    summary["stream"] = _health_dict(analysis.health)
-    summary["notes"] = _first_notes(analysis.notes + analysis.health.notes)
+    summary["stream"] = stream_fields(analysis.health, analysis.watch, analysis.live_fields)
+    summary["notes"] = ranked_notes(decisive_notes(summary["stream"]),
+                                    analysis.notes + analysis.health.notes)
     limit = analysis.rig.limits.misfire_alert_pct
     worst = summary["misfire"]["worst_rev200_pct"]
     summary["misfire"]["alert"] = bool(worst is not None and worst > limit)
@@ -534,7 +541,7 @@ def analyse_replay(
     run_id, correction = _begin(rig, store, sources, force=force, label=label, notes=notes,
                                 odometer_km=odometer_km)
     analysis = RunAnalysis(rig, tooth_correction_deg=correction)
-    with warnings.catch_warnings(record=True) as caught:
+    with warnings.catch_warnings(record=True) as caught, settle_failed_run(store, run_id):
         warnings.simplefilter("always", CrankbeatWarning)
         with stream.replay(rig, can_path, accel_paths, pace=pace,
                            chunk_s=REPLAY_CHUNK_S) as chunks:
@@ -544,6 +551,7 @@ def analyse_replay(
                     if total:
                         progress(done / total)
             _drive(analysis, chunks, store, run_id, on_step=report)
+        analysis.watch.require_analysable(can_path, census=lambda: log_census(can_path))
     analysis.notes += [str(w.message) for w in caught]
     summary = _finish(analysis, store, run_id)
     if progress is not None:

@@ -15,6 +15,7 @@ from crankbeat.logger.cli.common import (
     stderr,
 )
 from crankbeat.logger.cli.summary import render_run, run_digest
+from crankbeat.logger.stop_signals import interrupt_on_signals
 from crankbeat.logger.store import sha256_file
 
 NAME = "replay"
@@ -82,7 +83,7 @@ def run(args: argparse.Namespace) -> int:
     for name, path in accel.items():
         _check_file(path, f"capture for sensor '{name}'")
 
-    with open_store(args, create=True) as store:
+    with interrupt_on_signals(), open_store(args, create=True) as store:
         run_id = None
         if not args.force:
             hashes = [sha256_file(can_path)] + [sha256_file(p) for p in accel.values()]
