@@ -149,6 +149,11 @@ def _writable(path: Path) -> bool:
     return os.access(path, os.W_OK) and os.access(path.parent, os.W_OK)
 
 
+def _damaged(path: Path, problem: str) -> str:
+    return (f"store '{path}' is damaged ({problem.strip()}): nothing is written into it; copy "
+            "it and recover the copy with the sqlite3 shell's .recover")
+
+
 def _connect(path: Path, *, read_only: bool, timeout: float) -> sqlite3.Connection:
     # check_same_thread=False: the live pipeline may write from its worker thread.
     if not read_only:
@@ -221,6 +226,8 @@ class Store:
             raise StoreError(f"cannot open store '{path}': {exc}") from None
         except sqlite3.DatabaseError as exc:
             conn.close()
+            if "malformed" in str(exc):
+                raise StoreError(_damaged(path, str(exc))) from None
             raise StoreError(f"'{path}' is not a crankbeat store ({exc})") from None
         except BaseException:
             conn.close()
@@ -237,12 +244,13 @@ class Store:
                 f"(tables: {', '.join(names[:5])}): left unchanged"
             )
         if names and check:
-            bad = [r[0] for r in conn.execute("PRAGMA quick_check(5)")]
-            if bad != ["ok"]:
-                raise StoreError(
-                    f"store '{self.path}' is damaged ({bad[0]}): nothing is written into it; "
-                    "copy it and recover it with the sqlite3 shell's .recover"
-                )
+            try:
+                found = "\n".join(r[0] for r in conn.execute("PRAGMA quick_check(5)"))
+            except sqlite3.DatabaseError as exc:
+                found = str(exc)
+            if found != "ok":
+                problems = [ln for ln in found.splitlines() if ln and not ln.startswith("***")]
+                raise StoreError(_damaged(self.path, problems[0] if problems else found))
         have = current_version(self.db) if names else 0
         if have > SCHEMA_VERSION:
             raise StoreError(
