@@ -163,6 +163,9 @@ class _Merger:
             h.serial_corrupt[name] = dec.health.corrupt
             h.serial_lost[name] = dec.health.lost
             h.serial_reconnects[name] = dec.health.reconnects
+            h.serial_time_steps[name] = dec.health.host_steps
+            h.serial_bad_records[name] = dec.health.bad_records
+            h.serial_bytes_lost[name] = dec.health.bytes_lost
         for i, src in enumerate(self._note_sources):
             notes = src()
             self.health.notes.extend(notes[self._notes_taken[i]:])
@@ -302,9 +305,11 @@ def replay(
                      [lambda: source.notes, *[(lambda r=r: r.notes) for r in readers.values()]])
 
     def feed(end: float | None) -> dict[str, list[Record]]:
-        if end is None:
-            return {n: r.read() for n, r in readers.items()}
-        return {n: r.read_until(end) for n, r in readers.items()}
+        out = {n: (r.read() if end is None else r.read_until(end)) for n, r in readers.items()}
+        for n, r in readers.items():  # the file's damage counts as the sensor's
+            merger.serial[n].health.bad_records = r.bad_records
+            merger.serial[n].health.bytes_lost = r.bytes_lost
+        return out
 
     gen = _paced(merger.run(source.batches(BATCH_FRAMES), feed), pace)
     return Stream(gen, source.progress, closers)

@@ -12,10 +12,13 @@ record before the cut and says where the cut is in :attr:`CaptureReader.notes`.
 
 from __future__ import annotations
 
+import math
 import os
 import struct
 from collections.abc import Iterator
 from typing import BinaryIO
+
+import numpy as np
 
 from crankbeat.errors import FormatError, SourceError
 
@@ -23,6 +26,14 @@ MAGIC = b"ACCRAW1\n"
 _HEADER = struct.Struct("<dI")
 #: A record claiming more than this is taken as corruption, not data (a USB read is KiB).
 MAX_RECORD_BYTES = 16 * 1024 * 1024
+#: Host times are epoch seconds (or seconds from 0 in tests): anything beyond is damage.
+MAX_TIME = 1e11
+#: A record's time may lie this much before / after the previous good one, s (a clock step
+#: the aligner handles; a damaged time is far off).
+MAX_BACK_S = 3600.0
+MAX_AHEAD_S = 86400.0
+#: Bytes searched at a time for the next record after a damaged one.
+RESYNC_WINDOW = 1 << 16
 
 Record = tuple[float, bytes]
 
@@ -126,6 +137,8 @@ class CaptureReader:
         self.index = 0  # index of the next record
         self.notes: list[str] = []
         self.backwards = 0
+        self.bad_records = 0  # records skipped or resynchronised over
+        self.bytes_lost = 0  # bytes that belong to no readable record
         self.done = False
         self._last_time: float | None = None
         self._peeked: Record | None = None  # read ahead by read_until, not yet delivered
@@ -166,39 +179,143 @@ class CaptureReader:
             return None
         return self._next()
 
+    def _header(self, at: int) -> tuple[float, int] | None:
+        """The (time, length) of a plausible record header at byte ``at``, else None."""
+        if at + _HEADER.size > self.size:
+            return None
+        self._f.seek(at)
+        t, n = _HEADER.unpack(self._f.read(_HEADER.size))
+        if n > MAX_RECORD_BYTES or at + _HEADER.size + n > self.size:
+            return None
+        return t, n
+
+    def _time_ok(self, t: float) -> bool:
+        if not (math.isfinite(t) and abs(t) < MAX_TIME):
+            return False
+        last = self._last_time
+        return last is None or -MAX_BACK_S <= t - last <= MAX_AHEAD_S
+
+    def _chained(self, at: int, t: float, n: int) -> bool:
+        """The record at ``at`` ends exactly at the file's end, or where the header of
+        another plausible record starts."""
+        nxt = at + _HEADER.size + n
+        if self.size - nxt < _HEADER.size:
+            return nxt == self.size
+        self._f.seek(nxt)
+        t2, n2 = _HEADER.unpack(self._f.read(_HEADER.size))
+        ref = t if self._time_ok(t) else self._last_time
+        if ref is None:
+            return n2 <= MAX_RECORD_BYTES and math.isfinite(t2) and abs(t2) < MAX_TIME
+        return n2 <= MAX_RECORD_BYTES and math.isfinite(t2) and \
+            -MAX_BACK_S <= t2 - ref <= MAX_AHEAD_S
+
+    def _resync(self, start: int) -> int | None:
+        """The next offset after ``start`` where a plausible chain of records begins."""
+        at = start + 1
+        while at + _HEADER.size <= self.size:
+            self._f.seek(at)
+            window = self._f.read(RESYNC_WINDOW + _HEADER.size)
+            if len(window) < _HEADER.size:
+                return None
+            buf = np.frombuffer(window, np.uint8)
+            k = len(buf) - _HEADER.size + 1
+            rows = np.lib.stride_tricks.sliding_window_view(buf, _HEADER.size)[:k]
+            t = rows[:, :8].copy().view("<f8")[:, 0]
+            n = rows[:, 8:12].copy().view("<u4")[:, 0].astype(np.int64)
+            pos = at + np.arange(k)
+            ok = np.isfinite(t) & (np.abs(t) < MAX_TIME) & (n <= MAX_RECORD_BYTES) \
+                & (pos + _HEADER.size + n <= self.size)
+            if self._last_time is not None:
+                with np.errstate(invalid="ignore"):
+                    d = t - self._last_time
+                ok &= (d >= -MAX_BACK_S) & (d <= MAX_AHEAD_S)
+            for j in np.flatnonzero(ok):
+                if self._chained(int(pos[j]), float(t[j]), int(n[j])):
+                    return int(pos[j])
+            at += k
+        return None
+
     def _next(self) -> Record | None:
         start = self.offset
-        header = self._f.read(_HEADER.size)
-        if len(header) == 0:
+        if start >= self.size:
             self.done = True
             return None
-        if len(header) < _HEADER.size:
-            self._stop(f"offset {start}: file ends inside a record header ({len(header)} of "
-                       f"{_HEADER.size} bytes); every whole record before it was kept")
+        if start + _HEADER.size > self.size:
+            self._stop(f"offset {start}: file ends inside a record header "
+                       f"({self.size - start} of {_HEADER.size} bytes); every whole record "
+                       "before it was kept")
             return None
-        host_time, n = _HEADER.unpack(header)
-        body_at = start + _HEADER.size
-        if n > MAX_RECORD_BYTES:
-            self._stop(f"offset {start}: record {self.index} claims {n} bytes (limit "
-                       f"{MAX_RECORD_BYTES}); reading stops here")
-            return None
-        if body_at + n > self.size:
-            have = self.size - body_at
-            self._stop(f"offset {start}: file ends inside record {self.index} ({have} of {n} "
-                       f"bytes); every whole record before it was kept")
-            return None
+        h = self._header(start)
+        if h is None or not (self._time_ok(h[0]) or self._chained(start, *h)):
+            return self._damaged(start, h)
+        host_time, n = h
+        self._f.seek(start + _HEADER.size)
         data = self._f.read(n)
-        if len(data) < n:  # the file shrank while we read it
-            self._stop(f"offset {start}: file ends inside record {self.index}")
-            return None
+        if not self._time_ok(host_time):  # a whole record with only its time hit
+            return self._bad_time(start, host_time, n, data)
         if self._last_time is not None and host_time < self._last_time:
             self.backwards += 1
             self._note(f"record {self.index} (offset {start}): host time goes backwards "
                        f"{self._last_time:.6f} -> {host_time:.6f} s")
         self._last_time = host_time
-        self.offset = body_at + n
+        self.offset = start + _HEADER.size + n
         self.index += 1
         return host_time, data
+
+    def _bad_time(self, start: int, host_time: float, n: int, data: bytes) -> Record | None:
+        """A whole record whose time cannot be right: its bytes are kept with the time of the
+        record after it (a read never arrives before it is taken, so a later time cannot pull
+        the clock fit below the truth), or of the one before it at the end of the file."""
+        self.bad_records += 1
+        self.offset = start + _HEADER.size + n
+        self.index += 1
+        nxt = self._header(self.offset)
+        t = nxt[0] if nxt is not None and self._time_ok(nxt[0]) else self._last_time
+        self._note(f"record {self.index - 1} (offset {start}): host time {host_time!r} is not "
+                   f"plausible; its {n} bytes are kept with the time "
+                   f"{'of a neighbour' if t is not None else '(none: skipped)'}")
+        if t is None:
+            self.bytes_lost += n
+            return self._next()
+        self._last_time = t
+        return t, data
+
+    def _damaged(self, start: int, h: tuple[float, int] | None) -> Record | None:
+        """A record whose length cannot be right: find where the records go on.
+
+        The bytes up to there are kept with the record's time when that time is plausible
+        (only the length was hit; the frame parser checks every frame in them); where no
+        record follows (the file was cut), reading stops and the cut record is left out.
+        """
+        self.bad_records += 1
+        self._f.seek(start)
+        t, n = _HEADER.unpack(self._f.read(_HEADER.size))
+        have = self.size - start - _HEADER.size
+        if n > MAX_RECORD_BYTES:
+            why = f"record {self.index} claims {n} bytes (limit {MAX_RECORD_BYTES})"
+        elif n > have:
+            why = f"file ends inside record {self.index} ({have} of {n} bytes)"
+        else:
+            why = f"record {self.index} of {n} bytes is not followed by another record"
+        nxt = self._resync(start)
+        if nxt is None:
+            self.bytes_lost += self.size - start
+            self._stop(f"offset {start}: {why}; no record follows it: every whole record "
+                       "before it was kept")
+            return None
+        keep = self._time_ok(t) and nxt > start + _HEADER.size
+        self.bytes_lost += _HEADER.size if keep else nxt - start
+        self._note(f"offset {start}: {why}; records go on at offset {nxt}; "
+                   + ("its bytes up to there are kept" if keep
+                      else f"{nxt - start} bytes skipped"))
+        self.offset = nxt
+        self.index += 1
+        if not keep:
+            return self._next()
+        self._f.seek(start + _HEADER.size)
+        data = self._f.read(nxt - start - _HEADER.size)
+        self._last_time = t
+        return t, data
 
     def _stop(self, text: str) -> None:
         self._note(text)
