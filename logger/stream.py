@@ -422,4 +422,6 @@ def live(
     def progress() -> tuple[float, float | None]:
         return time.monotonic() - started, None
 
-    return Stream(merger.run(batches(), feed), progress, closers)
+    out = Stream(merger.run(batches(), feed), progress, closers)
+    out.recorder = recorder  # the live ride shows a recording that stopped (disk full)
+    return out
