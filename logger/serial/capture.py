@@ -13,6 +13,7 @@ record before the cut and says where the cut is in :attr:`CaptureReader.notes`.
 from __future__ import annotations
 
 import math
+import mmap
 import os
 import struct
 from collections.abc import Iterator
@@ -28,10 +29,17 @@ _HEADER = struct.Struct("<dI")
 MAX_RECORD_BYTES = 16 * 1024 * 1024
 #: Host times are epoch seconds (or seconds from 0 in tests): anything beyond is damage.
 MAX_TIME = 1e11
-#: A record's time may lie this much before / after the previous good one, s (a clock step
-#: the aligner handles; a damaged time is far off).
-MAX_BACK_S = 3600.0
-MAX_AHEAD_S = 86400.0
+#: A record's time follows the previous good one when it lies at most this much before /
+#: after it, s; a time further off is taken only when the record after it follows it (a pause
+#: or a host clock step, which the frame parser takes out), else it is damage.
+NEAR_BACK_S = 5.0
+NEAR_AHEAD_S = 60.0
+#: After damage, a header close in time to the last good record (and no longer than a USB
+#: read) is taken as the next record even if the one after it is damaged too.
+RESYNC_NEAR_BYTES = 65536
+#: A record longer than this is checked for a record starting inside it even when its length
+#: leads to another record (a USB read is rarely longer).
+LONG_READ_BYTES = 4096
 #: Bytes searched at a time for the next record after a damaged one.
 RESYNC_WINDOW = 1 << 16
 
@@ -133,6 +141,8 @@ class CaptureReader:
         if head != MAGIC:
             self._f.close()
             raise FormatError(f"{self.name}: offset 0: expected magic {MAGIC!r}, found {head!r}")
+        # records are read by offset (a damaged one sends the reading back and forth)
+        self._map = mmap.mmap(self._f.fileno(), 0, access=mmap.ACCESS_READ)
         self.offset = len(MAGIC)  # byte offset of the next record
         self.index = 0  # index of the next record
         self.notes: list[str] = []
@@ -179,42 +189,79 @@ class CaptureReader:
             return None
         return self._next()
 
+    def _at(self, at: int, n: int) -> bytes:
+        return self._map[at : at + n]
+
     def _header(self, at: int) -> tuple[float, int] | None:
         """The (time, length) of a plausible record header at byte ``at``, else None."""
         if at + _HEADER.size > self.size:
             return None
-        self._f.seek(at)
-        t, n = _HEADER.unpack(self._f.read(_HEADER.size))
+        t, n = _HEADER.unpack(self._at(at, _HEADER.size))
         if n > MAX_RECORD_BYTES or at + _HEADER.size + n > self.size:
             return None
         return t, n
 
-    def _time_ok(self, t: float) -> bool:
-        if not (math.isfinite(t) and abs(t) < MAX_TIME):
-            return False
-        last = self._last_time
-        return last is None or -MAX_BACK_S <= t - last <= MAX_AHEAD_S
+    @staticmethod
+    def _valid(t: float) -> bool:
+        return math.isfinite(t) and abs(t) < MAX_TIME
 
-    def _chained(self, at: int, t: float, n: int) -> bool:
-        """The record at ``at`` ends exactly at the file's end, or where the header of
-        another plausible record starts."""
+    def _near(self, t: float, ref: float | None = None) -> bool:
+        """``t`` follows ``ref`` (default: the last good record's time) as reads do."""
+        ref = self._last_time if ref is None else ref
+        return self._valid(t) and (ref is None or -NEAR_BACK_S <= t - ref <= NEAR_AHEAD_S)
+
+    def _time_ok(self, t: float) -> bool:
+        return self._near(t)
+
+    def _next_header(self, at: int, n: int) -> tuple[float, int] | None | bool:
+        """The raw header after a record of ``n`` bytes at ``at``; True at the file's exact end,
+        None when the file ends inside it."""
         nxt = at + _HEADER.size + n
         if self.size - nxt < _HEADER.size:
-            return nxt == self.size
-        self._f.seek(nxt)
-        t2, n2 = _HEADER.unpack(self._f.read(_HEADER.size))
-        ref = t if self._time_ok(t) else self._last_time
-        if ref is None:
-            return n2 <= MAX_RECORD_BYTES and math.isfinite(t2) and abs(t2) < MAX_TIME
-        return n2 <= MAX_RECORD_BYTES and math.isfinite(t2) and \
-            -MAX_BACK_S <= t2 - ref <= MAX_AHEAD_S
+            return True if nxt == self.size else None
+        return _HEADER.unpack(self._at(nxt, _HEADER.size))
+
+    def _chained(self, at: int, t: float, n: int) -> bool:
+        """The record at ``at`` ends exactly at the file's end, or where a record starts whose
+        time follows this one's (or, when this one's is damaged, the last good one's)."""
+        h2 = self._next_header(at, n)
+        if h2 is True or h2 is None:
+            return h2 is True
+        t2, n2 = h2
+        ref = t if self._valid(t) else self._last_time
+        return n2 <= MAX_RECORD_BYTES and self._near(t2, ref) if ref is not None \
+            else n2 <= MAX_RECORD_BYTES and self._valid(t2)
+
+    def _header_inside(self, start: int, n: int) -> int | None:
+        """The first offset inside the body of the record at ``start`` (``n`` bytes) where a
+        header whose time follows the last good one starts; None when there is none."""
+        if self._last_time is None or n < _HEADER.size:
+            return None
+        buf = np.frombuffer(self._at(start + 1, _HEADER.size + n - 1), np.uint8)
+        k = len(buf) - _HEADER.size + 1
+        if k <= 0:
+            return None
+        rows = np.lib.stride_tricks.sliding_window_view(buf, _HEADER.size)[:k]
+        t = rows[:, :8].copy().view("<f8")[:, 0]
+        with np.errstate(invalid="ignore"):
+            d = t - self._last_time
+            hit = np.flatnonzero((d >= -NEAR_BACK_S) & (d <= NEAR_AHEAD_S))
+        for j in hit:
+            at = start + 1 + int(j)
+            nn = int(rows[j, 8:12].copy().view("<u4")[0])
+            if nn <= RESYNC_NEAR_BYTES and at + _HEADER.size + nn <= self.size:
+                return at
+        return None
 
     def _resync(self, start: int) -> int | None:
-        """The next offset after ``start`` where a plausible chain of records begins."""
+        """The next offset after ``start`` where a record begins: a header whose time follows
+        the last good one (a random double lands there practically never), or two headers in
+        a row that follow each other."""
         at = start + 1
+        size = 256  # the next record is usually close: look near first, then further
         while at + _HEADER.size <= self.size:
-            self._f.seek(at)
-            window = self._f.read(RESYNC_WINDOW + _HEADER.size)
+            window = self._at(at, size + _HEADER.size)
+            size = min(size * 4, RESYNC_WINDOW)
             if len(window) < _HEADER.size:
                 return None
             buf = np.frombuffer(window, np.uint8)
@@ -223,14 +270,15 @@ class CaptureReader:
             t = rows[:, :8].copy().view("<f8")[:, 0]
             n = rows[:, 8:12].copy().view("<u4")[:, 0].astype(np.int64)
             pos = at + np.arange(k)
-            ok = np.isfinite(t) & (np.abs(t) < MAX_TIME) & (n <= MAX_RECORD_BYTES) \
-                & (pos + _HEADER.size + n <= self.size)
-            if self._last_time is not None:
-                with np.errstate(invalid="ignore"):
+            with np.errstate(invalid="ignore"):
+                ok = np.isfinite(t) & (np.abs(t) < MAX_TIME) & (n <= MAX_RECORD_BYTES) \
+                    & (pos + _HEADER.size + n <= self.size)
+                near = np.zeros_like(ok)
+                if self._last_time is not None:
                     d = t - self._last_time
-                ok &= (d >= -MAX_BACK_S) & (d <= MAX_AHEAD_S)
+                    near = (d >= -NEAR_BACK_S) & (d <= NEAR_AHEAD_S) & (n <= RESYNC_NEAR_BYTES)
             for j in np.flatnonzero(ok):
-                if self._chained(int(pos[j]), float(t[j]), int(n[j])):
+                if near[j] or self._chained(int(pos[j]), float(t[j]), int(n[j])):
                     return int(pos[j])
             at += k
         return None
@@ -244,15 +292,29 @@ class CaptureReader:
             self._stop(f"offset {start}: file ends inside a record header "
                        f"({self.size - start} of {_HEADER.size} bytes); every whole record "
                        "before it was kept")
+            self.bytes_lost += self.size - start
             return None
         h = self._header(start)
-        if h is None or not (self._time_ok(h[0]) or self._chained(start, *h)):
+        if h is None:
             return self._damaged(start, h)
         host_time, n = h
-        self._f.seek(start + _HEADER.size)
-        data = self._f.read(n)
-        if not self._time_ok(host_time):  # a whole record with only its time hit
-            return self._bad_time(start, host_time, n, data)
+        chained = self._chained(start, host_time, n)
+        # a record starting inside this one's body means its length is wrong (looked for
+        # where the length does not lead to a record, or is longer than reads usually are)
+        inner = self._header_inside(start, n) if not chained or n > LONG_READ_BYTES else None
+        if inner is not None:
+            return self._damaged(start, h, inner)
+        if not self._near(host_time):
+            # a pause or a clock step when the next record follows this one; else a damaged
+            # time (whole record: bytes kept) or a damaged header (resynchronise)
+            h2 = self._next_header(start, n)
+            if isinstance(h2, tuple) and self._near(h2[0], host_time) and self._valid(host_time):
+                pass  # confirmed by the record after it
+            elif chained or self._chained(start, math.nan, n):
+                return self._bad_time(start, host_time, n, self._at(start + _HEADER.size, n))
+            else:
+                return self._damaged(start, h)
+        data = self._at(start + _HEADER.size, n)
         if self._last_time is not None and host_time < self._last_time:
             self.backwards += 1
             self._note(f"record {self.index} (offset {start}): host time goes backwards "
@@ -280,7 +342,8 @@ class CaptureReader:
         self._last_time = t
         return t, data
 
-    def _damaged(self, start: int, h: tuple[float, int] | None) -> Record | None:
+    def _damaged(self, start: int, h: tuple[float, int] | None, nxt: int | None = None
+                 ) -> Record | None:
         """A record whose length cannot be right: find where the records go on.
 
         The bytes up to there are kept with the record's time when that time is plausible
@@ -288,8 +351,7 @@ class CaptureReader:
         record follows (the file was cut), reading stops and the cut record is left out.
         """
         self.bad_records += 1
-        self._f.seek(start)
-        t, n = _HEADER.unpack(self._f.read(_HEADER.size))
+        t, n = _HEADER.unpack(self._at(start, _HEADER.size))
         have = self.size - start - _HEADER.size
         if n > MAX_RECORD_BYTES:
             why = f"record {self.index} claims {n} bytes (limit {MAX_RECORD_BYTES})"
@@ -297,7 +359,7 @@ class CaptureReader:
             why = f"file ends inside record {self.index} ({have} of {n} bytes)"
         else:
             why = f"record {self.index} of {n} bytes is not followed by another record"
-        nxt = self._resync(start)
+        nxt = self._resync(start) if nxt is None else nxt
         if nxt is None:
             self.bytes_lost += self.size - start
             self._stop(f"offset {start}: {why}; no record follows it: every whole record "
@@ -312,8 +374,7 @@ class CaptureReader:
         self.index += 1
         if not keep:
             return self._next()
-        self._f.seek(start + _HEADER.size)
-        data = self._f.read(nxt - start - _HEADER.size)
+        data = self._at(start + _HEADER.size, nxt - start - _HEADER.size)
         self._last_time = t
         return t, data
 
@@ -329,6 +390,7 @@ class CaptureReader:
             yield rec
 
     def close(self) -> None:
+        self._map.close()
         self._f.close()
 
     def __enter__(self) -> CaptureReader:

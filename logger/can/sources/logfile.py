@@ -44,7 +44,7 @@ def _open_gzip(path: str, real_suffix: str, kwargs: dict) -> can.io.generic.Mess
 
 
 #: Formats read record by record with resynchronisation (see :mod:`.resync`).
-TEXT_FORMATS = (".asc", ".csv", ".trc")
+TEXT_FORMATS = (".asc", ".csv", ".trc", ".log")
 
 
 class LogFileSource(CanSource):
@@ -136,12 +136,16 @@ class LogFileSource(CanSource):
 
     def _usable(self, msg: can.Message, index: int) -> bool:
         n = len(msg.data)
+        kind = "line" if self._reader is None else "frame"
+        if not (0 <= msg.arbitration_id < 1 << 29 and 0 <= msg.dlc <= 64):
+            self._bad(f"{kind} {index}", f"id {msg.arbitration_id} or DLC {msg.dlc} out of "
+                      "range (29-bit id, DLC 0..64 expected)", "frame skipped")
+            return False
         if msg.is_error_frame or msg.is_remote_frame:
             return True
         # classic CAN: DLC codes 9..15 mean 8 bytes; CAN FD: python-can's dlc is the byte count
         need = msg.dlc if msg.is_fd else min(msg.dlc, 8)
         if n < need or n > 64:
-            kind = "line" if self._reader is None else "frame"
             self._bad(f"{kind} {index}", f"id 0x{msg.arbitration_id:X} has {n} data bytes for "
                       f"DLC {msg.dlc}", "frame skipped")
             return False
