@@ -137,7 +137,8 @@ class LogFileSource(CanSource):
     def _usable(self, msg: can.Message, index: int) -> bool:
         n = len(msg.data)
         kind = "line" if self._reader is None else "frame"
-        if not (0 <= msg.arbitration_id < 1 << 29 and 0 <= msg.dlc <= 64):
+        id_bits, dlc_max = (32, 255) if msg.is_error_frame else (29, 64)  # error frames: any
+        if not (0 <= msg.arbitration_id < 1 << id_bits and 0 <= msg.dlc <= dlc_max and n <= 64):
             self._bad(f"{kind} {index}", f"id {msg.arbitration_id} or DLC {msg.dlc} out of "
                       "range (29-bit id, DLC 0..64 expected)", "frame skipped")
             return False

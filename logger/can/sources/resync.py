@@ -199,27 +199,51 @@ class ResyncBLFReader(BLFReader):
         return b"".join(out)
 
     def _parse_container(self, data: bytes) -> Iterator[can.Message]:
+        """Objects of a container's data, each checked before python-can parses it alone.
+
+        An object is taken when its header is plausible and no other object starts inside
+        it (a damaged size would swallow its neighbours); one that continues in the next
+        container is carried over, as python-can does.
+        """
         if self._tail:
             data = b"".join((self._tail, data))
         self._tail = b""
-        start = 0
+        pos, n = 0, len(data)
         while True:
-            view = data[start:] if start else data
+            k = data.find(_SIG, pos, pos + 8)  # objects are padded to 4 bytes
+            if k < 0:
+                if pos + 8 > n:
+                    self._tail = data[pos:]
+                    return
+                k = self._skip(data, pos, "no object header here")
+                if k < 0:
+                    return
+            if k + OBJ_HEADER_BASE_STRUCT.size > n:
+                self._tail = data[k:]
+                return
+            _, hsize, version, size, _ = OBJ_HEADER_BASE_STRUCT.unpack_from(data, k)
+            inside = data.find(_SIG, k + 4, min(k + max(size, 4), n))
+            if not (version in (1, 2) and OBJ_HEADER_BASE_STRUCT.size <= hsize <= size) \
+                    or inside >= 0:
+                pos = self._skip(data, k, f"object header (size {size}, version {version}) "
+                                 "does not fit")
+                if pos < 0:
+                    return
+                continue
+            if k + size > n:  # continues in the next container
+                self._tail = data[k:]
+                return
             self._pos = 0
             try:
-                for msg in self._parse_data(view):
-                    yield msg
-                self._tail = view[self._pos :]
-                return
-            except struct.error:
-                self._tail = view[self._pos :]
-                return
+                yield from self._parse_data(data[k : k + size])
             except Exception as exc:  # noqa: BLE001 - python-can raises anything on junk
-                pos = start + self._pos
-                nxt = data.find(_SIG, pos + 1)
                 self._bad(f"container at offset {self._container_at}",
-                          f"object at {pos} unreadable ({_one_line(exc)})",
-                          f"{(nxt if nxt >= 0 else len(data)) - pos} bytes skipped")
-                if nxt < 0:
-                    return
-                start = nxt
+                          f"object at {k} unreadable ({_one_line(exc)})", "object skipped")
+            pos = k + size
+
+    def _skip(self, data: bytes, at: int, why: str) -> int:
+        """Report damage at ``at``; the offset of the next object header (-1: none)."""
+        nxt = data.find(_SIG, at + 1)
+        self._bad(f"container at offset {self._container_at}", f"at {at}: {why}",
+                  f"{(nxt if nxt >= 0 else len(data)) - at} bytes skipped")
+        return nxt
