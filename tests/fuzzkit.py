@@ -18,7 +18,6 @@ and frames kept.
 
 from __future__ import annotations
 
-import io
 import math
 import random
 import struct
@@ -125,12 +124,12 @@ def _key(ts: float, cid: int, dlc: int, data: bytes) -> tuple:
     return (round(ts, 6) if math.isfinite(ts) else str(ts), int(cid), int(dlc), bytes(data))
 
 
-def python_can_frames(path: Path, fmt: str) -> Counter:
+def python_can_frames(path: Path, fmt: str, *, ordered: bool = False):
+    """python-can's own reading of ``path``: a Counter of frames (or the list, in order)."""
     kw = {"relative_timestamp": False} if fmt == "asc" else {}
-    out: Counter = Counter()
-    for m in can.LogReader(str(path), **kw):
-        out[_key(m.timestamp, m.arbitration_id, m.dlc, m.data)] += 1
-    return out
+    keys = [_key(m.timestamp, m.arbitration_id, m.dlc, m.data)
+            for m in can.LogReader(str(path), **kw)]
+    return keys if ordered else Counter(keys)
 
 
 def source_frames(path: Path, fmt: str) -> Counter:
@@ -156,25 +155,61 @@ def _frame_lines(lines: list[bytes], fmt: str) -> list[int]:
     return [i for i, ln in enumerate(lines) if b" Rx " in ln or b" Tx " in ln]  # asc
 
 
-def can_text_round(rng: random.Random, fmt: str, workdir: Path, n: int, share: float) -> Tally:
-    """One damaged text log (candump, asc, csv, trc) against python-can on its good lines."""
+@dataclass
+class CanBase:
+    """A clean log written once by python-can, and python-can's frame for each of its units
+    (frame lines of a text log, objects of a BLF): the reference for every damaged copy."""
+
+    fmt: str
+    units: list[bytes]  # lines (text) or whole file split at objects (BLF: prefix + objects)
+    frame_units: list[int]  # which units hold one frame each
+    keys: list[tuple]  # python-can's frame of each frame unit
+
+    @classmethod
+    def make(cls, rng: random.Random, fmt: str, workdir: Path, n: int) -> CanBase:
+        msgs = random_messages(rng, min(n, 2000) if fmt == "blf" else n)
+        path = workdir / f"base{_SUFFIX[fmt]}"
+        kw = {"compression_level": 0} if fmt == "blf" else {}
+        with can.Logger(str(path), **kw) as w:
+            for m in msgs:
+                w.on_message_received(m)
+        raw = path.read_bytes()
+        if fmt == "blf":
+            objs = _blf_objects(raw)
+            cuts = [0] + [a for a, _ in objs] + [objs[-1][1]]
+            units = [raw[x:y] for x, y in zip(cuts[:-1], cuts[1:], strict=True)]
+            units.append(raw[objs[-1][1]:])
+            frame_units = list(range(1, len(objs) + 1))
+        else:
+            units = raw.splitlines(keepends=True)
+            frame_units = _frame_lines(units, fmt)
+        ref = python_can_frames(path, fmt, ordered=True)
+        assert len(ref) == len(frame_units), (fmt, len(ref), len(frame_units))
+        return cls(fmt, units, frame_units, ref)
+
+
+def can_round(rng: random.Random, base: CanBase, workdir: Path, share: float) -> Tally:
+    """One damaged copy of ``base`` against python-can's frames of its undamaged units."""
     tally = Tally(files=1)
-    msgs = random_messages(rng, n)
-    clean = workdir / f"clean{_SUFFIX[fmt]}"
-    with can.Logger(str(clean)) as w:
-        for m in msgs:
-            w.on_message_received(m)
-    lines = clean.read_bytes().splitlines(keepends=True)
-    frame_lines = _frame_lines(lines, fmt)
-    bad = {frame_lines[i] for i in _pick(rng, len(frame_lines), share)}
+    picked = _pick(rng, len(base.frame_units), share)
+    bad = {base.frame_units[i] for i in picked}
     tally.tried = len(bad)
-    damaged = [damage_bytes(rng, ln) if i in bad else ln for i, ln in enumerate(lines)]
-    dpath = workdir / f"damaged{_SUFFIX[fmt]}"
-    dpath.write_bytes(b"".join(damaged))
-    rpath = workdir / f"reference{_SUFFIX[fmt]}"
-    rpath.write_bytes(b"".join(ln for i, ln in enumerate(lines) if i not in bad))
-    ref = python_can_frames(rpath, fmt)
-    _compare(tally, ref, lambda: source_frames(dpath, fmt))
+    out = []
+    for i, u in enumerate(base.units):
+        if i not in bad:
+            out.append(u)
+        elif base.fmt == "blf":
+            if rng.random() < 0.3:  # a zeroed block (what a bad sector leaves)
+                out.append(bytes(len(u)))
+            else:
+                out.append(damage_bytes(rng, u, keep_newline=False)[: len(u)].ljust(
+                    len(u), b"\x00"))
+        else:
+            out.append(damage_bytes(rng, u))
+    dpath = workdir / f"damaged{_SUFFIX[base.fmt]}"
+    dpath.write_bytes(b"".join(out))
+    ref = Counter(k for i, k in enumerate(base.keys) if i not in picked)
+    _compare(tally, ref, lambda: source_frames(dpath, base.fmt))
     return tally
 
 
@@ -212,38 +247,6 @@ def _blf_objects(raw: bytes) -> list[tuple[int, int]]:
         out.append((pos, pos + size))
         pos += size
     return out
-
-
-def blf_round(rng: random.Random, workdir: Path, n: int, share: float) -> Tally:
-    """One damaged uncompressed BLF against python-can on the undamaged frames."""
-    tally = Tally(files=1)
-    msgs = random_messages(rng, min(n, 2000))  # one container
-    clean = workdir / "clean.blf"
-    with can.Logger(str(clean), compression_level=0) as w:
-        for m in msgs:
-            w.on_message_received(m)
-    raw = bytearray(clean.read_bytes())
-    objs = _blf_objects(bytes(raw))
-    assert len(objs) == len(msgs), (len(objs), len(msgs))
-    bad = _pick(rng, len(objs), share)
-    for i in sorted(bad):
-        a, z = objs[i]
-        if rng.random() < 0.3:  # a zeroed block (what a bad sector leaves)
-            raw[a:z] = bytes(z - a)
-        else:
-            raw[a:z] = damage_bytes(rng, bytes(raw[a:z]), keep_newline=False)[: z - a].ljust(
-                z - a, b"\x00")
-    tally.tried = len(bad)
-    dpath = workdir / "damaged.blf"
-    dpath.write_bytes(bytes(raw))
-    rpath = workdir / "reference.blf"
-    with can.Logger(str(rpath), compression_level=0) as w:
-        for i, m in enumerate(msgs):
-            if i not in bad:
-                w.on_message_received(m)
-    ref = python_can_frames(rpath, "blf")
-    _compare(tally, ref, lambda: source_frames(dpath, "blf"))
-    return tally
 
 
 # ------------------------------------------------------------------------ capture files
@@ -385,12 +388,14 @@ def rig_round(rng: random.Random, workdir: Path, text: str) -> Tally:
 
 
 def run_round(fmt: str, rng: random.Random, workdir: Path, n: int, share: float,
-              rig_text: str = "") -> Tally:
-    """One round of ``fmt``; ``n`` units, ``share`` of them damaged."""
-    if fmt in _SUFFIX and fmt != "blf":
-        return can_text_round(rng, fmt, workdir, n, share)
-    if fmt == "blf":
-        return blf_round(rng, workdir, n, share)
+              rig_text: str = "", bases: dict | None = None) -> Tally:
+    """One round of ``fmt``: ``n`` units, ``share`` of them damaged. CAN logs reuse the clean
+    base kept in ``bases`` (made on first use)."""
+    if fmt in _SUFFIX:
+        bases = {} if bases is None else bases
+        if fmt not in bases:
+            bases[fmt] = CanBase.make(rng, fmt, workdir, n)
+        return can_round(rng, bases[fmt], workdir, share)
     if fmt == "acraw":
         return capture_round(rng, workdir, n, share)
     if fmt == "serial-frames":
@@ -398,4 +403,4 @@ def run_round(fmt: str, rng: random.Random, workdir: Path, n: int, share: float,
     return rig_round(rng, workdir, rig_text)
 
 
-__all__ = ["FORMATS", "Tally", "run_round", "damage_bytes", "io"]
+__all__ = ["FORMATS", "CanBase", "Tally", "damage_bytes", "run_round"]

@@ -29,11 +29,14 @@ _HEADER = struct.Struct("<dI")
 MAX_RECORD_BYTES = 16 * 1024 * 1024
 #: Host times are epoch seconds (or seconds from 0 in tests): anything beyond is damage.
 MAX_TIME = 1e11
+#: A time far from the last good one is confirmed by the next record only on a real clock
+#: (epoch seconds): near 0, random bytes make doubles close to each other far too often.
+MIN_CLOCK = 1e6
 #: A record's time follows the previous good one when it lies at most this much before /
 #: after it, s; a time further off is taken only when the record after it follows it (a pause
 #: or a host clock step, which the frame parser takes out), else it is damage.
 NEAR_BACK_S = 5.0
-NEAR_AHEAD_S = 60.0
+NEAR_AHEAD_S = 2.0
 #: After damage, a header close in time to the last good record (and no longer than a USB
 #: read) is taken as the next record even if the one after it is damaged too.
 RESYNC_NEAR_BYTES = 65536
@@ -208,7 +211,9 @@ class CaptureReader:
     def _near(self, t: float, ref: float | None = None) -> bool:
         """``t`` follows ``ref`` (default: the last good record's time) as reads do."""
         ref = self._last_time if ref is None else ref
-        return self._valid(t) and (ref is None or -NEAR_BACK_S <= t - ref <= NEAR_AHEAD_S)
+        if ref is None or abs(ref) < MIN_CLOCK:  # no real clock (tests): any valid time
+            return self._valid(t)
+        return self._valid(t) and -NEAR_BACK_S <= t - ref <= NEAR_AHEAD_S
 
     def _time_ok(self, t: float) -> bool:
         return self._near(t)
@@ -221,23 +226,25 @@ class CaptureReader:
             return True if nxt == self.size else None
         return _HEADER.unpack(self._at(nxt, _HEADER.size))
 
-    def _chained(self, at: int, t: float, n: int) -> bool:
+    def _chained(self, at: int, t: float, n: int, ref: float | None = None) -> bool:
         """The record at ``at`` ends exactly at the file's end, or where a record starts whose
         time follows this one's (or, when this one's is damaged, the last good one's)."""
         h2 = self._next_header(at, n)
         if h2 is True or h2 is None:
             return h2 is True
         t2, n2 = h2
-        ref = t if self._valid(t) else self._last_time
+        if ref is None:
+            ref = t if self._near(t) else self._last_time
         return n2 <= MAX_RECORD_BYTES and self._near(t2, ref) if ref is not None \
             else n2 <= MAX_RECORD_BYTES and self._valid(t2)
 
     def _header_inside(self, start: int, n: int) -> int | None:
         """The first offset inside the body of the record at ``start`` (``n`` bytes) where a
         header whose time follows the last good one starts; None when there is none."""
-        if self._last_time is None or n < _HEADER.size:
+        if self._last_time is None or abs(self._last_time) < MIN_CLOCK:
             return None
-        buf = np.frombuffer(self._at(start + 1, _HEADER.size + n - 1), np.uint8)
+        # headers starting anywhere in the body (one may run past the claimed end)
+        buf = np.frombuffer(self._at(start + 1, 2 * _HEADER.size + n - 2), np.uint8)
         k = len(buf) - _HEADER.size + 1
         if k <= 0:
             return None
@@ -274,11 +281,13 @@ class CaptureReader:
                 ok = np.isfinite(t) & (np.abs(t) < MAX_TIME) & (n <= MAX_RECORD_BYTES) \
                     & (pos + _HEADER.size + n <= self.size)
                 near = np.zeros_like(ok)
-                if self._last_time is not None:
+                if self._last_time is not None and abs(self._last_time) >= MIN_CLOCK:
                     d = t - self._last_time
                     near = (d >= -NEAR_BACK_S) & (d <= NEAR_AHEAD_S) & (n <= RESYNC_NEAR_BYTES)
-            for j in np.flatnonzero(ok):
-                if near[j] or self._chained(int(pos[j]), float(t[j]), int(n[j])):
+            for j in np.flatnonzero(ok):  # near, or followed by a record near it
+                tj = float(t[j])
+                if near[j] or (abs(tj) >= MIN_CLOCK or self._last_time is None) and \
+                        self._chained(int(pos[j]), tj, int(n[j]), ref=tj):
                     return int(pos[j])
             at += k
         return None
@@ -308,7 +317,8 @@ class CaptureReader:
             # a pause or a clock step when the next record follows this one; else a damaged
             # time (whole record: bytes kept) or a damaged header (resynchronise)
             h2 = self._next_header(start, n)
-            if isinstance(h2, tuple) and self._near(h2[0], host_time) and self._valid(host_time):
+            if isinstance(h2, tuple) and self._valid(host_time) and abs(host_time) >= MIN_CLOCK \
+                    and self._near(h2[0], host_time):
                 pass  # confirmed by the record after it
             elif chained or self._chained(start, math.nan, n):
                 return self._bad_time(start, host_time, n, self._at(start + _HEADER.size, n))
@@ -319,7 +329,10 @@ class CaptureReader:
             self.backwards += 1
             self._note(f"record {self.index} (offset {start}): host time goes backwards "
                        f"{self._last_time:.6f} -> {host_time:.6f} s")
-        self._last_time = host_time
+        # the reference only moves forward (a stamp slightly back is taken, a lagging
+        # reference would make every record after it look far off)
+        self._last_time = host_time if self._last_time is None or not self._near(host_time) \
+            else max(self._last_time, host_time)
         self.offset = start + _HEADER.size + n
         self.index += 1
         return host_time, data

@@ -222,7 +222,7 @@ class ResyncBLFReader(BLFReader):
                 self._tail = data[k:]
                 return
             _, hsize, version, size, _ = OBJ_HEADER_BASE_STRUCT.unpack_from(data, k)
-            inside = data.find(_SIG, k + 4, min(k + max(size, 4), n))
+            inside = data.find(_SIG, k + 4, min(k + max(size, 4) + 3, n))
             if not (version in (1, 2) and OBJ_HEADER_BASE_STRUCT.size <= hsize <= size) \
                     or inside >= 0:
                 pos = self._skip(data, k, f"object header (size {size}, version {version}) "
