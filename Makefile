@@ -4,7 +4,7 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
-.PHONY: demo test bench fixtures lint clean
+.PHONY: demo test bench fixtures fuzz lint clean
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -20,6 +20,9 @@ test: $(STAMP)
 
 bench: $(STAMP)
 	$(BIN)/python scripts/bench.py
+
+fuzz: $(STAMP)
+	$(BIN)/python scripts/fuzz.py
 
 fixtures: $(STAMP)
 	$(BIN)/python scripts/make_fixtures.py

@@ -258,7 +258,7 @@ def damaged_capture(rng: random.Random, n: int, share: float
     recs = []
     for _ in range(n):
         t += 0.002 + rng.random() * 0.01
-        recs.append((t, bytes(rng.randrange(256) for _ in range(rng.randrange(1, 48)))))
+        recs.append((t, rng.randbytes(rng.randrange(1, 48))))
     bad = _pick(rng, n, share)
     out = bytearray(MAGIC)
     for i, (t, d) in enumerate(recs):
