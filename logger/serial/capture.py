@@ -206,7 +206,7 @@ class CaptureReader:
 
     @staticmethod
     def _valid(t: float) -> bool:
-        return math.isfinite(t) and abs(t) < MAX_TIME
+        return math.isfinite(t) and 0.0 <= t < MAX_TIME  # seconds since the epoch (or 0)
 
     def _near(self, t: float, ref: float | None = None) -> bool:
         """``t`` follows ``ref`` (default: the last good record's time) as reads do."""
@@ -278,7 +278,7 @@ class CaptureReader:
             n = rows[:, 8:12].copy().view("<u4")[:, 0].astype(np.int64)
             pos = at + np.arange(k)
             with np.errstate(invalid="ignore"):
-                ok = np.isfinite(t) & (np.abs(t) < MAX_TIME) & (n <= MAX_RECORD_BYTES) \
+                ok = np.isfinite(t) & (t >= 0) & (t < MAX_TIME) & (n <= MAX_RECORD_BYTES) \
                     & (pos + _HEADER.size + n <= self.size)
                 near = np.zeros_like(ok)
                 if self._last_time is not None and abs(self._last_time) >= MIN_CLOCK:
