@@ -241,7 +241,10 @@ class CaptureReader:
     def _header_inside(self, start: int, n: int) -> int | None:
         """The first offset inside the body of the record at ``start`` (``n`` bytes) where a
         header whose time follows the last good one starts; None when there is none."""
-        if self._last_time is None or abs(self._last_time) < MIN_CLOCK:
+        ref = self._last_time
+        if ref is None:  # the first record: its own time is the reference
+            ref = _HEADER.unpack(self._at(start, _HEADER.size))[0]
+        if not (self._valid(ref) and ref >= MIN_CLOCK):
             return None
         # headers starting anywhere in the body (one may run past the claimed end)
         buf = np.frombuffer(self._at(start + 1, 2 * _HEADER.size + n - 2), np.uint8)
@@ -251,7 +254,7 @@ class CaptureReader:
         rows = np.lib.stride_tricks.sliding_window_view(buf, _HEADER.size)[:k]
         t = rows[:, :8].copy().view("<f8")[:, 0]
         with np.errstate(invalid="ignore"):
-            d = t - self._last_time
+            d = t - ref
             hit = np.flatnonzero((d >= -NEAR_BACK_S) & (d <= NEAR_AHEAD_S))
         for j in hit:
             at = start + 1 + int(j)
