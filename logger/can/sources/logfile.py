@@ -80,6 +80,7 @@ class LogFileSource(CanSource):
         self._real = real
         self._kwargs = {"relative_timestamp": False} if real == ".asc" else {}
         self._file = None
+        self._first_bad = ""
         try:
             self._reader = self._open(real)
         except (ValueError, OSError, EOFError, ImportError) as exc:
@@ -108,6 +109,8 @@ class LogFileSource(CanSource):
         return can.LogReader(self.path, **self._kwargs)
 
     def _bad(self, where: str, why: str, lost: str) -> None:
+        if not self.bad_records:
+            self._first_bad = where
         self.bad_records += 1
         self.note(f"{self.path} {where}: {why}; {lost}")
 
@@ -183,6 +186,10 @@ class LogFileSource(CanSource):
             if failed is not None or len(msgs) < max_frames:
                 self._done = True
                 self._check_count()
+                if self.frames_read == 0 and self.bad_records:  # junk, not a damaged log
+                    raise FormatError(f"{self.path}: frame 0: not a readable CAN log (no frame "
+                                      f"read, {self.bad_records} unreadable line(s) or "
+                                      f"record(s), the first at {self._first_bad})")
                 return
 
     def _check_count(self) -> None:
