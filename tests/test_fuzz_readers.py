@@ -1,6 +1,10 @@
 """Every reader, fed damaged recordings chosen by hypothesis, answers cleanly and keeps every
 frame of the undamaged units.
 
+CAN logs are damaged up to half their lines: a candump log whose first 20 lines are all
+unreadable is refused as "not a candump log" by design (90 % damage gets there), see
+logger/can/sources/candump_fast.py.
+
 The damage and the reference readings are tests/fuzzkit.py's (the same as ``make fuzz``, which
 runs over 10^6 damaged units): python-can's own reader on the undamaged lines or objects of a
 log written by python-can; the capture records and serial frames as written. "Cleanly": frames,
@@ -52,7 +56,7 @@ def _check(t: Tally) -> None:
 
 @pytest.mark.parametrize("fmt", CAN_FORMATS)
 @SETTINGS
-@given(seed=st.integers(0, 2**32 - 1), share=st.sampled_from([0.01, 0.1, 0.5, 0.9]))
+@given(seed=st.integers(0, 2**32 - 1), share=st.sampled_from([0.01, 0.1, 0.5]))
 def test_can_log_readers_keep_every_undamaged_frame(bases, workdir, fmt, seed, share):
     _check(can_round(random.Random(seed), bases[fmt], workdir, share))
 
