@@ -4,7 +4,7 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
-.PHONY: demo test bench quality fixtures lint clean
+.PHONY: demo test bench quality fixtures fuzz lint clean
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -24,6 +24,9 @@ bench: $(STAMP)
 # Misfire/layout/interval verdicts on simulated rides the analyser is not told (~15-20 min).
 quality: $(STAMP)
 	$(BIN)/python scripts/quality.py
+
+fuzz: $(STAMP)
+	$(BIN)/python scripts/fuzz.py
 
 fixtures: $(STAMP)
 	$(BIN)/python scripts/make_fixtures.py

@@ -7,6 +7,26 @@ one readable line: the CLI prints ``error: <message>`` and exits with ``exit_cod
 Errors that have a natural built-in twin inherit it too (a bad argument is also a
 ``ValueError``, a source timeout also a ``TimeoutError``), so callers may catch either.
 Numerically doubtful results are warnings, not errors.
+
+Exit codes of the ``crankbeat`` command (each class's ``exit_code``):
+
+== ==========================================================================================
+0  done
+1  any other crankbeat error (:class:`CrankbeatError`)
+2  usage: a command line or argument that cannot be carried out (:class:`UsageError`,
+   :class:`InputError`)
+3  rig file or preset wrong: file, key and expected range named (:class:`RigError`)
+4  a CAN log, capture file, bus or port cannot be opened or is not in its format
+   (:class:`SourceError`, :class:`FormatError`, :class:`SourceTimeoutError`)
+5  the store cannot be opened, written or queried (:class:`StoreError`)
+6  the input holds nothing the rig can analyse, e.g. no crank frame of the rig's id
+   (:class:`DataError`); nothing is stored
+70 an internal error (a bug): the CLI names file and line and asks for a report
+130 interrupted (Ctrl-C)
+== ==========================================================================================
+
+Damage inside a recording (a bad line, record or frame; a wrong time) is never an error: it is
+counted in the stream health, skipped and noted, and the analysis goes on.
 """
 
 from __future__ import annotations
@@ -59,6 +79,13 @@ class RunNotFoundError(StoreError, LookupError):
 
 class DuplicateRunError(StoreError):
     """The same source files were analysed before (matched by hash)."""
+
+
+class DataError(CrankbeatError, ValueError):
+    """The input was read but holds nothing the rig can analyse (no crank frames of its id,
+    an empty or blank log). The message says what was found instead."""
+
+    exit_code = 6
 
 
 class UsageError(CrankbeatError, ValueError):

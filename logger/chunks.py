@@ -6,7 +6,7 @@ never knows which. Arrays are numpy, times in seconds on the CAN log's time base
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 
 import numpy as np
 
@@ -80,11 +80,25 @@ class StreamHealth:
     can_bad_length: int = 0
     can_time_backwards: int = 0
     can_time_jumps: int = 0
+    can_duplicates: int = 0  # repeated frames (same rolling counter / same bytes at once)
+    can_out_of_order: int = 0  # frames stamped off the time line (early, late), skipped
+    can_time_steps: int = 0  # clock steps (back: later times shifted; ahead: a pause)
+    can_bad_time: int = 0  # receive times that are not finite numbers, skipped
+    can_bad_values: int = 0  # frames whose values cannot be (tooth period <= 0), skipped
+    can_bad_records: int = 0  # lines/records of the recording that could not be read
     serial_good: dict[str, int] = field(default_factory=dict)
     serial_corrupt: dict[str, int] = field(default_factory=dict)
     serial_lost: dict[str, int] = field(default_factory=dict)
     serial_reconnects: dict[str, int] = field(default_factory=dict)
+    serial_bad_records: dict[str, int] = field(default_factory=dict)  # capture records skipped
+    serial_bytes_lost: dict[str, int] = field(default_factory=dict)  # bytes skipped resyncing
+    serial_time_steps: dict[str, int] = field(default_factory=dict)  # host clock steps
     notes: list[str] = field(default_factory=list)  # one-line messages (first few of each kind)
+
+    def as_dict(self) -> dict:
+        """Every counter (not the notes), as plain ints and dicts of ints, for storing."""
+        return {f.name: (dict(v) if isinstance(v := getattr(self, f.name), dict) else v)
+                for f in fields(self) if f.name != "notes"}
 
 
 @dataclass

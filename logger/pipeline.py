@@ -21,8 +21,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from crankbeat.errors import DuplicateRunError
-from crankbeat.logger import stream
-from crankbeat.logger.chunks import Chunk
+from crankbeat.logger.live.ride import LIVE_CHUNK_S
 from crankbeat.logger.rig.model import CanBus, Rig
 from crankbeat.logger.run.analysis import (
     FUEL_CUT_OVER_IDLE,
@@ -31,7 +30,7 @@ from crankbeat.logger.run.analysis import (
     layout_candidates,
     misfire_settings,
 )
-from crankbeat.logger.run.drive import REPLAY_CHUNK_S, analyse_files, drive, file_sources
+from crankbeat.logger.run.drive import REPLAY_CHUNK_S, analyse_files, file_sources
 from crankbeat.logger.run.masking import mask_events
 from crankbeat.logger.run.output import Priors, RunOutput
 from crankbeat.logger.run.teeth import TOOTH_CONFIDENCE_MIN, wheel_key
@@ -43,12 +42,11 @@ from crankbeat.logger.run.writer import (
     write_step,
     write_tail,
 )
+from crankbeat.logger.run_gate import settle_failed_run
 from crankbeat.logger.store import Store
 
 #: A paced replay commits at least this often, s of wall time.
 COMMIT_EVERY_S = 0.5
-#: Chunk length of a live ride, s: short, since an event reaches the store a chunk after its data.
-LIVE_CHUNK_S = 0.1
 
 _mask = mask_events  # the name the tests of chunking use
 
@@ -99,19 +97,22 @@ def analyse_replay(
                             sources=sources)
         run_id = store_output(store, rig, out, label=label, notes=notes,
                               odometer_km=odometer_km)
+        store.delete_unfinished_twins(run_id)  # an interrupted run of these files is replaced
         return RunResult(run_id, out.summary)
     # paced "as live": steps stored as they come, so a killed replay keeps its events
     run_id = store.begin_run(rig, label=label, notes=notes, odometer_km=odometer_km,
                              sources=[(s.path, s.sha256, s.kind) for s in sources],
                              analyser=analyser)
     committer = _Committer(store, COMMIT_EVERY_S)
-    out = analyse_files(rig, can_path, accel_paths, priors=priors, pace=pace, progress=progress,
-                        sources=sources,
-                        on_step=lambda step, chunk: committer.write(run_id, step))
-    start = ride_start(out.t_start)
-    if start is not None:
-        store.update_run(run_id, started_at=start)
-    write_tail(store, run_id, out.tail, out.rig_name, out.wheel_key)
+    # a failure leaves no half-made run; an interruption keeps its events, marked interrupted
+    with settle_failed_run(store, run_id):
+        out = analyse_files(rig, can_path, accel_paths, priors=priors, pace=pace,
+                            progress=progress, sources=sources,
+                            on_step=lambda step, chunk: committer.write(run_id, step))
+        start = ride_start(out.t_start)
+        if start is not None:
+            store.update_run(run_id, started_at=start)
+        write_tail(store, run_id, out.tail, out.rig_name, out.wheel_key)
     return RunResult(run_id, out.summary)
 
 
@@ -137,51 +138,13 @@ def analyse_live(
     notes: str | None = None, odometer_km: float | None = None, chunk_s: float = LIVE_CHUNK_S,
     priors: Priors | None = None,
 ) -> RunResult:
-    """Analyse a live ride until ``stop_event`` is set (or the bus closes).
+    """Analyse a live ride until ``stop_event`` is set: :func:`logger.live.ride.ride` (a watched
+    bus, write-behind to the store, faults on screen and in the run)."""
+    from crankbeat.logger.live.ride import ride
 
-    ``display`` is a :class:`logger.live.LiveDisplay` (or None); it is refreshed a few times a
-    second from a :class:`logger.live.LiveTally`.
-    """
-    from crankbeat.logger.live import LiveTally
-
-    priors = priors if priors is not None else read_priors(store, rig)
-    run_id = store.begin_run(rig, label=label, notes=notes, odometer_km=odometer_km,
-                             analyser=analyser_version())
-    analysis = RunAnalysis(rig, tooth_correction_deg=priors.tooth_errors_deg)
-    tally = LiveTally(rig.engine, interval_tolerance_deg=rig.limits.interval_tolerance_deg)
-    last_draw = [0.0]
-    t0 = time.monotonic()
-
-    def on_step(out: StepOutput, chunk: Chunk) -> None:
-        # every chunk is committed at once: a reader sees each event a chunk after its data
-        write_step(store, run_id, out)
-        store.commit()
-        tally.push_events(out.events)
-        if len(chunk.status):
-            vals = chunk.status.values
-            tally.set_status(
-                rpm=float(vals["engine_speed"][-1]) if "engine_speed" in vals else None,
-                throttle=float(vals["throttle"][-1]) if "throttle" in vals else None)
-        tally.set_health(chunk.health)
-        tally.follow(analysis)  # wheel learnt yet, recent vibration
-        now = time.monotonic()
-        if display is not None and now - last_draw[0] >= 0.25:
-            display.update(tally.state(now - t0, recording=str(record_dir) if record_dir else None))
-            last_draw[0] = now
-
-    try:
-        with stream.live(rig, bus, ports, record_dir=record_dir, chunk_s=chunk_s,
-                         stop=stop_event) as chunks:
-            drive(analysis, chunks, on_step, lambda out: write_step(store, run_id, out))
-    except KeyboardInterrupt:  # the rider stopped the ride: what was analysed is the run
-        try:  # flush what the stages hold back (the interrupt may have cut a step short)
-            write_step(store, run_id, analysis.finish())
-        except Exception as exc:  # noqa: BLE001 - the run's tail must be stored regardless
-            analysis.notes.append(f"the ride was stopped mid-step; its last events are "
-                                  f"missing ({type(exc).__name__})")
-    tail = analysis.conclude()
-    write_tail(store, run_id, tail, rig.name, wheel_key(rig))
-    return RunResult(run_id, tail.summary)
+    return ride(rig, bus, ports, store, record_dir=record_dir, display=display,
+                stop_event=stop_event, label=label, notes=notes, odometer_km=odometer_km,
+                chunk_s=chunk_s, priors=priors)
 
 
 __all__ = [

@@ -1,6 +1,10 @@
 """Record what a live run reads: CAN frames through python-can's writers, serial bytes through
 capture files, flushed to disk at least once a second (a power cut loses at most ~1 s).
 
+A recording that cannot be written (disk full, the stick pulled out) stops the recording, not
+the ride: :attr:`Recorder.failure` says why, and what arrives afterwards is counted in
+:attr:`Recorder.frames_not_recorded` / :attr:`Recorder.reads_not_recorded`.
+
 Files in ``out_dir``: ``<stem><can_suffix>`` (candump ``.log`` by default; any suffix python-can
 writes) and ``<stem>.<sensor>.acraw`` per serial sensor (docs/rig.md's capture format). Replaying
 them through :func:`logger.stream.replay` gives the same chunks as the live run.
@@ -87,6 +91,10 @@ class Recorder:
         self.frames = 0
         self.serial_records = {n: 0 for n in names}
         self._last_flush = time.monotonic()
+        self.failure: str | None = None  # why the recording stopped (None while it goes on)
+        self.failed_at: float | None = None  # wall clock, epoch s
+        self.frames_not_recorded = 0
+        self.reads_not_recorded = 0
 
     def _no_sensor(self, name: str) -> None:
         known = ", ".join(s.name for s in self.rig.sensors) or "none"
@@ -94,9 +102,17 @@ class Recorder:
 
     def write_can(self, frames: FrameBatch | list[can.Message]) -> None:
         """Append CAN frames (a batch from a source, or python-can messages)."""
+        if self.failure is not None:
+            self.frames_not_recorded += len(frames)
+            return
         msgs = frames.to_messages() if isinstance(frames, FrameBatch) else frames
-        for msg in msgs:
-            self._can.on_message_received(msg)
+        try:
+            for msg in msgs:
+                self._can.on_message_received(msg)
+        except OSError as exc:
+            self._fail(exc)
+            self.frames_not_recorded += len(msgs)
+            return
         self.frames += len(msgs)
         self.maybe_flush()
 
@@ -106,28 +122,60 @@ class Recorder:
         if w is None:
             self._no_sensor(sensor)
         assert w is not None
-        for t, data in records:
-            w.write(t, data)
+        if self.failure is not None:
+            self.reads_not_recorded += len(records)
+            return
+        try:
+            for t, data in records:
+                w.write(t, data)
+        except OSError as exc:
+            self._fail(exc)
+            self.reads_not_recorded += len(records)
+            return
         self.serial_records[sensor] += len(records)
         self.maybe_flush()
 
     def maybe_flush(self) -> None:
         """Flush if the last flush is :data:`FLUSH_EVERY_S` old (call it while idle, too)."""
-        if self._closed:
+        if self._closed or self.failure is not None:
             return
         if time.monotonic() - self._last_flush >= FLUSH_EVERY_S:
             self.flush()
 
     def flush(self) -> None:
-        """Push everything written so far to the disk."""
-        f = getattr(self._can, "file", None)
-        if f is not None and not f.closed:
-            f.flush()
-            _fsync(f)
-        for w in self._serial.values():
-            w.flush()
-            _fsync(getattr(w, "_f", None))
+        """Push everything written so far to the disk (a failure stops the recording)."""
+        if self.failure is not None:
+            return
+        try:
+            f = getattr(self._can, "file", None)
+            if f is not None and not f.closed:
+                f.flush()
+                _fsync(f)
+            for w in self._serial.values():
+                w.flush()
+                _fsync(getattr(w, "_f", None))
+        except OSError as exc:
+            self._fail(exc)
         self._last_flush = time.monotonic()
+
+    def _fail(self, exc: OSError) -> None:
+        self.failure = f"{self.out_dir}: {exc.strerror or exc}"
+        self.failed_at = time.time()
+
+    def state_line(self) -> str | None:
+        """One line for the screen once the recording stopped (None while it goes on)."""
+        if self.failure is None:
+            return None
+        return (f"RECORDING STOPPED ({self.failure}): {self.frames_not_recorded} CAN frames "
+                f"and {self.reads_not_recorded} serial reads not recorded; analysis goes on")
+
+    def fault_lines(self) -> list[str]:
+        if self.failure is None:
+            return []
+        when = time.strftime("%H:%M:%S", time.gmtime(self.failed_at or 0))
+        return [f"the recording stopped at {when} UTC ({self.failure}): {self.frames} CAN "
+                f"frames are in {self.can_path.name}, {self.frames_not_recorded} later ones "
+                "were analysed but not recorded"]
 
     def close(self) -> None:
         """Flush and close every file. Safe to call twice."""
@@ -136,9 +184,16 @@ class Recorder:
         self._closed = True
         try:
             self._can.stop()
+        except OSError as exc:  # the last flush of a full disk
+            if self.failure is None:
+                self._fail(exc)
         finally:
             for w in self._serial.values():
-                w.close()
+                try:
+                    w.close()
+                except OSError as exc:
+                    if self.failure is None:
+                        self._fail(exc)
 
     def __enter__(self) -> Recorder:
         return self

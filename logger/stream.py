@@ -34,6 +34,7 @@ import numpy as np
 
 from crankbeat.errors import UsageError
 from crankbeat.logger.can.decode import FrameDecoder
+from crankbeat.logger.can.guard import FrameGuard
 from crankbeat.logger.can.sources import BusSource, CanSource, FrameBatch, open_log
 from crankbeat.logger.chunks import AccelBlock, Chunk, StatusBlock, StreamHealth, TeethBlock
 from crankbeat.logger.recorder import Recorder
@@ -95,10 +96,9 @@ def _cat_accel(sensor: str, parts: list[AccelBlock]) -> AccelBlock:
 
 
 def _snapshot(h: StreamHealth) -> StreamHealth:
-    return dataclasses.replace(
-        h, serial_good=dict(h.serial_good), serial_corrupt=dict(h.serial_corrupt),
-        serial_lost=dict(h.serial_lost), serial_reconnects=dict(h.serial_reconnects),
-        notes=list(h.notes))
+    copies = {f.name: type(v)(v) for f in dataclasses.fields(h)
+              if isinstance(v := getattr(h, f.name), dict | list)}
+    return dataclasses.replace(h, **copies)
 
 
 # ------------------------------------------------------------------------- merger
@@ -112,6 +112,7 @@ class _Merger:
         self.chunk_s = float(chunk_s)
         self.decoder = FrameDecoder(rig)
         self.health = self.decoder.health
+        self.guard = FrameGuard(self.health)
         self.serial = {n: SerialDecoder(rig.sensor(n)) for n in sensors}
         self._note_sources = [*note_sources, *[(lambda d=d: d.notes) for d in
                                                self.serial.values()]]
@@ -123,7 +124,8 @@ class _Merger:
         self.last_end: float | None = None
 
     def run(self, batches: Iterator[FrameBatch], feed: SerialFeed) -> Iterator[Chunk]:
-        for batch in batches:
+        for raw in batches:
+            batch = self.guard.push(raw)
             if not len(batch):
                 continue
             ts = np.where(np.isfinite(batch.ts), batch.ts, -np.inf)
@@ -139,6 +141,7 @@ class _Merger:
                 t, s = self.decoder.push(_slice(batch, a, z))
                 self._teeth.append(t)
                 self._status.append(s)
+        self.guard.finish()
         self.decoder.finish()
         if self._open is not None or self.serial:
             yield self._close(feed, final=True)
@@ -160,6 +163,9 @@ class _Merger:
             h.serial_corrupt[name] = dec.health.corrupt
             h.serial_lost[name] = dec.health.lost
             h.serial_reconnects[name] = dec.health.reconnects
+            h.serial_time_steps[name] = dec.health.host_steps
+            h.serial_bad_records[name] = dec.health.bad_records
+            h.serial_bytes_lost[name] = dec.health.bytes_lost
         for i, src in enumerate(self._note_sources):
             notes = src()
             self.health.notes.extend(notes[self._notes_taken[i]:])
@@ -299,9 +305,11 @@ def replay(
                      [lambda: source.notes, *[(lambda r=r: r.notes) for r in readers.values()]])
 
     def feed(end: float | None) -> dict[str, list[Record]]:
-        if end is None:
-            return {n: r.read() for n, r in readers.items()}
-        return {n: r.read_until(end) for n, r in readers.items()}
+        out = {n: (r.read() if end is None else r.read_until(end)) for n, r in readers.items()}
+        for n, r in readers.items():  # the file's damage counts as the sensor's
+            merger.serial[n].health.bad_records = r.bad_records
+            merger.serial[n].health.bytes_lost = r.bytes_lost
+        return out
 
     gen = _paced(merger.run(source.batches(BATCH_FRAMES), feed), pace)
     return Stream(gen, source.progress, closers)
@@ -414,4 +422,6 @@ def live(
     def progress() -> tuple[float, float | None]:
         return time.monotonic() - started, None
 
-    return Stream(merger.run(batches(), feed), progress, closers)
+    out = Stream(merger.run(batches(), feed), progress, closers)
+    out.recorder = recorder  # the live ride shows a recording that stopped (disk full)
+    return out

@@ -286,15 +286,15 @@ def test_garbage_lines_are_counted_and_skipped(tmp_path):
     np.testing.assert_array_equal(got.ts, ref.ts)
 
 
-def test_python_can_path_stops_at_damage_with_a_note(tmp_path):
+def test_python_can_path_goes_on_after_damage_with_a_note(tmp_path):
     p = _write(tmp_path / "d.log", _variety()[:20])
     lines = p.read_bytes().splitlines(keepends=True)
     lines.insert(10, b"not a frame\n")
     p.write_bytes(b"".join(lines))
     src = LogFileSource(p)
     got = _read(src)
-    assert len(got) == 10
-    assert src.bad_records == 1 and "frame 10: unreadable" in src.notes[0]
+    assert len(got) == 20  # python-can's reader is restarted after the damaged line
+    assert src.bad_records == 1 and "line 11: unreadable" in src.notes[0]
 
 
 def test_overlong_line_is_one_bad_line(tmp_path):

@@ -120,11 +120,17 @@ def test_find_run_by_sources_matches_the_whole_set_in_any_order(tmp_path):
     with Store.open(tmp_path / "p.db") as st:
         run = st.begin_run(larch_like_rig(), sources=[("a.log", "aa", "can"),
                                                    ("b.acraw", "bb", "accel:bar_left")])
+        assert st.find_run_by_sources(["bb", "aa"]) is None  # not complete yet: not a match
+        st.finish_run(run, {})
         assert st.find_run_by_sources(["bb", "aa"]) == run
         assert st.find_run_by_sources(["aa"]) is None
         assert st.find_run_by_sources(["aa", "bb", "cc"]) is None
         again = st.begin_run(larch_like_rig(), sources=[("a.log", "aa"), ("b.acraw", "bb")])
+        st.finish_run(again, {})
         assert st.find_run_by_sources(["aa", "bb"]) == again  # the newest
+        interrupted = st.begin_run(larch_like_rig(), sources=[("a.log", "aa"), ("b.acraw", "bb")])
+        st.finish_run(interrupted, {}, status="interrupted")
+        assert st.find_run_by_sources(["aa", "bb"]) == again  # an interrupted run is no match
 
 
 def test_sources_record_size_and_hash(tmp_path):

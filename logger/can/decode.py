@@ -26,6 +26,8 @@ JUMP_S = 0.5
 NOTES_PER_KIND = 5
 #: Frames after which a log with no frame of the rig is called out.
 NO_MATCH_AFTER = 1000
+#: Two frames of a message without a counter, with the same bytes this close, are one, s.
+DUPLICATE_S = 1e-4
 #: Tooth frames needed before the plausibility of their periods is judged.
 PLAUSIBLE_AFTER = 200
 
@@ -45,6 +47,7 @@ class _MsgState:
     counter: CanSignal | None
     last_counter: int | None = None
     last_ts: float | None = None
+    last_data: bytes | None = None
 
 
 class FrameDecoder:
@@ -84,6 +87,7 @@ class FrameDecoder:
         self._cam_msg = rig.message_for("cam_level")
         self._cam_sig = self._cam_msg.signal_for("cam_level") if self._cam_msg else None
         self._last_cam = -1
+        self._carry_lost = 0  # tooth frames skipped after the last one handed on
         self._status = {r: rig.message_for(r) for r in STATUS_ROLES if rig.message_for(r)}
         self._status_msgs = sorted({m.name for m in self._status.values()})
         self._last_status = {r: np.nan for r in self._status}
@@ -190,6 +194,7 @@ class FrameDecoder:
             self._note("dlc", f"{batch.where(i)}: id {_id_text(msg)} ({msg.name}) has "
                        f"{int(batch.dlc[i])} data bytes, expected {msg.length} (frame skipped)")
             idx = idx[~bad]
+        idx = self._drop_duplicates(st, batch, idx)
         if len(idx) == 0:
             return idx, None
         ts = batch.ts[idx]
@@ -207,6 +212,35 @@ class FrameDecoder:
         lost = self._lost(st, batch, idx)
         h.can_lost_frames += int(lost.sum())
         return idx, lost
+
+    def _drop_duplicates(self, st: _MsgState, batch: FrameBatch, idx: np.ndarray) -> np.ndarray:
+        """Frames of ``st.msg`` that repeat the one before: the same rolling counter value, or
+        (without a counter) the same bytes within :data:`DUPLICATE_S`. A bus never repeats a
+        frame by itself; a repeat comes from the logging path, and would count its tooth
+        periods twice."""
+        if not len(idx):
+            return idx
+        data = batch.data[idx, : st.msg.length]
+        ts = batch.ts[idx]
+        if st.counter is not None:
+            c = decode_raw(batch.data[idx], st.counter).astype(np.int64)
+            prev = np.concatenate(([-1 if st.last_counter is None else st.last_counter], c[:-1]))
+            dup = c == prev
+        else:
+            n = st.msg.length
+            last = np.frombuffer(st.last_data, np.uint8) if st.last_data is not None \
+                else np.full(n, -1)
+            prev_d = np.concatenate((last[None, :n].astype(np.int16), data[:-1]))
+            prev_t = np.concatenate(([-np.inf if st.last_ts is None else st.last_ts], ts[:-1]))
+            dup = (prev_d == data).all(1) & (np.abs(ts - prev_t) <= DUPLICATE_S)
+            st.last_data = data[-1].tobytes()
+        if dup.any():
+            self.health.can_duplicates += int(dup.sum())
+            i = int(idx[np.argmax(dup)])
+            self._note("duplicate", f"{batch.where(i)}: {st.msg.name} ({_id_text(st.msg)}) "
+                       "repeats the frame before it (duplicate skipped)")
+            idx = idx[~dup]
+        return idx
 
     def _lost(self, st: _MsgState, batch: FrameBatch, idx: np.ndarray) -> np.ndarray:
         sig = st.counter
@@ -306,13 +340,36 @@ class FrameDecoder:
         lt = lost.get(self._teeth.name)
         lost_before = np.zeros(len(idx), np.int32) if lt is None else lt.astype(np.int32)
         cam = self._cam_at(batch, rows, idx)
-        return TeethBlock(
+        block = TeethBlock(
             frame_time=batch.ts[idx].astype(np.float64),
             periods=periods,
             cam=cam,
             lost_before=lost_before,
             frame_index=idx.astype(np.int64) + base,
         )
+        return self._drop_bad_periods(block, batch, idx)
+
+    def _drop_bad_periods(self, b: TeethBlock, batch: FrameBatch, idx: np.ndarray
+                          ) -> TeethBlock:
+        """Tooth frames holding a period <= 0 s cannot be right: skip them as lost frames
+        (the next frame kept carries them in ``lost_before``, so the tooth count stays)."""
+        bad = (b.periods <= 0).any(1) | np.isinf(b.periods).any(1)
+        if not bad.any() and not self._carry_lost:
+            return b
+        if bad.any():
+            self.health.can_bad_values += int(bad.sum())
+            i = int(np.argmax(bad))
+            self._note("period", f"{batch.where(int(idx[i]))}: tooth period "
+                       f"{float(b.periods[i].min()):.6g} s is not > 0 (frame skipped as lost)")
+        dropped = np.where(bad, b.lost_before.astype(np.int64) + 1, 0)
+        cs = np.cumsum(dropped) + self._carry_lost
+        keep = np.flatnonzero(~bad)
+        before = np.concatenate(([0], cs[keep][:-1])) if len(keep) else keep
+        add = cs[keep] - before
+        self._carry_lost = int(cs[-1] - (cs[keep[-1]] if len(keep) else 0)) if len(keep) \
+            else int(cs[-1])
+        return TeethBlock(b.frame_time[keep], b.periods[keep], b.cam[keep],
+                          (b.lost_before[keep] + add).astype(np.int32), b.frame_index[keep])
 
     def _cam_values(self, batch: FrameBatch, rows: dict[str, np.ndarray]
                     ) -> tuple[np.ndarray, np.ndarray]:

@@ -15,6 +15,7 @@ from crankbeat.logger.cli.common import (
     stderr,
 )
 from crankbeat.logger.cli.summary import render_run, run_digest
+from crankbeat.logger.stop_signals import interrupt_on_signals
 
 NAME = "replay"
 HELP = "analyse a recorded ride (CAN log + accelerometer captures) into the store"
@@ -81,7 +82,7 @@ def run(args: argparse.Namespace) -> int:
     for name, path in accel.items():
         _check_file(path, f"capture for sensor '{name}'")
 
-    with open_store(args, create=True) as store:
+    with interrupt_on_signals(), open_store(args, create=True) as store:
         run_id = _analyse(args, rig, can_path, accel, store)
         if args.json:
             print_json(run_digest(store, run_id))

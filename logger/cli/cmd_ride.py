@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import signal
 import threading
 from pathlib import Path
 
@@ -11,6 +10,7 @@ from crankbeat.errors import UsageError
 from crankbeat.logger.cli.common import add_store_argument, open_store, parse_assignment, stderr
 from crankbeat.logger.cli.summary import render_run
 from crankbeat.logger.live import LiveDisplay, caution_text
+from crankbeat.logger.stop_signals import stop_on_signals
 
 NAME = "ride"
 HELP = "record and analyse a ride live from the CAN bus and the accelerometer ports"
@@ -33,7 +33,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="print updates line by line instead of redrawing the screen")
     parser.epilog = ("example: crankbeat ride --rig larch --channel can0 "
                      "--port bar_left=/dev/ttyUSB0 --record rides/ --label morning\n"
-                     "Ctrl-C ends the ride and keeps everything recorded so far.\n\n"
+                     "Ctrl-C (or SIGTERM, SIGHUP) ends the ride and keeps everything recorded "
+                     "so far.\n\n"
                      + caution_text())
 
 
@@ -65,26 +66,23 @@ def run(args: argparse.Namespace) -> int:
             record_dir.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
             raise UsageError(f"--record {record_dir}: cannot create it ({exc.strerror})") from None
-    from crankbeat.logger import pipeline  # imported here: it pulls in every dsp stage
+    from crankbeat.logger.live.ride import ride  # imported here: it pulls in every dsp stage
 
     stop = threading.Event()
 
-    def _first_ctrl_c(signum, frame):  # the second Ctrl-C interrupts for real
-        stderr("stopping the ride (Ctrl-C again to abort at once)")
-        stop.set()
-        signal.signal(signal.SIGINT, signal.default_int_handler)
+    def _stopping(name: str) -> None:
+        again = " (Ctrl-C again to abort at once)" if name == "SIGINT" else f" ({name})"
+        stderr(f"stopping the ride{again}")
 
-    previous = signal.signal(signal.SIGINT, _first_ctrl_c)
-    try:
+    with stop_on_signals(stop, _stopping) as seen:
         with open_store(args, create=True) as store:
             display = LiveDisplay(alert_pct=rig.limits.misfire_alert_pct, live=not args.plain)
             with display:
-                result = pipeline.analyse_live(
+                result = ride(
                     rig, bus, ports, store, record_dir=record_dir, display=display,
                     stop_event=stop, label=args.label, notes=args.notes,
-                    odometer_km=args.odometer,
+                    odometer_km=args.odometer, say=stderr,
+                    stopped_by=lambda: seen["signal"] if seen["signal"] != "SIGINT" else None,
                 )
             print(render_run(store, int(result.run_id)))
-    finally:
-        signal.signal(signal.SIGINT, previous)
     return 0

@@ -81,6 +81,7 @@ class LiveState:
     # correction, or one learnt on the ride's first fuel cut): before, they show the wheel
     wheel_learnt: bool = True
     vibration_weighting: dict[str, str] = field(default_factory=dict)  # sensor -> "Wh", "none"
+    faults: list[str] = field(default_factory=list)  # live faults: silent bus, store, recording
 
 
 # Our own palette: amber for attention, deep red for the alert, teal for good.
@@ -135,7 +136,7 @@ class LiveDisplay:
         if self._live is not None:
             self._live.update(self.render(state))
             return
-        alerts = self.alerts(state)
+        alerts = self.alerts(state) + list(state.faults)
         if self._last_plain is not None:
             last_t, last_alerts = self._last_plain
             if alerts == last_alerts and state.elapsed_s - last_t < self._plain_every_s:
@@ -187,6 +188,8 @@ class LiveDisplay:
             row.add_row(self._cylinders(state))
         parts.append(row)
         parts.append(self._health(state))
+        for fault in state.faults:
+            parts.append(Text(fault, style=_WARN, no_wrap=True, overflow="ellipsis"))
         for note in state.notes[-2:]:
             parts.append(Text(f"note: {note}", style=_DIM, no_wrap=True, overflow="ellipsis"))
         return Panel(Group(*parts), title="crankbeat ride", border_style="#2bb3a3",

@@ -9,6 +9,7 @@ All problems of one file go to one :class:`Problems`, which raises a single :cla
 from __future__ import annotations
 
 import difflib
+import math
 from collections.abc import Callable
 from typing import Any, Literal
 
@@ -29,6 +30,67 @@ _KIND_TEXT = {
 }
 
 _MISSING = object()
+
+#: Plausible range of every number a rig or layout file may hold, by key: (low, high, unit).
+#: Wide enough for any road or race engine and sensor (common practice, from memory); a value
+#: outside is a typo or a wrong unit, and would ask for absurd memory or give empty results.
+RANGES: dict[str, tuple[float, float, str]] = {
+    "teeth": (8, 720, "tooth positions"),
+    "missing": (0, 180, "teeth"),
+    "tdc_offset_deg": (-720, 720, "deg"),
+    "cam_active_level": (0, 1, ""),
+    "bitrate": (1_000, 8_000_000, "bit/s"),
+    "length": (0, 64, ""),
+    "rate_hz": (0.01, 100_000, "Hz"),
+    "start_bit": (0, 511, ""),
+    "count": (1, 32, ""),
+    "saturated_raw": (0, 2**64 - 1, ""),
+    "modulo": (2, 2**32, ""),
+    "scale": (-1e9, 1e9, ""),
+    "offset": (-1e9, 1e9, ""),
+    "start": (-4096, 4096, "byte"),
+    "end": (-4096, 4096, "byte"),
+    "at": (-4096, 4096, "byte"),
+    "baud": (300, 20_000_000, "baud"),
+    "sample_rate_hz": (1, 100_000, "Hz"),
+    "frame_length": (1, 4096, "bytes"),
+    "sync": (0, 255, "byte values"),
+    "sequence_modulo": (2, 2**32, ""),
+    "device_time_modulo": (2, 2**64, ""),
+    "device_time_unit_s": (1e-9, 1.0, "s"),
+    "idle_rpm": (100, 30_000, "rpm"),
+    "rev_limit_rpm": (500, 30_000, "rpm"),
+    "interval_tolerance_deg": (0.01, 90, "deg"),
+    "misfire_alert_pct": (0, 100, "%"),
+    "misfire_threshold": (1e-6, 1e6, ""),
+    "stroke_cycle": (2, 4, ""),
+    "firing_order": (1, 32, "cylinder numbers"),
+    "pin_deg": (-720, 720, "deg"),
+    "bank_deg": (-360, 360, "deg"),
+    "position_mm": (-5_000, 5_000, "mm"),
+    "firing_deg": (-1440, 1440, "deg"),
+    "bore_mm": (10, 500, "mm"),
+    "stroke_mm": (10, 500, "mm"),
+    "conrod_mm": (10, 2_000, "mm"),
+    "recip_mass_kg": (0.01, 100, "kg"),
+    "inertia_kgm2": (1e-4, 100, "kg m^2"),
+}
+
+
+def _range_text(key: str) -> str:
+    lo, hi, unit = RANGES[key]
+    return f"a finite number in {lo:g} .. {hi:g}{' ' + unit if unit else ''}"
+
+
+def _in_range(key: str, value: Any) -> bool:
+    """Finite (always) and within :data:`RANGES` (when the key has one)."""
+    items = value if isinstance(value, list) else [value]
+    for v in items:
+        if isinstance(v, float) and not math.isfinite(v):
+            return False
+        if key in RANGES and not (RANGES[key][0] <= v <= RANGES[key][1]):
+            return False
+    return True
 
 
 class Problems:
@@ -152,8 +214,14 @@ class Section:
             value = float(value)
         elif kind == "floats":
             value = [float(v) for v in value]
-        if check is not None and not check(value):
+        finite = all(math.isfinite(v) for v in (value if isinstance(value, list) else [value])) \
+            if kind in ("int", "float", "ints", "floats") else True
+        if finite and check is not None and not check(value):
             self.problem(key, f"got {describe(value)}", expected)
+            return default
+        if kind in ("int", "float", "ints", "floats") and not _in_range(key, value):
+            self.problem(key, f"got {describe(value)}",
+                         _range_text(key) if key in RANGES else "a finite number")
             return default
         return value
 

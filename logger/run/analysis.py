@@ -35,6 +35,7 @@ from crankbeat.logger.rig.model import Rig
 from crankbeat.logger.run.channels import ChannelDecimator
 from crankbeat.logger.run.masking import RoughMasking
 from crankbeat.logger.run.teeth import ToothCorrectionPolicy, take_edges
+from crankbeat.logger.run_gate import RunWatch
 from crankbeat.logger.run_summary import WINDOW_KINDS, RunSummary
 
 #: Fuel cut is looked for above this multiple of the rig's idle speed.
@@ -117,6 +118,8 @@ class RunAnalysis:
         self.teeth = ToothCorrectionPolicy(rig, self.events.settings, tooth_correction_deg)
         self.masking = RoughMasking(self.vibration, [s.name for s in specs], self.summary.push)
         self.channels = ChannelDecimator()
+        self.watch = RunWatch(rig)  # crank frames seen (the gate), accelerometer breaks
+        self.live_fields: dict = {}  # live faults (link, store, recording), stored with the run
         self.t_first: float | None = None  # first crank edge of the run, CAN time (s)
         # the layout check's speed profile: the analyzer's own, or one restarted where a
         # tooth-error correction learnt mid-run takes effect (uncorrected teeth bend the profile)
@@ -160,7 +163,9 @@ class RunAnalysis:
             self.masking.accounted(vstep.t_done)
             for spans in vstep.rough_spans.values():
                 new_spans += spans
-        return self._output(step, new_spans, end_time=chunk.end_time)
+        out = self._output(step, new_spans, end_time=chunk.end_time)
+        self.watch.push(chunk, step.events)
+        return out
 
     def finish(self) -> StepOutput:
         step = self.events.finish()
@@ -177,6 +182,7 @@ class RunAnalysis:
             self.vib_summary = self.vibration.finish()
             new_spans = self.vib_summary.rough_spans_all
         out = self._output(step, new_spans, end_time=np.inf, final=True)
+        self.watch.finish(step.events)
         self.summary.finish()
         out.windows = self._take_windows()
         return out

@@ -23,6 +23,7 @@ from crankbeat.logger.run.channels import concat_channels
 from crankbeat.logger.run.output import Priors, RunOutput, Source, join_events
 from crankbeat.logger.run.teeth import wheel_key
 from crankbeat.logger.run.version import analyser_version
+from crankbeat.logger.run_gate import log_census
 from crankbeat.logger.store.store import sha256_file
 
 #: Chunk length of a replay on the CAN clock, s. Every stage gives the same numbers whatever the
@@ -109,6 +110,8 @@ def analyse_files(
                     on_step(out, None)
 
             drive(analysis, chunks, step, last)
+        # a log with no crank frame for this rig gives no run: one line of what it held
+        analysis.watch.require_analysable(can_path, census=lambda: log_census(can_path))
     analysis.notes += [str(w.message) for w in caught]
     out = collector.output(analysis, sources)
     if progress is not None:

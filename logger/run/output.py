@@ -12,8 +12,9 @@ import numpy as np
 
 from crankbeat.dsp.events import EVENT_DTYPE
 from crankbeat.logger.chunks import StreamHealth
+from crankbeat.logger.notes import decisive_notes, ranked_notes, stream_fields
 from crankbeat.logger.run.masking import mask_events
-from crankbeat.logger.run.notes import first_notes, health_dict, tooth_notes
+from crankbeat.logger.run.notes import tooth_notes
 from crankbeat.logger.run.teeth import LearntTeeth
 
 
@@ -136,8 +137,10 @@ def conclude(analysis) -> RunTail:
     rough = list(analysis.rough_spans)
     summary["rough_road"] = {"spans": len(rough), "seconds": float(sum(b - a for a, b in rough))}
     health: StreamHealth = analysis.health
-    summary["stream"] = health_dict(health)
-    summary["notes"] = first_notes(notes + list(health.notes))
+    # every stream counter as a field; the notes that bound the run's trust first, never cut
+    summary["stream"] = stream_fields(health, analysis.watch, analysis.live_fields)
+    summary["notes"] = ranked_notes(decisive_notes(summary["stream"]),
+                                    notes + list(health.notes))
     limit = analysis.rig.limits.misfire_alert_pct
     worst = summary["misfire"]["worst_rev200_pct"]
     # no alert from a rig file whose layout the engine does not fit

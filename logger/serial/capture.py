@@ -12,10 +12,14 @@ record before the cut and says where the cut is in :attr:`CaptureReader.notes`.
 
 from __future__ import annotations
 
+import math
+import mmap
 import os
 import struct
 from collections.abc import Iterator
 from typing import BinaryIO
+
+import numpy as np
 
 from crankbeat.errors import FormatError, SourceError
 
@@ -23,6 +27,24 @@ MAGIC = b"ACCRAW1\n"
 _HEADER = struct.Struct("<dI")
 #: A record claiming more than this is taken as corruption, not data (a USB read is KiB).
 MAX_RECORD_BYTES = 16 * 1024 * 1024
+#: Host times are epoch seconds (or seconds from 0 in tests): anything beyond is damage.
+MAX_TIME = 1e11
+#: A time far from the last good one is confirmed by the next record only on a real clock
+#: (epoch seconds): near 0, random bytes make doubles close to each other far too often.
+MIN_CLOCK = 1e6
+#: A record's time follows the previous good one when it lies at most this much before /
+#: after it, s; a time further off is taken only when the record after it follows it (a pause
+#: or a host clock step, which the frame parser takes out), else it is damage.
+NEAR_BACK_S = 5.0
+NEAR_AHEAD_S = 2.0
+#: After damage, a header close in time to the last good record (and no longer than a USB
+#: read) is taken as the next record even if the one after it is damaged too.
+RESYNC_NEAR_BYTES = 65536
+#: A record longer than this is checked for a record starting inside it even when its length
+#: leads to another record (a USB read is rarely longer).
+LONG_READ_BYTES = 4096
+#: Bytes searched at a time for the next record after a damaged one.
+RESYNC_WINDOW = 1 << 16
 
 Record = tuple[float, bytes]
 
@@ -122,10 +144,14 @@ class CaptureReader:
         if head != MAGIC:
             self._f.close()
             raise FormatError(f"{self.name}: offset 0: expected magic {MAGIC!r}, found {head!r}")
+        # records are read by offset (a damaged one sends the reading back and forth)
+        self._map = mmap.mmap(self._f.fileno(), 0, access=mmap.ACCESS_READ)
         self.offset = len(MAGIC)  # byte offset of the next record
         self.index = 0  # index of the next record
         self.notes: list[str] = []
         self.backwards = 0
+        self.bad_records = 0  # records skipped or resynchronised over
+        self.bytes_lost = 0  # bytes that belong to no readable record
         self.done = False
         self._last_time: float | None = None
         self._peeked: Record | None = None  # read ahead by read_until, not yet delivered
@@ -166,39 +192,207 @@ class CaptureReader:
             return None
         return self._next()
 
+    def _at(self, at: int, n: int) -> bytes:
+        return self._map[at : at + n]
+
+    def _header(self, at: int) -> tuple[float, int] | None:
+        """The (time, length) of a plausible record header at byte ``at``, else None."""
+        if at + _HEADER.size > self.size:
+            return None
+        t, n = _HEADER.unpack(self._at(at, _HEADER.size))
+        if n > MAX_RECORD_BYTES or at + _HEADER.size + n > self.size:
+            return None
+        return t, n
+
+    @staticmethod
+    def _valid(t: float) -> bool:
+        return math.isfinite(t) and 0.0 <= t < MAX_TIME  # seconds since the epoch (or 0)
+
+    def _near(self, t: float, ref: float | None = None) -> bool:
+        """``t`` follows ``ref`` (default: the last good record's time) as reads do."""
+        ref = self._last_time if ref is None else ref
+        if ref is None or abs(ref) < MIN_CLOCK:  # no real clock (tests): any valid time
+            return self._valid(t)
+        return self._valid(t) and -NEAR_BACK_S <= t - ref <= NEAR_AHEAD_S
+
+    def _time_ok(self, t: float) -> bool:
+        return self._near(t)
+
+    def _next_header(self, at: int, n: int) -> tuple[float, int] | None | bool:
+        """The raw header after a record of ``n`` bytes at ``at``; True at the file's exact end,
+        None when the file ends inside it."""
+        nxt = at + _HEADER.size + n
+        if self.size - nxt < _HEADER.size:
+            return True if nxt == self.size else None
+        return _HEADER.unpack(self._at(nxt, _HEADER.size))
+
+    def _chained(self, at: int, t: float, n: int, ref: float | None = None) -> bool:
+        """The record at ``at`` ends exactly at the file's end, or where a record starts whose
+        time follows this one's (or, when this one's is damaged, the last good one's)."""
+        h2 = self._next_header(at, n)
+        if h2 is True or h2 is None:
+            return h2 is True
+        t2, n2 = h2
+        if ref is None:
+            ref = t if self._near(t) else self._last_time
+        return n2 <= MAX_RECORD_BYTES and self._near(t2, ref) if ref is not None \
+            else n2 <= MAX_RECORD_BYTES and self._valid(t2)
+
+    def _header_inside(self, start: int, n: int) -> int | None:
+        """The first offset inside the body of the record at ``start`` (``n`` bytes) where a
+        header whose time follows the last good one starts; None when there is none."""
+        ref = self._last_time
+        if ref is None:  # the first record: its own time is the reference
+            ref = _HEADER.unpack(self._at(start, _HEADER.size))[0]
+        if not (self._valid(ref) and ref >= MIN_CLOCK):
+            return None
+        # headers starting anywhere in the body (one may run past the claimed end)
+        buf = np.frombuffer(self._at(start + 1, 2 * _HEADER.size + n - 2), np.uint8)
+        k = len(buf) - _HEADER.size + 1
+        if k <= 0:
+            return None
+        rows = np.lib.stride_tricks.sliding_window_view(buf, _HEADER.size)[:k]
+        t = rows[:, :8].copy().view("<f8")[:, 0]
+        with np.errstate(invalid="ignore"):
+            d = t - ref
+            hit = np.flatnonzero((d >= -NEAR_BACK_S) & (d <= NEAR_AHEAD_S))
+        for j in hit:
+            at = start + 1 + int(j)
+            nn = int(rows[j, 8:12].copy().view("<u4")[0])
+            if nn <= RESYNC_NEAR_BYTES and at + _HEADER.size + nn <= self.size:
+                return at
+        return None
+
+    def _resync(self, start: int) -> int | None:
+        """The next offset after ``start`` where a record begins: a header whose time follows
+        the last good one (a random double lands there practically never), or two headers in
+        a row that follow each other."""
+        at = start + 1
+        size = 256  # the next record is usually close: look near first, then further
+        while at + _HEADER.size <= self.size:
+            window = self._at(at, size + _HEADER.size)
+            size = min(size * 4, RESYNC_WINDOW)
+            if len(window) < _HEADER.size:
+                return None
+            buf = np.frombuffer(window, np.uint8)
+            k = len(buf) - _HEADER.size + 1
+            rows = np.lib.stride_tricks.sliding_window_view(buf, _HEADER.size)[:k]
+            t = rows[:, :8].copy().view("<f8")[:, 0]
+            n = rows[:, 8:12].copy().view("<u4")[:, 0].astype(np.int64)
+            pos = at + np.arange(k)
+            with np.errstate(invalid="ignore"):
+                ok = np.isfinite(t) & (t >= 0) & (t < MAX_TIME) & (n <= MAX_RECORD_BYTES) \
+                    & (pos + _HEADER.size + n <= self.size)
+                near = np.zeros_like(ok)
+                if self._last_time is not None and abs(self._last_time) >= MIN_CLOCK:
+                    d = t - self._last_time
+                    near = (d >= -NEAR_BACK_S) & (d <= NEAR_AHEAD_S) & (n <= RESYNC_NEAR_BYTES)
+            for j in np.flatnonzero(ok):  # near, or followed by a record near it
+                tj = float(t[j])
+                if near[j] or (abs(tj) >= MIN_CLOCK or self._last_time is None) and \
+                        self._chained(int(pos[j]), tj, int(n[j]), ref=tj):
+                    return int(pos[j])
+            at += k
+        return None
+
     def _next(self) -> Record | None:
         start = self.offset
-        header = self._f.read(_HEADER.size)
-        if len(header) == 0:
+        if start >= self.size:
             self.done = True
             return None
-        if len(header) < _HEADER.size:
-            self._stop(f"offset {start}: file ends inside a record header ({len(header)} of "
-                       f"{_HEADER.size} bytes); every whole record before it was kept")
+        if start + _HEADER.size > self.size:
+            self._stop(f"offset {start}: file ends inside a record header "
+                       f"({self.size - start} of {_HEADER.size} bytes); every whole record "
+                       "before it was kept")
+            self.bytes_lost += self.size - start
             return None
-        host_time, n = _HEADER.unpack(header)
-        body_at = start + _HEADER.size
-        if n > MAX_RECORD_BYTES:
-            self._stop(f"offset {start}: record {self.index} claims {n} bytes (limit "
-                       f"{MAX_RECORD_BYTES}); reading stops here")
-            return None
-        if body_at + n > self.size:
-            have = self.size - body_at
-            self._stop(f"offset {start}: file ends inside record {self.index} ({have} of {n} "
-                       f"bytes); every whole record before it was kept")
-            return None
-        data = self._f.read(n)
-        if len(data) < n:  # the file shrank while we read it
-            self._stop(f"offset {start}: file ends inside record {self.index}")
-            return None
+        h = self._header(start)
+        if h is None:
+            return self._damaged(start, h)
+        host_time, n = h
+        chained = self._chained(start, host_time, n)
+        # a record starting inside this one's body means its length is wrong (looked for
+        # where the length does not lead to a record, or is longer than reads usually are)
+        inner = self._header_inside(start, n) if not chained or n > LONG_READ_BYTES else None
+        if inner is not None:
+            return self._damaged(start, h, inner)
+        if not self._near(host_time):
+            # a pause or a clock step when the next record follows this one; else a damaged
+            # time (whole record: bytes kept) or a damaged header (resynchronise)
+            h2 = self._next_header(start, n)
+            if isinstance(h2, tuple) and self._valid(host_time) and abs(host_time) >= MIN_CLOCK \
+                    and self._near(h2[0], host_time):
+                pass  # confirmed by the record after it
+            elif chained or self._chained(start, math.nan, n):
+                return self._bad_time(start, host_time, n, self._at(start + _HEADER.size, n))
+            else:
+                return self._damaged(start, h)
+        data = self._at(start + _HEADER.size, n)
         if self._last_time is not None and host_time < self._last_time:
             self.backwards += 1
             self._note(f"record {self.index} (offset {start}): host time goes backwards "
                        f"{self._last_time:.6f} -> {host_time:.6f} s")
-        self._last_time = host_time
-        self.offset = body_at + n
+        # the reference only moves forward (a stamp slightly back is taken, a lagging
+        # reference would make every record after it look far off)
+        self._last_time = host_time if self._last_time is None or not self._near(host_time) \
+            else max(self._last_time, host_time)
+        self.offset = start + _HEADER.size + n
         self.index += 1
         return host_time, data
+
+    def _bad_time(self, start: int, host_time: float, n: int, data: bytes) -> Record | None:
+        """A whole record whose time cannot be right: its bytes are kept with the time of the
+        record after it (a read never arrives before it is taken, so a later time cannot pull
+        the clock fit below the truth), or of the one before it at the end of the file."""
+        self.bad_records += 1
+        self.offset = start + _HEADER.size + n
+        self.index += 1
+        nxt = self._header(self.offset)
+        t = nxt[0] if nxt is not None and self._time_ok(nxt[0]) else self._last_time
+        self._note(f"record {self.index - 1} (offset {start}): host time {host_time!r} is not "
+                   f"plausible; its {n} bytes are kept with the time "
+                   f"{'of a neighbour' if t is not None else '(none: skipped)'}")
+        if t is None:
+            self.bytes_lost += n
+            return self._next()
+        self._last_time = t
+        return t, data
+
+    def _damaged(self, start: int, h: tuple[float, int] | None, nxt: int | None = None
+                 ) -> Record | None:
+        """A record whose length cannot be right: find where the records go on.
+
+        The bytes up to there are kept with the record's time when that time is plausible
+        (only the length was hit; the frame parser checks every frame in them); where no
+        record follows (the file was cut), reading stops and the cut record is left out.
+        """
+        self.bad_records += 1
+        t, n = _HEADER.unpack(self._at(start, _HEADER.size))
+        have = self.size - start - _HEADER.size
+        if n > MAX_RECORD_BYTES:
+            why = f"record {self.index} claims {n} bytes (limit {MAX_RECORD_BYTES})"
+        elif n > have:
+            why = f"file ends inside record {self.index} ({have} of {n} bytes)"
+        else:
+            why = f"record {self.index} of {n} bytes is not followed by another record"
+        nxt = self._resync(start) if nxt is None else nxt
+        if nxt is None:
+            self.bytes_lost += self.size - start
+            self._stop(f"offset {start}: {why}; no record follows it: every whole record "
+                       "before it was kept")
+            return None
+        keep = self._time_ok(t) and nxt > start + _HEADER.size
+        self.bytes_lost += _HEADER.size if keep else nxt - start
+        self._note(f"offset {start}: {why}; records go on at offset {nxt}; "
+                   + ("its bytes up to there are kept" if keep
+                      else f"{nxt - start} bytes skipped"))
+        self.offset = nxt
+        self.index += 1
+        if not keep:
+            return self._next()
+        data = self._at(start + _HEADER.size, nxt - start - _HEADER.size)
+        self._last_time = t
+        return t, data
 
     def _stop(self, text: str) -> None:
         self._note(text)
@@ -212,6 +406,7 @@ class CaptureReader:
             yield rec
 
     def close(self) -> None:
+        self._map.close()
         self._f.close()
 
     def __enter__(self) -> CaptureReader:

@@ -10,13 +10,11 @@ over the rest at the end of the stream.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
 
 from crankbeat.logger.chunks import AccelBlock
 from crankbeat.logger.rig.model import SerialSensor
-from crankbeat.logger.serial.parser import SerialFrameParser
+from crankbeat.logger.serial.parser import FrameCounts, SerialFrameParser
 from crankbeat.logger.timebase import ClockAligner
 
 #: Notes kept per decoder (the first ones tell the story; the counters keep the totals).
@@ -28,20 +26,8 @@ _SILENT_BYTES = 4096
 _DRIFT_LIMIT = 1e-3
 
 
-@dataclass
-class SerialHealth:
-    """Cumulative counters of one sensor's stream.
-
-    ``reconnects`` counts link breaks (adapter pulled, queue overflow), ``clock_jumps`` device
-    clock discontinuities (board reset), ``skipped`` bytes outside any good frame.
-    """
-
-    good: int = 0
-    corrupt: int = 0
-    lost: int = 0
-    skipped: int = 0
-    reconnects: int = 0
-    clock_jumps: int = 0
+#: One sensor's counters: the parser's :class:`~logger.serial.parser.FrameCounts`.
+SerialHealth = FrameCounts
 
 
 class SerialDecoder:
@@ -68,7 +54,7 @@ class SerialDecoder:
         # Hold at most 30 s of samples even if the board's clock stops advancing.
         self.aligner = ClockAligner(window_s=window_s, span_windows=span_windows,
                                     max_pending=max(1000, int(30 * sensor.sample_rate_hz)))
-        self.health = SerialHealth()
+        self.health = self.parser.counts  # one set of counters
         self.notes: list[str] = []
         self._xyz = np.zeros((0, 3))
         self._gap = np.zeros(0, dtype=bool)
@@ -111,9 +97,9 @@ class SerialDecoder:
         return AccelBlock(sensor=self.sensor.name, t=np.asarray(t, dtype=np.float64),
                           xyz=self._xyz[:n].copy(), gap_before=self._gap[:n].copy())
 
-    def _counts(self) -> tuple[int, int, int, int, int, int]:
+    def _counts(self) -> tuple[int, int, int, int, int, int, int]:
         c = self.parser.counts
-        return c.good, c.corrupt, c.lost, c.skipped, c.breaks, c.clock_jumps
+        return c.good, c.corrupt, c.lost, c.skipped, c.breaks, c.clock_jumps, c.host_steps
 
     def _note(self, text: str) -> None:
         if len(self.notes) < MAX_NOTES:
@@ -131,10 +117,7 @@ class SerialDecoder:
                        f"({self.sensor.device_time_unit_s:g} s) and sample_rate_hz in the rig")
 
     def _note_changes(self, before, records, frames) -> None:
-        good, corrupt, lost, skipped, breaks, jumps = self._counts()
-        h = self.health
-        h.good, h.corrupt, h.lost, h.skipped = good, corrupt, lost, skipped
-        h.reconnects, h.clock_jumps = breaks, jumps
+        good, corrupt, lost, skipped, breaks, jumps, steps = self._counts()
         at = f"host t={records[0][0]:.1f} s"
         if corrupt > before[1]:
             self._note(f"{corrupt - before[1]} corrupt frames at {at}")
@@ -149,6 +132,11 @@ class SerialDecoder:
             t_jump = frames.host_time[frames.break_before][0] if len(frames) else records[0][0]
             self._note(f"device clock jumped at host t={t_jump:.1f} s (board reset?); "
                        "clock fit restarted")
+        if steps > before[6]:
+            step = self.parser.host_step_s[-1]
+            self._note(f"host clock stepped {step:+.3f} s by host t={records[-1][0]:.1f} s "
+                       "(device clock and sequence run on): later host times taken back by "
+                       "the step, no samples lost")
         if good > before[0]:
             self._bytes_since_good = 0
         else:

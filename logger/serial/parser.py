@@ -85,17 +85,25 @@ class ParsedFrames:
         return cls(*(np.concatenate([getattr(p, n) for p in parts]) for n in _FIELDS))
 
 
+#: Longest gap a board restart is taken to span when estimating the frames lost in it, s.
+MAX_GAP_S = 3600.0
+
 _FIELDS = ("seq", "device_t", "accel", "host_time", "lost_before", "break_before", "last_in_read")
 
 
 @dataclass
 class FrameCounts:
-    """Cumulative counters of a parser.
+    """Cumulative counters of one sensor's stream (the parser's and, as
+    :class:`~logger.serial.decoder.SerialHealth`, the decoder's: one set of counters).
 
     ``corrupt`` counts sync positions outside accepted frames whose checksum failed; ``lost``
-    counts frames missing from the sequence; ``skipped`` counts bytes that belong to no accepted
-    frame (noise, damaged frames, bytes dropped at a link break); ``breaks`` counts link breaks
-    and ``clock_jumps`` device clock discontinuities.
+    counts frames missing from the sequence (bounded by what :data:`MAX_GAP_S` of samples can
+    hold); ``skipped`` counts bytes that belong to no accepted frame (noise, damaged frames,
+    bytes dropped at a link break); ``breaks`` counts link breaks (``reconnects``),
+    ``clock_jumps`` device clock discontinuities and ``host_steps`` steps of the host clock
+    (device clock and sequence run on, the host's arrival times jump). ``bad_records`` and
+    ``bytes_lost`` are filled by whoever reads a capture file (records skipped, bytes skipped
+    while finding the next record).
     """
 
     good: int = 0
@@ -104,6 +112,14 @@ class FrameCounts:
     skipped: int = 0
     breaks: int = 0
     clock_jumps: int = 0
+    host_steps: int = 0
+    bad_records: int = 0
+    bytes_lost: int = 0
+
+    @property
+    def reconnects(self) -> int:
+        """Link breaks (adapter pulled, queue overflow): the same count as ``breaks``."""
+        return self.breaks
 
 
 class SerialFrameParser:
@@ -141,6 +157,8 @@ class SerialFrameParser:
         self._rate = float(sensor.sample_rate_hz)
         self._carry = np.zeros(0, dtype=np.uint8)
         self._pending_break = False
+        self._host_offset = 0.0  # host clock steps taken out so far, s
+        self.host_step_s: list[float] = []  # each host clock step found, s
         # Unwrap state: previous frame's raw values, unwrapped values and host time.
         # seq_raw, dev_raw, seq, dev, host
         self._prev: tuple[int, int, int, int, float] | None = None
@@ -288,6 +306,7 @@ class SerialFrameParser:
         else:
             d_first_zero = False
         p_seq_raw, p_dev_raw, p_seq, p_dev, p_host = prev
+        host = host - self._host_offset
         d_host = np.diff(host, prepend=p_host)
 
         if dev_raw is not None:
@@ -319,13 +338,29 @@ class SerialFrameParser:
             d_dev_s = d_dev_s.copy()
             d_dev_s[0] = 0.0
             brk[0] = False
-        if brk.any():
-            # The board restarted (or its clock jumped): carry on from the host's elapsed time.
-            est = np.maximum(np.round(np.maximum(d_host[brk], 0.0) * rate), 1).astype(np.int64)
-            d_seq[brk] = est
+        host_step = np.zeros(n, dtype=bool)
+        if brk.any() and seq_raw is not None:
+            # The sequence goes on by one and the device clock by one sample: the board is
+            # fine, the host clock stepped. The device clock says how much time really
+            # passed: later host times are taken back by the step, the clock fit goes on.
+            host_step = brk & (d_seq == 1) & (np.abs(d_dev_s * rate - 1) < 0.5)
+            if host_step.any():
+                step = np.cumsum(np.where(host_step, d_host - d_dev_s, 0.0))
+                host = host - step
+                self._host_offset += float(step[-1])
+                self.host_step_s.extend((d_host - d_dev_s)[host_step].tolist())
+                self.counts.host_steps += int(np.count_nonzero(host_step))
+                brk = brk & ~host_step
+        jump = brk
+        if jump.any():
+            # The board restarted (or its clock jumped): carry on from the host's elapsed time,
+            # bounded (a host time far off cannot make billions of lost frames).
+            gap = np.clip(d_host[jump], 0.0, MAX_GAP_S)
+            est = np.maximum(np.round(gap * rate), 1).astype(np.int64)
+            d_seq[jump] = est
             d_dev_s = d_dev_s.copy()
-            d_dev_s[brk] = est / rate
-            self.counts.clock_jumps += int(np.count_nonzero(brk))
+            d_dev_s[jump] = est / rate
+            self.counts.clock_jumps += int(np.count_nonzero(jump))
         lost = np.maximum(d_seq - 1, 0)
         if d_first_zero:
             lost[0] = 0
@@ -337,8 +372,8 @@ class SerialFrameParser:
             d_ticks = d_dev.copy()
             if d_first_zero:
                 d_ticks[0] = 0
-            if brk.any():
-                d_ticks[brk] = np.round(d_dev_s[brk] / unit).astype(np.int64)
+            if jump.any():
+                d_ticks[jump] = np.round(d_dev_s[jump] / unit).astype(np.int64)
             ticks = p_dev + np.cumsum(d_ticks)
             device_t = ticks * unit
             last_dev = int(ticks[-1])

@@ -144,6 +144,33 @@ def _from_columns(cols: dict, columns: Sequence[str], what: str, n: int) -> list
     return [tuple(jsonable(v) for v in row) for row in zip(*series, strict=True)]
 
 
+def _writable(path: Path) -> bool:
+    """The file and its folder can be written (SQLite's journal lives beside the file)."""
+    return os.access(path, os.W_OK) and os.access(path.parent, os.W_OK)
+
+
+def _damaged(path: Path, problem: str) -> str:
+    return (f"store '{path}' is damaged ({problem.strip()}): nothing is written into it; copy "
+            "it and recover the copy with the sqlite3 shell's .recover")
+
+
+def _connect(path: Path, *, read_only: bool, timeout: float) -> sqlite3.Connection:
+    # check_same_thread=False: the live pipeline may write from its worker thread.
+    if not read_only:
+        return sqlite3.connect(str(path), check_same_thread=False, timeout=timeout)
+    uri = path.resolve().as_uri()
+    try:
+        conn = sqlite3.connect(f"{uri}?mode=ro", uri=True, check_same_thread=False,
+                               timeout=timeout)
+        conn.execute("SELECT count(*) FROM sqlite_master").fetchone()
+        return conn
+    except sqlite3.OperationalError:
+        # a WAL store on a read-only mount: its shared-memory file cannot be made there, and
+        # nobody can change the file either, so it is read as immutable
+        return sqlite3.connect(f"{uri}?immutable=1", uri=True, check_same_thread=False,
+                               timeout=timeout)
+
+
 class Store:
     """A crankbeat SQLite store. Use :meth:`open`; close it (or use it as a context manager).
 
@@ -155,6 +182,7 @@ class Store:
         self.path = path
         self.db = sqlite_utils.Database(conn)
         self._seq: dict[int, int] = {}
+        self.read_only = False
 
     # -- opening -------------------------------------------------------------------------
     @classmethod
@@ -163,7 +191,11 @@ class Store:
         """Open (and create or migrate) the store file at ``path``.
 
         ``create=False`` is for queries: a missing file is then a :class:`StoreError` instead of
-        a new empty store. ``timeout`` is how long to wait for another program's lock, s.
+        a new empty store, and a file on a read-only mount (or not writable) is opened
+        read-only. ``create=True`` is for writing: the file must be a crankbeat store (another
+        program's SQLite file is refused before anything is changed in it), intact
+        (``PRAGMA quick_check``) and writable. ``timeout`` is how long to wait for another
+        program's lock, s.
         """
         path = Path(path)
         if not path.exists():
@@ -174,14 +206,18 @@ class Store:
                 )
             if not path.parent.exists():
                 raise StoreError(f"cannot create store '{path}': folder '{path.parent}' is missing")
+        read_only = path.exists() and not _writable(path)
+        if read_only and create:
+            raise StoreError(f"store '{path}' is read-only (file, folder or mount): runs cannot "
+                             "be written into it (queries such as 'crankbeat runs' work)")
         try:
-            # check_same_thread=False: the live pipeline may write from its worker thread.
-            conn = sqlite3.connect(str(path), check_same_thread=False, timeout=timeout)
+            conn = _connect(path, read_only=read_only, timeout=timeout)
         except sqlite3.Error as exc:
             raise StoreError(f"cannot open store '{path}': {exc}") from None
         store = cls(path, conn)
+        store.read_only = read_only
         try:
-            store._prepare()
+            store._prepare(check=create)
         except sqlite3.OperationalError as exc:
             conn.close()
             if "locked" in str(exc) or "busy" in str(exc):
@@ -190,28 +226,44 @@ class Store:
             raise StoreError(f"cannot open store '{path}': {exc}") from None
         except sqlite3.DatabaseError as exc:
             conn.close()
+            if "malformed" in str(exc):
+                raise StoreError(_damaged(path, str(exc))) from None
             raise StoreError(f"'{path}' is not a crankbeat store ({exc})") from None
         except BaseException:
             conn.close()
             raise
         return store
 
-    def _prepare(self) -> None:
+    def _prepare(self, *, check: bool) -> None:
         conn = self.db.conn
-        conn.execute("PRAGMA journal_mode=WAL")
-        conn.execute("PRAGMA foreign_keys=ON")
+        # what the file is, before anything is changed in it (not even the journal mode)
         names = self.db.table_names()
         if names and "schema_version" not in names:
             raise StoreError(
                 f"'{self.path}' is an SQLite file but not a crankbeat store "
-                f"(tables: {', '.join(names[:5])})"
+                f"(tables: {', '.join(names[:5])}): left unchanged"
             )
-        have = current_version(self.db)
+        if names and check:
+            try:
+                found = "\n".join(r[0] for r in conn.execute("PRAGMA quick_check(5)"))
+            except sqlite3.DatabaseError as exc:
+                found = str(exc)
+            if found != "ok":
+                problems = [ln for ln in found.splitlines() if ln and not ln.startswith("***")]
+                raise StoreError(_damaged(self.path, problems[0] if problems else found))
+        have = current_version(self.db) if names else 0
         if have > SCHEMA_VERSION:
             raise StoreError(
                 f"store '{self.path}' has schema version {have}; this crankbeat knows up to "
                 f"{SCHEMA_VERSION} (update crankbeat)"
             )
+        if self.read_only:
+            if have < SCHEMA_VERSION:
+                raise StoreError(f"store '{self.path}' is read-only and has the older schema "
+                                 f"version {have}: open it once where it can be written")
+            return
+        conn.execute("PRAGMA journal_mode=WAL")
+        conn.execute("PRAGMA foreign_keys=ON")
         migrate(self.db)
 
     @property
@@ -300,11 +352,12 @@ class Store:
         return run_id
 
     def find_run_by_sources(self, hashes: Iterable[str], *, analyser: str | None = None,
-                            rig: Any = None, complete: bool = False) -> int | None:
+                            rig: Any = None, complete: bool = True) -> int | None:
         """The newest run analysed from exactly this set of source files, or None.
 
         ``analyser``: only runs of that analyser version; ``rig``: only runs analysed with this
-        very rig text; ``complete``: only finished runs.
+        very rig text; ``complete``: only finished runs (default: a run that was interrupted, or
+        is still being written, does not count, so the files are analysed again).
         """
         hashes = list(hashes)
         if not hashes:
@@ -538,6 +591,55 @@ class Store:
             "UPDATE runs SET summary = ?, status = ? WHERE id = ?", (text, status, run_id)
         )
         self.commit()
+
+    def rollback(self) -> None:
+        """Drop what was written since the last commit (a write that could not be committed)."""
+        self.db.conn.rollback()
+        self._seq.clear()  # event numbers are read again from what the file holds
+
+    def _run_tables(self) -> list[tuple[str, str]]:
+        """(table, column) of every table that refers to runs (tables added later included)."""
+        out = []
+        for table in self.db.table_names():
+            for fk in self.db.execute(f"PRAGMA foreign_key_list([{table}])").fetchall():
+                if fk[2] == "runs":
+                    out.append((table, fk[3]))
+        return out
+
+    def delete_run(self, run_id: int) -> None:
+        """Remove a run and every row that belongs to it; commits."""
+        if self.db.conn.in_transaction:
+            self.rollback()
+        for table, column in self._run_tables():
+            self.db.execute(f"DELETE FROM [{table}] WHERE [{column}] = ?", (run_id,))
+        self.db.execute("DELETE FROM runs WHERE id = ?", (run_id,))
+        self._seq.pop(run_id, None)
+        self.commit()
+
+    def settle_interrupted(self, run_id: int) -> None:
+        """An analysis was interrupted: keep what it committed, marked "interrupted"; a run
+        with no event is removed."""
+        if self.db.conn.in_transaction:
+            self.commit()  # what was analysed up to the interruption is kept
+        if self.db.execute("SELECT 1 FROM events WHERE run = ? LIMIT 1",
+                           (run_id,)).fetchone() is None:
+            self.delete_run(run_id)
+            return
+        self.db.execute("UPDATE runs SET status = 'interrupted' WHERE id = ?", (run_id,))
+        self.commit()
+
+    def delete_unfinished_twins(self, run_id: int) -> list[int]:
+        """Remove the earlier runs of the same source files that never completed (a replay
+        killed or interrupted): ``run_id`` replaces them. Returns their ids."""
+        row = self.db.execute("SELECT source_key FROM runs WHERE id = ?", (run_id,)).fetchone()
+        if row is None or row[0] is None:
+            return []
+        ids = [int(r[0]) for r in self.db.execute(
+            "SELECT id FROM runs WHERE source_key = ? AND id < ? AND status != 'complete'",
+            (row[0], run_id))]
+        for other in ids:
+            self.delete_run(other)
+        return ids
 
     def save_tooth_errors(
         self,
