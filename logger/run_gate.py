@@ -23,17 +23,7 @@ from pathlib import Path
 
 import numpy as np
 
-from crankbeat.errors import SourceError
-
-try:
-    from crankbeat.errors import DataError
-except ImportError:  # pragma: no cover - until crankbeat/errors.py has it (issue 11, input side)
-    from crankbeat.errors import CrankbeatError
-
-    class DataError(CrankbeatError):  # type: ignore[no-redef]
-        """The input holds nothing the rig can analyse."""
-
-        exit_code = 6
+from crankbeat.errors import DataError, SourceError
 from crankbeat.logger.chunks import Chunk
 from crankbeat.logger.rig.model import Rig
 
