@@ -44,7 +44,7 @@ def _wait(cond, timeout=5.0):
     return False
 
 
-def _collect(reader, want_bytes, timeout=5.0):
+def _collect(reader, want_bytes, timeout=30.0):  # generous: a loaded machine is slow
     recs = []
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
