@@ -7,6 +7,7 @@ import gc
 import sqlite3
 import threading
 import weakref
+from pathlib import Path
 
 import can
 import numpy as np
@@ -185,3 +186,13 @@ def larch_serial(rig, *, seconds: float = 1.0, t0: float = 1_767_225_600.0,
         z = min(a + per_read, n)
         out.append((round(float(t0 + t[z - 1] + 0.002), 6), raw[a * fl : z * fl]))
     return out
+
+
+@pytest.fixture(scope="module")
+def demo_ride():
+    """The demo ride (candump .log + bar_left capture): long enough to be killed mid-way."""
+    demo = Path(__file__).resolve().parents[1] / "fixtures" / "demo"
+    log, caps = demo / "demo.log", sorted(demo.glob("demo.*.acraw"))
+    if not log.is_file():
+        pytest.skip("fixtures/demo is missing (make fixtures)")
+    return log, caps

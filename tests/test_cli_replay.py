@@ -33,14 +33,6 @@ DEMO = ROOT / "fixtures" / "demo"  # fixtures/README.md: the Larch's 60 s demo r
 SHORT = ROOT / "fixtures" / "blf"  # 2 s of the Larch in python-can's BLF format, no capture
 
 
-@pytest.fixture(scope="module")
-def ride():
-    """The demo ride (candump .log + bar_left capture): long enough to be killed mid-way."""
-    log, caps = DEMO / "demo.log", sorted(DEMO.glob("demo.*.acraw"))
-    if not log.is_file():
-        pytest.skip("fixtures/demo is missing (make fixtures)")
-    return log, caps
-
 
 @pytest.fixture(scope="module")
 def short_ride():
@@ -134,8 +126,8 @@ def _count_events(db: Path) -> int:
 
 
 @needs_pipeline
-def test_killed_replay_leaves_an_incomplete_run_with_its_events(tmp_path, ride):
-    log, caps = ride
+def test_killed_replay_leaves_an_incomplete_run_with_its_events(tmp_path, demo_ride):
+    log, caps = demo_ride
     db = tmp_path / "killed.db"
     argv = [sys.executable, "-m", "crankbeat.logger.cli.main",
             *_replay_argv(db, log, caps, "--pace", "1", "--label", "killed")]

@@ -141,14 +141,6 @@ def _empty_teeth():
     return FrameDecoder(load_rig("larch")).empty_teeth()
 
 
-@pytest.fixture(scope="module")
-def demo():
-    log, caps = DEMO / "demo.log", sorted(DEMO.glob("demo.*.acraw"))
-    if not log.is_file():
-        pytest.skip("fixtures/demo is missing (make fixtures)")
-    return log, caps
-
-
 def _wait_for_events(db: Path, proc, limit_s: float = 60.0) -> None:
     import sqlite3
 
@@ -167,8 +159,8 @@ def _wait_for_events(db: Path, proc, limit_s: float = 60.0) -> None:
 
 
 @pytest.mark.parametrize("sig", [signal.SIGINT, signal.SIGTERM])
-def test_interrupted_replay_is_analysed_again_next_time(tmp_path, demo, sig):
-    log, caps = demo
+def test_interrupted_replay_is_analysed_again_next_time(tmp_path, demo_ride, sig):
+    log, caps = demo_ride
     db = tmp_path / "r.db"
     argv = [sys.executable, "-m", "crankbeat.logger.cli.main",
             *_replay(db, log, "--pace", "4"), *[a for c in caps for a in ("--accel", str(c))]]
