@@ -47,6 +47,16 @@ from crankbeat.errors import InputError
 #: Span around each TDC over which the centre of the combustion torque is taken, degrees.
 RISE_SPAN = (-45.0, 105.0)
 
+#: The energy step of an event compares the crank's mean speed over the half firing interval
+#: that starts this many degrees after its TDC with the mean speed over the half interval before
+#: that point. It needs no inertia model and no loss balance: the slider-crank energy exchange is
+#: nearly symmetric about the TDC and, like every other deterministic pattern (tooth spacing at
+#: the segment ends, the other cylinders' strokes), it is the same cycle after cycle for a given
+#: cylinder, so the misfire decision's same-cylinder baseline removes it.
+STEP_OFFSET_DEG = 20.0
+#: Length of each of the two segments, as a share of the mean firing interval.
+STEP_SHARE = 0.5
+
 _BLOCK = 4096  # events computed per vectorised step (bounds the temporary arrays)
 
 #: Raw per-event record of this stage (before any decision).
@@ -61,6 +71,7 @@ RAW_EVENT_DTYPE = np.dtype(
         ("energy", "f8"),  # J, mean kinetic energy ½Jω² over the window
         ("work", "f8"),  # J, indicated-work estimate of the window (see module docstring)
         ("swing", "f8"),  # J, energy change over the window minus the speed trend (no balance)
+    ("step", "f8"),  # J, energy step across TDC: mean speed after vs before (see STEP_OFFSET_DEG)
         ("rise_deg", "f8"),  # deg after TDC where the window's energy rise is centred
         ("usable", "?"),  # every input needed was there and valid
     ]
@@ -160,12 +171,15 @@ class FluctuationStage:
         self._reach_hi = w.start_deg + w.length_deg + h * self._C + w.smooth_deg
         # samples per box / window gather (fixed sizes keep sums identical whatever the chunking)
         self._box_m = int(np.ceil(2 * w.smooth_deg / self.pitch)) + 3
-        self._win_m = int(np.ceil((w.length_deg + 2 * w.smooth_deg) / self.pitch)) + 4
+        self._step_len = STEP_SHARE * self._C / self._n
+        span_deg = max(w.length_deg + 2 * w.smooth_deg, 2 * self._step_len)
+        self._win_m = int(np.ceil(span_deg / self.pitch)) + 4
         # J(θ) tabulated over the cycle every 0.05°: linear interpolation is exact to ~1e-8
         # relative (J is smooth; error ~ Δθ²·J''/8), and far cheaper than the slider-crank
         # expressions per tooth
         self._j_theta = np.linspace(0.0, self._C, int(round(self._C / 0.05)) + 1)
         self._j_table = equivalent_inertia(self._j_theta, engine)
+        self._j_mean = float(np.mean(self._j_table))
         # edge buffer
         self._ang = np.empty(0)
         self._t = np.empty(0)
@@ -317,6 +331,7 @@ class FluctuationStage:
         pb = pa + L
         ta, tb = _interp_or_nan(pa, a, t), _interp_or_nan(pb, a, t)
         out["rpm"] = L / 6.0 / (tb - ta)
+        out["step"] = self._step(theta, a, t)
         if a.size < 3:
             out["work"] = np.nan
             out["swing"] = np.nan
@@ -355,13 +370,28 @@ class FluctuationStage:
         loss = sum_x / (2 * h) / (1.0 - n * frac) / C - slope
         rise = self._rise(mid, e, good, theta + RISE_SPAN[0], theta + RISE_SPAN[1], -loss)
         energy_mean, clean_win = self._window(mid, e, good, pa, pb)
-        usable = np.isfinite(work) & clean_win
+        mid_step = theta + STEP_OFFSET_DEG
+        _, clean_step = self._window(mid, e, good, mid_step - self._step_len,
+                                     mid_step + self._step_len)
+        out["step"] = np.where(clean_step, out["step"], np.nan)
+        usable = np.isfinite(work) & clean_win & np.isfinite(out["step"])
         out["work"] = np.where(usable, work, np.nan)
         out["swing"] = np.where(usable, x, np.nan)
         out["energy"] = energy_mean
         out["rise_deg"] = np.where(usable, rise - theta, np.nan)
         out["usable"] = usable & np.isfinite(out["t"]) & np.isfinite(out["rpm"])
         return out
+
+    def _step(self, theta: np.ndarray, a: np.ndarray, t: np.ndarray) -> np.ndarray:
+        """Energy step across each event, J: ½·J̄·(ω̄²after − ω̄²before), J̄ the rig's mean
+        inertia (only a scale: the decision works in each cylinder's own robust spread)."""
+        L = self._step_len
+        c = theta + STEP_OFFSET_DEG
+        t0, t1, t2 = (_interp_or_nan(c + d, a, t) for d in (-L, 0.0, L))
+        with np.errstate(invalid="ignore", divide="ignore"):
+            w_before = np.deg2rad(L / (t1 - t0))
+            w_after = np.deg2rad(L / (t2 - t1))
+        return 0.5 * self._j_mean * (w_after**2 - w_before**2)
 
     def _gather(self, mid, good, pa, pb):
         i0 = np.searchsorted(mid, pa, side="left")

@@ -188,14 +188,18 @@ class MisfireDetector:
             out[name] = ev[name]
         out["throttle"] = self._thr_in[i0:i1]
         w_all = np.where(raw["usable"], raw[s.feature], np.nan)
+        # the indicated-work estimate (in bar of swept volume) tells a fuel cut and gives each
+        # event's share of the engine's work; the decision itself is on ``s.feature``
+        work_all = np.where(raw["usable"], raw["work"], np.nan)
         hi = min(i1 + self._ahead, raw.size)
-        others, base = neighbour_levels(w_all, i0, hi, self.n)
+        others, _ = neighbour_levels(w_all, i0, hi, self.n)
+        _, base = neighbour_levels(work_all, i0, i1, self.n)
         y_all = np.full(raw.size, np.nan)
         y_all[i0:hi] = w_all[i0:hi] - others
         with np.errstate(invalid="ignore", divide="ignore"):
-            out["contribution"] = w_all[i0:i1] / base[: i1 - i0]
+            out["contribution"] = work_all[i0:i1] / base
         fc_sure, fc_maybe, self._last_closed_t = fuel_cut_flags(
-            ev, w_all, self._thr_in, i0, i1, self.n, self._vd, s, self._last_closed_t)
+            ev, work_all, self._thr_in, i0, i1, self.n, self._vd, s, self._last_closed_t)
         self._sequential(i0, i1, w_all, y_all, others, fc_sure, fc_maybe, out, detail)
         self._intervals(out, ev)
         self._detail.append(detail)

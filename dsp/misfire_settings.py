@@ -16,8 +16,9 @@ class MisfireSettings:
     threshold : float or None
         A fixed threshold on the metric (robust sigma); None = ``z_threshold``.
     feature : str
-        Raw-event field judged: ``work`` (the window's work with the loss balance) or ``swing``
-        (the window's energy change minus the speed trend, without the balance).
+        Raw-event field judged: ``step`` (the energy step across TDC, no inertia model),
+        ``work`` (the window's work with the loss balance) or ``swing`` (the window's energy
+        change minus the speed trend, without the balance).
     z_threshold : float
         Robust standard deviations below the cylinder's own baseline for a misfire.
     cross_threshold : float
@@ -66,7 +67,7 @@ class MisfireSettings:
     """
 
     threshold: float | None = None
-    feature: str = "work"
+    feature: str = "step"
     z_threshold: float = 5.0
     cross_threshold: float = 3.0
     history_cycles: int = 8
@@ -96,8 +97,9 @@ class MisfireSettings:
             raise InputError(
                 f"misfire threshold must be > 0 (robust sigma), got {self.threshold!r}"
             )
-        if self.feature not in ("work", "swing"):
-            raise InputError(f"feature must be 'work' or 'swing', got {self.feature!r}")
+        if self.feature not in ("step", "work", "swing"):
+            raise InputError(
+                f"feature must be 'step', 'work' or 'swing', got {self.feature!r}")
         if not self.z_threshold > 0 or not self.cross_threshold >= 0:
             raise InputError(
                 "need z_threshold > 0 and cross_threshold >= 0, got "

@@ -157,6 +157,11 @@ def test_cylinder_dead_from_the_start_of_the_ride():
 # --- the decision stage on hand-made raw events ----------------------------------------------
 
 
+#: The hand-made raw events carry their metric in ``work``; the decision does not care which
+#: raw field it judges (the default is the energy step ``step``).
+ON_WORK = MisfireSettings(feature="work")
+
+
 def _twin():
     return Engine("twin-270", 4, (0.0, 270.0), (0.0, 0.0), (-0.04, 0.04), (1, 2))
 
@@ -194,7 +199,7 @@ def test_robust_spread_is_scipy_normal_scaled_mad():
 
 def test_decision_on_clean_raw_events():
     raw = _raw()
-    ev = detect_misfires(raw, _twin())
+    ev = detect_misfires(raw, _twin(), settings=ON_WORK)
     truth = np.zeros(raw.size, bool)
     truth[::37] = True
     flagged = ev["verdict"] == MISFIRE
@@ -211,7 +216,7 @@ def test_per_cylinder_bias_growing_with_speed_squared_is_no_misfire():
     # at 9000 rpm cylinder 1 reads 343 J and cylinder 2 reads -143 J for the same 100 J
     rpm = np.linspace(2000.0, 9000.0, 4000)
     raw = _raw(n=4000, rpm=rpm, bias=(3.0, -3.0), misfire_every=41)
-    ev = detect_misfires(raw, _twin())
+    ev = detect_misfires(raw, _twin(), settings=ON_WORK)
     truth = np.zeros(raw.size, bool)
     truth[::41] = True
     decided = ev["verdict"] != UNUSABLE
@@ -221,8 +226,8 @@ def test_per_cylinder_bias_growing_with_speed_squared_is_no_misfire():
 
 def test_streaming_decision_equals_whole_array():
     raw = _raw(n=1000, seed=4)
-    whole = detect_misfires(raw, _twin())
-    det = MisfireDetector(_twin())
+    whole = detect_misfires(raw, _twin(), settings=ON_WORK)
+    det = MisfireDetector(_twin(), settings=ON_WORK)
     rng = np.random.default_rng(5)
     cuts = np.sort(rng.choice(np.arange(1, raw.size), size=50, replace=False))
     parts = [det.push(raw[a:b]) for a, b in zip(np.r_[0, cuts], np.r_[cuts, raw.size])]
@@ -237,7 +242,7 @@ def test_partial_burns_get_their_own_verdict_once_misfires_calibrate_the_depth()
     half = np.zeros(raw.size, bool)
     half[14::29] = True  # half-way between the misfires: burns half of the charge
     raw["work"][half] = 50.0
-    det = MisfireDetector(_twin())
+    det = MisfireDetector(_twin(), settings=ON_WORK)
     ev = np.concatenate((det.push(raw), det.finish()))
     detail = det.take_detail()
     late = np.arange(raw.size) > 600  # after a few misfires per cylinder set the depth scale
@@ -251,7 +256,7 @@ def test_partial_burns_get_their_own_verdict_once_misfires_calibrate_the_depth()
 def test_without_a_depth_scale_misfires_are_found_and_depth_is_not_calibrated():
     raw = _raw(n=600, misfire_every=0)
     raw["work"][[301, 451]] = 0.0  # two misfires on cylinder 2: too few for a depth scale
-    det = MisfireDetector(_twin())
+    det = MisfireDetector(_twin(), settings=ON_WORK)
     ev = np.concatenate((det.push(raw), det.finish()))
     detail = det.take_detail()
     assert (ev["verdict"][[301, 451]] == MISFIRE).all()
@@ -265,7 +270,7 @@ def test_alternating_metric_fails_the_self_check_and_never_alerts():
     raw = _raw(n=1200, misfire_every=0)
     c2 = np.flatnonzero(raw["cylinder"] == 2)
     raw["work"][c2[200::2]] = 10.0  # every other cycle of cylinder 2: a beat, not combustion
-    det = MisfireDetector(_twin())
+    det = MisfireDetector(_twin(), settings=ON_WORK)
     ev = np.concatenate((det.push(raw), det.finish()))
     detail = det.take_detail()
     late = c2[300:]
@@ -280,7 +285,7 @@ def test_single_cylinder_uses_its_own_neighbouring_cycles():
     raw["cylinder"] = 1
     raw["cycle"] = raw["index"]
     raw["theta"] = raw["index"] * 720.0
-    ev = detect_misfires(raw, single)
+    ev = detect_misfires(raw, single, settings=ON_WORK)
     truth = np.zeros(raw.size, bool)
     truth[::23] = True
     decided = ev["verdict"] != UNUSABLE
@@ -288,7 +293,7 @@ def test_single_cylinder_uses_its_own_neighbouring_cycles():
 
 
 def test_fixed_threshold_from_the_rig_overrides_the_default():
-    ev = detect_misfires(_raw(), _twin(), settings=MisfireSettings(threshold=4.0))
+    ev = detect_misfires(_raw(), _twin(), settings=MisfireSettings(threshold=4.0, feature="work"))
     assert np.all(ev["threshold"] == 4.0)
     assert (ev["verdict"] == FIRED).sum() > 1000
 

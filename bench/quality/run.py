@@ -24,7 +24,7 @@ from bench.quality import score
 from bench.quality.rides import build_scenario
 
 #: Bump when the simulator changes what a scenario produces (invalidates the ride cache).
-SIM_VERSION = "2"
+SIM_VERSION = "3"  # 3: tooth periods from a capture timer (telescoping quantisation)
 _CLI = "import sys; from crankbeat.logger.cli.main import main; sys.exit(main(sys.argv[1:]))"
 
 

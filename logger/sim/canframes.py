@@ -49,7 +49,12 @@ def teeth_frames(ride) -> tuple[np.ndarray, np.ndarray, object]:
         raise InputError(f"rig {rig.name!r} has no tooth_periods signal to simulate")
     sig = msg.signal_for("tooth_periods")
     k = sig.count
-    periods = np.diff(ride.tooth_time)
+    # An ECU measures tooth periods with a free-running capture timer: each period is the
+    # difference of two quantised edge stamps, so the quantisation telescopes (a sum of periods
+    # is off by at most one tick, not by a random walk of independent roundings).
+    edge = np.asarray(ride.tooth_time, dtype=float)
+    ticks = np.round((edge - edge[0]) / sig.scale) if edge.size else edge
+    periods = np.diff(ticks) * sig.scale
     last_edge = ride.tooth_time[1:]
     cam = ride.tooth_cam[1:]
     m = len(periods) // k
