@@ -66,11 +66,14 @@ class CylinderState:
         self.level = float("nan")  # median of ``recent``
         self.ever_healthy = False  # an event judged fired after the warm-up
         self.shares: deque[float] = deque(maxlen=spread_events)  # contribution when fired
+        self.recent_share: deque[float] = deque(maxlen=16)  # contribution, flagged or not
         self.run: list[float] = []  # contributions of the current run of misfires
-        self.spell_mid = float("nan")  # share below which a dead spell goes on
+        self.spell_mid = float("nan")  # level below which a dead spell goes on
         self.dead_since: float | None = None  # start of the current dead spell, s
         self.first_dead: float | None = None  # start of the first dead spell, s
         self.unusable_reason: str | None = None
+        self.stale = False  # the baselines predate a fuel cut: relearn them after it
+        self.rewarm = 0  # events still to learn before deciding again (after a fuel cut)
         self._spread_cache: tuple[int, float, float] | None = None
         self._n_added = 0
 
@@ -105,6 +108,14 @@ class CylinderState:
         assert self._spread_cache is not None
         return self._spread_cache[1], self._spread_cache[2]
 
+    def restart_baseline(self, events: int) -> None:
+        """Forget the baselines (not the spreads) and learn ``events`` events before deciding:
+        after a fuel cut the engine fires at another speed and load, where every per-cylinder
+        pattern has another level."""
+        self.hx.clear()
+        self.hy.clear()
+        self.stale, self.rewarm = False, events
+
     def accept(self, x: float, y: float, d: float, dx: float) -> None:
         """An event judged fired joins the baselines and the spreads."""
         self.hx.append(x)
@@ -116,10 +127,13 @@ class CylinderState:
             self.dev_x.append(dx)
             self._n_added += 1
 
-    def add_recent(self, x: float) -> None:
-        """A counted event's work, flagged or not (for the dead-cylinder check)."""
+    def add_recent(self, x: float, share: float = float("nan")) -> None:
+        """A counted event's metric and share of the engine's work, flagged or not (for the
+        dead-cylinder check)."""
         self.recent.append(x)
         self.level = median(self.recent)
+        if share == share:
+            self.recent_share.append(share)
 
     # -- depth scale ----------------------------------------------------------------------------
     def add_misfire(self, cell: int, dev: float, keep: int) -> None:
@@ -147,12 +161,6 @@ class CylinderState:
                 s = sorted(mis)
                 return median(s[len(s) // 2 :])
         return float("nan")
-
-    def misfire_scatter(self, cell: int) -> float:
-        """Robust spread of the cylinder's misfire deviations near this rpm cell, J (inf when
-        fewer than 8: too few to say how tight the misfires are)."""
-        vals = [v for near in (cell - 1, cell, cell + 1) for v in self.misfire_dev.get(near, ())]
-        return robust_spread(vals) if len(vals) >= 8 else float("inf")
 
     # -- self-check -----------------------------------------------------------------------------
     def pattern_implausible(self, *, min_events: int) -> str | None:

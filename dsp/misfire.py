@@ -25,9 +25,16 @@ Decision (per event ``k`` of cylinder ``c``, in event order)
   or by more than half of them against its own earlier share) is dead: every event ``MISFIRE``,
   from the first cycles of a ride or mid-ride; its baseline is frozen, never adapted to it;
 * depth = missing work ÷ the work of a complete misfire, where an offset-free scale exists (the
-  cylinder's motored level on fuel cut, else the upper half of its own misfires in the rpm cell):
-  a flagged event shallower than ``partial_depth`` is ``PARTIAL``; without a scale, depth is NaN
-  ("not calibrated") and the event stays ``MISFIRE``;
+  cylinder's motored level on fuel cut, else the upper half of its own misfires in the rpm cell);
+  a flagged event shallower than ``partial_depth`` on the motored scale of its rpm cell is
+  ``PARTIAL`` (the run's own misfires scatter too widely at low signal to noise to tell a partial
+  burn, and a misfire called partial is a missed misfire); without a scale, depth is NaN ("not
+  calibrated") and the event stays ``MISFIRE``;
+* after a fuel cut each cylinder relearns its baselines for ``warmup_cycles`` cycles: the engine
+  then fires at another speed and load, where every per-cylinder pattern has another level;
+* the threshold rises with the scatter of the recent fired events of all cylinders (a rough
+  road), leaving out the events just after a misfire (the next cylinder starts slower: that
+  rebound is the misfire's own trace);
 * self-check: a cylinder whose candidate flags swing every other cycle, or cover a large share of
   its events with no runs, gets ``UNUSABLE`` events (reason in :meth:`MisfireDetector.report`),
   never misfires;
@@ -107,7 +114,8 @@ class MisfireDetector:
         self._prev_index = -2
         self._detail: list[np.ndarray] = []
         self._ring_from, self._ring_cyl, self._ring_z = -(10**18), -1, 0.0  # last misfire
-        self._recent_z: deque[float] = deque(maxlen=4 * self.n)  # z of recent fired events
+        self._recent_z: deque[float] = deque(maxlen=max(8 * self.n, 16))  # z of recent fired events
+        self._last_flag = -(10**18)  # global index of the last flagged event
 
     # -- streaming ------------------------------------------------------------------------------
     def push(self, raw: np.ndarray, throttle: np.ndarray | None = None) -> np.ndarray:
@@ -234,7 +242,9 @@ class MisfireDetector:
             ax = [w_all[j] for j in ahead if w_all[j] == w_all[j]]
             ay = [y_all[j] for j in ahead if y_all[j] == y_all[j]]
             sd, sx = st.spreads()
-            ready = len(st.dev) >= s.warmup_cycles
+            if st.stale and not fc_sure[o]:
+                st.restart_baseline(s.warmup_cycles)
+            ready = len(st.dev) >= s.warmup_cycles and st.rewarm == 0
             hx_med = median(st.hx) if st.hx else float("nan")
             level = max(abs(hx_med) if st.hx else abs(x), abs(others[o])
                         if others[o] == others[o] else 0.0)
@@ -276,10 +286,11 @@ class MisfireDetector:
             metric[o] = z if ready else np.nan
             if fc_sure[o] or (fc_maybe[o] and (cand or dead)):
                 verdict[o] = FUEL_CUT
+                st.stale = True
                 st.add_motored(cell, x, s.depth_history)
                 conf[o] = 1.0
                 continue
-            st.add_recent(x)
+            st.add_recent(x, share)
             st.flags.append(bool(cand or dead))
             why = None if dead else st.pattern_implausible(min_events=s.pattern_events)
             if why is not None:
@@ -290,6 +301,7 @@ class MisfireDetector:
             depth[o] = -d / scale if scale == scale else np.nan
             if dead:
                 verdict[o], cause[o], conf[o] = MISFIRE, CAUSE_DEAD, 1.0
+                self._last_flag = gi
                 if ready and z > z_thr:
                     st.add_misfire(cell, -d, s.depth_history)
             elif cand and len(st.run) > s.dead_run and st.ever_healthy:
@@ -300,13 +312,16 @@ class MisfireDetector:
                 st.accept(x, y, d, dx)
             elif cand:
                 self._ring_from, self._ring_cyl, self._ring_z = gi, c, z
+                self._last_flag = gi
                 # a partial burn only where it is clearly short of a whole misfire: by depth and
                 # by partial_gap robust sigma, on a scale from fuel cut here or from misfires
                 # that agree among themselves (at low signal to noise, at high speed and light
                 # load, whole misfires scatter from 0.4 to 1.4 of their median)
                 scale = -d / depth[o] if depth[o] == depth[o] and depth[o] > 0 else 0.0
-                calibrated_here = bool(st.motored.get(cell)) or (
-                    st.misfire_scatter(cell) < s.partial_tight * scale)
+                # only an offset-free scale from this cylinder's own motored level (a fuel cut in
+                # this rpm cell) tells a partial burn: the run's own misfires scatter too much at
+                # low signal to noise, and a misfire called partial is a missed misfire
+                calibrated_here = len(st.motored.get(cell, ())) >= s.depth_min_count
                 partial = (calibrated_here and depth[o] < s.partial_depth
                            and (1.0 - depth[o]) * scale > s.partial_gap * sd)
                 verdict[o] = PARTIAL if partial else MISFIRE
@@ -315,7 +330,10 @@ class MisfireDetector:
                     st.add_misfire(cell, -d, s.depth_history)
             elif ready:
                 verdict[o] = FIRED
-                self._recent_z.append(z)
+                if gi - self._last_flag > self.n:
+                    # the events just after a misfire rebound (the next cylinder starts slower):
+                    # that is the misfire's own trace, no rough road
+                    self._recent_z.append(z)
                 conf[o] = min(1.0, (z_thr - z) / z_thr)
                 st.accept(x, y, d, dx)
                 st.ever_healthy = True
@@ -324,6 +342,7 @@ class MisfireDetector:
             else:
                 cause[o] = CAUSE_WARMUP
                 st.accept(x, y, d, dx)
+                st.rewarm = max(st.rewarm - 1, 0)
         out["metric"] = metric
         out["threshold"] = z_thr
         out["verdict"] = verdict
@@ -336,14 +355,13 @@ class MisfireDetector:
         """Cylinder c is in a dead spell: no combustion for a while, from the start or mid-ride.
 
         Mid-ride, a run of ``dead_run`` misfires in a row (the last one not ``partial_like``:
-        short of a whole misfire on a calibrated depth scale) starts a spell; it lasts while the
-        cylinder's share of the engine's work (``contribution``) stays below halfway between its
-        healthy share (before the run) and its share in the run: a frozen baseline in joules
-        drifts as speed and load change, a share of the others' work does not. A cylinder that
-        never fired has no healthy share: it is told by its level far below the others' (under
-        ``dead_ratio`` of it) and the lack of the combustion scatter they show (a per-cylinder
-        bias at high speed, or a driveline mode near the firing frequency, can put a firing
-        cylinder that low, but not take its scatter away).
+        short of a whole misfire on a calibrated depth scale) starts a spell when the cylinder's
+        share of the engine's work (``contribution``) collapsed by ``dead_share_drop``. The spell
+        lasts while its share stays below halfway between its share before the run and in the
+        run (a share follows speed and load; a frozen baseline in joules does not).
+        A cylinder that never fired has no level before: it is told by a metric far below the
+        others' (under ``dead_ratio`` of their level) without their combustion scatter, and a
+        share of the engine's work below ``dead_start_share``.
         """
         st = self._cyl[c]
         if self.n < 2:
@@ -353,20 +371,28 @@ class MisfireDetector:
         lv_o = median(lv) if lv else float("nan")
         lim = self.s.dead_ratio * lv_o
         if st.dead_since is not None:
-            dead = contrib < st.spell_mid if st.spell_mid == st.spell_mid else lv_o > 0 and x < lim
+            if st.spell_mid == st.spell_mid:
+                dead = contrib == contrib and contrib < st.spell_mid
+            else:  # dead from the start: as long as its level stays far below the others'
+                dead = lv_o > 0 and x < lim
         elif st.ever_healthy:
             dead = False
-            if len(st.run) >= self.s.dead_run and len(st.shares) >= 8:
-                healthy, entry = median(st.shares), median(st.run)
-                if healthy - entry > 0.3 and not partial_like:
-                    st.spell_mid, dead = 0.5 * (healthy + entry), True
+            if len(st.run) >= self.s.dead_run and not partial_like:
+                shares = [v for v in st.run if v == v]
+                if len(st.shares) >= 8 and shares and (
+                        median(st.shares) - median(shares) > self.s.dead_share_drop):
+                    st.spell_mid, dead = 0.5 * (median(st.shares) + median(shares)), True
         else:
             own = list(st.recent)[-15:] + [x]
             sp = [robust_spread(o.recent) for i, o in enumerate(self._cyl)
                   if i != c and len(o.recent) >= 4]
+            # its share of the engine's work must agree: the metric's level differs between the
+            # cylinders of an uneven engine (a twin-270's second cylinder reads far lower)
+            low_share = (len(st.recent_share) >= 4
+                         and median(st.recent_share) < self.s.dead_start_share)
             dead = (len(own) >= 4 and bool(sp) and lv_o > 0 and x < lim and median(own) < lim
                     and lv_o - median(own) > self._z * median(sp)
-                    and robust_spread(own) < self.s.dead_scatter * median(sp))
+                    and robust_spread(own) < self.s.dead_scatter * median(sp) and low_share)
             st.spell_mid = float("nan")
         if dead and st.dead_since is None:
             st.dead_since = t

@@ -34,18 +34,21 @@ class MisfireSettings:
     dead_ratio : float
         A cylinder whose recent level is below this share of the other cylinders' is dead.
     partial_depth : float
-        A flagged event with a calibrated depth below this is a partial burn.
+        A flagged event with a depth below this, on a scale from the cylinder's own motored level
+        (a fuel cut in the same rpm cell), is a partial burn.
     partial_gap : float
         ... and when its missing work falls short of a whole misfire's by this many robust sigma.
-    partial_tight : float
-        A depth scale from the run's own misfires is used for partial burns only when their
-        robust spread is below this share of it (fuel cut in the same rpm cell always is).
     depth_min_count, depth_history : int
         Fuel-cut events or misfires per cell needed for a depth scale; values kept per cell.
     pattern_events : int
         Candidate flags per cylinder behind the self-check.
     dead_run : int
         Misfires in a row on one cylinder that start a dead spell (see ``_dead``).
+    dead_share_drop : float
+        ... when the cylinder's share of the engine's work fell by this much against its share
+        before the run.
+    dead_start_share : float
+        A cylinder dead from the ride's start also has a share of the engine's work below this.
     dead_scatter : float
         A cylinder dead from the ride's start scatters less than this share of the others'
         robust spread (it lacks their cycle-to-cycle combustion scatter).
@@ -78,7 +81,6 @@ class MisfireSettings:
     dead_ratio: float = 0.3
     partial_depth: float = 0.7
     partial_gap: float = 6.0
-    partial_tight: float = 0.2
     depth_min_count: int = 4
     depth_history: int = 16
     pattern_events: int = 32
@@ -86,7 +88,9 @@ class MisfireSettings:
     local_scatter: float = 1.5
     gap_margin: float = 1.3
     dead_run: int = 6
+    dead_share_drop: float = 0.3
     dead_scatter: float = 0.75
+    dead_start_share: float = 0.5
     closed_throttle_pct: float = 2.0
     fuel_cut_min_rpm: float = 1600.0
     fuel_cut_work_bar: float = 1.0

@@ -33,14 +33,15 @@ UNIT = 0.25e-6  # s per raw period count (docs/rig.md, crank teeth frame)
 def ride_frames(ride, *, per_frame=None, seed=0):
     """Tooth frames of a SimRide: (frame_time, periods, cam, lost_before).
 
-    Periods are quantised to the rig's own unit and packed as many per frame as its tooth
+    Periods are quantised to the rig's own unit as a capture timer does and packed as many per frame as its tooth
     message holds (the Larch: three of 0.25 µs; the Alder counts whole microseconds).
     """
     sig = ride.rig.message_for("tooth_periods").signal_for("tooth_periods")
     unit = float(sig.scale) if sig is not None else UNIT
     per_frame = per_frame or (int(sig.count) if sig is not None else 3)
     t = ride.tooth_time
-    raw = np.round(np.diff(t) / unit)
+    # a capture timer: periods are differences of quantised edge stamps (the rounding telescopes)
+    raw = np.diff(np.round((t - t[0]) / unit))
     full = 2 ** int(sig.length) - 1 if sig is not None else 0xFFFF
     per = np.where(raw >= full, np.nan, raw * unit)
     m = per.size // per_frame
