@@ -241,5 +241,8 @@ def test_lost_frames_cost_only_the_events_near_them():
     score = score_misfire(step.events, (tr["t"], tr["cylinder"], tr["fired"], tr["fuel_cut"]))
     unusable = (step.events["verdict"] == UNUSABLE).mean()
     print(score.summary(), f"unusable {100 * unusable:.1f} %")
-    assert unusable < 0.25  # a loss spoils the events whose windows it touches, not more
+    # a loss spoils the events whose spans it touches, not more: the energy step spans half a
+    # firing interval either side of its point (360 deg on a twin), so 1 % of the frames lost
+    # cost 28 % of the events here (measured; 24 % with the 180 deg work window alone)
+    assert unusable < 0.3
     assert score.false_alarms == 0 and score.detected_misfires == score.true_misfires

@@ -21,7 +21,15 @@ from scipy.stats import median_abs_deviation
 
 from crankbeat.dsp.cylinder_stats import MAD_TO_SIGMA, robust_spread
 from crankbeat.dsp.engine import Engine
-from crankbeat.dsp.events import CAUSE_DEAD, CAUSE_IMPLAUSIBLE, FIRED, MISFIRE, PARTIAL, UNUSABLE
+from crankbeat.dsp.events import (
+    CAUSE_DEAD,
+    CAUSE_IMPLAUSIBLE,
+    FIRED,
+    FUEL_CUT,
+    MISFIRE,
+    PARTIAL,
+    UNUSABLE,
+)
 from crankbeat.dsp.fluctuation import RAW_EVENT_DTYPE
 from crankbeat.dsp.misfire import MisfireDetector, MisfireSettings, detect_misfires
 from crankbeat.dsp.scoring import score_misfire
@@ -104,13 +112,13 @@ def test_high_rpm_light_load_on_unknown_physics(preset):
                        **_unknown("geared clutch, scatter"))
     _, _, score = _ride(scn, preset)
     assert score.true_misfires >= 40
-    # target 97 % / 0.2 %. Measured on this ride (inertia 2.2x, 8 % COV): twin 93.8 %; four
-    # 6.5 %, both at 0 false alarms. The four's tooth periods come in whole microseconds
-    # (0.6 % of a 167 us tooth at 10 000 rpm): rounding them puts about as much noise on a
-    # window's energy change as its gas work at 8-10 % throttle, and its misfires score about
-    # 2 robust sigma (with the twin's 0.25 us periods the same ride gives 63 %). What holds there
-    # is that no fired event is called a misfire.
-    assert score.detection_rate >= (0.93 if preset == "larch" else 0.05)
+    # target 97 % / 0.2 %. Measured on this ride (inertia 2.2x, 8 % COV), energy step metric,
+    # periods from a capture timer: twin 98.4 %, four 26.1 %, both at 0 false alarms (window
+    # work before: 93.8 % and 6.5 %). The four's periods come in whole microseconds (0.6 % of a
+    # 167 us tooth at 10 000 rpm) and its gas work at 8-10 % throttle moves the crank's energy
+    # by about 0.15 %: its misfires score 3-5 robust sigma. What holds there is that no fired
+    # event is called a misfire.
+    assert score.detection_rate >= (0.97 if preset == "larch" else 0.2)
     assert score.false_alarm_rate <= 0.002
 
 
@@ -126,10 +134,11 @@ def test_rough_road_counts_no_misfire(preset):
     ride, step, _ = _ride(scn, preset)
     assert ride.events["rough"].sum() > 500
     assert np.all(ride.events["fired"] | ride.events["fuel_cut"])  # no misfire in the truth
-    # without the accelerometer's rough-road masking (the pipeline's job) the twin counts none;
-    # the four counted one where the rough section begins (measured), before the scatter of
-    # the events around raises the threshold
-    assert int((step.events["verdict"] == MISFIRE).sum()) <= (0 if preset == "larch" else 1)
+    # without the accelerometer's rough-road masking (the pipeline's job, tested through the
+    # CLI in make quality) a few events where the rough section begins are counted before the
+    # scatter of the events around raises the threshold: measured 1 of 1009 (twin) and 3 of
+    # 2022 (four) with the energy step metric
+    assert int((step.events["verdict"] == MISFIRE).sum()) <= (1 if preset == "larch" else 3)
 
 
 @pytest.mark.parametrize("preset", ["larch", "alder"])
@@ -151,7 +160,9 @@ def test_cylinder_dead_from_the_start_of_the_ride():
                        name="dead from start", **_unknown("heavy, bad wheel"))
     _, _, score = _ride(scn)
     assert score.detection_rate >= 0.99
-    assert score.false_alarms <= 1  # measured: the first event after it comes back to life
+    # measured 6 of 301: the spell ends when the cylinder's level passes 30 % of the others',
+    # some cycles after it fires again
+    assert score.false_alarms <= 6
 
 
 # --- the decision stage on hand-made raw events ----------------------------------------------
@@ -237,20 +248,40 @@ def test_streaming_decision_equals_whole_array():
         np.testing.assert_array_equal(streamed[name], whole[name], err_msg=name)
 
 
-def test_partial_burns_get_their_own_verdict_once_misfires_calibrate_the_depth():
-    raw = _raw(n=3000, misfire_every=29)
+def _half_burns(n=3000, *, cut=0):
+    """Raw twin events with misfires every 29th event and half burns half-way between them;
+    the first ``cut`` events are an overrun fuel cut (throttle closed, the motored level)."""
+    raw = _raw(n=n, misfire_every=29)
     half = np.zeros(raw.size, bool)
     half[14::29] = True  # half-way between the misfires: burns half of the charge
     raw["work"][half] = 50.0
+    throttle = np.full(raw.size, 30.0)
+    throttle[:cut] = 0.0
+    raw["work"][:cut] = -20.0  # motored: the compression's losses, no combustion
+    half[:cut] = False
     det = MisfireDetector(_twin(), settings=ON_WORK)
-    ev = np.concatenate((det.push(raw), det.finish()))
-    detail = det.take_detail()
-    late = np.arange(raw.size) > 600  # after a few misfires per cylinder set the depth scale
+    ev = np.concatenate((det.push(raw, throttle), det.finish()))
+    return raw, half, ev, det.take_detail(), det.report()
+
+
+def test_partial_burns_are_told_on_the_motored_depth_scale_of_a_fuel_cut():
+    raw, half, ev, detail, report = _half_burns(cut=200)
+    late = np.arange(raw.size) > 600
+    assert (ev["verdict"][:150] == FUEL_CUT).mean() > 0.9
     assert (ev["verdict"][half & late] == PARTIAL).all()
     assert (ev["verdict"][~half & late & (raw["work"] == 0.0)] == MISFIRE).all()
-    # depth = missing work / a complete misfire's: 0.5 for the half burns (by construction)
+    # depth = missing work / a complete misfire's, on the motored scale: (100 - 50) / (100 + 20)
+    assert np.median(detail["depth"][half & late]) == pytest.approx(50 / 120, abs=0.05)
+    assert all(report["depth_calibrated"].values())
+
+
+def test_without_a_motored_level_half_burns_stay_misfires():
+    # the run's own misfires give a depth (about 0.5 here) but no verdict: at low signal to
+    # noise they scatter too widely to tell a partial burn, and a misfire must never be missed
+    raw, half, ev, detail, _ = _half_burns(cut=0)
+    late = np.arange(raw.size) > 600
+    assert (ev["verdict"][half & late] == MISFIRE).all()
     assert np.median(detail["depth"][half & late]) == pytest.approx(0.5, abs=0.05)
-    assert all(det.report()["depth_calibrated"].values())
 
 
 def test_without_a_depth_scale_misfires_are_found_and_depth_is_not_calibrated():
