@@ -175,7 +175,7 @@ def test_notes_count_seconds_into_the_ride_and_riding_hours_scale_a8(demo_store,
     _, out, _ = cli(capsys, "show", "1", "--store", str(demo_store))
     notes = out.split("notes (times in s into the ride):")[1]
     assert not re.search(r"\d{9,}\.\d+ s", notes)  # no wall-clock seconds
-    assert "applied from 32.4 s" in notes  # the demo's fuel cut ends 28.4 s in (fixtures/README)
+    assert "applied from 32.3 s" in notes  # the demo's fuel cut ends 28.4 s in (fixtures/README)
     a8_1h = float(re.search(r"A\(8\) for 1 h riding: bar_left ([\d.]+)", out).group(1))
     _, out4, _ = cli(capsys, "show", "1", "--riding-hours", "4", "--store", str(demo_store))
     a8_4h = float(re.search(r"A\(8\) for 4 h riding: bar_left ([\d.]+)", out4).group(1))
