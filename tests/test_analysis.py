@@ -33,8 +33,9 @@ UNIT = 0.25e-6  # s per raw period count (docs/rig.md, crank teeth frame)
 def ride_frames(ride, *, per_frame=None, seed=0):
     """Tooth frames of a SimRide: (frame_time, periods, cam, lost_before).
 
-    Periods are quantised to the rig's own unit as a capture timer does and packed as many per frame as its tooth
-    message holds (the Larch: three of 0.25 µs; the Alder counts whole microseconds).
+    Periods are quantised to the rig's own unit as a capture timer does and packed as many per
+    frame as its tooth message holds (the Larch: three of 0.25 µs; the Alder counts whole
+    microseconds).
     """
     sig = ride.rig.message_for("tooth_periods").signal_for("tooth_periods")
     unit = float(sig.scale) if sig is not None else UNIT

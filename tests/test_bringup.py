@@ -132,7 +132,8 @@ def test_a_wrong_tdc_offset_is_corrected(tmp_path, wrong):
     rig = load_rig(_rig_with_tdc("larch", wrong, tmp_path))
     res = check_rig(rig, log)
     suggested = res.suggestions["wheel.tdc_offset_deg"]
-    assert suggested == pytest.approx(96.0, abs=1.2)  # the rig the ride was simulated with (measured -1.11)
+    # the rig the ride was simulated with (measured -1.11)
+    assert suggested == pytest.approx(96.0, abs=1.2)
 
 
 def test_a_wrong_tooth_count_is_corrected(tmp_path):
