@@ -3,9 +3,10 @@
 The reference four's seat board counts frames in one byte at 1 kHz and time in a u16 of 10 µs:
 the sequence turns every 0.256 s and the clock every 0.655 s, so a pulled adapter wraps both,
 and the board's counters alone tell the lost frames only modulo a turn. Across a link break the
-parser takes the whole turns from the host's elapsed time. Checked on exact host times, and on pyserial's ``socket://`` handler talking to a real TCP
-server that plays the board in real time, is stopped (the adapter pulled) while the board goes
-on counting, and started again on the same port.
+parser takes the whole turns from the host's elapsed time. Checked on exact host times, and on
+pyserial's ``socket://`` handler talking to a real TCP server that plays the board in real
+time, is stopped (the adapter pulled) while the board goes on counting, and started again on the
+same port.
 """
 
 from __future__ import annotations
@@ -13,11 +14,10 @@ from __future__ import annotations
 import socket
 import threading
 import time
+from dataclasses import replace
 
 import numpy as np
 import pytest
-
-from dataclasses import replace
 
 from crankbeat.logger.rig import load_rig
 from crankbeat.logger.serial.decoder import SerialDecoder
