@@ -22,13 +22,16 @@ from bench.procs import ChildRun, run_child, script
 from bench.table import Row, missing
 from crankbeat.errors import CrankbeatError
 
-#: Targets of issue 7.
-RTF_MIN = 300.0
-REPLAY_OVER_PYCAN_MAX = 1.0
-REPLAY_OVER_SPLIT_MAX = 20.0
-DECODE_SPEEDUP_MIN = 5.0
-P99_MAX_MS = 250.0
-CPU_MAX_PCT = 30.0
+#: Targets of issue 14 (battery laptop on the bike, fleet re-analysis): replay at 500x real
+#: time, live at about a seventh of a core.
+RTF_MIN = 500.0
+REPLAY_OVER_PYCAN_MAX = 0.4
+REPLAY_OVER_SPLIT_MAX = 15.0
+DECODE_SPEEDUP_MIN = 10.0
+P99_MAX_MS = 100.0
+CPU_MAX_PCT = 15.0
+#: Crank speeds of the live figure: a low cruise and the reference rig near its limit, rpm.
+LIVE_RPMS = (3000.0, 10500.0)
 RSS_MAX_MB = 300.0
 RSS_GROWTH_MAX = 1.10
 #: Linear cost: the time per ride-minute of a long ride may exceed a shorter one's by this much.
@@ -85,13 +88,13 @@ class Bench:
 
     # -- rides ---------------------------------------------------------------------------
     def ride(self, key: str):
-        """The cached ride for ``key`` ("lap-10", "live"), generated on first use."""
+        """The cached ride for ``key`` ("lap-10", "live-10500"), generated on first use."""
         if key in self.rides:
             return self.rides[key]
         from bench.rides import ensure_ride, lap_scenario, live_scenario
 
-        if key == "live":
-            sc = live_scenario(self.live_seconds)
+        if key.startswith("live-"):
+            sc = live_scenario(self.live_seconds, rpm=float(key.split("-")[1]))
         else:
             sc = lap_scenario(int(key.split("-")[1]))
         self.say(f"ride {sc.name}: looking in the cache")
@@ -161,7 +164,7 @@ def replay_rows(b: Bench) -> list[Row]:
     m = b.main_minutes
     figures = [
         (f"replay {m} min: real-time factor, 1 core", ">=", RTF_MIN, "x"),
-        (f"replay {m} min ÷ python-can bare iteration", "<", REPLAY_OVER_PYCAN_MAX, ""),
+        (f"replay {m} min ÷ python-can bare iteration", "<=", REPLAY_OVER_PYCAN_MAX, ""),
         (f"replay {m} min ÷ read-and-split floor", "<=", REPLAY_OVER_SPLIT_MAX, ""),
     ]
     return _guard(lambda: _replay_rows(b), figures, part_missing("sim", "pipeline", "store"))
@@ -216,7 +219,7 @@ def _replay_rows(b: Bench) -> list[Row]:
             value=ride.duration_s / rep, op=">=", limit=RTF_MIN, unit="x"),
         Row(f"replay {m} min ÷ python-can bare iteration",
             f"{rep:.2f} s / {pycan_s:.2f} s CPU = {rep / pycan_s:.2f}",
-            value=rep / pycan_s, op="<", limit=REPLAY_OVER_PYCAN_MAX),
+            value=rep / pycan_s, op="<=", limit=REPLAY_OVER_PYCAN_MAX),
         Row(f"replay {m} min ÷ read-and-split floor",
             f"{rep:.2f} s / {split_s:.3f} s CPU = {rep / split_s:.1f}",
             value=rep / split_s, op="<=", limit=REPLAY_OVER_SPLIT_MAX),
@@ -289,9 +292,10 @@ def _memory_rows(b: Bench, lengths: list[int]) -> list[Row]:
 
 def scaling_rows(b: Bench) -> list[Row]:
     lo, hi = min(b.minutes), max(b.minutes)
-    figs = [(f"time per ride-minute, {hi} min ÷ {m} min", "<=", PER_MINUTE_GROWTH_MAX, "")
-            for m in b.minutes if m != hi]
-    return _guard(lambda: _scaling_rows(b), figs if lo != hi else [],
+    figs = [(f"replay {hi} min: real-time factor, 1 core", ">=", RTF_MIN, "x")]
+    figs += [(f"time per ride-minute, {hi} min ÷ {m} min", "<=", PER_MINUTE_GROWTH_MAX, "")
+             for m in b.minutes if m != hi]
+    return _guard(lambda: _scaling_rows(b), figs if lo != hi else figs[:1],
                   part_missing("sim", "pipeline", "store"))
 
 
@@ -306,6 +310,11 @@ def _scaling_rows(b: Bench) -> list[Row]:
                 f"{per_min[m]:.3f} s/min ({b.best_replay_s(m):.2f} s CPU, "
                 f"{b.best_replay_wall_s(m):.2f} s wall)", value=per_min[m])
             for m in sorted(b.minutes)]
+    if hi != b.main_minutes:  # the main ride's factor is in the replay group
+        rows.append(Row(f"replay {hi} min: real-time factor, 1 core",
+                        f"{hi * 60} s of ride in {b.best_replay_s(hi):.2f} s CPU = "
+                        f"{hi * 60 / b.best_replay_s(hi):.0f}x",
+                        value=hi * 60 / b.best_replay_s(hi), op=">=", limit=RTF_MIN, unit="x"))
     rows += [Row(f"time per ride-minute, {hi} min ÷ {m} min",
                  f"{per_min[hi]:.3f} / {per_min[m]:.3f} s/min = {per_min[hi] / per_min[m]:.2f}",
                  value=per_min[hi] / per_min[m],
@@ -314,51 +323,62 @@ def _scaling_rows(b: Bench) -> list[Row]:
     return rows
 
 
+def _rpm_label(rpm: float) -> str:
+    return f"{rpm:,.0f}".replace(",", " ") + " rpm"
+
+
 def live_rows(b: Bench) -> list[Row]:
-    rpm = "10 500 rpm"
-    figs = [(f"live {rpm}: p99 latency, frame to store", "<", P99_MAX_MS, " ms"),
-            (f"live {rpm}: CPU of the analysing process", "<", CPU_MAX_PCT, " %")]
-    return _guard(lambda: _live_rows(b), figs, part_missing("sim", "live", "store"))
+    rows: list[Row] = []
+    for rpm in LIVE_RPMS:
+        lab = _rpm_label(rpm)
+        figs = [(f"live {lab}: p99 latency, frame to committed verdict", "<=", P99_MAX_MS,
+                 " ms"),
+                (f"live {lab}: CPU of the analysing process", "<=", CPU_MAX_PCT, " %")]
+        rows += _guard(lambda rpm=rpm: _live_rows(b, rpm), figs,
+                       part_missing("sim", "live", "store"))
+    return rows
 
 
-def _live_rows(b: Bench) -> list[Row]:
+def _live_rows(b: Bench, rpm: float) -> list[Row]:
     from bench.live import run_live
     from bench.rides import START_TIME
     from crankbeat.logger.rig import load_rig
 
-    ride = b.ride("live")
+    lab = _rpm_label(rpm)
+    ride = b.ride(f"live-{rpm:.0f}")
     store = b.out / "live.db"
-    b.say(f"live: {ride.duration_s:.0f} s at 10 500 rpm in real time (virtual CAN bus + "
+    b.say(f"live: {ride.duration_s:.0f} s at {lab} in real time (virtual CAN bus + "
           "socket:// serial)")
     figs = run_live(ride.can, ride.captures, store, base=START_TIME, rig=b.rig)
     _remove_store(store)
     if not figs.child.ok:
-        raise CrankbeatError(f"live run failed: {figs.child.error}")
+        raise CrankbeatError(f"live run at {lab} failed: {figs.child.error}")
     for note in figs.notes:
         b.say(f"  note: {note}")
     n_cyl = load_rig(b.rig).engine.n_cylinders
-    expected = ride.duration_s * 10500.0 / 120.0 * n_cyl  # 4-stroke: one firing per 2 revs
+    expected = ride.duration_s * rpm / 120.0 * n_cyl  # 4-stroke: one firing per 2 revs
     p50, p99, cpu = figs.percentile_ms(50), figs.percentile_ms(99), figs.cpu_pct
     b.say(f"  {figs.events} events, p50 {p50:.0f} ms, p99 {p99:.0f} ms, CPU {cpu:.1f} %")
     r = figs.child.result
-    b.raw["live"] = {"events": figs.events, "expected_events": expected, "p50_ms": p50,
-                     "p99_ms": p99, "max_ms": float(figs.latency_s.max() * 1e3)
-                     if figs.latency_s.size else math.nan,
-                     "cpu_pct": cpu, "notes": figs.notes, **r}
+    b.raw[f"live_{rpm:.0f}rpm"] = {
+        "events": figs.events, "expected_events": expected, "p50_ms": p50, "p99_ms": p99,
+        "max_ms": float(figs.latency_s.max() * 1e3) if figs.latency_s.size else math.nan,
+        "cpu_pct": cpu, "notes": figs.notes, **r}
     return [
-        Row("live 10 500 rpm: events in the store", f"{figs.events:,} of ~{expected:,.0f} "
+        Row(f"live {lab}: events in the store", f"{figs.events:,} of ~{expected:,.0f} "
             "firing events", value=float(figs.events)),
-        Row("live 10 500 rpm: p50 latency, frame to store",
+        Row(f"live {lab}: p50 latency, frame to committed verdict",
             f"{p50:.0f} ms over {figs.latency_s.size:,} events", value=p50),
-        Row("live 10 500 rpm: p99 latency, frame to store", f"{p99:.0f} ms (committed, seen by "
-            "a reader)", value=p99, op="<", limit=P99_MAX_MS, unit=" ms"),
-        Row("live 10 500 rpm: latency, frame to add_events (before commit)",
+        Row(f"live {lab}: p99 latency, frame to committed verdict",
+            f"{p99:.0f} ms (committed, seen by a reader)", value=p99, op="<=",
+            limit=P99_MAX_MS, unit=" ms"),
+        Row(f"live {lab}: latency, frame to add_events (before commit)",
             f"p50 {r.get('handed_p50_ms', math.nan):.0f} ms, "
             f"p99 {r.get('handed_p99_ms', math.nan):.0f} ms", value=r.get("handed_p99_ms")),
-        Row("live 10 500 rpm: CPU of the analysing process",
+        Row(f"live {lab}: CPU of the analysing process",
             f"{cpu:.1f} % of a core ({r['cpu_s'] - r['feeder_cpu_s']:.1f} s CPU in "
             f"{r['stream_wall_s']:.1f} s; CAN feeder thread's {r['feeder_cpu_s']:.1f} s left out)",
-            value=cpu, op="<", limit=CPU_MAX_PCT, unit=" %"),
+            value=cpu, op="<=", limit=CPU_MAX_PCT, unit=" %"),
     ]
 
 

@@ -27,6 +27,7 @@ import time
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+import crankbeat.logger.cli  # noqa: E402, F401 - the command's process settings (one BLAS thread)
 from bench.procs import own_peak_mb  # noqa: E402
 
 

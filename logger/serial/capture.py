@@ -296,6 +296,35 @@ class CaptureReader:
         return None
 
     def _next(self) -> Record | None:
+        rec = self._next_plain()
+        return rec if rec is not None else self._next_checked()
+
+    def _next_plain(self) -> Record | None:
+        """The next record when it is plainly whole (the common case, without method calls):
+        a short read whose time follows the last good one, not backwards, and that ends at the
+        file's end or where the next record's header follows it in time. None leaves every
+        other case to :meth:`_next_checked`, which judges it the same way, step by step."""
+        start, size, last = self.offset, self.size, self._last_time
+        if last is None or last < MIN_CLOCK or start + _HEADER.size > size:
+            return None
+        t, n = _HEADER.unpack_from(self._map, start)
+        end = start + _HEADER.size + n
+        if not (last <= t <= last + NEAR_AHEAD_S and t < MAX_TIME and n <= LONG_READ_BYTES
+                and end <= size):
+            return None
+        if end != size:
+            if size - end < _HEADER.size:
+                return None
+            t2, n2 = _HEADER.unpack_from(self._map, end)
+            if not (n2 <= MAX_RECORD_BYTES and -NEAR_BACK_S <= t2 - t <= NEAR_AHEAD_S
+                    and 0.0 <= t2 < MAX_TIME):
+                return None
+        self._last_time = t
+        self.offset = end
+        self.index += 1
+        return t, self._map[start + _HEADER.size : end]
+
+    def _next_checked(self) -> Record | None:
         start = self.offset
         if start >= self.size:
             self.done = True

@@ -24,7 +24,18 @@ def _crc16_table(poly: int) -> np.ndarray:
     return table
 
 
+def _crc16_pair_table(table: np.ndarray) -> np.ndarray:
+    """Two bytes per step: with a 16-bit register, feeding bytes b0, b1 to register c gives
+    what feeding two zero bytes to ``c ^ (b0 << 8 | b1)`` gives, so one lookup in this
+    65536-entry table replaces two steps (half the numpy passes per frame column)."""
+    c = np.arange(65536, dtype=np.uint32)
+    for _ in range(2):
+        c = ((c << 8) & 0xFFFF) ^ table[c >> 8]
+    return c.astype(np.uint16)
+
+
 _CCITT_TABLE = _crc16_table(0x1021)
+_CCITT_PAIRS = _crc16_pair_table(_CCITT_TABLE)
 
 
 def _as_frames(data: bytes | bytearray | memoryview | np.ndarray) -> tuple[np.ndarray, bool]:
@@ -59,8 +70,14 @@ def crc16_ccitt_false(data):
     """
     frames, single = _as_frames(data)
     crc = np.full(frames.shape[0], 0xFFFF, dtype=np.uint16)
-    for col in range(frames.shape[1]):
-        idx = (crc >> 8) ^ frames[:, col]
+    m = frames.shape[1]
+    if m >= 2:
+        # the columns as big-endian byte pairs: one table lookup per pair
+        pairs = np.ascontiguousarray(frames[:, : m - m % 2]).view(">u2").astype(np.uint16)
+        for col in range(pairs.shape[1]):
+            crc = _CCITT_PAIRS[crc ^ pairs[:, col]]
+    if m % 2:
+        idx = (crc >> 8) ^ frames[:, m - 1]
         crc = (crc << 8) ^ _CCITT_TABLE[idx]
     return _result(crc, single)
 

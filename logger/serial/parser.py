@@ -287,6 +287,32 @@ class SerialFrameParser:
                 keep[i] = False
         return keep
 
+    def _clock_turns_across_break(self, d_dev: np.ndarray, d_host_s: float) -> np.ndarray:
+        """The first frame after a link break: a short device clock (a u16 of 10 µs turns in
+        0.66 s) may have wrapped while the adapter was out; its whole turns come from the
+        host's elapsed time (the sequence's turns then follow from the clock). Only here:
+        after a reopen pyserial hands over fresh bytes, so both host times are within a
+        read's latency of their samples (within a running link a USB stall delays reads
+        without losing frames, and host time would invent turns)."""
+        m = self.sensor.device_time_modulo
+        span = m * self.sensor.device_time_unit_s
+        elapsed = min(max(d_host_s, 0.0), MAX_GAP_S)
+        turns = max(int(round((elapsed - int(d_dev[0]) * self.sensor.device_time_unit_s)
+                              / span)), 0)
+        out = d_dev.astype(np.int64, copy=True)
+        out[0] += turns * m
+        return out
+
+    def _turns_across_break(self, d_seq: np.ndarray, d_host_s: float) -> np.ndarray:
+        """As :meth:`_clock_turns_across_break`, for a board with a sequence but no clock: the
+        sequence's whole turns while the adapter was out come from the host's elapsed time."""
+        m = self.sensor.sequence_modulo
+        expect = min(max(d_host_s, 0.0), MAX_GAP_S) * self._rate
+        turns = max(int(round((expect - int(d_seq[0])) / m)), 0)
+        out = d_seq.astype(np.int64, copy=True)
+        out[0] += turns * m
+        return out
+
     def _decode(self, frames: np.ndarray, host: np.ndarray, last: np.ndarray) -> ParsedFrames:
         n = len(frames)
         if n == 0:
@@ -309,8 +335,11 @@ class SerialFrameParser:
         host = host - self._host_offset
         d_host = np.diff(host, prepend=p_host)
 
+        across_break = self._pending_break and not d_first_zero
         if dev_raw is not None:
             d_dev = np.diff(dev_raw, prepend=p_dev_raw) % s.device_time_modulo
+            if across_break:
+                d_dev = self._clock_turns_across_break(d_dev, float(d_host[0]))
         if seq_raw is not None:
             d_seq = np.diff(seq_raw, prepend=p_seq_raw) % s.sequence_modulo
             if dev_raw is not None:
@@ -321,6 +350,8 @@ class SerialFrameParser:
                 if far.any():
                     turns = np.round((expect[far] - d_seq[far]) / s.sequence_modulo)
                     d_seq[far] += np.maximum(turns, 0).astype(np.int64) * s.sequence_modulo
+            elif across_break:
+                d_seq = self._turns_across_break(d_seq, float(d_host[0]))
         elif dev_raw is not None:
             d_seq = np.maximum(np.round(d_dev * unit * rate), 1).astype(np.int64)
         else:

@@ -430,14 +430,21 @@ class Store:
             self._seq[run_id] = -1 if row[0] is None else int(row[0])
             self._seq[run_id] += 1
         start = self._seq[run_id]
-        rows = events[list(EVENT_COLUMNS)].tolist()
+        # run and seq go into the array, so one tolist() makes the rows (no per-row Python)
+        cols = [("run", np.int64), ("seq", np.int64)]
+        cols += [(c, EVENT_DTYPE.fields[c][0]) for c in EVENT_COLUMNS]
+        table = np.empty(len(events), dtype=cols)
+        table["run"] = run_id
+        table["seq"] = np.arange(start, start + len(events))
+        for c in EVENT_COLUMNS:
+            table[c] = events[c]
         placeholders = ", ".join("?" * (len(EVENT_COLUMNS) + 2))
         self.db.conn.executemany(
             f"INSERT INTO events (run, seq, {', '.join(EVENT_COLUMNS)}) VALUES ({placeholders})",
-            [(run_id, start + i, *r) for i, r in enumerate(rows)],
+            table.tolist(),
         )
-        self._seq[run_id] = start + len(rows)
-        return len(rows)
+        self._seq[run_id] = start + len(events)
+        return len(events)
 
     def mask_events(self, run_id: int, spans: Iterable[tuple[float, float]]) -> int:
         """Mark the fired and misfire events of a run inside each ``(t0, t1)`` span "masked".
