@@ -25,6 +25,17 @@ def intervals_from_t(summary: dict | None) -> float | None:
     return float(value) if isinstance(value, int | float) else None
 
 
+def ride_start(store: Store, run_id: int, ev: np.ndarray | None = None) -> float:
+    """Time zero of every "s into the ride" axis and table: the summary's CAN start time, else
+    the first event's time, else 0."""
+    t0 = (store.run(run_id).get("summary") or {}).get("t_start")
+    if isinstance(t0, int | float) and np.isfinite(t0):
+        return float(t0)
+    ev = store.events(run_id) if ev is None else ev
+    finite = ev["t"][np.isfinite(ev["t"])] if len(ev) else np.zeros(0)
+    return float(finite.min()) if finite.size else 0.0
+
+
 def wheel_corrected(summary: dict | None) -> bool:
     """Whether the run's firing intervals are on a corrected wheel (a correction from an
     earlier run, or one learnt during this run); runs stored without that record count as yes."""

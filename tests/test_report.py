@@ -26,7 +26,7 @@ class _Images(HTMLParser):
     def handle_starttag(self, tag, attrs):
         if tag == "img":
             self.srcs.append(dict(attrs)["src"])
-        self._in_h2 = tag == "h2"
+        self._in_h2 = tag in ("h2", "h3")
 
     def handle_data(self, data):
         if self._in_h2:
@@ -73,8 +73,8 @@ def test_run_report_embeds_every_figure(filled, tmp_path):
         assert w >= 500 and h >= 300  # readable size at 110 dpi
     assert "Firing intervals" in parser.titles
     assert "Summary" in parser.titles and "note: synthetic" in rep.html.read_text()
-    # Self-contained: nothing is fetched from elsewhere.
-    assert not re.search(r"(src|href)=['\"](?!data:)", rep.html.read_text())
+    # Self-contained: nothing is fetched from elsewhere (links within the folder only).
+    assert not re.search(r"(src|href)=['\"](?!data:|#|index\.html)", rep.html.read_text())
     assert f"href='run{run}.html'" in (tmp_path / "out" / "index.html").read_text()
 
 
