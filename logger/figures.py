@@ -117,3 +117,19 @@ def cylinder_pairs(store: Store, run_id: int) -> dict[int, str]:
 def cylinder_name(cylinder: int, pairs: dict[int, str]) -> str:
     """``"2/3"`` where the phase is unknown, else the cylinder number."""
     return pairs.get(int(cylinder), str(cylinder))
+
+
+def window_timeline(store: Store, run_id: int, ev: np.ndarray, *, revolutions: int) -> dict:
+    """Revolution windows against time, from :func:`dsp.analysis.window_rates` on the events
+    with the engine of the run's own rig file (the figures the run's alert was judged on).
+
+    Returns a dict of arrays, one entry per window: ``t_start``, ``t_end`` (s into the ride),
+    ``rate_pct`` (all cylinders together, the alert's figure), ``complete`` (the window spans
+    its full number of revolutions; only those are judged) and ``per_cylinder`` (n_win, n_cyl).
+    """
+    engine = run_engine(store, run_id)
+    windows, per_cyl = window_rates(ev, revolutions=revolutions, engine=engine)
+    t0 = ride_start(store, run_id, ev)
+    return {"t_start": windows["t_start"] - t0, "t_end": windows["t_end"] - t0,
+            "rate_pct": windows["rate_pct"], "complete": windows["complete"],
+            "per_cylinder": per_cyl}

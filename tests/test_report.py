@@ -86,7 +86,7 @@ def test_a_run_without_data_says_what_is_missing(filled, tmp_path):
         empty = st.begin_run(larch_like_rig(), label="killed-at-once")  # incomplete, no events
         rep = make_run_report(st, empty, tmp_path / "o2")
     text = rep.html.read_text()
-    assert ("Not drawn (no data in the store): Per-event metric, Misfire rate per 1000 "
+    assert ("Not drawn (no data in the store): Per-event metric, Misfire rate per 200 and 1000 "
             "revolutions, Firing intervals, Contribution per cylinder, Order map, "
             "Vibration against rpm") in text
     assert [p.name for p in rep.figures] == [f"run{empty}_trend_misfire.png"]

@@ -52,7 +52,7 @@ def make_run_report(store: Store, run_id: int, out_dir: str | Path) -> RunReport
     names = cylinder_pairs(store, run_id)
     figures: list[tuple[str, Path | None]] = [
         ("Per-event metric", run_plots.plot_metric(ev, out / f"{stem}_metric.png", names=names)),
-        ("Misfire rate per 1000 revolutions", run_plots.plot_windows(
+        ("Misfire rate per 200 and 1000 revolutions", run_plots.plot_windows(
             store, run_id, ev, out / f"{stem}_windows.png",
             alert_pct=limits.get("misfire_alert_pct"), names=names)),
         ("Firing intervals", run_plots.plot_intervals(
@@ -71,9 +71,6 @@ def make_run_report(store: Store, run_id: int, out_dir: str | Path) -> RunReport
     html_path = out / f"{stem}.html"
     drawn = [(title, p) for title, p in figures if p is not None]
     missing = [t for t, p in figures if p is None]
-    judged = ((info.get("summary") or {}).get("misfire") or {}).get("worst_rev1000_pct", 0)
-    if judged is None:  # a ride without a whole 1000-revolution window is not judged
-        missing = [m for m in missing if not m.startswith("Misfire rate per")]
     html_path.write_text(page.run_page(store, run_id, ev, drawn, missing), encoding="utf-8")
     _write_index(out)
     return RunReport(run_id, html_path, [p for _, p in drawn])

@@ -6,10 +6,9 @@ from pathlib import Path
 
 import numpy as np
 from matplotlib.colors import LogNorm
-from matplotlib.ticker import MaxNLocator
 
 from crankbeat.dsp.events import FIRED, MISFIRE
-from crankbeat.logger.figures import interval_events, window_rows
+from crankbeat.logger.figures import interval_events, window_timeline
 from crankbeat.logger.report.style import (
     MISFIRE_COLOUR,
     MUTED_COLOUR,
@@ -91,35 +90,51 @@ def _robust_ylim(ax, e: np.ndarray) -> None:
 def plot_windows(store: Store, run_id: int, ev: np.ndarray, path: Path,
                  *, alert_pct: float | None = None, names: dict[int, str] | None = None
                  ) -> Path | None:
-    """Misfire rate per 1000-revolution window and cylinder (None when the run holds no whole
-    window: a shorter ride is not judged)."""
-    summary = store.run(run_id).get("summary") or {}
-    if (summary.get("misfire") or {}).get("worst_rev1000_pct", 0) is None:
+    """Misfire rate per 200- and per 1000-revolution window against time into the ride: all
+    cylinders together (the figure the alert is judged on) and each cylinder; the rig's alert
+    level on the 200-revolution panel. Windows cut short by the end of the ride are dotted and
+    not judged. None when the run holds no events."""
+    if not len(ev):
         return None
-    rows = window_rows(store, run_id, ev, revolutions=1000)
-    source = "stored windows" if store.windows(run_id, kind="rev1000") else \
-        "computed from the events"
-    if not rows:
-        return None
-    fig, ax = new_figure(10.0, 3.4)
-    cyls = sorted({w["cylinder"] for w in rows})
-    width = 0.8 / len(cyls)
-    for j, c in enumerate(cyls):
-        w = [r for r in rows if r["cylinder"] == c]
-        x = np.array([r["idx"] for r in w], dtype=float) + (j - (len(cyls) - 1) / 2) * width
-        y = [np.nan if r["rate"] is None else r["rate"] for r in w]
-        ax.bar(x, y, width=width, color=cyl_colour(c), label=f"cyl {(names or {}).get(c, c)}")
-    if alert_pct is not None:
-        ax.axhline(alert_pct, color=MISFIRE_COLOUR, lw=1, ls="--",
-                   label=f"rig alert level {alert_pct:g} %")
-    ax.set_xlabel("1000-revolution window number")
-    ax.xaxis.set_major_locator(MaxNLocator(integer=True))
-    ax.set_ylabel("misfire rate [%]")
-    ax.set_title(f"Misfire rate per 1000-revolution window ({source})")
-    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
-    ax.set_ylim(bottom=0)
+    fig, axes = new_figure(10.0, 5.6, nrows=2, sharex=True, squeeze=False)
+    for ax, revs in zip(axes[:, 0], (200, 1000), strict=True):
+        tl = window_timeline(store, run_id, ev, revolutions=revs)
+        _draw_windows(ax, tl, names or {})
+        if revs == 200 and alert_pct is not None:
+            ax.axhline(alert_pct, color=MISFIRE_COLOUR, lw=1.2, ls="--",
+                       label=f"rig alert level {alert_pct:g} %")
+            over = tl["complete"] & (tl["rate_pct"] > alert_pct)
+            for a, b in zip(tl["t_start"][over], tl["t_end"][over], strict=True):
+                ax.axvspan(a, b, color=MISFIRE_COLOUR, alpha=0.08, lw=0)
+        whole = int(np.sum(tl["complete"]))
+        ax.set_title(f"{revs}-revolution windows ({whole} whole"
+                     + (", none: not judged" if not whole else "")
+                     + (", the alert is judged on these" if revs == 200 else "") + ")",
+                     loc="left", fontsize=9)
+        ax.set_ylabel("misfire rate [%]")
+        ax.set_ylim(bottom=0)
+        ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
+    axes[-1, 0].set_xlabel("time into the ride [s]")
+    fig.suptitle("Misfire rate per revolution window (dsp window_rates on the stored events)",
+                 fontsize=9)
     save(fig, path)
     return path
+
+
+def _draw_windows(ax, tl: dict, names: dict[int, str]) -> None:
+    """Each window as a level segment over its time span: all cylinders bold, each cylinder
+    thin; dotted where the window is not whole."""
+    whole = tl["complete"]
+    for j in range(tl["per_cylinder"].shape[1]):
+        c = j + 1
+        y = tl["per_cylinder"][:, j]
+        for sel, ls in ((whole, "-"), (~whole, ":")):
+            ax.hlines(y[sel], tl["t_start"][sel], tl["t_end"][sel], colors=cyl_colour(c),
+                      lw=1.2, ls=ls, label=f"cyl {names.get(c, c)}" if ls == "-" else None)
+    for sel, ls in ((whole, "-"), (~whole, ":")):
+        ax.hlines(tl["rate_pct"][sel], tl["t_start"][sel], tl["t_end"][sel],
+                  colors=THRESHOLD_COLOUR, lw=2.4, ls=ls,
+                  label="all cylinders" if ls == "-" else "not whole (not judged)")
 
 
 def plot_intervals(ev: np.ndarray, path: Path, *, tolerance_deg: float | None = None,
