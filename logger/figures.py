@@ -133,3 +133,71 @@ def window_timeline(store: Store, run_id: int, ev: np.ndarray, *, revolutions: i
     return {"t_start": windows["t_start"] - t0, "t_end": windows["t_end"] - t0,
             "rate_pct": windows["rate_pct"], "complete": windows["complete"],
             "per_cylinder": per_cyl}
+
+
+def order_grid(store: Store, run_id: int, sensor: str, axis: str, *, max_order: float
+               ) -> dict | None:
+    """The stored order map of one sensor and axis on a regular rpm grid: ``orders`` (n_o,),
+    ``rpm_edges`` (n_b + 1,) spaced evenly by the store's band width from the lowest to the
+    highest visited band, ``amplitude`` (n_b, n_o) m/s², NaN in bands never visited. Every band
+    is equally wide, the low-rpm ones included. None without data."""
+    rows = [r for r in store.order_map(run_id, sensor=sensor)
+            if r["axis"] == axis and r["rpm_lo"] is not None and r["rpm_hi"] is not None
+            and r["order"] is not None and r["order"] <= max_order and r["amplitude"]]
+    if not rows:
+        return None
+    width = min(r["rpm_hi"] - r["rpm_lo"] for r in rows)
+    lo = min(r["rpm_lo"] for r in rows)
+    hi = max(r["rpm_hi"] for r in rows)
+    n_bands = int(round((hi - lo) / width))
+    orders = np.array(sorted({r["order"] for r in rows}))
+    grid = np.full((n_bands, orders.size), np.nan)
+    column = {o: i for i, o in enumerate(orders.tolist())}
+    for r in rows:
+        # a stored band wider than the finest one fills each fine row it covers
+        first = int(round((r["rpm_lo"] - lo) / width))
+        last = int(round((r["rpm_hi"] - lo) / width))
+        grid[first:last, column[r["order"]]] = r["amplitude"]
+    return {"orders": orders, "rpm_edges": lo + width * np.arange(n_bands + 1),
+            "amplitude": grid}
+
+
+def predicted_order_marks(engine, *, max_order: float) -> list[dict]:
+    """Orders the engine layout predicts (:func:`dsp.layout.predicted_orders`), one entry per
+    order: ``order``, ``sources`` (firing pulses / free force / free couple) and ``strength``
+    0..1 (firing pulses: relative to a cylinder's pulse train; forces and couples count 1).
+
+    Firing pulses weaker than half a pulse train are left out: they stay in the data but would
+    crowd the map (a twin-270 also excites 0.5, 3.5 and 4.5 at 0.38)."""
+    from crankbeat.dsp.layout import predicted_orders
+
+    words = {"torque": "firing pulses", "force": "free force", "couple": "free couple"}
+    found: dict[float, dict] = {}
+    for p in predicted_orders(engine, max_order=max_order):
+        order = float(p["order"])
+        if order > max_order or (p["source"] == "torque" and p["magnitude"] < 0.5):
+            continue
+        strength = float(p["magnitude"]) if p["source"] == "torque" else 1.0
+        mark = found.setdefault(order, {"order": order, "sources": [], "strength": 0.0})
+        mark["sources"].append(words[str(p["source"])])
+        mark["strength"] = max(mark["strength"], strength)
+    return sorted(found.values(), key=lambda m: m["order"])
+
+
+def main_orders(marks: list[dict], *, count: int = 4) -> list[float]:
+    """The orders worth a cut against rpm: the ``count`` lowest predicted ones (a twin-270's
+    first order and its half orders 1.5 and 2.5; a flat-plane four's 2, 4 and 6)."""
+    return [m["order"] for m in marks[:count]]
+
+
+def order_cuts(grid: dict, orders: list[float]) -> dict[float, tuple[np.ndarray, np.ndarray]]:
+    """Amplitude of each order against engine speed: ``{order: (band centre rpm, m/s²)}`` from
+    the order bin nearest each order (visited bands only)."""
+    centres = 0.5 * (grid["rpm_edges"][:-1] + grid["rpm_edges"][1:])
+    out = {}
+    for o in orders:
+        j = int(np.argmin(np.abs(grid["orders"] - o)))
+        amp = grid["amplitude"][:, j]
+        ok = np.isfinite(amp)
+        out[float(o)] = (centres[ok], amp[ok])
+    return out

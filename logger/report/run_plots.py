@@ -8,7 +8,15 @@ import numpy as np
 from matplotlib.colors import LogNorm
 
 from crankbeat.dsp.events import FIRED, MISFIRE
-from crankbeat.logger.figures import interval_events, window_timeline
+from crankbeat.logger.figures import (
+    interval_events,
+    main_orders,
+    order_cuts,
+    order_grid,
+    predicted_order_marks,
+    run_engine,
+    window_timeline,
+)
 from crankbeat.logger.report.style import (
     MISFIRE_COLOUR,
     MUTED_COLOUR,
@@ -213,57 +221,63 @@ def plot_contribution(ev: np.ndarray, path: Path) -> Path | None:
     return path
 
 
-def plot_order_map(store: Store, run_id: int, path: Path, *, max_order: float = 12.0
+def plot_order_map(store: Store, run_id: int, path: Path, *, max_order: float = 8.0
                    ) -> Path | None:
-    """rpm-vs-order map per sensor (colour = amplitude, log scale), orders up to ``max_order``.
-
-    The vector-sum map is drawn when the store has one, else each axis.
-    """
-    rows = [r for r in store.order_map(run_id)
-            if r["rpm_lo"] is not None and r["rpm_hi"] is not None and r["order"] is not None
-            and r["order"] <= max_order]
-    if not rows:
+    """Per sensor: the rpm-vs-order map (colour = amplitude, log scale, equal rpm bands) with
+    the orders the layout predicts marked, and beside it the cuts of the main predicted orders
+    against rpm. The vector-sum map is drawn when the store has one, else each axis."""
+    keys = sorted({(r["sensor"], r["axis"]) for r in store.order_map(run_id)})
+    keys = [k for k in keys if k[1] == "sum"] or keys
+    grids = [(k, order_grid(store, run_id, *k, max_order=max_order)) for k in keys]
+    grids = [(k, g) for k, g in grids if g is not None]
+    if not grids:
         return None
-    keys = sorted({(r["sensor"], r["axis"]) for r in rows})
-    summed = [k for k in keys if k[1] == "sum"]
-    keys = summed or keys
-    fig, axes = new_figure(5.2 * len(keys) + 1.0, 4.0, ncols=len(keys), squeeze=False)
-    for ax, (sensor, axis) in zip(axes[0], keys, strict=True):
-        sel = [r for r in rows if r["sensor"] == sensor and r["axis"] == axis]
-        # Bands that were never visited carry no amplitude (NULL or 0): leave them out.
-        visited = {(r["rpm_lo"], r["rpm_hi"]) for r in sel if r["amplitude"]}
-        bands = sorted(visited)
-        orders = sorted({r["order"] for r in sel})
-        if not bands or not orders:
-            ax.text(0.5, 0.5, "no data", transform=ax.transAxes, ha="center")
-            continue
-        grid = np.full((len(bands), len(orders)), np.nan)
-        bi = {b: i for i, b in enumerate(bands)}
-        oi = {o: i for i, o in enumerate(orders)}
-        for r in sel:
-            b = (r["rpm_lo"], r["rpm_hi"])
-            if b in bi and r["amplitude"]:
-                grid[bi[b], oi[r["order"]]] = r["amplitude"]
-        o = np.asarray(orders)
-        do = np.diff(o).min() if len(o) > 1 else 0.5
-        o_edges = np.concatenate([o - do / 2, [o[-1] + do / 2]])
-        r_edges = np.array([b[0] for b in bands] + [bands[-1][1]])
-        top = float(np.nanmax(grid))
-        # Log colours: the small orders (a weak cylinder's half order) must stay visible.
-        norm = LogNorm(vmin=max(top / 1000.0, float(np.nanmin(grid))), vmax=top)
-        if len(bands) > 1 and np.any(np.diff([b[0] for b in bands]) != np.diff(r_edges)[:-1]):
-            r_edges = np.arange(len(bands) + 1)  # gaps between bands: one row per band
-            ax.set_yticks(np.arange(len(bands)) + 0.5, [f"{lo:.0f}-{hi:.0f}" for lo, hi in bands])
-        mesh = ax.pcolormesh(o_edges, r_edges, np.clip(grid, norm.vmin, None), shading="flat",
-                             cmap="magma", norm=norm)
-        fig.colorbar(mesh, ax=ax, label="amplitude [m/s²]")
-        ax.set_xlabel("engine order [per crank revolution]")
-        ax.set_ylabel("engine speed [rpm]")
-        ax.set_title(f"order map, {sensor} ({'vector sum' if axis == 'sum' else axis})")
-        ax.set_xlim(0, min(max_order, o_edges[-1]))
-        ax.grid(False)
+    marks = predicted_order_marks(run_engine(store, run_id), max_order=min(max_order, 6.0))
+    fig, axes = new_figure(11.0, 4.2 * len(grids), nrows=len(grids), ncols=2, squeeze=False,
+                           gridspec_kw={"width_ratios": (1.25, 1.0)})
+    for row, ((sensor, axis), grid) in zip(axes, grids, strict=True):
+        where = f"{sensor} ({'vector sum' if axis == 'sum' else axis})"
+        _draw_order_map(fig, row[0], grid, marks, where)
+        _draw_order_cuts(row[1], grid, main_orders(marks), where)
     save(fig, path)
     return path
+
+
+def _draw_order_map(fig, ax, grid: dict, marks: list[dict], where: str) -> None:
+    o = grid["orders"]
+    do = float(np.diff(o).min()) if len(o) > 1 else 0.5
+    o_edges = np.concatenate([o - do / 2, [o[-1] + do / 2]])
+    amp = grid["amplitude"]
+    top = float(np.nanmax(amp))
+    # log colours: a weak cylinder's half order must stay visible beside the first order
+    norm = LogNorm(vmin=max(top / 1000.0, float(np.nanmin(amp))), vmax=top)
+    mesh = ax.pcolormesh(o_edges, grid["rpm_edges"], np.clip(amp, norm.vmin, None),
+                         shading="flat", cmap="magma", norm=norm)
+    fig.colorbar(mesh, ax=ax, label="amplitude [m/s²]")
+    for m in marks:
+        firing_only = m["sources"] == ["firing pulses"]
+        ax.axvline(m["order"], color="#7fe0d4" if firing_only else "#ffffff", lw=0.9,
+                   ls="--" if firing_only else ":", alpha=0.9)
+        ax.text(m["order"], 1.01, f"{m['order']:g}", transform=ax.get_xaxis_transform(),
+                ha="center", va="bottom", fontsize=6)
+    ax.set_xlabel("engine order [per crank revolution]")
+    ax.set_ylabel("engine speed [rpm]")
+    ax.set_title(f"order map, {where}; marked: orders the layout predicts\n(dashed: firing "
+                 "pulses, dotted: free force or couple; blank rows: rpm never held)",
+                 loc="left", pad=14, fontsize=8)
+    ax.set_xlim(0, o_edges[-1])
+    ax.grid(False)
+
+
+def _draw_order_cuts(ax, grid: dict, orders: list[float], where: str) -> None:
+    for j, (order, (rpm, amp)) in enumerate(order_cuts(grid, orders).items()):
+        ax.plot(rpm, amp, marker="o", ms=3, lw=1.2, color=cyl_colour(j + 1),
+                label=f"order {order:g}")
+    ax.set_yscale("log")
+    ax.set_xlabel("engine speed, band centre [rpm]")
+    ax.set_ylabel("amplitude [m/s²]")
+    ax.set_title(f"order cuts, {where}\n(the lowest orders the layout predicts)", loc="left")
+    ax.legend(loc="best", frameon=False)
 
 
 def plot_vibration(store: Store, run_id: int, path: Path) -> Path | None:
