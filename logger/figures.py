@@ -201,3 +201,20 @@ def order_cuts(grid: dict, orders: list[float]) -> dict[float, tuple[np.ndarray,
         ok = np.isfinite(amp)
         out[float(o)] = (centres[ok], amp[ok])
     return out
+
+
+def interval_pairs(ev: np.ndarray, summary: dict | None, engine) -> list[dict]:
+    """The events of :func:`interval_events` split by firing pair, in firing order from
+    cylinder 1: ``from_cyl`` (the cylinder that fired before), ``to_cyl``, ``expected_deg``
+    (what the layout promises) and ``observed_deg`` (array of the pair's intervals)."""
+    from crankbeat.dsp.layout import firing_sequence
+
+    used = interval_events(ev, summary)
+    seq = [int(c) for c in firing_sequence(engine)[0]]
+    out = []
+    for i, c in enumerate(seq):
+        sel = used[used["cylinder"] == c]
+        expected = float(np.median(sel["expected_interval_deg"])) if len(sel) else np.nan
+        out.append({"from_cyl": seq[i - 1], "to_cyl": c, "expected_deg": expected,
+                    "observed_deg": np.asarray(sel["interval_deg"], dtype=float)})
+    return out

@@ -7,7 +7,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from crankbeat.errors import CrankbeatError
-from crankbeat.logger.figures import cylinder_pairs, interval_error_by_cylinder
+from crankbeat.logger.figures import cylinder_pairs, interval_error_by_cylinder, run_engine
 from crankbeat.logger.report import page, run_plots
 from crankbeat.logger.report.trend import plot_trend
 from crankbeat.logger.store import Store
@@ -56,8 +56,9 @@ def make_run_report(store: Store, run_id: int, out_dir: str | Path) -> RunReport
             store, run_id, ev, out / f"{stem}_windows.png",
             alert_pct=limits.get("misfire_alert_pct"), names=names)),
         ("Firing intervals", run_plots.plot_intervals(
-            ev, out / f"{stem}_intervals.png", tolerance_deg=limits.get("interval_tolerance_deg"),
-            summary=info.get("summary"), checked=interval_error_by_cylinder(store, run_id))),
+            ev, out / f"{stem}_intervals.png", engine=run_engine(store, run_id),
+            tolerance_deg=limits.get("interval_tolerance_deg"), summary=info.get("summary"),
+            checked=interval_error_by_cylinder(store, run_id), names=names)),
         ("Contribution per cylinder",
          run_plots.plot_contribution(ev, out / f"{stem}_contribution.png")),
         ("Order map", run_plots.plot_order_map(store, run_id, out / f"{stem}_orders.png")),

@@ -9,7 +9,7 @@ from matplotlib.colors import LogNorm
 
 from crankbeat.dsp.events import FIRED, MISFIRE
 from crankbeat.logger.figures import (
-    interval_events,
+    interval_pairs,
     main_orders,
     order_cuts,
     order_grid,
@@ -145,46 +145,57 @@ def _draw_windows(ax, tl: dict, names: dict[int, str]) -> None:
                   label="all cylinders" if ls == "-" else "not whole (not judged)")
 
 
-def plot_intervals(ev: np.ndarray, path: Path, *, tolerance_deg: float | None = None,
+def plot_intervals(ev: np.ndarray, path: Path, *, engine, tolerance_deg: float | None = None,
                    summary: dict | None = None,
-                   checked: dict[int, tuple[float, int]] | None = None) -> Path | None:
-    """Histogram of observed firing intervals of fired events, one panel per expected value.
+                   checked: dict[int, tuple[float, int]] | None = None,
+                   names: dict[int, str] | None = None) -> Path | None:
+    """Histogram of observed firing intervals of fired events, one panel per firing pair
+    (``1 → 3``), in firing order.
 
-    Only the events the run's interval check used (from the tooth-error correction on); the
-    legend gives each cylinder's figure from that check (``checked``: to_cyl -> (error, n)),
-    the same number ``show`` prints.
+    Only the events the run's interval check used (from the tooth-error correction on); each
+    panel gives the pair's mean from that check (``checked``: to_cyl -> (error, n)), the same
+    number ``show`` prints.
     """
-    e = interval_events(ev, summary)
-    if not len(e):
+    pairs = [p for p in interval_pairs(ev, summary, engine) if p["observed_deg"].size]
+    if not pairs:
         return None
-    checked = checked or {}
-    groups = sorted({round(float(v), 1) for v in e["expected_interval_deg"]})
-    fig, axes = new_figure(6.0 * len(groups) + 0.6, 3.4, ncols=len(groups), squeeze=False)
-    for ax, g in zip(axes[0], groups, strict=True):
-        sel = e[np.isclose(e["expected_interval_deg"], g, atol=0.05)]
-        obs = sel["interval_deg"]
-        span = max(6.0, float(np.nanpercentile(np.abs(obs - g), 99.5)) * 1.2)
-        bins = np.linspace(g - span, g + span, 61)
-        for c in sorted(set(sel["cylinder"].tolist())):
-            label = f"ending at cyl {c}"
-            if c in checked:
-                label += f": mean {g + checked[c][0]:.2f}°"
-            ax.hist(np.clip(obs[sel["cylinder"] == c], bins[0], bins[-1]), bins=bins,
-                    histtype="step", lw=1.3, color=cyl_colour(c), label=label)
-        ax.axvline(g, color=THRESHOLD_COLOUR, lw=1.2, ls="--", label=f"expected {g:g}°")
-        if tolerance_deg:
-            ax.axvspan(g - tolerance_deg, g + tolerance_deg, color="#2bb3a3", alpha=0.12,
-                       label=f"rig tolerance on the mean ±{tolerance_deg:g}°")
-        outside = int(np.sum(np.abs(obs - g) > span))
-        if outside:
-            ax.text(0.99, 0.97, f"{outside} beyond the axis,\npiled at its ends",
-                    transform=ax.transAxes, ha="right", va="top", fontsize=7, color="#555555")
-        ax.set_xlabel("observed firing interval [crank deg]")
-        ax.set_ylabel("events")
-        ax.set_title(f"interval expected {g:g}° (means: the run's interval check)")
-        ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
+    checked, names = checked or {}, names or {}
+    ncols = 1 if len(pairs) == 1 else 2
+    nrows = -(-len(pairs) // ncols)
+    fig, axes = new_figure(11.0 if ncols == 2 else 6.5, 3.0 * nrows + 0.4, nrows=nrows,
+                           ncols=ncols, squeeze=False)
+    for ax, p in zip(axes.flat, pairs, strict=False):
+        _draw_pair(ax, p, tolerance_deg, checked, names)
+    for ax in list(axes.flat)[len(pairs):]:
+        ax.set_visible(False)
+    fig.suptitle("Firing intervals per firing pair (events after the wheel correction; "
+                 "means: the run's interval check)", fontsize=9)
     save(fig, path)
     return path
+
+
+def _draw_pair(ax, p: dict, tolerance_deg: float | None, checked: dict, names: dict) -> None:
+    g, obs, c = p["expected_deg"], p["observed_deg"], p["to_cyl"]
+    span = max(6.0, float(np.nanpercentile(np.abs(obs - g), 99.5)) * 1.2)
+    bins = np.linspace(g - span, g + span, 61)
+    ax.hist(np.clip(obs, bins[0], bins[-1]), bins=bins, histtype="stepfilled", alpha=0.35,
+            color=cyl_colour(c), edgecolor=cyl_colour(c), label=f"{obs.size} intervals")
+    ax.axvline(g, color=THRESHOLD_COLOUR, lw=1.2, ls="--", label=f"expected {g:g}°")
+    if c in checked:
+        ax.axvline(g + checked[c][0], color=cyl_colour(c), lw=1.6,
+                   label=f"mean {g + checked[c][0]:.2f}°")
+    if tolerance_deg:
+        ax.axvspan(g - tolerance_deg, g + tolerance_deg, color="#2bb3a3", alpha=0.12,
+                   label=f"tolerance on the mean ±{tolerance_deg:g}°")
+    outside = int(np.sum(np.abs(obs - g) > span))
+    if outside:
+        ax.text(0.99, 0.97, f"{outside} beyond the axis,\npiled at its ends",
+                transform=ax.transAxes, ha="right", va="top", fontsize=7, color="#555555")
+    ax.set_xlabel("observed firing interval [crank deg]")
+    ax.set_ylabel("events")
+    ax.set_title(f"cylinder {names.get(p['from_cyl'], p['from_cyl'])} → "
+                 f"{names.get(c, c)}", loc="left", fontsize=9)
+    ax.legend(loc="upper left", fontsize=7, frameon=False)
 
 
 def plot_contribution(ev: np.ndarray, path: Path) -> Path | None:
