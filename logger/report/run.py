@@ -10,6 +10,7 @@ from crankbeat.errors import CrankbeatError
 from crankbeat.logger.figures import cylinder_pairs, interval_error_by_cylinder, run_engine
 from crankbeat.logger.report import page, run_plots
 from crankbeat.logger.report.trend import plot_trend
+from crankbeat.logger.report.trend_data import trend_marks
 from crankbeat.logger.store import Store
 
 
@@ -22,7 +23,7 @@ class RunReport:
     figures: list[Path] = field(default_factory=list)
 
 
-def _limits(rig_toml: str) -> dict[str, float]:
+def rig_limits(rig_toml: str) -> dict[str, float]:
     """The rig's [limits] as stored with the run (model defaults where the file is silent)."""
     from crankbeat.logger.rig.model import Limits
 
@@ -47,7 +48,7 @@ def make_run_report(store: Store, run_id: int, out_dir: str | Path) -> RunReport
         raise CrankbeatError(f"cannot create report folder '{out}': {exc.strerror}") from None
     info = store.run(run_id)
     ev = store.events(run_id)
-    limits = _limits(store.rig_toml(run_id))
+    limits = rig_limits(store.rig_toml(run_id))
     stem = f"run{run_id}"
     names = cylinder_pairs(store, run_id)
     figures: list[tuple[str, Path | None]] = [
@@ -68,7 +69,8 @@ def make_run_report(store: Store, run_id: int, out_dir: str | Path) -> RunReport
     points = store.trend("misfire_rate", rig=info["rig"], last=30)
     if len({p.run_id for p in points}) > 1:
         figures.append(("Misfire rate across the runs of this rig", plot_trend(
-            points, out / f"{stem}_trend_misfire.png", metric="misfire_rate")))
+            points, out / f"{stem}_trend_misfire.png", metric="misfire_rate",
+            marks=trend_marks(store, points, "misfire_rate"))))
     html_path = out / f"{stem}.html"
     drawn = [(title, p) for title, p in figures if p is not None]
     missing = [t for t, p in figures if p is None]
