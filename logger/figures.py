@@ -218,3 +218,61 @@ def interval_pairs(ev: np.ndarray, summary: dict | None, engine) -> list[dict]:
         out.append({"from_cyl": seq[i - 1], "to_cyl": c, "expected_deg": expected,
                     "observed_deg": np.asarray(sel["interval_deg"], dtype=float)})
     return out
+
+
+#: Status channels the channel view draws, in this order (those the run stored).
+VIEW_CHANNELS = ("rpm", "throttle", "gear", "road_speed", "coolant")
+
+
+def spans_of(t: np.ndarray, gap_s: float) -> list[tuple[float, float]]:
+    """Runs of times no more than ``gap_s`` apart, as (first, last) pairs."""
+    t = np.sort(t[np.isfinite(t)])
+    if not t.size:
+        return []
+    cut = np.flatnonzero(np.diff(t) > gap_s)
+    starts = np.concatenate([[0], cut + 1])
+    ends = np.concatenate([cut, [t.size - 1]])
+    return [(float(t[a]), float(t[b])) for a, b in zip(starts, ends, strict=True)]
+
+
+def channel_view(store: Store, run_id: int, ev: np.ndarray | None = None) -> dict:
+    """Everything the time-aligned channel view draws, times in s into the ride: ``channels``
+    ({name: (t, value)} of :data:`VIEW_CHANNELS` the run stored), ``events`` (the run's events
+    with ``t`` shifted), ``masked_spans`` (runs of masked events: the rough-road masks, events
+    less than 0.5 s apart joined), ``correction_from`` (s where the tooth-error correction took
+    effect, None if it held from the start or never)."""
+    from crankbeat.dsp.events import MASKED
+
+    ev = store.events(run_id) if ev is None else ev
+    t0 = ride_start(store, run_id, ev)
+    stored = store.channels(run_id, names=VIEW_CHANNELS)
+    channels = {n: (stored[n][0] - t0, stored[n][1]) for n in VIEW_CHANNELS if n in stored}
+    shifted = ev.copy()
+    shifted["t"] = shifted["t"] - t0
+    masked = shifted["t"][shifted["verdict"] == MASKED]
+    t_fix = intervals_from_t(store.run(run_id).get("summary"))
+    return {"channels": channels, "events": shifted, "masked_spans": spans_of(masked, 0.5),
+            "correction_from": None if t_fix is None else t_fix - t0}
+
+
+def event_neighbourhood(ev: np.ndarray, index: int, *, cycles: int = 10) -> dict:
+    """The events of the ``cycles`` working cycles either side of event ``index``: ``events``,
+    ``centre`` (its position among them) and ``reference`` (median metric of its cylinder's
+    fired events over the whole run: what that cylinder's combustion usually looks like)."""
+    from crankbeat.dsp.events import FIRED
+
+    e = ev[index]
+    near = np.flatnonzero(np.abs(ev["cycle"] - e["cycle"]) <= cycles)
+    own = ev[(ev["cylinder"] == e["cylinder"]) & (ev["verdict"] == FIRED)]
+    ref = float(np.nanmedian(own["metric"])) if len(own) else float("nan")
+    return {"events": ev[near], "centre": int(np.flatnonzero(near == index)[0]),
+            "reference": ref}
+
+
+def event_at(ev: np.ndarray, t_ride: float, t0: float, *, cylinder: int | None = None) -> int:
+    """Index of the event nearest ``t_ride`` s into the ride (of ``cylinder`` if given)."""
+    cand = np.flatnonzero(np.isfinite(ev["t"]) & (
+        True if cylinder is None else ev["cylinder"] == cylinder))
+    if not cand.size:
+        raise ValueError("no event with a time")
+    return int(cand[np.argmin(np.abs(ev["t"][cand] - t0 - t_ride))])

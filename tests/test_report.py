@@ -61,7 +61,7 @@ def test_run_report_embeds_every_figure(filled, tmp_path):
         rep = make_run_report(st, run, tmp_path / "out")
     names = sorted(p.name for p in rep.figures)
     assert names == sorted(f"run{run}_{k}.png" for k in (
-        "metric", "windows", "intervals", "contribution", "orders", "vibration",
+        "channels", "metric", "windows", "intervals", "contribution", "orders", "vibration",
         "trend_misfire"))
     parser = _Images()
     parser.feed(rep.html.read_text(encoding="utf-8"))
@@ -86,8 +86,8 @@ def test_a_run_without_data_says_what_is_missing(filled, tmp_path):
         empty = st.begin_run(larch_like_rig(), label="killed-at-once")  # incomplete, no events
         rep = make_run_report(st, empty, tmp_path / "o2")
     text = rep.html.read_text()
-    assert ("Not drawn (no data in the store): Per-event metric, Misfire rate per 200 and 1000 "
-            "revolutions, Firing intervals, Contribution per cylinder, Order map, "
+    assert ("Not drawn (no data in the store): Channels on one time axis, Per-event metric, "
+            "Misfire rate per 200 and 1000 revolutions, Firing intervals, Contribution per cylinder, Order map, "
             "Vibration against rpm") in text
     assert [p.name for p in rep.figures] == [f"run{empty}_trend_misfire.png"]
     assert "incomplete" in text
