@@ -87,8 +87,8 @@ def test_a_run_without_data_says_what_is_missing(filled, tmp_path):
         rep = make_run_report(st, empty, tmp_path / "o2")
     text = rep.html.read_text()
     assert ("Not drawn (no data in the store): Channels on one time axis, Per-event metric, "
-            "Misfire rate per 200 and 1000 revolutions, Firing intervals, Contribution per cylinder, Order map, "
-            "Vibration against rpm") in text
+            "Misfire rate per 200 and 1000 revolutions, Firing intervals, Contribution per "
+            "cylinder, Order map, Vibration against rpm") in text
     assert [p.name for p in rep.figures] == [f"run{empty}_trend_misfire.png"]
     assert "incomplete" in text
 

@@ -7,7 +7,12 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from crankbeat.errors import CrankbeatError
-from crankbeat.logger.figures import cylinder_pairs, interval_error_by_cylinder, run_engine
+from crankbeat.logger.figures import (
+    cylinder_pairs,
+    interval_error_by_cylinder,
+    ride_start,
+    run_engine,
+)
 from crankbeat.logger.report import channel_plots, page, run_plots
 from crankbeat.logger.report.trend import plot_trend
 from crankbeat.logger.report.trend_data import trend_marks
@@ -54,7 +59,8 @@ def make_run_report(store: Store, run_id: int, out_dir: str | Path) -> RunReport
     figures: list[tuple[str, Path | None]] = [
         ("Channels on one time axis",
          channel_plots.plot_channels(store, run_id, out / f"{stem}_channels.png")),
-        ("Per-event metric", run_plots.plot_metric(ev, out / f"{stem}_metric.png", names=names)),
+        ("Per-event metric", run_plots.plot_metric(
+            ev, out / f"{stem}_metric.png", names=names, t0=ride_start(store, run_id, ev))),
         ("Misfire rate per 200 and 1000 revolutions", run_plots.plot_windows(
             store, run_id, ev, out / f"{stem}_windows.png",
             alert_pct=limits.get("misfire_alert_pct"), names=names)),

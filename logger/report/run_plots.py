@@ -31,11 +31,12 @@ from crankbeat.logger.store import Store
 _MAX_DOTS = 40_000
 
 
-def plot_metric(ev: np.ndarray, path: Path, *, names: dict[int, str] | None = None
-                ) -> Path | None:
+def plot_metric(ev: np.ndarray, path: Path, *, names: dict[int, str] | None = None,
+                t0: float | None = None) -> Path | None:
     """Per-event metric over time, one panel per cylinder, threshold and misfires marked.
 
-    ``names``: cylinder -> shown name ("2/3" where the run's 720° phase is unknown)."""
+    ``names``: cylinder -> shown name ("2/3" where the run's 720° phase is unknown); ``t0``:
+    the ride's start (:func:`logger.figures.ride_start`; default the first event)."""
     names = names or {}
     cyls = sorted(set(ev["cylinder"].tolist()))
     if not cyls:
@@ -43,8 +44,9 @@ def plot_metric(ev: np.ndarray, path: Path, *, names: dict[int, str] | None = No
     fig, axes = new_figure(10.0, 2.0 * len(cyls) + 0.9, nrows=len(cyls), sharex=True,
                            squeeze=False)
     # CAN logs carry wall-clock seconds (~1.7e9): plot time since the first event instead.
-    finite = ev["t"][np.isfinite(ev["t"])]
-    t0 = float(finite.min()) if finite.size else 0.0
+    if t0 is None:
+        finite = ev["t"][np.isfinite(ev["t"])]
+        t0 = float(finite.min()) if finite.size else 0.0
     ev = ev.copy()
     ev["t"] = ev["t"] - t0
     for ax, c in zip(axes[:, 0], cyls, strict=True):
@@ -67,7 +69,7 @@ def plot_metric(ev: np.ndarray, path: Path, *, names: dict[int, str] | None = No
         ax.set_ylabel("metric [-]")
         # Outside the axes, so that no marker is hidden behind the legend.
         ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), markerscale=2, frameon=False)
-    axes[-1, 0].set_xlabel(f"time since the first event [s]  (CAN time {t0:.3f} s)")
+    axes[-1, 0].set_xlabel(f"time into the ride [s]  (CAN time {t0:.3f} s)")
     fig.suptitle("Speed-fluctuation metric per firing event (larger = weaker combustion); "
                  "not judged = masked, unusable or fuel cut", fontsize=9)
     save(fig, path)

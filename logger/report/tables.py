@@ -167,6 +167,8 @@ def _brief(entry: dict) -> str:
             continue
         if isinstance(v, list) and v and isinstance(v[0], dict):
             parts.append(f"{len(v)} {k}s: " + ", ".join(str(x.get("name", "?")) for x in v))
+        elif k == "id" and isinstance(v, int) and not isinstance(v, bool):
+            parts.append(f"id 0x{v:X}")  # CAN ids are read in hex
         elif not isinstance(v, dict):
             parts.append(f"{k} {_value(v)}")
     return "; ".join(parts)
