@@ -25,6 +25,17 @@ def intervals_from_t(summary: dict | None) -> float | None:
     return float(value) if isinstance(value, int | float) else None
 
 
+def ride_start(store: Store, run_id: int, ev: np.ndarray | None = None) -> float:
+    """Time zero of every "s into the ride" axis and table: the summary's CAN start time, else
+    the first event's time, else 0."""
+    t0 = (store.run(run_id).get("summary") or {}).get("t_start")
+    if isinstance(t0, int | float) and np.isfinite(t0):
+        return float(t0)
+    ev = store.events(run_id) if ev is None else ev
+    finite = ev["t"][np.isfinite(ev["t"])] if len(ev) else np.zeros(0)
+    return float(finite.min()) if finite.size else 0.0
+
+
 def wheel_corrected(summary: dict | None) -> bool:
     """Whether the run's firing intervals are on a corrected wheel (a correction from an
     earlier run, or one learnt during this run); runs stored without that record count as yes."""
@@ -106,3 +117,162 @@ def cylinder_pairs(store: Store, run_id: int) -> dict[int, str]:
 def cylinder_name(cylinder: int, pairs: dict[int, str]) -> str:
     """``"2/3"`` where the phase is unknown, else the cylinder number."""
     return pairs.get(int(cylinder), str(cylinder))
+
+
+def window_timeline(store: Store, run_id: int, ev: np.ndarray, *, revolutions: int) -> dict:
+    """Revolution windows against time, from :func:`dsp.analysis.window_rates` on the events
+    with the engine of the run's own rig file (the figures the run's alert was judged on).
+
+    Returns a dict of arrays, one entry per window: ``t_start``, ``t_end`` (s into the ride),
+    ``rate_pct`` (all cylinders together, the alert's figure), ``complete`` (the window spans
+    its full number of revolutions; only those are judged) and ``per_cylinder`` (n_win, n_cyl).
+    """
+    engine = run_engine(store, run_id)
+    windows, per_cyl = window_rates(ev, revolutions=revolutions, engine=engine)
+    t0 = ride_start(store, run_id, ev)
+    return {"t_start": windows["t_start"] - t0, "t_end": windows["t_end"] - t0,
+            "rate_pct": windows["rate_pct"], "complete": windows["complete"],
+            "per_cylinder": per_cyl}
+
+
+def order_grid(store: Store, run_id: int, sensor: str, axis: str, *, max_order: float
+               ) -> dict | None:
+    """The stored order map of one sensor and axis on a regular rpm grid: ``orders`` (n_o,),
+    ``rpm_edges`` (n_b + 1,) spaced evenly by the store's band width from the lowest to the
+    highest visited band, ``amplitude`` (n_b, n_o) m/s², NaN in bands never visited. Every band
+    is equally wide, the low-rpm ones included. None without data."""
+    rows = [r for r in store.order_map(run_id, sensor=sensor)
+            if r["axis"] == axis and r["rpm_lo"] is not None and r["rpm_hi"] is not None
+            and r["order"] is not None and r["order"] <= max_order and r["amplitude"]]
+    if not rows:
+        return None
+    width = min(r["rpm_hi"] - r["rpm_lo"] for r in rows)
+    lo = min(r["rpm_lo"] for r in rows)
+    hi = max(r["rpm_hi"] for r in rows)
+    n_bands = int(round((hi - lo) / width))
+    orders = np.array(sorted({r["order"] for r in rows}))
+    grid = np.full((n_bands, orders.size), np.nan)
+    column = {o: i for i, o in enumerate(orders.tolist())}
+    for r in rows:
+        # a stored band wider than the finest one fills each fine row it covers
+        first = int(round((r["rpm_lo"] - lo) / width))
+        last = int(round((r["rpm_hi"] - lo) / width))
+        grid[first:last, column[r["order"]]] = r["amplitude"]
+    return {"orders": orders, "rpm_edges": lo + width * np.arange(n_bands + 1),
+            "amplitude": grid}
+
+
+def predicted_order_marks(engine, *, max_order: float) -> list[dict]:
+    """Orders the engine layout predicts (:func:`dsp.layout.predicted_orders`), one entry per
+    order: ``order``, ``sources`` (firing pulses / free force / free couple) and ``strength``
+    0..1 (firing pulses: relative to a cylinder's pulse train; forces and couples count 1).
+
+    Firing pulses weaker than half a pulse train are left out: they stay in the data but would
+    crowd the map (a twin-270 also excites 0.5, 3.5 and 4.5 at 0.38)."""
+    from crankbeat.dsp.layout import predicted_orders
+
+    words = {"torque": "firing pulses", "force": "free force", "couple": "free couple"}
+    found: dict[float, dict] = {}
+    for p in predicted_orders(engine, max_order=max_order):
+        order = float(p["order"])
+        if order > max_order or (p["source"] == "torque" and p["magnitude"] < 0.5):
+            continue
+        strength = float(p["magnitude"]) if p["source"] == "torque" else 1.0
+        mark = found.setdefault(order, {"order": order, "sources": [], "strength": 0.0})
+        mark["sources"].append(words[str(p["source"])])
+        mark["strength"] = max(mark["strength"], strength)
+    return sorted(found.values(), key=lambda m: m["order"])
+
+
+def main_orders(marks: list[dict], *, count: int = 4) -> list[float]:
+    """The orders worth a cut against rpm: the ``count`` lowest predicted ones (a twin-270's
+    first order and its half orders 1.5 and 2.5; a flat-plane four's 2, 4 and 6)."""
+    return [m["order"] for m in marks[:count]]
+
+
+def order_cuts(grid: dict, orders: list[float]) -> dict[float, tuple[np.ndarray, np.ndarray]]:
+    """Amplitude of each order against engine speed: ``{order: (band centre rpm, m/s²)}`` from
+    the order bin nearest each order (visited bands only)."""
+    centres = 0.5 * (grid["rpm_edges"][:-1] + grid["rpm_edges"][1:])
+    out = {}
+    for o in orders:
+        j = int(np.argmin(np.abs(grid["orders"] - o)))
+        amp = grid["amplitude"][:, j]
+        ok = np.isfinite(amp)
+        out[float(o)] = (centres[ok], amp[ok])
+    return out
+
+
+def interval_pairs(ev: np.ndarray, summary: dict | None, engine) -> list[dict]:
+    """The events of :func:`interval_events` split by firing pair, in firing order from
+    cylinder 1: ``from_cyl`` (the cylinder that fired before), ``to_cyl``, ``expected_deg``
+    (what the layout promises) and ``observed_deg`` (array of the pair's intervals)."""
+    from crankbeat.dsp.layout import firing_sequence
+
+    used = interval_events(ev, summary)
+    seq = [int(c) for c in firing_sequence(engine)[0]]
+    out = []
+    for i, c in enumerate(seq):
+        sel = used[used["cylinder"] == c]
+        expected = float(np.median(sel["expected_interval_deg"])) if len(sel) else np.nan
+        out.append({"from_cyl": seq[i - 1], "to_cyl": c, "expected_deg": expected,
+                    "observed_deg": np.asarray(sel["interval_deg"], dtype=float)})
+    return out
+
+
+#: Status channels the channel view draws, in this order (those the run stored).
+VIEW_CHANNELS = ("rpm", "throttle", "gear", "road_speed", "coolant")
+
+
+def spans_of(t: np.ndarray, gap_s: float) -> list[tuple[float, float]]:
+    """Runs of times no more than ``gap_s`` apart, as (first, last) pairs."""
+    t = np.sort(t[np.isfinite(t)])
+    if not t.size:
+        return []
+    cut = np.flatnonzero(np.diff(t) > gap_s)
+    starts = np.concatenate([[0], cut + 1])
+    ends = np.concatenate([cut, [t.size - 1]])
+    return [(float(t[a]), float(t[b])) for a, b in zip(starts, ends, strict=True)]
+
+
+def channel_view(store: Store, run_id: int, ev: np.ndarray | None = None) -> dict:
+    """Everything the time-aligned channel view draws, times in s into the ride: ``channels``
+    ({name: (t, value)} of :data:`VIEW_CHANNELS` the run stored), ``events`` (the run's events
+    with ``t`` shifted), ``masked_spans`` (runs of masked events: the rough-road masks, events
+    less than 0.5 s apart joined), ``correction_from`` (s where the tooth-error correction took
+    effect, None if it held from the start or never)."""
+    from crankbeat.dsp.events import MASKED
+
+    ev = store.events(run_id) if ev is None else ev
+    t0 = ride_start(store, run_id, ev)
+    stored = store.channels(run_id, names=VIEW_CHANNELS)
+    channels = {n: (stored[n][0] - t0, stored[n][1]) for n in VIEW_CHANNELS if n in stored}
+    shifted = ev.copy()
+    shifted["t"] = shifted["t"] - t0
+    masked = shifted["t"][shifted["verdict"] == MASKED]
+    t_fix = intervals_from_t(store.run(run_id).get("summary"))
+    return {"channels": channels, "events": shifted, "masked_spans": spans_of(masked, 0.5),
+            "correction_from": None if t_fix is None else t_fix - t0}
+
+
+def event_neighbourhood(ev: np.ndarray, index: int, *, cycles: int = 10) -> dict:
+    """The events of the ``cycles`` working cycles either side of event ``index``: ``events``,
+    ``centre`` (its position among them) and ``reference`` (median metric of its cylinder's
+    fired events over the whole run: what that cylinder's combustion usually looks like)."""
+    from crankbeat.dsp.events import FIRED
+
+    e = ev[index]
+    near = np.flatnonzero(np.abs(ev["cycle"] - e["cycle"]) <= cycles)
+    own = ev[(ev["cylinder"] == e["cylinder"]) & (ev["verdict"] == FIRED)]
+    ref = float(np.nanmedian(own["metric"])) if len(own) else float("nan")
+    return {"events": ev[near], "centre": int(np.flatnonzero(near == index)[0]),
+            "reference": ref}
+
+
+def event_at(ev: np.ndarray, t_ride: float, t0: float, *, cylinder: int | None = None) -> int:
+    """Index of the event nearest ``t_ride`` s into the ride (of ``cylinder`` if given)."""
+    cand = np.flatnonzero(np.isfinite(ev["t"]) & (
+        True if cylinder is None else ev["cylinder"] == cylinder))
+    if not cand.size:
+        raise ValueError("no event with a time")
+    return int(cand[np.argmin(np.abs(ev["t"][cand] - t0 - t_ride))])

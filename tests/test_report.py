@@ -26,7 +26,7 @@ class _Images(HTMLParser):
     def handle_starttag(self, tag, attrs):
         if tag == "img":
             self.srcs.append(dict(attrs)["src"])
-        self._in_h2 = tag == "h2"
+        self._in_h2 = tag in ("h2", "h3")
 
     def handle_data(self, data):
         if self._in_h2:
@@ -61,7 +61,7 @@ def test_run_report_embeds_every_figure(filled, tmp_path):
         rep = make_run_report(st, run, tmp_path / "out")
     names = sorted(p.name for p in rep.figures)
     assert names == sorted(f"run{run}_{k}.png" for k in (
-        "metric", "windows", "intervals", "contribution", "orders", "vibration",
+        "channels", "metric", "windows", "intervals", "contribution", "orders", "vibration",
         "trend_misfire"))
     parser = _Images()
     parser.feed(rep.html.read_text(encoding="utf-8"))
@@ -73,8 +73,8 @@ def test_run_report_embeds_every_figure(filled, tmp_path):
         assert w >= 500 and h >= 300  # readable size at 110 dpi
     assert "Firing intervals" in parser.titles
     assert "Summary" in parser.titles and "note: synthetic" in rep.html.read_text()
-    # Self-contained: nothing is fetched from elsewhere.
-    assert not re.search(r"(src|href)=['\"](?!data:)", rep.html.read_text())
+    # Self-contained: nothing is fetched from elsewhere (links within the folder only).
+    assert not re.search(r"(src|href)=['\"](?!data:|#|index\.html)", rep.html.read_text())
     assert f"href='run{run}.html'" in (tmp_path / "out" / "index.html").read_text()
 
 
@@ -86,9 +86,9 @@ def test_a_run_without_data_says_what_is_missing(filled, tmp_path):
         empty = st.begin_run(larch_like_rig(), label="killed-at-once")  # incomplete, no events
         rep = make_run_report(st, empty, tmp_path / "o2")
     text = rep.html.read_text()
-    assert ("Not drawn (no data in the store): Per-event metric, Misfire rate per 1000 "
-            "revolutions, Firing intervals, Contribution per cylinder, Order map, "
-            "Vibration against rpm") in text
+    assert ("Not drawn (no data in the store): Channels on one time axis, Per-event metric, "
+            "Misfire rate per 200 and 1000 revolutions, Firing intervals, Contribution per "
+            "cylinder, Order map, Vibration against rpm") in text
     assert [p.name for p in rep.figures] == [f"run{empty}_trend_misfire.png"]
     assert "incomplete" in text
 

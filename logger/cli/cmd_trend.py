@@ -37,11 +37,16 @@ def run(args: argparse.Namespace) -> int:
         points = store.trend(args.metric, rig=args.rig, cylinder=args.cylinder,
                              rpm_band=args.rpm, by=args.by, last=args.last,
                              tags=dict(parse_tag(t) for t in args.tag))
+        from crankbeat.logger.report.trend_data import trend_marks
+        from crankbeat.logger.store.trend import parse_rpm_band
+
+        marks = trend_marks(store, points, args.metric,
+                            rpm_band=parse_rpm_band(args.rpm) if args.rpm else None)
         if args.plot:
             from crankbeat.logger.report.trend import plot_trend
 
             plot_trend(points, Path(args.plot), metric=args.metric, by=args.by,
-                       rpm_band=args.rpm)
+                       rpm_band=args.rpm, marks=marks)
     if args.json:
         print_json([p.__dict__ for p in points])
         return 0
@@ -53,10 +58,12 @@ def run(args: argparse.Namespace) -> int:
     print(f"rig {points[0].rig}{tags}")
     x_head = "km" if args.by == "odometer" else "started"
     print(table(
-        ["run", "label", x_head, "series", f"{args.metric}{f' [{unit}]' if unit else ''}", "n"],
+        ["run", "label", x_head, "series", f"{args.metric}{f' [{unit}]' if unit else ''}",
+         "± s.e.", "n", "not on equal terms"],
         [[p.run_id, (p.label or "-") + ("" if p.status == "complete" else f" ({p.status})"),
           fmt(p.odometer_km, ".0f") if args.by == "odometer" else p.started_at,
-          p.series, fmt(p.value, ".3f"), p.n] for p in points],
+          p.series, fmt(p.value, ".3f"), fmt(marks.stderr.get((p.run_id, p.series)), ".3f"),
+          p.n, ", ".join(marks.flags.get(p.run_id, [])) or "-"] for p in points],
         indent="",
     ))
     if args.plot:

@@ -6,10 +6,17 @@ from pathlib import Path
 
 import numpy as np
 from matplotlib.colors import LogNorm
-from matplotlib.ticker import MaxNLocator
 
 from crankbeat.dsp.events import FIRED, MISFIRE
-from crankbeat.logger.figures import interval_events, window_rows
+from crankbeat.logger.figures import (
+    interval_pairs,
+    main_orders,
+    order_cuts,
+    order_grid,
+    predicted_order_marks,
+    run_engine,
+    window_timeline,
+)
 from crankbeat.logger.report.style import (
     MISFIRE_COLOUR,
     MUTED_COLOUR,
@@ -24,11 +31,12 @@ from crankbeat.logger.store import Store
 _MAX_DOTS = 40_000
 
 
-def plot_metric(ev: np.ndarray, path: Path, *, names: dict[int, str] | None = None
-                ) -> Path | None:
+def plot_metric(ev: np.ndarray, path: Path, *, names: dict[int, str] | None = None,
+                t0: float | None = None) -> Path | None:
     """Per-event metric over time, one panel per cylinder, threshold and misfires marked.
 
-    ``names``: cylinder -> shown name ("2/3" where the run's 720° phase is unknown)."""
+    ``names``: cylinder -> shown name ("2/3" where the run's 720° phase is unknown); ``t0``:
+    the ride's start (:func:`logger.figures.ride_start`; default the first event)."""
     names = names or {}
     cyls = sorted(set(ev["cylinder"].tolist()))
     if not cyls:
@@ -36,8 +44,9 @@ def plot_metric(ev: np.ndarray, path: Path, *, names: dict[int, str] | None = No
     fig, axes = new_figure(10.0, 2.0 * len(cyls) + 0.9, nrows=len(cyls), sharex=True,
                            squeeze=False)
     # CAN logs carry wall-clock seconds (~1.7e9): plot time since the first event instead.
-    finite = ev["t"][np.isfinite(ev["t"])]
-    t0 = float(finite.min()) if finite.size else 0.0
+    if t0 is None:
+        finite = ev["t"][np.isfinite(ev["t"])]
+        t0 = float(finite.min()) if finite.size else 0.0
     ev = ev.copy()
     ev["t"] = ev["t"] - t0
     for ax, c in zip(axes[:, 0], cyls, strict=True):
@@ -60,7 +69,7 @@ def plot_metric(ev: np.ndarray, path: Path, *, names: dict[int, str] | None = No
         ax.set_ylabel("metric [-]")
         # Outside the axes, so that no marker is hidden behind the legend.
         ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), markerscale=2, frameon=False)
-    axes[-1, 0].set_xlabel(f"time since the first event [s]  (CAN time {t0:.3f} s)")
+    axes[-1, 0].set_xlabel(f"time into the ride [s]  (CAN time {t0:.3f} s)")
     fig.suptitle("Speed-fluctuation metric per firing event (larger = weaker combustion); "
                  "not judged = masked, unusable or fuel cut", fontsize=9)
     save(fig, path)
@@ -91,77 +100,104 @@ def _robust_ylim(ax, e: np.ndarray) -> None:
 def plot_windows(store: Store, run_id: int, ev: np.ndarray, path: Path,
                  *, alert_pct: float | None = None, names: dict[int, str] | None = None
                  ) -> Path | None:
-    """Misfire rate per 1000-revolution window and cylinder (None when the run holds no whole
-    window: a shorter ride is not judged)."""
-    summary = store.run(run_id).get("summary") or {}
-    if (summary.get("misfire") or {}).get("worst_rev1000_pct", 0) is None:
+    """Misfire rate per 200- and per 1000-revolution window against time into the ride: all
+    cylinders together (the figure the alert is judged on) and each cylinder; the rig's alert
+    level on the 200-revolution panel. Windows cut short by the end of the ride are dotted and
+    not judged. None when the run holds no events."""
+    if not len(ev):
         return None
-    rows = window_rows(store, run_id, ev, revolutions=1000)
-    source = "stored windows" if store.windows(run_id, kind="rev1000") else \
-        "computed from the events"
-    if not rows:
-        return None
-    fig, ax = new_figure(10.0, 3.4)
-    cyls = sorted({w["cylinder"] for w in rows})
-    width = 0.8 / len(cyls)
-    for j, c in enumerate(cyls):
-        w = [r for r in rows if r["cylinder"] == c]
-        x = np.array([r["idx"] for r in w], dtype=float) + (j - (len(cyls) - 1) / 2) * width
-        y = [np.nan if r["rate"] is None else r["rate"] for r in w]
-        ax.bar(x, y, width=width, color=cyl_colour(c), label=f"cyl {(names or {}).get(c, c)}")
-    if alert_pct is not None:
-        ax.axhline(alert_pct, color=MISFIRE_COLOUR, lw=1, ls="--",
-                   label=f"rig alert level {alert_pct:g} %")
-    ax.set_xlabel("1000-revolution window number")
-    ax.xaxis.set_major_locator(MaxNLocator(integer=True))
-    ax.set_ylabel("misfire rate [%]")
-    ax.set_title(f"Misfire rate per 1000-revolution window ({source})")
-    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
-    ax.set_ylim(bottom=0)
-    save(fig, path)
-    return path
-
-
-def plot_intervals(ev: np.ndarray, path: Path, *, tolerance_deg: float | None = None,
-                   summary: dict | None = None,
-                   checked: dict[int, tuple[float, int]] | None = None) -> Path | None:
-    """Histogram of observed firing intervals of fired events, one panel per expected value.
-
-    Only the events the run's interval check used (from the tooth-error correction on); the
-    legend gives each cylinder's figure from that check (``checked``: to_cyl -> (error, n)),
-    the same number ``show`` prints.
-    """
-    e = interval_events(ev, summary)
-    if not len(e):
-        return None
-    checked = checked or {}
-    groups = sorted({round(float(v), 1) for v in e["expected_interval_deg"]})
-    fig, axes = new_figure(6.0 * len(groups) + 0.6, 3.4, ncols=len(groups), squeeze=False)
-    for ax, g in zip(axes[0], groups, strict=True):
-        sel = e[np.isclose(e["expected_interval_deg"], g, atol=0.05)]
-        obs = sel["interval_deg"]
-        span = max(6.0, float(np.nanpercentile(np.abs(obs - g), 99.5)) * 1.2)
-        bins = np.linspace(g - span, g + span, 61)
-        for c in sorted(set(sel["cylinder"].tolist())):
-            label = f"ending at cyl {c}"
-            if c in checked:
-                label += f": mean {g + checked[c][0]:.2f}°"
-            ax.hist(np.clip(obs[sel["cylinder"] == c], bins[0], bins[-1]), bins=bins,
-                    histtype="step", lw=1.3, color=cyl_colour(c), label=label)
-        ax.axvline(g, color=THRESHOLD_COLOUR, lw=1.2, ls="--", label=f"expected {g:g}°")
-        if tolerance_deg:
-            ax.axvspan(g - tolerance_deg, g + tolerance_deg, color="#2bb3a3", alpha=0.12,
-                       label=f"rig tolerance on the mean ±{tolerance_deg:g}°")
-        outside = int(np.sum(np.abs(obs - g) > span))
-        if outside:
-            ax.text(0.99, 0.97, f"{outside} beyond the axis,\npiled at its ends",
-                    transform=ax.transAxes, ha="right", va="top", fontsize=7, color="#555555")
-        ax.set_xlabel("observed firing interval [crank deg]")
-        ax.set_ylabel("events")
-        ax.set_title(f"interval expected {g:g}° (means: the run's interval check)")
+    fig, axes = new_figure(10.0, 5.6, nrows=2, sharex=True, squeeze=False)
+    for ax, revs in zip(axes[:, 0], (200, 1000), strict=True):
+        tl = window_timeline(store, run_id, ev, revolutions=revs)
+        _draw_windows(ax, tl, names or {})
+        if revs == 200 and alert_pct is not None:
+            ax.axhline(alert_pct, color=MISFIRE_COLOUR, lw=1.2, ls="--",
+                       label=f"rig alert level {alert_pct:g} %")
+            over = tl["complete"] & (tl["rate_pct"] > alert_pct)
+            for a, b in zip(tl["t_start"][over], tl["t_end"][over], strict=True):
+                ax.axvspan(a, b, color=MISFIRE_COLOUR, alpha=0.08, lw=0)
+        whole = int(np.sum(tl["complete"]))
+        ax.set_title(f"{revs}-revolution windows ({whole} whole"
+                     + (", none: not judged" if not whole else "")
+                     + (", the alert is judged on these" if revs == 200 else "") + ")",
+                     loc="left", fontsize=9)
+        ax.set_ylabel("misfire rate [%]")
+        ax.set_ylim(bottom=0)
         ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
+    axes[-1, 0].set_xlabel("time into the ride [s]")
+    fig.suptitle("Misfire rate per revolution window (dsp window_rates on the stored events)",
+                 fontsize=9)
     save(fig, path)
     return path
+
+
+def _draw_windows(ax, tl: dict, names: dict[int, str]) -> None:
+    """Each window as a level segment over its time span: all cylinders bold, each cylinder
+    thin; dotted where the window is not whole."""
+    whole = tl["complete"]
+    for j in range(tl["per_cylinder"].shape[1]):
+        c = j + 1
+        y = tl["per_cylinder"][:, j]
+        for sel, ls in ((whole, "-"), (~whole, ":")):
+            ax.hlines(y[sel], tl["t_start"][sel], tl["t_end"][sel], colors=cyl_colour(c),
+                      lw=1.2, ls=ls, label=f"cyl {names.get(c, c)}" if ls == "-" else None)
+    for sel, ls in ((whole, "-"), (~whole, ":")):
+        ax.hlines(tl["rate_pct"][sel], tl["t_start"][sel], tl["t_end"][sel],
+                  colors=THRESHOLD_COLOUR, lw=2.4, ls=ls,
+                  label="all cylinders" if ls == "-" else "not whole (not judged)")
+
+
+def plot_intervals(ev: np.ndarray, path: Path, *, engine, tolerance_deg: float | None = None,
+                   summary: dict | None = None,
+                   checked: dict[int, tuple[float, int]] | None = None,
+                   names: dict[int, str] | None = None) -> Path | None:
+    """Histogram of observed firing intervals of fired events, one panel per firing pair
+    (``1 → 3``), in firing order.
+
+    Only the events the run's interval check used (from the tooth-error correction on); each
+    panel gives the pair's mean from that check (``checked``: to_cyl -> (error, n)), the same
+    number ``show`` prints.
+    """
+    pairs = [p for p in interval_pairs(ev, summary, engine) if p["observed_deg"].size]
+    if not pairs:
+        return None
+    checked, names = checked or {}, names or {}
+    ncols = 1 if len(pairs) == 1 else 2
+    nrows = -(-len(pairs) // ncols)
+    fig, axes = new_figure(11.0 if ncols == 2 else 6.5, 3.0 * nrows + 0.4, nrows=nrows,
+                           ncols=ncols, squeeze=False)
+    for ax, p in zip(axes.flat, pairs, strict=False):
+        _draw_pair(ax, p, tolerance_deg, checked, names)
+    for ax in list(axes.flat)[len(pairs):]:
+        ax.set_visible(False)
+    fig.suptitle("Firing intervals per firing pair (events after the wheel correction; "
+                 "means: the run's interval check)", fontsize=9)
+    save(fig, path)
+    return path
+
+
+def _draw_pair(ax, p: dict, tolerance_deg: float | None, checked: dict, names: dict) -> None:
+    g, obs, c = p["expected_deg"], p["observed_deg"], p["to_cyl"]
+    span = max(6.0, float(np.nanpercentile(np.abs(obs - g), 99.5)) * 1.2)
+    bins = np.linspace(g - span, g + span, 61)
+    ax.hist(np.clip(obs, bins[0], bins[-1]), bins=bins, histtype="stepfilled", alpha=0.35,
+            color=cyl_colour(c), edgecolor=cyl_colour(c), label=f"{obs.size} intervals")
+    ax.axvline(g, color=THRESHOLD_COLOUR, lw=1.2, ls="--", label=f"expected {g:g}°")
+    if c in checked:
+        ax.axvline(g + checked[c][0], color=cyl_colour(c), lw=1.6,
+                   label=f"mean {g + checked[c][0]:.2f}°")
+    if tolerance_deg:
+        ax.axvspan(g - tolerance_deg, g + tolerance_deg, color="#2bb3a3", alpha=0.12,
+                   label=f"tolerance on the mean ±{tolerance_deg:g}°")
+    outside = int(np.sum(np.abs(obs - g) > span))
+    if outside:
+        ax.text(0.99, 0.97, f"{outside} beyond the axis,\npiled at its ends",
+                transform=ax.transAxes, ha="right", va="top", fontsize=7, color="#555555")
+    ax.set_xlabel("observed firing interval [crank deg]")
+    ax.set_ylabel("events")
+    ax.set_title(f"cylinder {names.get(p['from_cyl'], p['from_cyl'])} → "
+                 f"{names.get(c, c)}", loc="left", fontsize=9)
+    ax.legend(loc="upper left", fontsize=7, frameon=False)
 
 
 def plot_contribution(ev: np.ndarray, path: Path) -> Path | None:
@@ -198,57 +234,63 @@ def plot_contribution(ev: np.ndarray, path: Path) -> Path | None:
     return path
 
 
-def plot_order_map(store: Store, run_id: int, path: Path, *, max_order: float = 12.0
+def plot_order_map(store: Store, run_id: int, path: Path, *, max_order: float = 8.0
                    ) -> Path | None:
-    """rpm-vs-order map per sensor (colour = amplitude, log scale), orders up to ``max_order``.
-
-    The vector-sum map is drawn when the store has one, else each axis.
-    """
-    rows = [r for r in store.order_map(run_id)
-            if r["rpm_lo"] is not None and r["rpm_hi"] is not None and r["order"] is not None
-            and r["order"] <= max_order]
-    if not rows:
+    """Per sensor: the rpm-vs-order map (colour = amplitude, log scale, equal rpm bands) with
+    the orders the layout predicts marked, and beside it the cuts of the main predicted orders
+    against rpm. The vector-sum map is drawn when the store has one, else each axis."""
+    keys = sorted({(r["sensor"], r["axis"]) for r in store.order_map(run_id)})
+    keys = [k for k in keys if k[1] == "sum"] or keys
+    grids = [(k, order_grid(store, run_id, *k, max_order=max_order)) for k in keys]
+    grids = [(k, g) for k, g in grids if g is not None]
+    if not grids:
         return None
-    keys = sorted({(r["sensor"], r["axis"]) for r in rows})
-    summed = [k for k in keys if k[1] == "sum"]
-    keys = summed or keys
-    fig, axes = new_figure(5.2 * len(keys) + 1.0, 4.0, ncols=len(keys), squeeze=False)
-    for ax, (sensor, axis) in zip(axes[0], keys, strict=True):
-        sel = [r for r in rows if r["sensor"] == sensor and r["axis"] == axis]
-        # Bands that were never visited carry no amplitude (NULL or 0): leave them out.
-        visited = {(r["rpm_lo"], r["rpm_hi"]) for r in sel if r["amplitude"]}
-        bands = sorted(visited)
-        orders = sorted({r["order"] for r in sel})
-        if not bands or not orders:
-            ax.text(0.5, 0.5, "no data", transform=ax.transAxes, ha="center")
-            continue
-        grid = np.full((len(bands), len(orders)), np.nan)
-        bi = {b: i for i, b in enumerate(bands)}
-        oi = {o: i for i, o in enumerate(orders)}
-        for r in sel:
-            b = (r["rpm_lo"], r["rpm_hi"])
-            if b in bi and r["amplitude"]:
-                grid[bi[b], oi[r["order"]]] = r["amplitude"]
-        o = np.asarray(orders)
-        do = np.diff(o).min() if len(o) > 1 else 0.5
-        o_edges = np.concatenate([o - do / 2, [o[-1] + do / 2]])
-        r_edges = np.array([b[0] for b in bands] + [bands[-1][1]])
-        top = float(np.nanmax(grid))
-        # Log colours: the small orders (a weak cylinder's half order) must stay visible.
-        norm = LogNorm(vmin=max(top / 1000.0, float(np.nanmin(grid))), vmax=top)
-        if len(bands) > 1 and np.any(np.diff([b[0] for b in bands]) != np.diff(r_edges)[:-1]):
-            r_edges = np.arange(len(bands) + 1)  # gaps between bands: one row per band
-            ax.set_yticks(np.arange(len(bands)) + 0.5, [f"{lo:.0f}-{hi:.0f}" for lo, hi in bands])
-        mesh = ax.pcolormesh(o_edges, r_edges, np.clip(grid, norm.vmin, None), shading="flat",
-                             cmap="magma", norm=norm)
-        fig.colorbar(mesh, ax=ax, label="amplitude [m/s²]")
-        ax.set_xlabel("engine order [per crank revolution]")
-        ax.set_ylabel("engine speed [rpm]")
-        ax.set_title(f"order map, {sensor} ({'vector sum' if axis == 'sum' else axis})")
-        ax.set_xlim(0, min(max_order, o_edges[-1]))
-        ax.grid(False)
+    marks = predicted_order_marks(run_engine(store, run_id), max_order=min(max_order, 6.0))
+    fig, axes = new_figure(11.0, 4.2 * len(grids), nrows=len(grids), ncols=2, squeeze=False,
+                           gridspec_kw={"width_ratios": (1.25, 1.0)})
+    for row, ((sensor, axis), grid) in zip(axes, grids, strict=True):
+        where = f"{sensor} ({'vector sum' if axis == 'sum' else axis})"
+        _draw_order_map(fig, row[0], grid, marks, where)
+        _draw_order_cuts(row[1], grid, main_orders(marks), where)
     save(fig, path)
     return path
+
+
+def _draw_order_map(fig, ax, grid: dict, marks: list[dict], where: str) -> None:
+    o = grid["orders"]
+    do = float(np.diff(o).min()) if len(o) > 1 else 0.5
+    o_edges = np.concatenate([o - do / 2, [o[-1] + do / 2]])
+    amp = grid["amplitude"]
+    top = float(np.nanmax(amp))
+    # log colours: a weak cylinder's half order must stay visible beside the first order
+    norm = LogNorm(vmin=max(top / 1000.0, float(np.nanmin(amp))), vmax=top)
+    mesh = ax.pcolormesh(o_edges, grid["rpm_edges"], np.clip(amp, norm.vmin, None),
+                         shading="flat", cmap="magma", norm=norm)
+    fig.colorbar(mesh, ax=ax, label="amplitude [m/s²]")
+    for m in marks:
+        firing_only = m["sources"] == ["firing pulses"]
+        ax.axvline(m["order"], color="#7fe0d4" if firing_only else "#ffffff", lw=0.9,
+                   ls="--" if firing_only else ":", alpha=0.9)
+        ax.text(m["order"], 1.01, f"{m['order']:g}", transform=ax.get_xaxis_transform(),
+                ha="center", va="bottom", fontsize=6)
+    ax.set_xlabel("engine order [per crank revolution]")
+    ax.set_ylabel("engine speed [rpm]")
+    ax.set_title(f"order map, {where}; marked: orders the layout predicts\n(dashed: firing "
+                 "pulses, dotted: free force or couple; blank rows: rpm never held)",
+                 loc="left", pad=14, fontsize=8)
+    ax.set_xlim(0, o_edges[-1])
+    ax.grid(False)
+
+
+def _draw_order_cuts(ax, grid: dict, orders: list[float], where: str) -> None:
+    for j, (order, (rpm, amp)) in enumerate(order_cuts(grid, orders).items()):
+        ax.plot(rpm, amp, marker="o", ms=3, lw=1.2, color=cyl_colour(j + 1),
+                label=f"order {order:g}")
+    ax.set_yscale("log")
+    ax.set_xlabel("engine speed, band centre [rpm]")
+    ax.set_ylabel("amplitude [m/s²]")
+    ax.set_title(f"order cuts, {where}\n(the lowest orders the layout predicts)", loc="left")
+    ax.legend(loc="best", frameon=False)
 
 
 def plot_vibration(store: Store, run_id: int, path: Path) -> Path | None:
