@@ -81,8 +81,9 @@ class Feeder(threading.Thread):
 class RideThread(threading.Thread):
     """:func:`logger.live.ride.ride` on a virtual channel, recording into ``rec``."""
 
-    def __init__(self, db: Path, channel: str, rec: Path) -> None:
+    def __init__(self, db: Path, channel: str, rec: Path, stem: str | None = None) -> None:
         super().__init__(daemon=True)
+        self.stem = stem
         self.db, self.channel, self.rec = db, channel, rec
         self.stop = threading.Event()
         self.result = None
@@ -98,7 +99,8 @@ class RideThread(threading.Thread):
         try:
             with self.store as store:
                 self.result = ride(load_rig("larch"), self.bus, {}, store, record_dir=self.rec,
-                                   stop_event=self.stop, say=self.said.append)
+                                   stop_event=self.stop, say=self.said.append,
+                                   record_stem=self.stem)
         except BaseException as exc:  # noqa: BLE001
             self.error = exc
         finally:
@@ -227,6 +229,42 @@ class CaptureServer(threading.Thread):
         self.stop.set()
         self.server.close()
         self.join(DEADLINE_S)
+
+
+@pytest.mark.skipif(not os.path.exists("/dev/full"), reason="needs /dev/full (Linux)")
+def test_full_disk_stops_the_recording_and_the_analysis_goes_on(tmp_path, can_log):
+    """The recording is written to /dev/full, the kernel's always-full device (ENOSPC)."""
+    db, rec = tmp_path / "s.db", tmp_path / "rec"
+    rec.mkdir()
+    (rec / "full.log").symlink_to("/dev/full")
+    Store.open(db).close()
+    channel = f"faults-{uuid.uuid4().hex[:8]}"
+    ride = RideThread(db, channel, rec, stem="full")
+    feeder = Feeder(can_log, channel)
+
+    def stored() -> int:
+        with sqlite3.connect(str(db)) as c:
+            return c.execute("SELECT count(*) FROM events").fetchone()[0]
+
+    try:
+        ride.start()
+        feeder.start()
+        wait_until(lambda: feeder.sent > 3_000 or not ride.is_alive(), "frames on the bus")
+        at = stored()
+        # the first flush hits the full device; events keep reaching the store after it
+        wait_until(lambda: stored() > at + 100 or not ride.is_alive(), "events after the failure")
+        assert ride.is_alive(), f"the ride ended on a full disk: {ride.error!r}"
+    finally:
+        feeder.stop.set()
+        feeder.join(DEADLINE_S)
+        ride.finish()
+    assert ride.error is None, ride.error
+    stream = ride.result.summary["stream"]
+    assert "No space left on device" in (stream["recording_stopped"] or "")
+    assert stream["frames_not_recorded"] > 0
+    assert any("recording stopped" in line for line in stream["live_faults"])
+    run, live = run_events(db, ride.result.run_id)
+    assert run["status"] == "complete" and len(live) > 0
 
 
 CHILD = r"""
