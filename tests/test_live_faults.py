@@ -325,3 +325,91 @@ def test_signal_ends_the_ride_like_ctrl_c(tmp_path, can_log, signame):
     with can.LogReader(str(log)) as reader:
         recorded = sum(1 for _ in reader)
     assert 0 < recorded <= sent  # the recording was closed: python-can reads it to the end
+
+
+class TinySocketcand(threading.Thread):
+    """A socketcand server as small as python-can's client needs (its documented ASCII
+    protocol: ``< hi >``, ``< open ch >``/``< ok >``, ``< rawmode >``/``< ok >``, then
+    ``< frame ID SECS.USECS DATA >``): it sends frames until :meth:`drop` closes the link."""
+
+    def __init__(self, port: int = 0) -> None:
+        import socket
+
+        super().__init__(daemon=True)
+        self.server = socket.create_server(("127.0.0.1", port))
+        self.server.settimeout(0.2)
+        self.port = self.server.getsockname()[1]
+        self.gone = threading.Event()
+        self.sent = 0
+
+    def run(self) -> None:
+        while not self.gone.is_set():  # one client at a time, as many as come
+            try:
+                conn, _ = self.server.accept()
+            except TimeoutError:
+                continue
+            except OSError:
+                break
+            with conn:
+                try:
+                    self._serve(conn)
+                except OSError:
+                    pass
+        self.server.close()
+
+    def _serve(self, conn) -> None:
+        conn.sendall(b"< hi >")
+        for _ in range(2):  # < open vcan0 >, < rawmode >
+            if not conn.recv(256):
+                return  # a probe that only checked the port answers
+            conn.sendall(b"< ok >")
+        while not self.gone.is_set():
+            conn.sendall(f"< frame 123 {time.time():.6f} 0102 >".encode())
+            self.sent += 1
+            time.sleep(0.01)
+
+    def drop(self) -> None:
+        """The server goes away: its socket closes, which the client then reads as empty."""
+        self.gone.set()
+        self.join(DEADLINE_S)
+
+
+def test_can_link_gone_is_said_polled_cheaply_and_reconnected(monkeypatch):
+    import json
+
+    from crankbeat.logger.live.watchdog import WatchedBus
+    from crankbeat.logger.rig.model import CanBus
+
+    first = TinySocketcand()
+    first.start()
+    monkeypatch.setenv("CAN_CONFIG", json.dumps({"host": "127.0.0.1", "port": first.port}))
+    idle_calls: list[str | None] = []
+    bus = WatchedBus(CanBus(interface="socketcand", channel="vcan0"),
+                     on_idle=lambda b: idle_calls.append(b.state_line()))
+    second = None
+    try:
+        def received(n: int) -> bool:
+            return any(bus.recv(0.1) is not None for _ in range(n))
+
+        wait_until(lambda: received(5) and bus.frames >= 20, "frames from the server")
+        first.drop()
+        polls_at_drop = bus.polls
+        # silent: the screen hears of it, and the link is taken for gone
+        wait_until(lambda: bus.recv(0.1) is None and bus.silent_for > 2.5 and idle_calls,
+                   "the silence to be said")
+        assert any(line and "no frame for" in line for line in idle_calls), idle_calls
+        silent_polls = bus.polls - polls_at_drop
+        # a closed socket is readable for ever: unwatched, each poll returns at once (python-can
+        # loops thousands of times a second); watched, a few polls a second with back-off
+        assert silent_polls < 40 * bus.silent_for, (silent_polls, bus.silent_for)
+        print(f"{silent_polls} polls in {bus.silent_for:.1f} s of a closed link")
+        second = TinySocketcand(first.port)  # the server comes back on the same port
+        second.start()
+        wait_until(lambda: bus.recv(0.1) is not None and bus.reconnects >= 1, "the reconnect")
+    finally:
+        bus.shutdown()
+        first.drop()
+        if second is not None:
+            second.drop()
+    assert bus.breaks and bus.breaks[-1].reconnected and bus.breaks[-1].seconds > 1.0
+    assert any("reconnected" in line for line in bus.fault_lines())
