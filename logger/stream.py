@@ -48,6 +48,8 @@ Record = tuple[float, bytes]
 LIVE_SERIAL_MARGIN_S = 0.03
 #: Live: a wait longer than this means the bus stamps with another clock: do not wait then.
 LIVE_MAX_WAIT_S = 1.0
+#: After a stop, how long the frames still queued on the bus are taken in, s.
+LIVE_DRAIN_S = 2.0
 #: Frames per CAN batch read from a source.
 BATCH_FRAMES = 65536
 
@@ -417,6 +419,16 @@ def live(
                 take(name)
             if recorder is not None:
                 recorder.maybe_flush()  # also while the bus is quiet
+            yield b
+        # frames already queued when the rider stopped belong to the ride (and its recording);
+        # bounded in time, since a busy bus never runs dry
+        drain_end = time.monotonic() + LIVE_DRAIN_S
+        while time.monotonic() < drain_end:
+            b = source.recv_batch(BATCH_FRAMES)
+            if not len(b):
+                break
+            if recorder is not None:
+                recorder.write_can(b)
             yield b
 
     def progress() -> tuple[float, float | None]:

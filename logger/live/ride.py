@@ -96,11 +96,13 @@ def ride(
         watched = WatchedBus(bus if bus is not None else rig.can_bus, on_idle=lambda _: draw())
     parts["bus"] = watched if isinstance(watched, WatchedBus) else None
     try:
-        priors = priors if priors is not None else read_priors(store, rig)
-        run_id = store.begin_run(rig, label=label, notes=notes, odometer_km=odometer_km,
-                                 analyser=analyser_version())
+        priors = priors if priors is not None else _priors_or_none(store, rig, say)
         analysis = RunAnalysis(rig, tooth_correction_deg=priors.tooth_errors_deg)
         writer = BufferedStore(store)
+        # the run's row waits with the events: a store locked now does not delay the recording
+        run_id = writer.begin_run(rig, label=label, notes=notes, odometer_km=odometer_km,
+                                  analyser=analyser_version())
+        writer.commit()
 
         def step(out: StepOutput, chunk: Chunk) -> None:
             # every chunk is committed at once: a reader sees each event a chunk after its data
@@ -129,7 +131,8 @@ def ride(
                 if record_dir else ""
             raise StoreError(f"store '{store.path}' could not be written for "
                              f"{writer.waiting_s:.0f} s ({writer.last_error}): "
-                             f"{writer.pending_rows} rows of run {run_id} are lost{where}")
+                             f"{writer.pending_rows} rows of the ride are lost{where}")
+        run_id = int(run_id)
         census = watched.census if isinstance(watched, WatchedBus) else None
         try:
             analysis.watch.require_analysable(
@@ -147,6 +150,19 @@ def ride(
     finally:
         if isinstance(watched, WatchedBus):
             watched.shutdown()
+
+
+def _priors_or_none(store, rig: Rig, say) -> Priors:
+    """The wheel's learnt tooth errors; none when the store cannot be read now (locked)."""
+    import sqlite3
+
+    try:
+        return read_priors(store, rig)
+    except sqlite3.OperationalError as exc:
+        if say is not None:
+            say(f"store not readable at the start ({exc}): riding without the learnt tooth "
+                "errors")
+        return Priors(None)
 
 
 def _live_fields(parts: dict, writer: BufferedStore, signal_name: str | None) -> dict:

@@ -6,6 +6,10 @@ included. :class:`BufferedStore` takes the same calls as the :class:`~logger.sto
 them in memory (bounded by :data:`MAX_ROWS` rows; beyond, the oldest events are dropped and
 counted), and writes them all in one transaction at the next commit that succeeds, trying again
 at growing intervals. ``state_line()`` says on screen what is waiting and why.
+
+Even the run's own row waits: :meth:`BufferedStore.begin_run` returns a :class:`PendingRun`
+that the queued writes carry and that gets its id at the first commit that succeeds, so a
+store locked when the ride starts does not hold up the start of the recording.
 """
 
 from __future__ import annotations
@@ -25,6 +29,25 @@ LIVE_BUSY_S = 0.05
 MAX_RETRY_S = 5.0
 
 
+class PendingRun:
+    """The run of a live ride, whose row is written with the first commit that succeeds."""
+
+    def __init__(self, begin: Callable[[], int]) -> None:
+        self._begin = begin
+        self.id: int | None = None
+
+    def ensure(self) -> int:
+        """Write the run's row (inside the caller's transaction) and return its id."""
+        if self.id is None:
+            self.id = int(self._begin())
+        return self.id
+
+    def __int__(self) -> int:
+        if self.id is None:
+            raise RuntimeError("the run was not written to the store yet")
+        return self.id
+
+
 class BufferedStore:
     """Write-behind for :meth:`add_events`, :meth:`mask_events`, :meth:`add_windows`.
 
@@ -40,6 +63,7 @@ class BufferedStore:
         self.store = store
         self.max_rows = int(max_rows)
         self._ops: list[tuple[Callable, tuple, dict, int]] = []
+        self.run: PendingRun | None = None
         self.pending_rows = 0
         self.dropped_rows = 0
         self.failures = 0
@@ -54,6 +78,11 @@ class BufferedStore:
         self.store.db.conn.execute(f"PRAGMA busy_timeout = {int(seconds * 1000)}")
 
     # -- the Store's write calls -------------------------------------------------------
+    def begin_run(self, rig, **kwargs) -> PendingRun:
+        """The run, begun (``commit=False``) with the first successful commit."""
+        self.run = PendingRun(lambda: self.store.begin_run(rig, commit=False, **kwargs))
+        return self.run
+
     def add_events(self, run_id: int, events: np.ndarray) -> int:
         self._queue(self.store.add_events, (run_id, np.array(events, copy=True)), {},
                     len(events))
@@ -78,16 +107,24 @@ class BufferedStore:
 
     def commit(self) -> bool:
         """Write everything waiting in one transaction; False (kept for later) if it failed."""
-        if not self._ops:
+        run = self.run
+        if not self._ops and (run is None or run.id is not None):
             return True
+        run_was_written = run is not None and run.id is not None
         now = time.monotonic()
         if now < self._next_try:
             return False
         try:
+            if run is not None and run.id is None:
+                run.ensure()
             for fn, args, kwargs, _ in self._ops:
+                if args and isinstance(args[0], PendingRun):
+                    args = (args[0].ensure(), *args[1:])
                 fn(*args, **kwargs)
             self.store.commit()
         except sqlite3.OperationalError as exc:  # locked, busy, disk full, I/O error
+            if run is not None and run.id is not None and not run_was_written:
+                run.id = None  # rolled back with the rest
             self._failed(str(exc), now)
             return False
         if self.failed_since is not None:
@@ -159,9 +196,9 @@ class BufferedStore:
                     f"{self.pending_rows} rows ({self.last_error})")
                 told = True
             time.sleep(min(0.25, max(self._next_try - time.monotonic(), 0.01)))
-        done = not self._ops
+        done = not self._ops and (self.run is None or self.run.id is not None)
         self._set_busy(10.0)
         return done
 
 
-__all__ = ["BufferedStore", "MAX_ROWS"]
+__all__ = ["BufferedStore", "MAX_ROWS", "PendingRun"]
