@@ -12,8 +12,9 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from crankbeat.dsp.events import FIRED
-from crankbeat.logger.figures import intervals_from_t, wheel_corrected
+from crankbeat.logger.figures import wheel_corrected
 from crankbeat.logger.store import Store, TrendPoint
+from crankbeat.logger.store.trend import event_filter
 
 
 @dataclass
@@ -43,16 +44,9 @@ def _event_stderr(store: Store, run_id: int, cylinder: int, column: str,
                   band: tuple[float, float] | None) -> float | None:
     """Standard error of the mean (s / sqrt(n)) of a per-event column over fired events."""
     expr = "interval_deg - expected_interval_deg" if column == "interval" else "contribution"
-    where, params = ["run = ?", "cylinder = ?", f"verdict = {FIRED}", f"({expr}) IS NOT NULL"], \
-        [run_id, cylinder]
-    if column == "interval":
-        t0 = intervals_from_t(store.run(run_id).get("summary"))
-        if t0 is not None:
-            where.append("t >= ?")
-            params.append(t0)
-    if band is not None:
-        where.append("rpm >= ? AND rpm < ?")
-        params.extend(band)
+    where, params = event_filter(store, run_id, cylinder=cylinder, band=band,
+                                 intervals=column == "interval")
+    where += [f"verdict = {FIRED}", f"({expr}) IS NOT NULL"]
     values = np.array([r[0] for r in store.db.execute(
         f"SELECT {expr} FROM events WHERE {' AND '.join(where)}", params).fetchall()], float)
     values = values[np.isfinite(values)]

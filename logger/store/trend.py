@@ -190,12 +190,15 @@ def _checked_intervals(store: Store, run_id: int, cylinder: int | None
             if cylinder is None or c == cylinder]
 
 
-def _event_metric(store: Store, metric: str, run_id: int, cylinder: int | None,
-                  band: tuple[float, float] | None) -> list[tuple[str, float | None, int]]:
+def event_filter(store: Store, run_id: int, *, cylinder: int | None = None,
+                 band: tuple[float, float] | None = None, intervals: bool = False
+                 ) -> tuple[list[str], list]:
+    """WHERE clauses and their parameters for a run's events behind a per-event trend figure:
+    the run, one cylinder, an rpm band, and for intervals only the events after a mid-run
+    tooth-error correction (the ones before it carry the wheel's errors)."""
     where, params = ["run = ?"], [run_id]
-    if metric == "interval_error":
-        # intervals before a mid-run tooth-error correction carry the wheel's errors
-        from crankbeat.logger.figures import intervals_from_t
+    if intervals:
+        from crankbeat.logger.figures import intervals_from_t  # figures imports the store
 
         t0 = intervals_from_t(store.run(run_id).get("summary"))
         if t0 is not None:
@@ -207,6 +210,13 @@ def _event_metric(store: Store, metric: str, run_id: int, cylinder: int | None,
     if band is not None:
         where.append("rpm >= ? AND rpm < ?")
         params.extend(band)
+    return where, params
+
+
+def _event_metric(store: Store, metric: str, run_id: int, cylinder: int | None,
+                  band: tuple[float, float] | None) -> list[tuple[str, float | None, int]]:
+    where, params = event_filter(store, run_id, cylinder=cylinder, band=band,
+                                 intervals=metric == "interval_error")
     if metric == "misfire_rate":
         expr = (f"SUM(verdict = {MISFIRE}), SUM(verdict IN ({FIRED}, {MISFIRE}))")
     elif metric == "interval_error":
