@@ -71,7 +71,7 @@ RAW_EVENT_DTYPE = np.dtype(
         ("energy", "f8"),  # J, mean kinetic energy ½Jω² over the window
         ("work", "f8"),  # J, indicated-work estimate of the window (see module docstring)
         ("swing", "f8"),  # J, energy change over the window minus the speed trend (no balance)
-    ("step", "f8"),  # J, energy step across TDC: mean speed after vs before (see STEP_OFFSET_DEG)
+        ("step", "f8"),  # J, energy step across TDC (see STEP_OFFSET_DEG)
         ("rise_deg", "f8"),  # deg after TDC where the window's energy rise is centred
         ("usable", "?"),  # every input needed was there and valid
     ]

@@ -71,7 +71,7 @@ from crankbeat.dsp.events import (
 )
 from crankbeat.dsp.fluctuation import RAW_EVENT_DTYPE
 from crankbeat.dsp.layout import firing_sequence
-from crankbeat.dsp.misfire_prep import fuel_cut_flags, neighbour_levels
+from crankbeat.dsp.misfire_prep import fuel_cut_flags, other_cylinders_level, typical_work
 from crankbeat.dsp.misfire_settings import MisfireSettings
 from crankbeat.errors import InputError
 
@@ -200,8 +200,8 @@ class MisfireDetector:
         # event's share of the engine's work; the decision itself is on ``s.feature``
         work_all = np.where(raw["usable"], raw["work"], np.nan)
         hi = min(i1 + self._ahead, raw.size)
-        others, _ = neighbour_levels(w_all, i0, hi, self.n)
-        _, base = neighbour_levels(work_all, i0, i1, self.n)
+        others = other_cylinders_level(w_all, i0, hi, self.n)
+        base = typical_work(work_all, i0, i1, self.n)
         y_all = np.full(raw.size, np.nan)
         y_all[i0:hi] = w_all[i0:hi] - others
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -313,14 +313,12 @@ class MisfireDetector:
             elif cand:
                 self._ring_from, self._ring_cyl, self._ring_z = gi, c, z
                 self._last_flag = gi
-                # a partial burn only where it is clearly short of a whole misfire: by depth and
-                # by partial_gap robust sigma, on a scale from fuel cut here or from misfires
-                # that agree among themselves (at low signal to noise, at high speed and light
-                # load, whole misfires scatter from 0.4 to 1.4 of their median)
+                # a partial burn only where it is clearly short of a whole misfire, by depth and
+                # by partial_gap robust sigma, and only on the offset-free scale of this
+                # cylinder's own motored level (a fuel cut in this rpm cell): the run's own
+                # misfires scatter from 0.4 to 1.4 of their median at high speed and light load,
+                # and a misfire called partial is a missed misfire
                 scale = -d / depth[o] if depth[o] == depth[o] and depth[o] > 0 else 0.0
-                # only an offset-free scale from this cylinder's own motored level (a fuel cut in
-                # this rpm cell) tells a partial burn: the run's own misfires scatter too much at
-                # low signal to noise, and a misfire called partial is a missed misfire
                 calibrated_here = len(st.motored.get(cell, ())) >= s.depth_min_count
                 partial = (calibrated_here and depth[o] < s.partial_depth
                            and (1.0 - depth[o]) * scale > s.partial_gap * sd)

@@ -16,8 +16,33 @@ def _gather(values: np.ndarray, idx: np.ndarray, offsets: np.ndarray) -> np.ndar
     return np.where(inb, values[np.clip(j, 0, values.size - 1)], np.nan)
 
 
-def neighbour_levels(work: np.ndarray, i0: int, i1: int, n_cyl: int):
-    """Work of the other cylinders around each event, and the engine's typical work there.
+def other_cylinders_level(metric: np.ndarray, i0: int, i1: int, n_cyl: int) -> np.ndarray:
+    """Median metric of the other cylinders' events within ``n_cyl - 1`` events either side.
+
+    Parameters
+    ----------
+    metric : (m,) float
+        The decision's metric of the buffered events (NaN unusable).
+    i0, i1 : int
+        Events ``i0..i1-1`` of the buffer are wanted.
+    n_cyl : int
+
+    Returns
+    -------
+    others : (i1-i0,) float
+        0 for a single cylinder; NaN when none is usable.
+    """
+    idx = np.arange(i0, i1)
+    if n_cyl < 2:
+        return np.zeros(idx.size)
+    offs = np.concatenate((np.arange(-(n_cyl - 1), 0), np.arange(1, n_cyl)))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN rows give NaN, as meant
+        return np.nanmedian(_gather(metric, idx, offs), axis=1)
+
+
+def typical_work(work: np.ndarray, i0: int, i1: int, n_cyl: int) -> np.ndarray:
+    """The engine's typical work around each event, for the relative contribution.
 
     Parameters
     ----------
@@ -29,21 +54,11 @@ def neighbour_levels(work: np.ndarray, i0: int, i1: int, n_cyl: int):
 
     Returns
     -------
-    others : (i1-i0,) float
-        Median work of the other cylinders' events within ``n_cyl - 1`` events either side, J
-        (0 for a single cylinder; NaN when none is usable).
     base : (i1-i0,) float
         Mean of the upper half of the ``2·n_cyl`` events either side (a neighbouring misfire does
-        not pull it down): the engine's typical work, for the relative contribution, J.
+        not pull it down), J; NaN with fewer than ``2·n_cyl`` usable neighbours.
     """
     idx = np.arange(i0, i1)
-    if n_cyl > 1:
-        offs = np.concatenate((np.arange(-(n_cyl - 1), 0), np.arange(1, n_cyl)))
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN rows give NaN, as meant
-            others = np.nanmedian(_gather(work, idx, offs), axis=1)
-    else:
-        others = np.zeros(idx.size)
     nn = 2 * n_cyl
     nb = _gather(work, idx, np.concatenate((np.arange(-nn, 0), np.arange(1, nn + 1))))
     srt = np.sort(np.where(np.isfinite(nb), nb, -np.inf), axis=1)[:, ::-1]
@@ -51,8 +66,7 @@ def neighbour_levels(work: np.ndarray, i0: int, i1: int, n_cyl: int):
     half = np.maximum(cnt // 2, 1)
     take = np.arange(2 * nn)[None, :] < half[:, None]
     base = np.where(take & np.isfinite(srt), srt, 0.0).sum(axis=1) / half
-    base = np.where(cnt >= max(2, nn), base, np.nan)
-    return others, base
+    return np.where(cnt >= max(2, nn), base, np.nan)
 
 
 def fuel_cut_flags(ev, work, throttle, i0, i1, n_cyl, swept_m3, s, last_closed_t):
