@@ -7,6 +7,15 @@ over a window of frames is the origin plus the smallest latency seen. The window
 ``lookahead`` frames ahead (the stage holds that many frames back) so that the first frames after
 a break are anchored as well as any other.
 
+The envelope moves in steps: whenever the frame with the smallest latency leaves the window, or the
+ECU's clock drifts against the logger's (tens of ppm is common practice for crystal clocks), it
+jumps by a few to tens of microseconds. Applied as is, each jump lands on the one edge between two
+frames, and a tooth period 20 us short at 8000 rpm reads as a 10 % speed spike: the energy step of
+a whole firing event moves by more than a misfire's. So the anchor is smoothed along the frames
+(a tracking filter over about ``smooth_frames`` frames that follows a steady drift without lag,
+restarted with each time segment): a jump becomes a ramp of steps ``smooth_frames`` times
+smaller, and the edge intervals stay the periods the ECU measured.
+
 A stretch ("time segment") restarts after lost frames and at every saturated (NaN) period. Lost
 frames whose count can be trusted become placeholder edges, so the tooth count carries on; an
 untrusted loss resets the count instead.
@@ -18,6 +27,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy.ndimage import minimum_filter1d
+from scipy.signal import lfilter
 
 NORMAL, SATURATED, PLACEHOLDER = 0, 1, 2
 
@@ -56,7 +66,8 @@ class EdgeStage:
     """Frames in, edges out (held back ``lookahead`` frames for the anchor's look-ahead)."""
 
     def __init__(self, *, lookahead: int, lookback: int, max_lost: int,
-                 latency_floor_s: float, loss_tolerance: float, latency_span_s: float) -> None:
+                 latency_floor_s: float, loss_tolerance: float, latency_span_s: float,
+                 smooth_frames: float = 100.0) -> None:
         self.A, self.B = int(lookahead), int(lookback)
         if (self.A + self.B) % 2:
             raise ValueError("the anchor window must have an odd length")
@@ -77,6 +88,16 @@ class EdgeStage:
         self.f_hist = 0  # how many leading frames in f_* are history
         self.f_first = 0  # arrival index of f_*[0]
         self.pending: tuple | None = None  # edge arrays of the frames not yet final
+        if not smooth_frames >= 1:
+            raise ValueError(f"smooth_frames must be >= 1, got {smooth_frames!r}")
+        alpha = 1.0 / float(smooth_frames)  # gains of the anchor's tracking filter
+        beta = alpha * alpha / (2.0 - alpha)
+        self._b = np.array([alpha, beta - alpha, 0.0])
+        self._a = np.array([1.0, alpha + beta - 2.0, 1.0 - alpha])
+        self.sm_seg = -1  # time segment of the last released frame
+        self.sm_anchor = np.nan  # its smoothed anchor
+        self.sm_ref = 0.0  # the segment's first anchor, s: the filter runs on differences to it
+        self.sm_state = np.zeros(2)  # the tracking filter's state after the last released frame
 
     def push(self, ft: np.ndarray, periods: np.ndarray, cam: np.ndarray,
              lost: np.ndarray) -> EdgeBatch:
@@ -195,6 +216,7 @@ class EdgeStage:
         for a, b in zip(np.concatenate(([0], bounds)), np.concatenate((bounds, [len(fs)]))):
             anchor[a:b] = minimum_filter1d(fd[a:b], W, mode="constant", cval=np.inf,
                                            origin=W // 2 - self.A)
+        self._smooth(anchor, fs, n_rel)
         row = fidx - self.f_first
         if len(bounds) == 0 and seg[0] == fs[0] and seg[-1] == fs[0]:
             t = anchor[row] + S - self.floor  # one time segment throughout: every edge anchored
@@ -213,3 +235,28 @@ class EdgeStage:
         self.f_first += keep_from
         self.f_hist = self.f_hist + n_rel - keep_from
         return EdgeBatch(p, t, kind, reset, cam, fidx)
+
+    def _smooth(self, anchor: np.ndarray, fs: np.ndarray, n_rel: int) -> None:
+        """Low-pass the anchors of the frames being released, in place (see the module notes).
+
+        An alpha-beta tracker (critically damped pair of gains ``alpha``, ``alpha²/(2 − alpha)``,
+        a standard tracking filter): it follows a steady clock drift with no lag, and spreads a
+        jump of the envelope over about ``1/alpha`` frames. Each run of one time segment restarts
+        it at its first anchor, or carries on from the state after the last released frame; the
+        history frame just before the released ones gets its smoothed value back too (edges of
+        a frame may still belong to the segment before it).
+        """
+        lo, hi = self.f_hist, self.f_hist + n_rel
+        if lo > 0 and fs[lo - 1] == self.sm_seg:
+            anchor[lo - 1] = self.sm_anchor
+        seg = fs[lo:hi]
+        cuts = np.flatnonzero(np.diff(seg)) + 1
+        for a, b in zip(np.concatenate(([0], cuts)), np.concatenate((cuts, [hi - lo]))):
+            x = anchor[lo + a: lo + b]
+            if seg[a] != self.sm_seg:  # a new time segment: at rest on its first anchor
+                # filtered relative to it: absolute times (~1e9 s) would lose the microseconds
+                self.sm_ref, self.sm_state = float(x[0]), np.zeros(2)
+            y, self.sm_state = lfilter(self._b, self._a, x - self.sm_ref, zi=self.sm_state)
+            y += self.sm_ref
+            anchor[lo + a: lo + b] = y
+            self.sm_seg, self.sm_anchor = int(seg[a]), float(y[-1])

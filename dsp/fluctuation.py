@@ -47,15 +47,18 @@ from crankbeat.errors import InputError
 #: Span around each TDC over which the centre of the combustion torque is taken, degrees.
 RISE_SPAN = (-45.0, 105.0)
 
-#: The energy step of an event compares the crank's mean speed over the half firing interval
-#: that starts this many degrees after its TDC with the mean speed over the half interval before
-#: that point. It needs no inertia model and no loss balance: the slider-crank energy exchange is
+#: The energy step of an event compares the crank's mean speed over the segment that starts this
+#: many degrees after its TDC with the mean speed over the segment before that point. It needs no inertia model and no loss balance: the slider-crank energy exchange is
 #: nearly symmetric about the TDC and, like every other deterministic pattern (tooth spacing at
 #: the segment ends, the other cylinders' strokes), it is the same cycle after cycle for a given
 #: cylinder, so the misfire decision's same-cylinder baseline removes it.
 STEP_OFFSET_DEG = 20.0
-#: Length of each of the two segments, as a share of the mean firing interval.
-STEP_SHARE = 0.5
+#: Length of each of the two segments, degrees: one stroke, so that the segment after takes in
+#: the whole expansion stroke, where the burn gives its work (common practice: most of it within
+#: about 90 deg after TDC), and the segment before the compression stroke; shorter (the mean firing
+#: interval) where the cylinders fire closer than a stroke apart, so that a segment does not reach
+#: past the next cylinder's TDC.
+STEP_STROKE_DEG = 180.0
 
 _BLOCK = 4096  # events computed per vectorised step (bounds the temporary arrays)
 
@@ -171,7 +174,7 @@ class FluctuationStage:
         self._reach_hi = w.start_deg + w.length_deg + h * self._C + w.smooth_deg
         # samples per box / window gather (fixed sizes keep sums identical whatever the chunking)
         self._box_m = int(np.ceil(2 * w.smooth_deg / self.pitch)) + 3
-        self._step_len = STEP_SHARE * self._C / self._n
+        self._step_len = min(STEP_STROKE_DEG, self._C / self._n)
         span_deg = max(w.length_deg + 2 * w.smooth_deg, 2 * self._step_len)
         self._win_m = int(np.ceil(span_deg / self.pitch)) + 4
         # J(θ) tabulated over the cycle every 0.05°: linear interpolation is exact to ~1e-8
