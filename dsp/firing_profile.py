@@ -257,17 +257,22 @@ def _model_score(grid, tq, eng: Engine, cycle: float) -> float:
 
 def layout_verdict(profile: CycleProfile, candidates: dict[str, Engine], expected: str, *,
                    max_order: float = 4.0, margin: float = 0.05) -> LayoutVerdict:
-    """Score candidate layouts on the low orders of the cycle's torque (see module docstring)."""
+    """Score candidate layouts on the low orders of the cycle's torque (see module docstring).
+
+    Each candidate is scored on the torque its own kinematics give: the inertia torque of the
+    reciprocating masses depends on the crank throws (a flat-plane four's is a strong second
+    order, a cross-plane four's nearly none), and removing the rig's where the engine has
+    another leaves a pattern that favours the rig's layout.
+    """
     if expected not in candidates:
         raise InputError(f"expected layout {expected!r} is not among {sorted(candidates)}")
-    ref = candidates[expected]
-    grid, tq = profile.torque(ref, max_order=max_order)
     groups: dict[tuple, list[str]] = {}
     for name, eng in candidates.items():
         groups.setdefault(layout_signature(eng), []).append(name)
     fam = []
     for names in groups.values():
-        score = max(_model_score(grid, tq, candidates[n], profile.cycle) for n in names)
+        score = max(_model_score(*profile.torque(candidates[n], max_order=max_order),
+                                 candidates[n], profile.cycle) for n in names)
         fam.append((" / ".join(sorted(names)) + (": same firing" if len(names) > 1 else ""),
                     score, names))
     fam.sort(key=lambda f: -f[1])

@@ -377,9 +377,16 @@ class MisfireDetector:
             dead = False
             if len(st.run) >= self.s.dead_run and not partial_like:
                 shares = [v for v in st.run if v == v]
-                if len(st.shares) >= 8 and shares and (
-                        median(st.shares) - median(shares) > self.s.dead_share_drop):
-                    st.spell_mid, dead = 0.5 * (median(st.shares) + median(shares)), True
+                # against the others' shares over the same time: when a dead cylinder fires
+                # again, the engine's typical work rises and every other share drops with it
+                # a share is trusted only where the fired ones read like shares (about 1): a
+                # work estimate near zero on average (the loss balance off by the unknown
+                # inertia) makes every ratio to it noise
+                fired_share = median(st.shares) if len(st.shares) >= 8 else float("nan")
+                if 0.25 < fired_share < 4.0 and shares and (
+                        fired_share - median(shares) - self._others_share_drop(c)
+                        > self.s.dead_share_drop):
+                    st.spell_mid, dead = 0.5 * (fired_share + median(shares)), True
         else:
             own = list(st.recent)[-15:] + [x]
             sp = [robust_spread(o.recent) for i, o in enumerate(self._cyl)
@@ -388,16 +395,37 @@ class MisfireDetector:
             # cylinders of an uneven engine (a twin-270's second cylinder reads far lower)
             low_share = (len(st.recent_share) >= 4
                          and median(st.recent_share) < self.s.dead_start_share)
+            # and it reads below every other cylinder (a ratio of the others' median means
+            # nothing on a signed metric: the uneven engines' levels straddle zero)
+            lowest = min(lv) if lv else float("nan")
             dead = (len(own) >= 4 and bool(sp) and lv_o > 0 and x < lim and median(own) < lim
+                    and median(own) < lowest
                     and lv_o - median(own) > self._z * median(sp)
                     and robust_spread(own) < self.s.dead_scatter * median(sp) and low_share)
             st.spell_mid = float("nan")
         if dead and st.dead_since is None:
             st.dead_since = t
             st.first_dead = t if st.first_dead is None else st.first_dead
-        elif not dead:
+            self._others_relearn(c)
+        elif not dead and st.dead_since is not None:
             st.dead_since = None
+            self._others_relearn(c)
         return dead
+
+    def _others_share_drop(self, c: int) -> float:
+        """Median fall of the other cylinders' shares: recent ones against their fired history."""
+        drops = [median(o.shares) - median(o.recent_share) for i, o in enumerate(self._cyl)
+                 if i != c and len(o.shares) >= 8 and o.recent_share]
+        return median(drops) if drops else 0.0
+
+    def _others_relearn(self, c: int) -> None:
+        """A dead spell starts or ends on cylinder c: the others relearn their baselines. Each
+        event's metric compares the crank's speed after its TDC with the speed before, which
+        the event before it set: when one cylinder stops or resumes firing, its neighbours'
+        levels move too (the next cylinder starts from a slower crank)."""
+        for i, o in enumerate(self._cyl):
+            if i != c:
+                o.stale = True
 
     def _intervals(self, out: np.ndarray, ev: np.ndarray) -> None:
         pos_in_seq = np.mod(ev["index"], self.n)

@@ -136,9 +136,9 @@ def test_rough_road_counts_no_misfire(preset):
     assert np.all(ride.events["fired"] | ride.events["fuel_cut"])  # no misfire in the truth
     # without the accelerometer's rough-road masking (the pipeline's job, tested through the
     # CLI in make quality) a few events where the rough section begins are counted before the
-    # scatter of the events around raises the threshold: measured 1 of 1009 (twin) and 3 of
-    # 2022 (four) with the energy step metric
-    assert int((step.events["verdict"] == MISFIRE).sum()) <= (1 if preset == "larch" else 3)
+    # scatter of the events around raises the threshold: measured 1 of 1009 (twin) and 5 of
+    # 2022 (four; 3 with the step over half a firing interval instead of a stroke)
+    assert int((step.events["verdict"] == MISFIRE).sum()) <= (1 if preset == "larch" else 5)
 
 
 @pytest.mark.parametrize("preset", ["larch", "alder"])

@@ -43,11 +43,15 @@ FUEL_CUT_OVER_IDLE = 1.25
 
 
 def layout_candidates(engine: Engine) -> dict[str, Engine]:
-    """Shipped layouts with the engine's cylinder count, plus the engine itself."""
+    """Shipped layouts with the engine's cylinder count and stroke cycle, plus the engine itself.
+
+    The stroke cycle is not in question (the rig's wheel, cam and ECU say it); a two-stroke twin
+    fires like a four-stroke twin-180 twice over and only adds chances of a false warning.
+    """
     out = {}
     for name in list_layouts():
         eng = load_layout(name)
-        if eng.n_cylinders == engine.n_cylinders:
+        if eng.n_cylinders == engine.n_cylinders and eng.stroke_cycle == engine.stroke_cycle:
             out[name] = eng.with_geometry(
                 bore_m=engine.bore_m, stroke_m=engine.stroke_m, conrod_m=engine.conrod_m,
                 recip_mass_kg=engine.recip_mass_kg, inertia_kgm2=engine.inertia_kgm2)
