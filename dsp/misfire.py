@@ -2,12 +2,14 @@
 
 Feature
 -------
-``x_k``: the window-work estimate of :mod:`dsp.fluctuation` (J). It carries a per-cylinder
-additive bias (tooth-spacing errors at the window ends, an inertia that differs from the rig
-file's, compression work outside the window) that grows with speed squared and differs between
-cylinders, and a scale set by the rig file's inertia. Neither matters here: every decision
-compares an event only with the same cylinder's neighbouring cycles, where the bias is the same,
-and measures the difference in that cylinder's own robust spread, where the scale cancels.
+``x_k``: the energy step across the event's TDC (:mod:`dsp.fluctuation`, field ``step``, J):
+½·J̄·(ω̄²after − ω̄²before), the mean speeds taken over one stroke (or the firing interval where
+shorter) each side of TDC + 20°. It carries per-cylinder patterns (the slider-crank energy
+exchange, tooth-spacing errors at the segment ends, the other cylinders' strokes, the state of the
+cylinder before it) that move slowly with speed, and a scale set by the rig file's inertia.
+Neither matters here: every decision compares an event only with the same cylinder's neighbouring
+cycles, where the pattern is the same, and measures the difference in that cylinder's own robust
+spread, where the scale cancels.
 
 Decision (per event ``k`` of cylinder ``c``, in event order)
 ---------------------------------------------------------
@@ -21,9 +23,13 @@ Decision (per event ``k`` of cylinder ``c``, in event order)
   bump through the driveline) is not one cylinder's misfire;
 * ``MISFIRE`` when ``z > z_threshold`` and the cross score is above ``cross_threshold`` (for a
   single cylinder the self score alone decides);
-* a cylinder whose level collapses against the other cylinders (below ``dead_ratio`` of theirs,
-  or by more than half of them against its own earlier share) is dead: every event ``MISFIRE``,
-  from the first cycles of a ride or mid-ride; its baseline is frozen, never adapted to it;
+* a cylinder is dead (every event ``MISFIRE``, its baseline frozen, never adapted to it) from
+  the first cycles of a ride when it reads below every other cylinder, below ``dead_ratio`` of
+  their median level, without their scatter and with a share of the engine's work below
+  ``dead_start_share``; mid-ride when a run of ``dead_run`` misfires comes with its share of the
+  work falling by ``dead_share_drop`` more than the other cylinders' shares fall (shares trusted
+  only where fired ones read like shares). A spell's start and end make the other cylinders
+  relearn their baselines: each step starts from the crank speed the event before it left;
 * depth = missing work ÷ the work of a complete misfire, where an offset-free scale exists (the
   cylinder's motored level on fuel cut, else the upper half of its own misfires in the rpm cell);
   a flagged event shallower than ``partial_depth`` on the motored scale of its rpm cell is
