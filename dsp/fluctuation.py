@@ -49,9 +49,10 @@ RISE_SPAN = (-45.0, 105.0)
 
 #: The energy step of an event compares the crank's mean speed over the segment that starts this
 #: many degrees after its TDC with the mean speed over the segment before that point. It needs
-#: no inertia model and no loss balance: the slider-crank energy exchange is nearly symmetric about the TDC and, like every other deterministic pattern (tooth spacing at
-#: the segment ends, the other cylinders' strokes), it is the same cycle after cycle for a given
-#: cylinder, so the misfire decision's same-cylinder baseline removes it.
+#: no inertia model and no loss balance: the slider-crank energy exchange is nearly symmetric
+#: about the TDC and, like every other deterministic pattern (tooth spacing at the segment ends,
+#: the other cylinders' strokes), it is the same cycle after cycle for a given cylinder, so the
+#: misfire decision's same-cylinder baseline removes it.
 STEP_OFFSET_DEG = 20.0
 #: Length of each of the two segments, degrees: one stroke, so that the segment after takes in
 #: the whole expansion stroke, where the burn gives its work (common practice: most of it within
