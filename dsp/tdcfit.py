@@ -33,8 +33,10 @@ periods quantised to 1 us; seeds 7-9):
   four): after its TDC its intake stroke pulls against manifold vacuum, before it the exhaust
   pushed at about ambient, so its torque is one-sided about the very TDC sought and the dip
   leans early (-0.8 to -1.5 deg, in neutral too). A shape with this one-sided term fitted
-  freely cannot be told from a shift (standard error 5 deg), so it is flagged
-  (``partner_exchange``) and not corrected;
+  freely cannot be told from a shift (standard error 5 deg; with the pressure easing to the
+  manifold's over the first 40 deg of the intake stroke, the simulator's own model, the 360 deg
+  twin lands at +0.2..+0.4 deg but the flat-plane four runs to the search edge, and a rig file
+  holds no valve timing), so it is flagged (``partner_exchange``) and not corrected;
 * heat lost at TDC (expansion below compression): +0.4 to +0.7 deg on the 270 deg and V twins.
 
 The half-width of 40 deg keeps the jackknife standard error near 0.1 deg on a 60-2 wheel and
