@@ -208,7 +208,7 @@ def plot_contribution(ev: np.ndarray, path: Path) -> Path | None:
     cyls = sorted(set(e["cylinder"].tolist()))
     means = [float(np.mean(e["contribution"][e["cylinder"] == c])) for c in cyls]
     sds = [float(np.std(e["contribution"][e["cylinder"] == c])) for c in cyls]
-    fig, ax = new_figure(1.2 * len(cyls) + 3.5, 3.4)
+    fig, ax = new_figure(1.2 * len(cyls) + 4.5, 3.4)
     x = np.arange(len(cyls))
     # Dots with spread rather than bars from zero: a few per cent between cylinders must show.
     ax.errorbar(x, means, yerr=sds, fmt="none", ecolor="#555555", capsize=5, lw=1)
@@ -228,8 +228,8 @@ def plot_contribution(ev: np.ndarray, path: Path) -> Path | None:
     ax.set_ylim(min(lo, 1.0) - pad, max(hi, 1.0) + pad)
     ax.set_xlabel("cylinder")
     ax.set_ylabel("relative contribution [-]")
-    ax.set_title("Work of each cylinder's firing events relative to the engine's typical one\n"
-                 "(contribution, fired events, mean ± 1 s.d.)")
+    ax.set_title("Contribution per cylinder: work of its fired events\n"
+                 "relative to the engine's typical event (mean ± 1 s.d.)", loc="left")
     ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
     save(fig, path)
     return path
