@@ -172,7 +172,8 @@ def test_cli_bringup_prints_the_check_and_suggestions(tmp_path, capsys):
     assert "configured CAN ids:" in out and "0x0A0  crank_teeth" in out
     assert "wheel: 60-2 seen" in out
     assert "level 1 in the revolution holding cylinder 1's firing TDC" in out
-    m = re.search(r"TDC: ([0-9.]+) ± ([0-9.]+) deg after tooth 0 \(file 92", out)
+    m = re.search(r"TDC: ([0-9.]+) ± ([0-9.]+) deg \(standard error\) after tooth 0 \(file 92",
+                  out)
     assert m and abs(float(m.group(1)) - 96.0) <= 1.0
     assert re.search(r"\[wheel\] tdc_offset_deg = 9[5-7]\.\d", out)
 
@@ -187,6 +188,8 @@ def test_cli_bringup_json_and_accel(capsys):
     doc = json.loads(capsys.readouterr().out)
     assert doc["wheel"]["teeth"] == 60 and doc["cam"]["level_in_tdc_revolution"] == 1
     assert abs(doc["tdc"]["tdc_offset_deg"] - 96.0) <= 1.0
+    # the demo's only roll-off is in gear: said, with the driveline's leaning
+    assert doc["tdc"]["stretch"] == "in gear" and "taken in gear" in doc["tdc"]["caution"]
     assert [u["id"] for u in doc["unknown_ids"]] == ["0x3F0", "0x7E8"]  # scenario unknown_ids
     samples, rate = doc["sensors"]["bar_left"]["samples"], doc["sensors"]["bar_left"]["rate_hz"]
     assert samples > 100_000 and rate == pytest.approx(2000.0, rel=0.01)  # the rig's rate

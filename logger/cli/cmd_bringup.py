@@ -75,7 +75,7 @@ def run(args: argparse.Namespace) -> int:
     if res.tdc is not None:
         t = res.tdc
         value = (rig.wheel.tdc_offset_deg + t.correction_deg) % 360.0
-        print(f"TDC: {value:.2f} ± {t.se_deg:.2f} deg after tooth 0 (file "
+        print(f"TDC: {value:.2f} ± {t.se_deg:.2f} deg (standard error) after tooth 0 (file "
               f"{rig.wheel.tdc_offset_deg:g}; {t.cycles} cycles without firing, "
               f"{t.rpm_range[0]:.0f}-{t.rpm_range[1]:.0f} rpm, {res.tdc_stretch})")
         if res.tdc_note:
@@ -102,6 +102,7 @@ def _as_dict(res, n_unknown: int) -> dict:
         tdc = {"tdc_offset_deg": (res.rig.wheel.tdc_offset_deg + res.tdc.correction_deg) % 360,
                "se_deg": res.tdc.se_deg, "cycles": res.tdc.cycles,
                "rpm_range": list(res.tdc.rpm_range), "stretch": res.tdc_stretch,
+               "caution": res.tdc_note,
                "partner_exchange": res.tdc.partner_exchange}
     return {
         "rig": res.rig.source, "duration_s": res.duration_s,
