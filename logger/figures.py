@@ -303,6 +303,8 @@ def event_crank(store: Store, run_id: int, index: int, *, cycles: int = 2,
       curve of the same cylinder's fired events within ``reference_cycles`` cycles (this event
       left out), moved to this event's mean speed over the span.
     """
+    import warnings
+
     from crankbeat.dsp.crank import reconstruct_crank
     from crankbeat.dsp.layout import firing_angles
     from crankbeat.logger.rig.loader import parse_rig
@@ -322,15 +324,20 @@ def event_crank(store: Store, run_id: int, index: int, *, cycles: int = 2,
     teeth = _teeth_between(rig, can[0], lo, hi)
     if teeth is None:
         return {"why": f"its CAN recording {can[0]} holds no tooth frames at the event"}
-    angles = reconstruct_crank(*teeth, rig.wheel, rig.engine)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # an unknown phase is in the run's own notes
+        angles = reconstruct_crank(*teeth, rig.wheel, rig.engine)
     ok = angles.valid & np.isfinite(angles.period)
     t0 = ride_start(store, run_id, ev)
     fire = np.asarray(firing_angles(rig.engine), dtype=float)
 
     def tdc_angle(event) -> float:
+        # the firing TDC nearest the crank angle at the event's time: found by time, so that a
+        # phase this reading numbers one revolution apart from the run's (no cam, even firing)
+        # cannot move the event by 360 deg
         a = float(np.interp(event["t"], angles.t[ok], angles.angle[ok]))
-        phi = fire[int(event["cylinder"]) - 1]
-        return phi + rig.engine.cycle_deg * round((a - phi) / rig.engine.cycle_deg)
+        cand = fire + rig.engine.cycle_deg * np.round((a - fire) / rig.engine.cycle_deg)
+        return float(cand[np.argmin(np.abs(cand - a))])
 
     step = np.diff(angles.angle, prepend=np.nan)
     mid = angles.angle - 0.5 * step

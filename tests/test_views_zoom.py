@@ -157,3 +157,20 @@ def test_event_at_picks_the_nearest_event(demo_db):
         t0 = ride_start(st, 1, ev)
     i = event_at(ev, 40.0, t0)
     assert abs(ev["t"][i] - t0 - 40.0) == pytest.approx(np.min(np.abs(ev["t"] - t0 - 40.0)))
+
+
+def test_zoom_on_an_engine_whose_phase_is_unknown(tmp_path):
+    """The flat-plane four of fixtures/alder has no cam and fires evenly: a fresh reading of its
+    log may number the revolutions one apart from the run's. The zoom finds each event's TDC by
+    its time, so a misfire still loses the rise after its TDC (it was drawn 360 deg off)."""
+    db = tmp_path / "a.db"
+    assert main(["replay", "--store", str(db), "--rig", "alder", "--can",
+                 str(ROOT / "fixtures/alder/alder.asc"), "--json"]) == 0
+    with Store.open(db, create=False) as st:
+        ev = st.events(1)
+        mis = np.flatnonzero(ev["verdict"] == MISFIRE)
+        assert len(mis) >= 3
+        for i in mis[:3]:
+            z = event_crank(st, 1, int(i))
+            assert z["ref_count"] >= 5
+            assert _rise(z["angle"], z["rpm"]) < _rise(z["ref_angle"], z["ref_rpm"]) - 50
