@@ -22,13 +22,26 @@ symmetry point of the dips, averaged over many cycles, is the correction.
    next cylinder, compete).
 4. Its standard error is the jackknife over blocks of cycles (delete one block, refit).
 
-What limits it: the other cylinders' pumping is not exactly a straight line over the window, and
-the compression/expansion of a real charge is not exactly symmetric (heat lost at TDC). On
-simulated overrun rides the estimate lands within 1 deg of the true TDC for the twins in neutral
-to 4th gear; in 5th the driveline's response to the compression torque tilts the dip (-1.1 to
--1.3 deg on the 180° twin); on the flat-plane four with its 36-1 wheel (few teeth per window, and
-a partner cylinder turning from exhaust to intake right at cylinder 1's firing TDC) it falls
-short by about 1.4 deg; see tests/test_bringup.py.
+What pulls the dip off TDC (measured on simulated overrun rides, 2200-4500 rpm, capture-timer
+periods quantised to 1 us; seeds 7-9):
+
+* the driveline, in gear: its damping answers the dip with a speed that follows the crank's
+  angle lag, an odd term that tilts the dip late-side down (-0.8 to -1.2 deg on the 180 deg twin
+  in 4th; +0.0 +-0.1 with the clutch open). The rig check therefore uses the stretches in
+  neutral when the log has them, and says when it had to use a stretch in gear;
+* a cylinder passing its gas-exchange TDC at this firing TDC (the 360 deg twin, the flat-plane
+  four): after its TDC its intake stroke pulls against manifold vacuum, before it the exhaust
+  pushed at about ambient, so its torque is one-sided about the very TDC sought and the dip
+  leans early (-0.8 to -1.5 deg, in neutral too). A shape with this one-sided term fitted
+  freely cannot be told from a shift (standard error 5 deg; with the pressure easing to the
+  manifold's over the first 40 deg of the intake stroke, the simulator's own model, the 360 deg
+  twin lands at +0.2..+0.4 deg but the flat-plane four runs to the search edge, and a rig file
+  holds no valve timing), so it is flagged (``partner_exchange``) and not corrected;
+* heat lost at TDC (expansion below compression): +0.4 to +0.7 deg on the 270 deg and V twins.
+
+The half-width of 40 deg keeps the jackknife standard error near 0.1 deg on a 60-2 wheel and
+0.3 deg on a 36-1 wheel (at 30 deg: 0.3 and 2 deg; the dip's position is read from its
+fourth and sixth powers, the second is shared with the free slope).
 """
 
 from __future__ import annotations
@@ -44,7 +57,7 @@ from crankbeat.dsp.layout import firing_angles
 from crankbeat.dsp.toothcal import ToothErrorLearner
 from crankbeat.errors import InputError
 
-__all__ = ["TdcEstimate", "tdc_from_motoring"]
+__all__ = ["TdcEstimate", "tdc_from_motoring", "partner_exchange_deg"]
 
 #: even powers in the shared dip shape: (u - e)², (u - e)⁴, (u - e)⁶
 N_SHAPE = 3
@@ -68,6 +81,9 @@ class TdcEstimate:
         Slowest and fastest revolution mean speed used, rpm.
     at_search_edge : bool
         The best ``e`` lies at the edge of the search range (the estimate is not trustworthy).
+    partner_exchange : bool
+        Another cylinder passes its gas-exchange TDC inside the fit window of a firing TDC: its
+        one-sided pumping leans the dip (about -1 deg on simulated rides), not corrected.
     """
 
     correction_deg: float
@@ -76,6 +92,7 @@ class TdcEstimate:
     windows: int
     rpm_range: tuple[float, float]
     at_search_edge: bool
+    partner_exchange: bool = False
 
 
 def _energy_swing(angles: CrankAngles, mask: np.ndarray, wheel: ToothWheel, engine: Engine):
@@ -131,6 +148,18 @@ def _window_stats(u, q, win, n_win, e, centre, W):
     return S  # [v², v⁴, v⁶, q] cross-products per window
 
 
+def partner_exchange_deg(engine: Engine, reach_deg: float) -> float:
+    """Nearest gas-exchange TDC of another cylinder to any cylinder's firing TDC, deg (NaN when
+    none lies within ``reach_deg``; 2-strokes have none)."""
+    if engine.stroke_cycle != 4 or engine.n_cylinders < 2:
+        return float("nan")
+    fire = np.asarray(firing_angles(engine), dtype=float)
+    d = np.mod(fire[None, :] + 360.0 - fire[:, None] + 360.0, 720.0) - 360.0
+    np.fill_diagonal(d, np.inf)
+    near = np.abs(d)[np.abs(d) < reach_deg]
+    return float(near.min()) if near.size else float("nan")
+
+
 def _rss(S):
     """Residual sum of squares of q on the shape columns from summed cross-products."""
     A, b, c = S[:-1, :-1], S[:-1, -1], S[-1, -1]
@@ -153,7 +182,7 @@ def _best(es, rss):
 
 
 def tdc_from_motoring(angles: CrankAngles, no_firing, wheel: ToothWheel, engine: Engine, *,
-                      window_deg: float = 30.0, search_deg: float = 20.0,
+                      window_deg: float = 40.0, search_deg: float = 20.0,
                       step_deg: float = 0.05, blocks: int = 20,
                       min_cycles: int = 20) -> TdcEstimate | None:
     """Estimate cylinder 1's TDC from the compression dips of a stretch without firing.
@@ -249,5 +278,7 @@ def tdc_from_motoring(angles: CrankAngles, no_firing, wheel: ToothWheel, engine:
         jack.append(_best(fine, rss_g)[0])
     jack = np.asarray(jack)
     se = float(np.sqrt((n_blk - 1) / n_blk * np.sum((jack - jack.mean()) ** 2)))
+    partner = bool(np.isfinite(partner_exchange_deg(engine, W)))
     return TdcEstimate(correction_deg=e_hat, se_deg=se, cycles=len(cycles), windows=n_win,
-                       rpm_range=(float(rpm.min()), float(rpm.max())), at_search_edge=at_edge)
+                       rpm_range=(float(rpm.min()), float(rpm.max())), at_search_edge=at_edge,
+                       partner_exchange=partner)

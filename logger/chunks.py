@@ -83,6 +83,8 @@ class StreamHealth:
     can_duplicates: int = 0  # repeated frames (same rolling counter / same bytes at once)
     can_out_of_order: int = 0  # frames stamped off the time line (early, late), skipped
     can_time_steps: int = 0  # clock steps (back: later times shifted; ahead: a pause)
+    # [from s on the run's time line, shift s] per step back (logger/can/guard.py: log_stamps)
+    can_clock_shifts: list = field(default_factory=list)
     can_bad_time: int = 0  # receive times that are not finite numbers, skipped
     can_bad_values: int = 0  # frames whose values cannot be (tooth period <= 0), skipped
     can_bad_records: int = 0  # lines/records of the recording that could not be read

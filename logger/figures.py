@@ -239,9 +239,10 @@ def channel_view(store: Store, run_id: int, ev: np.ndarray | None = None) -> dic
     """Everything the time-aligned channel view draws, times in s into the ride: ``channels``
     ({name: (t, value)} of :data:`VIEW_CHANNELS` the run stored), ``events`` (the run's events
     with ``t`` shifted), ``masked_spans`` (runs of masked events: the rough-road masks, events
-    less than 0.5 s apart joined), ``correction_from`` (s where the tooth-error correction took
-    effect, None if it held from the start or never)."""
-    from crankbeat.dsp.events import MASKED
+    less than 0.5 s apart joined), ``fuel_cut_spans`` (runs of events on overrun fuel cut,
+    joined the same way), ``correction_from`` (s where the tooth-error correction took effect,
+    None if it held from the start or never)."""
+    from crankbeat.dsp.events import FUEL_CUT, MASKED
 
     ev = store.events(run_id) if ev is None else ev
     t0 = ride_start(store, run_id, ev)
@@ -251,7 +252,9 @@ def channel_view(store: Store, run_id: int, ev: np.ndarray | None = None) -> dic
     shifted["t"] = shifted["t"] - t0
     masked = shifted["t"][shifted["verdict"] == MASKED]
     t_fix = intervals_from_t(store.run(run_id).get("summary"))
+    cut = shifted["t"][shifted["verdict"] == FUEL_CUT]
     return {"channels": channels, "events": shifted, "masked_spans": spans_of(masked, 0.5),
+            "fuel_cut_spans": spans_of(cut, 0.5),
             "correction_from": None if t_fix is None else t_fix - t0}
 
 
@@ -276,3 +279,112 @@ def event_at(ev: np.ndarray, t_ride: float, t0: float, *, cylinder: int | None =
     if not cand.size:
         raise ValueError("no event with a time")
     return int(cand[np.argmin(np.abs(ev["t"][cand] - t0 - t_ride))])
+
+
+#: The speed curve of the event zoom spans this much crank angle around the event's TDC, deg:
+#: its compression before and its expansion (where a misfire shows) after
+ZOOM_SPAN_DEG = (-180.0, 360.0)
+
+
+def event_crank(store: Store, run_id: int, index: int, *, cycles: int = 2,
+                reference_cycles: int = 10) -> dict:
+    """The raw crank data around event ``index``, read again from the run's CAN recording.
+
+    Returns a dict; ``why`` (str) says what is missing when the recording cannot be read
+    (moved, deleted: then nothing else is filled). Otherwise, times in s into the ride:
+
+    * ``t``, ``period_ms``, ``teeth``: every tooth period of the ``cycles`` working cycles
+      either side (the period that ended at that edge, as the bike sent it) and the tooth
+      pitches it spans (1, or ``missing + 1`` across the wheel's gap);
+    * ``tdcs``: ``(t, cylinder)`` of each firing TDC in that span (from the stored events);
+    * ``angle``, ``rpm``: the crank speed over :data:`ZOOM_SPAN_DEG` around the event's TDC,
+      each period at the middle of its tooth interval, deg from TDC and rpm;
+    * ``ref_angle``, ``ref_rpm``, ``ref_count``: its cylinder's reference, the median speed
+      curve of the same cylinder's fired events within ``reference_cycles`` cycles (this event
+      left out), moved to this event's mean speed over the span.
+    """
+    import warnings
+
+    from crankbeat.dsp.crank import reconstruct_crank
+    from crankbeat.dsp.layout import firing_angles
+    from crankbeat.logger.rig.loader import parse_rig
+
+    ev = store.events(run_id)
+    e = ev[index]
+    can = [s["path"] for s in store.run(run_id)["sources"] if s["kind"] == "can"]
+    if not can:
+        return {"why": "the run keeps no CAN recording"}
+    from pathlib import Path
+
+    if not Path(can[0]).is_file():
+        return {"why": f"its CAN recording {can[0]} is not there any more"}
+    rig = parse_rig(store.rig_toml(run_id), label=f"run {run_id}", source="store")
+    near = ev[np.abs(ev["cycle"] - e["cycle"]) <= reference_cycles]
+    lo, hi = float(np.nanmin(near["t"])) - 0.5, float(np.nanmax(near["t"])) + 0.3
+    teeth = _teeth_between(rig, can[0], lo, hi)
+    if teeth is None:
+        return {"why": f"its CAN recording {can[0]} holds no tooth frames at the event"}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # an unknown phase is in the run's own notes
+        angles = reconstruct_crank(*teeth, rig.wheel, rig.engine)
+    ok = angles.valid & np.isfinite(angles.period)
+    t0 = ride_start(store, run_id, ev)
+    fire = np.asarray(firing_angles(rig.engine), dtype=float)
+
+    def tdc_angle(event) -> float:
+        # the firing TDC nearest the crank angle at the event's time: found by time, so that a
+        # phase this reading numbers one revolution apart from the run's (no cam, even firing)
+        # cannot move the event by 360 deg
+        a = float(np.interp(event["t"], angles.t[ok], angles.angle[ok]))
+        cand = fire + rig.engine.cycle_deg * np.round((a - fire) / rig.engine.cycle_deg)
+        return float(cand[np.argmin(np.abs(cand - a))])
+
+    step = np.diff(angles.angle, prepend=np.nan)
+    mid = angles.angle - 0.5 * step
+    rpm = step / angles.period / 6.0
+    good = ok & np.isfinite(rpm)
+
+    def curve(event):
+        rel = mid[good] - tdc_angle(event)
+        sel = (rel >= ZOOM_SPAN_DEG[0]) & (rel <= ZOOM_SPAN_DEG[1])
+        return rel[sel], rpm[good][sel]
+
+    span = np.abs(ev["cycle"] - e["cycle"]) <= cycles
+    shown = (angles.t >= np.nanmin(ev["t"][span]) - 0.01) & \
+        (angles.t <= np.nanmax(ev["t"][span]) + 0.01) & np.isfinite(angles.period)
+    angle, speed = curve(e)
+    grid = np.arange(ZOOM_SPAN_DEG[0], ZOOM_SPAN_DEG[1] + 1e-9, 2.0)
+    refs = [r for r in near if r["cylinder"] == e["cylinder"] and r["verdict"] == FIRED
+            and r["cycle"] != e["cycle"]]
+    shapes = []
+    for r in refs:
+        a, s = curve(r)
+        if a.size > 4 and a.min() <= grid[0] + 12 and a.max() >= grid[-1] - 12:
+            shapes.append(np.interp(grid, a, s) - s.mean())
+    ref = np.median(shapes, axis=0) + (speed.mean() if speed.size else 0.0) if shapes \
+        else np.full(grid.shape, np.nan)
+    pitches = np.rint(step / rig.wheel.pitch_deg)
+    return {"why": "", "t": angles.t[shown] - t0, "period_ms": 1e3 * angles.period[shown],
+            "teeth": np.where(np.isfinite(pitches), pitches, 1)[shown].astype(int),
+            "tdcs": [(float(x["t"] - t0), int(x["cylinder"])) for x in ev[span]],
+            "angle": angle, "rpm": speed, "ref_angle": grid, "ref_rpm": ref,
+            "ref_count": len(shapes)}
+
+
+def _teeth_between(rig, can_path, lo: float, hi: float):
+    """(frame_time, periods, cam, lost_before) of the tooth frames received in [lo, hi] s."""
+    from crankbeat.logger.stream import replay
+
+    parts = []
+    with replay(rig, can_path, None, chunk_s=2.0) as stream:
+        for chunk in stream:
+            tb = chunk.teeth
+            if len(tb.frame_time) and tb.frame_time[0] > hi:
+                break
+            keep = (tb.frame_time >= lo) & (tb.frame_time <= hi)
+            if keep.any():
+                parts.append((tb.frame_time[keep], tb.periods[keep], tb.cam[keep],
+                              tb.lost_before[keep]))
+    if not parts:
+        return None
+    return tuple(np.concatenate([p[k] for p in parts]) for k in range(4))

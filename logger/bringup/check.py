@@ -63,6 +63,7 @@ class RigCheck:
     tdc_note: str
     sensors: dict[str, tuple[int, float]] = field(default_factory=dict)  # samples, rate Hz
     teeth_per_frame: int = 1  # a cam change shows at the end of a frame: up to this - 1 late
+    tdc_stretch: str = ""  # "in neutral", "in gear" or "gear not logged": what the TDC came from
     suggestions: dict[str, object] = field(default_factory=dict)
 
 
@@ -138,7 +139,7 @@ def _no_firing_mask(rig: Rig, edge_t, st_t, roles) -> tuple[np.ndarray | None, s
 
 
 def check_rig(rig: Rig, can_path: str | os.PathLike, accel: dict | None = None, *,
-              window_deg: float = 30.0, search_deg: float = 20.0) -> RigCheck:
+              window_deg: float = 40.0, search_deg: float = 20.0) -> RigCheck:
     """Compare a rig with a short recording of the bike; see :class:`RigCheck`."""
     dur, known, unknown = _census(can_path, rig)
     tb, st_t, roles, sensors = _read(rig, can_path, accel)
@@ -164,21 +165,58 @@ def check_rig(rig: Rig, can_path: str | os.PathLike, accel: dict | None = None, 
                                    rig.engine)
     mask, out.tdc_note = _no_firing_mask(rig, angles.t, st_t, roles)
     if mask is not None:
+        _estimate_tdc(out, rig, wheel, angles, mask, _in_neutral(angles.t, st_t, roles),
+                      window_deg, search_deg)
+    return out
+
+
+def _in_neutral(edge_t, st_t, roles) -> np.ndarray | None:
+    """Per edge: the gearbox in neutral (gear 0) at the last status frame; None without gear."""
+    if "gear" not in roles or not len(st_t):
+        return None
+    i = np.clip(np.searchsorted(st_t, edge_t, side="right") - 1, 0, len(st_t) - 1)
+    return np.asarray(roles["gear"])[i] == 0
+
+
+def _estimate_tdc(out: RigCheck, rig: Rig, wheel: ToothWheel, angles, mask, neutral,
+                  window_deg: float, search_deg: float) -> None:
+    """TDC from the stretch without firing, from its part in neutral when that is long enough.
+
+    In gear the driveline's damping tilts the dip (about -1 deg, dsp/tdcfit.py); in neutral the
+    crank turns free of it.
+    """
+    est = None
+    out.tdc_stretch = "gear not logged"
+    if neutral is not None and (mask & neutral).any():
+        est = tdc_from_motoring(angles, mask & neutral, wheel, rig.engine,
+                                window_deg=window_deg, search_deg=search_deg)
+        out.tdc_stretch = "in neutral"
+    if est is None:
         est = tdc_from_motoring(angles, mask, wheel, rig.engine, window_deg=window_deg,
                                 search_deg=search_deg)
-        if est is None:
-            out.tdc_note = "TDC not estimated: the stretch without firing is too short " \
-                "(fewer than 20 whole cycles)"
-        elif est.at_search_edge:
-            out.tdc_note = f"TDC not estimated: no symmetry point within ±{search_deg:g} deg " \
-                "of the file's value"
-        else:
-            out.tdc = est
-            value = float(np.mod(w.tdc_offset_deg + est.correction_deg, 360.0))
-            # below 1 deg the method's own bias (dsp/tdcfit.py) is as large as the difference
-            if abs(est.correction_deg) > max(2 * est.se_deg, SUGGEST_TDC_DEG):
-                out.suggestions["wheel.tdc_offset_deg"] = round(value, 1)
-    return out
+        out.tdc_stretch = "in gear" if neutral is not None else out.tdc_stretch
+    if est is None:
+        out.tdc_note = "TDC not estimated: the stretch without firing is too short " \
+            "(fewer than 20 whole cycles)"
+        return
+    if est.at_search_edge:
+        out.tdc_note = f"TDC not estimated: no symmetry point within ±{search_deg:g} deg " \
+            "of the file's value"
+        return
+    out.tdc = est
+    cautions = []
+    if out.tdc_stretch == "in gear":
+        cautions.append("taken in gear: the driveline tilts the dip (about -1 deg); a roll-off "
+                        "in neutral is better")
+    if est.partner_exchange:
+        cautions.append("another cylinder passes its gas-exchange TDC at a firing TDC: its "
+                        "one-sided pumping leans the dip early (about -1 deg)")
+    out.tdc_note = "; ".join(cautions)
+    value = float(np.mod(rig.wheel.tdc_offset_deg + est.correction_deg, 360.0))
+    # within 1 deg the method's own leanings (dsp/tdcfit.py) are as large as the difference
+    limit = SUGGEST_TDC_DEG + (1.0 if cautions else 0.0)
+    if abs(est.correction_deg) > max(2 * est.se_deg, limit):
+        out.suggestions["wheel.tdc_offset_deg"] = round(value, 1)
 
 
 def _check_cam(out: RigCheck, rig: Rig, wheel: ToothWheel, tb) -> None:

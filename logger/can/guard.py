@@ -14,6 +14,16 @@ wrong time, and the crank reconstruction would turn that wrong time into wrong a
   step back is taken out by shifting every later time forward, so that the time line goes on
   (the note says by how much).
 
+The run's time line. A clock that steps back (a logger setting its clock from the network,
+say) has not turned the ride back: the frames after the step were received after the frames
+before it. So the run keeps one time line, the recording's stamps with every backward step
+taken out, and everything the run reports and stores (events, channels, its span ``t_start``
+.. ``t_end``) is on that line: after a step back of ``d`` s the run ends up to ``d`` s after the
+recording's last stamp, and its length is how long the bike was recorded. Each shift is kept
+in the stream health (``can_clock_shifts``: ``[time on the run's line from which it holds,
+shift in s]``, stored with the run's summary) and :func:`log_stamps` maps the run's times back
+to the recording's own stamps, to find a frame in the log.
+
 Dropped frames are frames lost to the decoder: a message with a rolling counter sees the gap
 and the crank reconstruction bridges it like any lost frame.
 """
@@ -42,6 +52,28 @@ def take(b: FrameBatch, sel: np.ndarray) -> FrameBatch:
                       dlc=b.dlc[sel], data=b.data[sel], is_error=b.is_error[sel],
                       is_remote=b.is_remote[sel], is_fd=b.is_fd[sel], index=b.index[sel],
                       origin=b.origin, index_kind=b.index_kind)
+
+
+def log_stamps(t, shifts) -> np.ndarray:
+    """Times on a run's time line mapped back to the recording's own stamps, s.
+
+    Parameters
+    ----------
+    t : array_like
+        Times on the run's time line (CAN time base, after the guard), s.
+    shifts : sequence of (from_s, shift_s)
+        The run's ``can_clock_shifts``: from time ``from_s`` on (run's line) every time was
+        shifted forward by ``shift_s``; the shifts add up.
+
+    Returns
+    -------
+    ndarray, shape of ``t``
+    """
+    t = np.asarray(t, dtype=np.float64)
+    out = t.copy()
+    for start, shift in shifts:
+        out = np.where(t >= float(start), out - float(shift), out)
+    return out
 
 
 def _fits(t: float, last: float) -> bool:
@@ -158,8 +190,10 @@ class FrameGuard:
             shift = -step + max(spacing, 0.0)
             self.offset += shift
             ts[held[0]:] += shift
+            h.can_clock_shifts.append([float(ts[i]), shift])
             self._note("step", f"{b.where(i)}: the clock steps back by {-step:.6g} s; later "
-                       f"times are shifted by {shift:+.6g} s so that the time line goes on")
+                       f"times are shifted by {shift:+.6g} s so that the time line goes on "
+                       "(the run's times after it are the log's stamps plus the shift)")
         else:
             self._note("step", f"{b.where(i)}: the clock jumps ahead by {step:.6g} s "
                        "(taken as a pause in the recording)")

@@ -16,8 +16,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="CAN log of the bike (any format python-can reads)")
     parser.add_argument("--accel", action="append", default=[], metavar="SENSOR=FILE",
                         help="serial capture of a sensor of the rig (repeatable)")
-    parser.add_argument("--window", type=float, default=30.0, metavar="DEG",
-                        help="half-width of the TDC fit window, crank deg (default 30)")
+    parser.add_argument("--window", type=float, default=40.0, metavar="DEG",
+                        help="half-width of the TDC fit window, crank deg (default 40)")
     parser.add_argument("--search", type=float, default=20.0, metavar="DEG",
                         help="seek TDC within this of the file's value, deg (default 20)")
     parser.add_argument("--unknown", type=int, default=5, metavar="N",
@@ -26,7 +26,8 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.epilog = (
         "example:\n  crankbeat bringup --rig newbike.toml --can first-ride.log\n\n"
         "For TDC the log needs a stretch of closed throttle above 1.5 x idle (overrun fuel cut),\n"
-        "at least 20 cycles: roll off from mid revs in a low gear and let the engine slow.")
+        "at least 20 cycles: in neutral, rev to mid revs, close the throttle and let the\n"
+        "engine slow (in gear the driveline tilts the dip by about 1 deg).")
 
 
 def _id(r) -> str:
@@ -74,9 +75,11 @@ def run(args: argparse.Namespace) -> int:
     if res.tdc is not None:
         t = res.tdc
         value = (rig.wheel.tdc_offset_deg + t.correction_deg) % 360.0
-        print(f"TDC: {value:.2f} ± {t.se_deg:.2f} deg after tooth 0 (file "
+        print(f"TDC: {value:.2f} ± {t.se_deg:.2f} deg (standard error) after tooth 0 (file "
               f"{rig.wheel.tdc_offset_deg:g}; {t.cycles} cycles without firing, "
-              f"{t.rpm_range[0]:.0f}-{t.rpm_range[1]:.0f} rpm)")
+              f"{t.rpm_range[0]:.0f}-{t.rpm_range[1]:.0f} rpm, {res.tdc_stretch})")
+        if res.tdc_note:
+            print(f"  caution: {res.tdc_note}")
     else:
         print(res.tdc_note)
     if res.suggestions:
@@ -98,7 +101,9 @@ def _as_dict(res, n_unknown: int) -> dict:
     if res.tdc is not None:
         tdc = {"tdc_offset_deg": (res.rig.wheel.tdc_offset_deg + res.tdc.correction_deg) % 360,
                "se_deg": res.tdc.se_deg, "cycles": res.tdc.cycles,
-               "rpm_range": list(res.tdc.rpm_range)}
+               "rpm_range": list(res.tdc.rpm_range), "stretch": res.tdc_stretch,
+               "caution": res.tdc_note,
+               "partner_exchange": res.tdc.partner_exchange}
     return {
         "rig": res.rig.source, "duration_s": res.duration_s,
         "ids": [rate(r) for r in res.ids], "unknown_ids": [rate(r) for r in

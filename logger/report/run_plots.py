@@ -125,8 +125,8 @@ def plot_windows(store: Store, run_id: int, ev: np.ndarray, path: Path,
         ax.set_ylim(bottom=0)
         ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
     axes[-1, 0].set_xlabel("time into the ride [s]")
-    fig.suptitle("Misfire rate per revolution window (dsp window_rates on the stored events)",
-                 fontsize=9)
+    fig.suptitle("Misfire rate per window of 200 and of 1000 crank revolutions against time "
+                 "(all cylinders and each one)", fontsize=9)
     save(fig, path)
     return path
 
@@ -208,7 +208,7 @@ def plot_contribution(ev: np.ndarray, path: Path) -> Path | None:
     cyls = sorted(set(e["cylinder"].tolist()))
     means = [float(np.mean(e["contribution"][e["cylinder"] == c])) for c in cyls]
     sds = [float(np.std(e["contribution"][e["cylinder"] == c])) for c in cyls]
-    fig, ax = new_figure(1.2 * len(cyls) + 3.5, 3.4)
+    fig, ax = new_figure(1.2 * len(cyls) + 4.5, 3.4)
     x = np.arange(len(cyls))
     # Dots with spread rather than bars from zero: a few per cent between cylinders must show.
     ax.errorbar(x, means, yerr=sds, fmt="none", ecolor="#555555", capsize=5, lw=1)
@@ -228,7 +228,8 @@ def plot_contribution(ev: np.ndarray, path: Path) -> Path | None:
     ax.set_ylim(min(lo, 1.0) - pad, max(hi, 1.0) + pad)
     ax.set_xlabel("cylinder")
     ax.set_ylabel("relative contribution [-]")
-    ax.set_title("Contribution per cylinder (fired events, mean ± 1 s.d.)")
+    ax.set_title("Contribution per cylinder: work of its fired events\n"
+                 "relative to the engine's typical event (mean ± 1 s.d.)", loc="left")
     ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
     save(fig, path)
     return path
@@ -252,6 +253,8 @@ def plot_order_map(store: Store, run_id: int, path: Path, *, max_order: float = 
         where = f"{sensor} ({'vector sum' if axis == 'sum' else axis})"
         _draw_order_map(fig, row[0], grid, marks, where)
         _draw_order_cuts(row[1], grid, main_orders(marks), where)
+    fig.suptitle("Vibration by engine order and engine speed: the order map and the amplitude "
+                 "of the main predicted orders against rpm", fontsize=9)
     save(fig, path)
     return path
 

@@ -40,8 +40,17 @@ def save(fig, path) -> None:
     """Write the PNG; its text chunk ``Axes`` keeps the panels' titles and axis labels, so a
     reader (or a test) can tell what the picture shows without looking at pixels."""
     fig.tight_layout()
-    fig.savefig(path, dpi=110, metadata={"Axes": json.dumps(axes_text(fig))})
+    title = fig._suptitle.get_text() if fig._suptitle is not None else ""
+    fig.savefig(path, dpi=110, metadata={"Axes": json.dumps(axes_text(fig)), "Title": title})
     plt.close(fig)
+
+
+def saved_title(path) -> str:
+    """The figure's overall title :func:`save` kept in a PNG ("" when it has none)."""
+    from PIL import Image
+
+    with Image.open(path) as img:
+        return img.text.get("Title", "")
 
 
 def saved_axes(path) -> list[dict[str, str]]:
