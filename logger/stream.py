@@ -108,10 +108,12 @@ class _Merger:
     """CAN batches + serial reads -> chunks; the part replay and live share."""
 
     def __init__(self, rig: Rig, sensors: list[str], chunk_s: float,
-                 note_sources: list[Callable[[], list[str]]]) -> None:
+                 note_sources: list[Callable[[], list[str]]], *, coalesce: bool = False) -> None:
         if not (isinstance(chunk_s, int | float) and chunk_s > 0 and np.isfinite(chunk_s)):
             raise UsageError(f"chunk_s must be a positive number of seconds, got {chunk_s!r}")
         self.chunk_s = float(chunk_s)
+        # live: the chunks a batch completes close as one (see _segments)
+        self.coalesce = coalesce
         self.decoder = FrameDecoder(rig)
         self.health = self.decoder.health
         self.guard = FrameGuard(self.health)
@@ -134,12 +136,10 @@ class _Merger:
             cm = np.maximum.accumulate(np.maximum(ts, self._runmax))
             self._runmax = float(cm[-1])
             ids = np.floor(cm / self.chunk_s).astype(np.int64)
-            cuts = [0, *(np.flatnonzero(np.diff(ids)) + 1).tolist(), len(batch)]
-            for a, z in zip(cuts[:-1], cuts[1:], strict=True):
-                sid = int(ids[a])
-                if self._open is not None and sid != self._open:
+            for a, z in self._segments(ids):
+                if self._open is not None and int(ids[a]) != self._open:
                     yield self._close(feed, final=False)
-                self._open = sid
+                self._open = int(ids[z - 1])
                 t, s = self.decoder.push(_slice(batch, a, z))
                 self._teeth.append(t)
                 self._status.append(s)
@@ -147,6 +147,20 @@ class _Merger:
         self.decoder.finish()
         if self._open is not None or self.serial:
             yield self._close(feed, final=True)
+
+    def _segments(self, ids: np.ndarray) -> list[tuple[int, int]]:
+        """Index ranges of a batch that go into one chunk each, from the chunk ids of its frames.
+
+        Replay: one range per chunk id. Live (``coalesce``): a batch is what the bus queued
+        since the last read, so one that spans several chunk boundaries means the analysis fell
+        behind; every chunk it completes then closes as one (its end the last boundary), and
+        the analysis catches up in one step instead of paying its per-step cost for each. The
+        verdicts do not depend on where chunks end (streaming == whole-array).
+        """
+        cuts = [0, *(np.flatnonzero(np.diff(ids)) + 1).tolist(), len(ids)]
+        if self.coalesce and len(cuts) > 3:
+            cuts = [0, cuts[-2], len(ids)]
+        return list(zip(cuts[:-1], cuts[1:], strict=True))
 
     def _close(self, feed: SerialFeed, *, final: bool) -> Chunk:
         if self._open is None:  # no CAN at all: one chunk with whatever the serial side had
@@ -372,7 +386,7 @@ def live(
         for c in reversed(closers):
             c()
         raise
-    merger = _Merger(rig, list(ports), chunk_s, [lambda: source.notes])
+    merger = _Merger(rig, list(ports), chunk_s, [lambda: source.notes], coalesce=True)
     held: dict[str, list[Record]] = {n: [] for n in readers}
     started = time.monotonic()
 
