@@ -177,6 +177,8 @@ class EventAnalyzer:
         out = self.detector.report()
         out["rig_inertia_kgm2"] = float(self.engine.inertia_kgm2)
         out["inertia_kgm2"] = est = self.inertia.result()
+        if est is None:
+            out["inertia_note"] = self.inertia.why_none()
         if est is not None:
             out["notes"].append(
                 f"effective rotating inertia from the crank speed: {est:.4f} kg m^2 (rig file "

@@ -79,6 +79,10 @@ class FiringCheck:
         except InputError:
             return None
 
+    def cycles_averaged(self) -> int:
+        """Engine cycles in the averaged profile (its tooth intervals over a cycle's worth)."""
+        return int(round(self.profile.edges * self.pitch / self.engine.cycle_deg))
+
     def interval_rows(self, wheel_known: bool) -> tuple[list[dict], list[str]]:
         """Rows for the store's interval table and notes; observed None when not judged."""
         try:
@@ -92,7 +96,7 @@ class FiringCheck:
             rows.append({"from_cyl": r.from_cylinder, "to_cyl": r.to_cylinder,
                          "expected_deg": r.expected_deg,
                          "observed_deg": r.observed_deg if judged else None,
-                         "stderr_deg": None, "n": int(self.profile.edges),
+                         "stderr_deg": None, "n": self.cycles_averaged(),
                          "flagged": bool(judged and abs(off) > self.tolerance)})
         return rows, ([] if wheel_known else [NOT_JUDGED_NOTE])
 

@@ -122,6 +122,16 @@ class InertiaEstimator:
         self._suv += float(ruv[whole].sum())
         self.cycles += int(whole.sum())
 
+    def why_none(self) -> str | None:
+        """Why :meth:`result` gives no figure (None when it gives one)."""
+        if not self.usable:
+            return ("not estimated: this layout's reciprocating patterns cancel, so the crank "
+                    "speed shows nothing to weigh the inertia against")
+        if self.cycles < self.min_cycles or not self._suu > 0:
+            return (f"not estimated: {self.cycles} whole cycles at or above "
+                    f"{self.min_rpm:.0f} rpm, {self.min_cycles} needed")
+        return None
+
     def result(self) -> float | None:
         """``J0`` estimate, kg·m², or None before ``min_cycles`` cycles at speed."""
         if not self.usable or self.cycles < self.min_cycles or not self._suu > 0:

@@ -163,7 +163,10 @@ def test_interrupted_replay_is_analysed_again_next_time(tmp_path, demo_ride, sig
     log, caps = demo_ride
     db = tmp_path / "r.db"
     argv = [sys.executable, "-m", "crankbeat.logger.cli.main",
-            *_replay(db, log, "--pace", "4"), *[a for c in caps for a in ("--accel", str(c))]]
+            # at real time, so that the ride is far from its end when the signal comes, however
+            # slowly a loaded machine gets to the first stored events (at 4x the 60 s ride could
+            # end within the second after them, and a finished run rightly exits 0)
+            *_replay(db, log, "--pace", "1"), *[a for c in caps for a in ("--accel", str(c))]]
     proc = subprocess.Popen(argv, cwd=tmp_path, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
     try:
         _wait_for_events(db, proc)

@@ -63,7 +63,7 @@ def render_run(store: Store, run_id: int, *, riding_hours: float | None = None) 
             out.append("  UNCORRECTED: this run's wheel tooth spacing errors were never learnt, so "
                        "these figures include them (several degrees); the check is not judged")
         out.append(table(
-            ["from", "to", "expected", "observed", "+-", "n", "check"],
+            ["from", "to", "expected", "observed", "+-", "cycles", "check"],
             [[i["from_cyl"], i["to_cyl"], fmt(i["expected_deg"], ".1f"),
               fmt(i["observed_deg"], ".2f"), fmt(i["stderr_deg"], ".2f"), i["n"],
               ("OFF" if i["flagged"] else "ok") if wheel_corrected(info.get("summary"))

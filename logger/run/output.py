@@ -112,6 +112,7 @@ def conclude(analysis) -> RunTail:
     found = analysis.events.verdict_report()  # dead/unusable cylinders, depth scale, inertia
     summary["detector"] = {
         "inertia_kgm2": found["inertia_kgm2"], "rig_inertia_kgm2": found["rig_inertia_kgm2"],
+        **({"inertia_note": found["inertia_note"]} if found.get("inertia_note") else {}),
         # first seen dead, s into the ride (CAN time of the first crank edge = 0)
         "dead_since_s": {str(c): round(t - (summary.get("t_start") or 0.0), 2)
                          for c, t in found["dead"].items()},
