@@ -10,12 +10,22 @@ the cap.
 
 from __future__ import annotations
 
+import re
 from collections.abc import Iterable, Sequence
 
 #: At most this many notes besides the decisive ones are stored with a run.
 NOTE_CAP = 20
 #: A loss of at least this share of a stream's frames or samples is decisive.
 DECISIVE_LOSS = 0.10
+#: Small losses of one kind noted at least this many times are folded into one note.
+FOLD_FROM = 3
+
+# the small, frequent notes folded into one per stream and kind (their counts are also in the
+# stream-health fields): a serial sensor's corrupt or lost frames, a CAN signal's counter gaps
+_SERIAL_SMALL = re.compile(r"^(?P<who>[^:\s]+): (?P<n>\d+) (?P<what>corrupt frames|frames lost) at "
+                           r"(?P<at>host t=\S+ s)$")
+_COUNTER_GAP = re.compile(r"^(?P<who>.+) line (?P<line>\d+): (?P<what>\S+) counter \d+ -> \d+: "
+                          r"(?P<n>\d+) frame\(s\) lost$")
 
 
 def stream_fields(health, watch=None, live: dict | None = None) -> dict:
@@ -82,11 +92,48 @@ def decisive_notes(fields: dict) -> list[str]:
     return [text for _, text in scored]
 
 
+def fold_small_losses(notes: Iterable[str]) -> list[str]:
+    """Notes of the same small loss repeated (a sensor's corrupt or lost frames, a CAN signal's
+    counter gaps) folded into one note each, in the place of the first; the rest as they are.
+
+    Twenty one-frame losses would otherwise fill the note cap and push out what matters.
+    """
+    notes = list(notes)
+    groups: dict[tuple[str, str], list[re.Match]] = {}
+    for n in notes:
+        m = _SERIAL_SMALL.match(n) or _COUNTER_GAP.match(n)
+        if m:
+            groups.setdefault((m["who"], m["what"]), []).append(m)
+    out: list[str] = []
+    done: set[tuple[str, str]] = set()
+    for n in notes:
+        m = _SERIAL_SMALL.match(n) or _COUNTER_GAP.match(n)
+        key = (m["who"], m["what"]) if m else None
+        if key is None or len(groups[key]) < FOLD_FROM:
+            out.append(n)
+        elif key not in done:
+            done.add(key)
+            out.append(_folded(groups[key]))
+    return out
+
+
+def _folded(ms: list[re.Match]) -> str:
+    total = sum(int(m["n"]) for m in ms)
+    who, what = ms[0]["who"], ms[0]["what"]
+    if "line" in ms[0].re.groupindex:
+        lines = ", ".join(m["line"] for m in ms[:6]) + (", ..." if len(ms) > 6 else "")
+        return (f"{who}: {what} counter gaps at {len(ms)} places (lines {lines}): {total} "
+                "frame(s) lost")
+    return (f"{who}: {total} {what} in {len(ms)} places from {ms[0]['at']} to {ms[-1]['at']} "
+            "(noted places only; the whole run's count is in the stream counters)")
+
+
 def ranked_notes(decisive: Sequence[str], others: Iterable[str], *,
                  cap: int = NOTE_CAP) -> list[str]:
-    """Decisive notes first (never cut), then the others deduplicated up to ``cap``."""
+    """Decisive notes first (never cut), then the others, repeated small losses folded
+    (:func:`fold_small_losses`), deduplicated up to ``cap``."""
     seen: list[str] = []
-    for n in others:
+    for n in fold_small_losses(others):
         if n not in seen and n not in decisive:
             seen.append(n)
     kept = seen[:cap]
@@ -95,4 +142,4 @@ def ranked_notes(decisive: Sequence[str], others: Iterable[str], *,
     return list(dict.fromkeys(decisive)) + kept
 
 
-__all__ = ["NOTE_CAP", "decisive_notes", "ranked_notes", "stream_fields"]
+__all__ = ["NOTE_CAP", "decisive_notes", "fold_small_losses", "ranked_notes", "stream_fields"]

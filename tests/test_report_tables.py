@@ -25,11 +25,11 @@ def _cycle_to_t(ev, cylinder, cycle):
     return float(ev["t"][(ev["cylinder"] == cylinder) & (ev["cycle"] == cycle)][0])
 
 
-def test_misfire_list_names_isolated_burst_and_dead_spell(tmp_path):
+def test_misfire_list_names_the_patterns_as_show_does(tmp_path):
     ev = make_events(400, special=False)
-    # a dead spell: cylinder 1 misses five cycles in a row (100..104)
+    # consecutive: cylinder 1 misses five cycles in a row (100..104)
     ev["verdict"][(ev["cylinder"] == 1) & (ev["cycle"] >= 100) & (ev["cycle"] <= 104)] = MISFIRE
-    # a burst: the two cylinders take turns missing (cycle 200 cyl 2, 201 cyl 1, 202 cyl 2)
+    # alternating: the two cylinders take turns missing (cycle 200 cyl 2, 201 cyl 1, 202 cyl 2)
     for cyl, cycle in ((2, 200), (1, 201), (2, 202)):
         ev["verdict"][(ev["cylinder"] == cyl) & (ev["cycle"] == cycle)] = MISFIRE
     # isolated: one miss with nothing within 4 cycles
@@ -47,8 +47,8 @@ def test_misfire_list_names_isolated_burst_and_dead_spell(tmp_path):
     t0 = float(ev["t"].min())  # the synthetic run stores no t_start: zero is the first event
     for c in range(100, 105):
         r = by_cycle[(1, round(_cycle_to_t(ev, 1, c) - t0, 6))]
-        assert r["pattern"] == "dead spell" and r["gear"] == 3.0
-    assert {r["pattern"] for r in rows if 190 < _cycle(ev, r, t0) < 210} == {"burst"}
+        assert r["pattern"] == "consecutive" and r["gear"] == 3.0
+    assert {r["pattern"] for r in rows if 190 < _cycle(ev, r, t0) < 210} == {"alternating"}
     last = rows[-1]
     assert last["pattern"] == "isolated" and last["gear"] == 4.0 and last["cylinder"] == 2
     # rpm and throttle are the event's own (make_events: 30 % throttle throughout)
@@ -105,7 +105,7 @@ def test_demo_misfires_sit_where_the_ride_script_put_them(demo_report):
     assert {r["gear"] for r in burst} == {float(gear)}
     # the script's burst is on cylinder 2: none of its misfires there is called isolated
     assert "isolated" not in {r["pattern"] for r in burst if r["cylinder"] == 2}
-    assert "dead spell" in {r["pattern"] for r in burst}
+    assert "consecutive" in {r["pattern"] for r in burst}
     lo, hi, gear = seg["cruise"]
     cruise = [r for r in rows if lo <= r["t_s"] < hi]
     assert cruise and {r["pattern"] for r in cruise} == {"isolated"}

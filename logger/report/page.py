@@ -91,8 +91,7 @@ def _misfires(store: Store, run_id: int, ev, pairs: dict[int, str]) -> list[str]
     parts = [
         "<h2 id='misfires'>Misfire events</h2>",
         f"<p>{len(rows)} misfires: " + ", ".join(f"{v} {k}" for k, v in sorted(counts.items()))
-        + ". <span class='muted'>isolated = no other misfire within 4 cycles; burst = others "
-        "close by; dead spell = the same cylinder misfiring cycle after cycle.</span></p>",
+        + f". <span class='muted'>{tables.PATTERN_LEGEND}.</span></p>",
         "<div class='scroll'>" + table(
             ["time s", "cylinder", "rpm", "gear", "throttle %", "metric", "threshold",
              "pattern"],
@@ -176,7 +175,7 @@ def run_page(store: Store, run_id: int, ev, figures: list[tuple[str, Path]],
     intervals = store.intervals(run_id)
     if intervals:
         parts += ["<h2>Firing intervals</h2>", table(
-            ["from", "to", "expected deg", "observed deg", "± deg", "n", "check"],
+            ["from", "to", "expected deg", "observed deg", "± deg", "cycles", "check"],
             [[i["from_cyl"], i["to_cyl"], i["expected_deg"], i["observed_deg"],
               i["stderr_deg"], i["n"],
               ("OFF" if i["flagged"] else "ok") if corrected else "not judged"]

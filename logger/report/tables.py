@@ -18,11 +18,12 @@ from crankbeat.logger.report.text import ride_time
 from crankbeat.logger.store import Store
 from crankbeat.logger.store.channel_filter import channel_at
 
-#: How the misfire list names the neighbourhood of a misfire (our words over the classes of
-#: :func:`dsp.analysis.misfire_patterns`): the same cylinder missing cycle after cycle is a dead
-#: spell; misfires with others close by (taking turns or scattered) are a burst.
-PATTERN_WORDS = {"isolated": "isolated", "consecutive": "dead spell",
-                 "alternating": "burst", "random": "burst"}
+#: The legend of the misfire list's pattern column: the classes of
+#: :func:`dsp.analysis.misfire_patterns` under the same names ``show`` prints (a second vocabulary
+#: here had the report call a burst a "dead spell", the detector's word for something else).
+PATTERN_LEGEND = ("isolated = no other misfire within 4 cycles; consecutive = the same cylinder "
+                  "also misfired the cycle before or after; alternating = every other cycle, or "
+                  "cylinders taking turns; random = other misfires close by, no pattern")
 
 #: What a vibration row's weighting means, with the standard behind it.
 WEIGHTING_WORDS = {"Wh": "Wh, hand-arm (ISO 5349-1)", "Wk": "Wk, whole-body vertical (ISO 2631-1)",
@@ -86,7 +87,7 @@ def headline(store: Store, run_id: int) -> list[Headline]:
 def misfire_rows(store: Store, run_id: int, ev: np.ndarray | None = None) -> list[dict]:
     """One row per misfire in time order: ``t_s`` (s into the ride), ``cylinder``, ``rpm``,
     ``gear`` and ``throttle`` (the stored channel at that time; None without one), ``metric``,
-    ``threshold`` and ``pattern`` (see :data:`PATTERN_WORDS`)."""
+    ``threshold`` and ``pattern`` (see :data:`PATTERN_LEGEND`)."""
     ev = store.events(run_id) if ev is None else ev
     if not len(ev) or not np.any(ev["verdict"] == MISFIRE):
         return []
@@ -101,7 +102,7 @@ def misfire_rows(store: Store, run_id: int, ev: np.ndarray | None = None) -> lis
         row = {"t_s": float(e["t"] - t0), "cylinder": int(e["cylinder"]),
                "rpm": float(e["rpm"]), "metric": float(e["metric"]),
                "threshold": float(e["threshold"]),
-               "pattern": PATTERN_WORDS.get(pats["labels"][k], pats["labels"][k])}
+               "pattern": pats["labels"][k]}
         for name in ("gear", "throttle"):
             v = looked_up[name][k] if name in looked_up else np.nan
             if name == "throttle" and not np.isfinite(v):
