@@ -68,7 +68,9 @@ class CylinderState:
         self.shares: deque[float] = deque(maxlen=spread_events)  # contribution when fired
         self.recent_share: deque[float] = deque(maxlen=16)  # contribution, flagged or not
         self.run: list[float] = []  # contributions of the current run of misfires
-        self.spell_mid = float("nan")  # level below which a dead spell goes on
+        self.spell_mid = float("nan")  # share below which a dead spell goes on
+        self.spell_mid_x = float("nan")  # metric below which a dead spell goes on
+        self.run_x: list[float] = []  # metric of the current run of misfires
         self.dead_since: float | None = None  # start of the current dead spell, s
         self.first_dead: float | None = None  # start of the first dead spell, s
         self.unusable_reason: str | None = None

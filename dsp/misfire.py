@@ -25,11 +25,17 @@ Decision (per event ``k`` of cylinder ``c``, in event order)
   single cylinder the self score alone decides);
 * a cylinder is dead (every event ``MISFIRE``, its baseline frozen, never adapted to it) from
   the first cycles of a ride when it reads below every other cylinder, below ``dead_ratio`` of
-  their median level, without their scatter and with a share of the engine's work below
-  ``dead_start_share``; mid-ride when a run of ``dead_run`` misfires comes with its share of the
-  work falling by ``dead_share_drop`` more than the other cylinders' shares fall (shares trusted
-  only where fired ones read like shares). A spell's start and end make the other cylinders
-  relearn their baselines: each step starts from the crank speed the event before it left;
+  their median level, without their scatter, and either (uneven firing: the cylinders' levels
+  differ by geometry there) with a share of the engine's work below ``dead_start_share``, or
+  (even firing) with a gap below the others' median of at least ``DEAD_GAP_OVER_RANGE`` times
+  the range of their levels; mid-ride when a run of ``dead_run`` misfires comes with its share
+  of the work falling by ``dead_share_drop`` more than the other cylinders' shares fall (shares
+  trusted only where fired ones read like shares), or, on an even-firing engine, reads steadily
+  below every other cylinder (the four's window work hardly falls for a dead cylinder, so its
+  share cannot tell). A spell ends halfway back to where the cylinder fired (one from the start
+  of an uneven engine: once it reads above ``dead_ratio`` of the others). A spell's start
+  and end make the other cylinders relearn their baselines: each step starts from the crank
+  speed the event before it left;
 * depth = missing work ÷ the work of a complete misfire, where an offset-free scale exists (the
   cylinder's motored level on fuel cut, else the upper half of its own misfires in the rpm cell);
   a flagged event shallower than ``partial_depth`` on the motored scale of its rpm cell is
@@ -85,6 +91,12 @@ from crankbeat.dsp.misfire_prep import fuel_cut_flags, other_cylinders_level, ty
 from crankbeat.dsp.misfire_settings import MisfireSettings
 from crankbeat.errors import InputError
 
+#: On an even-firing engine a cylinder reads dead from the start only when its gap below the
+#: others' median is this many times the range of the others' levels: fired cylinders read alike
+#: there, so a gap no larger than their own differences is a pattern (a cross-plane crank read as
+#: a flat one spreads its healthy cylinders' levels over more than the gap), not a dead cylinder.
+DEAD_GAP_OVER_RANGE = 1.5
+
 
 class MisfireDetector:
     """Streaming misfire decision over the raw events of :class:`dsp.fluctuation.FluctuationStage`.
@@ -111,6 +123,8 @@ class MisfireDetector:
         _, angles = firing_sequence(engine)
         iv = np.diff(np.concatenate((angles, [angles[0] + engine.cycle_deg])))
         self._expected_before = np.roll(iv, 1)  # expected interval *before* each position
+        # every firing the same angle apart: the cylinders' fired levels read alike
+        self._even = bool(np.ptp(iv) < 1.0)
         self._ahead = self.s.lookahead_cycles * self.n  # events of look-ahead
         self._back = max(2 * self.n, self._ahead)  # events of history kept in the buffer
         self._z = float(self.s.threshold if self.s.threshold is not None else self.s.z_threshold)
@@ -366,63 +380,93 @@ class MisfireDetector:
 
         Mid-ride, a run of ``dead_run`` misfires in a row (the last one not ``partial_like``:
         short of a whole misfire on a calibrated depth scale) starts a spell when the cylinder's
-        share of the engine's work (``contribution``) collapsed by ``dead_share_drop``. The spell
-        lasts while its share stays below halfway between its share before the run and in the
-        run (a share follows speed and load; a frozen baseline in joules does not).
-        A cylinder that never fired has no level before: it is told by a metric far below the
-        others' (under ``dead_ratio`` of their level) without their combustion scatter, and a
-        share of the engine's work below ``dead_start_share``.
+        share of the engine's work (``contribution``) collapsed by ``dead_share_drop``, or, on an
+        even-firing engine, when the run reads steadily below every other cylinder's level. A
+        cylinder that never fired has no level before: it is told by a metric far below the
+        others' (under ``dead_ratio`` of their level and below every one of them) without their
+        combustion scatter, and on an uneven-firing engine a share of the engine's work below
+        ``dead_start_share`` (there the cylinders' levels differ by geometry alone).
+        A spell lasts while the cylinder reads below halfway between where it started and where
+        fired cylinders read (the share where the share started it, else the metric).
         """
         st = self._cyl[c]
         if self.n < 2:
             return False
         st.run = st.run + [contrib] if cand else []
+        st.run_x = st.run_x + [x] if cand else []
         lv = [o.level for i, o in enumerate(self._cyl) if i != c and len(o.recent) >= 4]
+        sp = [robust_spread(o.recent) for i, o in enumerate(self._cyl)
+              if i != c and len(o.recent) >= 4]
         lv_o = median(lv) if lv else float("nan")
         lim = self.s.dead_ratio * lv_o
         if st.dead_since is not None:
             if st.spell_mid == st.spell_mid:
                 dead = contrib == contrib and contrib < st.spell_mid
-            else:  # dead from the start: as long as its level stays far below the others'
+            elif st.spell_mid_x == st.spell_mid_x:
+                dead = x < st.spell_mid_x
+            else:  # dead from the start (uneven engine): while it stays far below the others
                 dead = lv_o > 0 and x < lim
         elif st.ever_healthy:
-            dead = False
-            if len(st.run) >= self.s.dead_run and not partial_like:
-                shares = [v for v in st.run if v == v]
-                # against the others' shares over the same time: when a dead cylinder fires
-                # again, the engine's typical work rises and every other share drops with it
-                # a share is trusted only where the fired ones read like shares (about 1): a
-                # work estimate near zero on average (the loss balance off by the unknown
-                # inertia) makes every ratio to it noise
-                fired_share = median(st.shares) if len(st.shares) >= 8 else float("nan")
-                if 0.25 < fired_share < 4.0 and shares and (
-                        fired_share - median(shares) - self._others_share_drop(c)
-                        > self.s.dead_share_drop):
-                    st.spell_mid, dead = 0.5 * (fired_share + median(shares)), True
+            dead = (len(st.run) >= self.s.dead_run and not partial_like
+                    and (self._share_collapsed(c) or self._reads_dead(st, st.run_x, lv, sp)))
         else:
             own = list(st.recent)[-15:] + [x]
-            sp = [robust_spread(o.recent) for i, o in enumerate(self._cyl)
-                  if i != c and len(o.recent) >= 4]
-            # its share of the engine's work must agree: the metric's level differs between the
-            # cylinders of an uneven engine (a twin-270's second cylinder reads far lower)
-            low_share = (len(st.recent_share) >= 4
+            # on an uneven engine the share must agree: the metric's level differs between the
+            # cylinders there (a twin-270's second cylinder reads far lower)
+            low_share = (self._even or len(st.recent_share) >= 4
                          and median(st.recent_share) < self.s.dead_start_share)
-            # and it reads below every other cylinder (a ratio of the others' median means
-            # nothing on a signed metric: the uneven engines' levels straddle zero)
-            lowest = min(lv) if lv else float("nan")
-            dead = (len(own) >= 4 and bool(sp) and lv_o > 0 and x < lim and median(own) < lim
-                    and median(own) < lowest
-                    and lv_o - median(own) > self._z * median(sp)
-                    and robust_spread(own) < self.s.dead_scatter * median(sp) and low_share)
-            st.spell_mid = float("nan")
+            dead = (len(own) >= 4 and lv_o > 0 and x < lim and median(own) < lim and low_share
+                    and self._reads_dead(st, own, lv, sp, start=True))
         if dead and st.dead_since is None:
             st.dead_since = t
             st.first_dead = t if st.first_dead is None else st.first_dead
             self._others_relearn(c)
         elif not dead and st.dead_since is not None:
             st.dead_since = None
+            st.spell_mid = st.spell_mid_x = float("nan")
             self._others_relearn(c)
         return dead
+
+    def _share_collapsed(self, c: int) -> bool:
+        """The run of misfires of cylinder c took its share of the engine's work down by
+        ``dead_share_drop`` more than the other cylinders' shares fell (sets the spell's mid)."""
+        st = self._cyl[c]
+        shares = [v for v in st.run if v == v]
+        # against the others' shares over the same time: when a dead cylinder fires again, the
+        # engine's typical work rises and every other share drops with it. A share is trusted
+        # only where the fired ones read like shares (about 1): a work estimate near zero on
+        # average (the loss balance off by the unknown inertia) makes every ratio to it noise
+        fired_share = median(st.shares) if len(st.shares) >= 8 else float("nan")
+        if 0.25 < fired_share < 4.0 and shares and (
+                fired_share - median(shares) - self._others_share_drop(c)
+                > self.s.dead_share_drop):
+            st.spell_mid = 0.5 * (fired_share + median(shares))
+            return True
+        return False
+
+    def _reads_dead(self, st: CylinderState, own: list[float], lv: list[float],
+                    sp: list[float], *, start: bool = False) -> bool:
+        """``own`` (the cylinder's recent metric) reads dead against the other cylinders' levels
+        ``lv`` and spreads ``sp``: below every one of them by ``z_threshold`` of their spread,
+        steadily (without their combustion scatter). Mid-ride only on an even-firing engine,
+        where fired cylinders read alike. Sets the level that ends the spell, halfway up."""
+        if not (start or self._even) or not lv or not sp or len(own) < 4:
+            return False
+        level, lowest, spread = median(own), min(lv), median(sp)
+        gap = median(lv) - level
+        if not (level < lowest and gap > self._z * spread
+                and robust_spread(own) < self.s.dead_scatter * spread):
+            return False
+        if start and self._even and (len(lv) < self.n - 1
+                                     or gap < DEAD_GAP_OVER_RANGE * (max(lv) - lowest)):
+            # every other cylinder must have a level, and they must read alike: levels that
+            # differ by a pattern (another crank than the rig file's, a wheel never learnt, a
+            # flat four's pairs at speed) as large as this cylinder's gap tell no dead cylinder
+            return False
+        if self._even:  # the spell ends halfway back to where it fired (or the others fire)
+            fired = median(st.hx) if not start and st.hx else lowest
+            st.spell_mid_x = 0.5 * (level + fired)
+        return True
 
     def _others_share_drop(self, c: int) -> float:
         """Median fall of the other cylinders' shares: recent ones against their fired history."""

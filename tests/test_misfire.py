@@ -154,14 +154,17 @@ def test_cylinder_dead_mid_ride_is_a_misfire_on_every_event(preset):
     assert (step.detail["cause"] == CAUSE_DEAD).sum() > 0  # the spell is named as such
 
 
-def test_cylinder_dead_from_the_start_of_the_ride():
+@pytest.mark.parametrize("preset", ["larch", "alder"])
+def test_cylinder_dead_from_the_start_of_the_ride(preset):
+    # the four's window work does not fall for a dead cylinder (its share reads 0.66-9.6), so
+    # there the energy step alone tells it: below every other cylinder, which read alike
     scn = sim.Scenario(segments=_steps(3, [(3000, 30), (5000, 40)]),
                        faults=(sim.Fault("misfire", 1, start=0.0, end=5.0),), seed=34,
                        name="dead from start", **_unknown("heavy, bad wheel"))
-    _, _, score = _ride(scn)
+    _, _, score = _ride(scn, preset)
     assert score.detection_rate >= 0.99
-    # measured 6 of 301: the spell ends when the cylinder's level passes 30 % of the others',
-    # some cycles after it fires again
+    # measured 6 of 301 on the twin: the spell ends when the cylinder's level passes 30 % of the
+    # others', some cycles after it fires again; on the four halfway to the others' level
     assert score.false_alarms <= 6
 
 
