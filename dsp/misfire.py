@@ -406,17 +406,14 @@ class MisfireDetector:
                 dead = x < st.spell_mid_x
             else:  # dead from the start (uneven engine): while it stays far below the others
                 dead = lv_o > 0 and x < lim
-        elif st.ever_healthy:
-            dead = (len(st.run) >= self.s.dead_run and not partial_like
-                    and (self._share_collapsed(c) or self._reads_dead(st, st.run_x, lv, sp)))
         else:
-            own = list(st.recent)[-15:] + [x]
-            # on an uneven engine the share must agree: the metric's level differs between the
-            # cylinders there (a twin-270's second cylinder reads far lower)
-            low_share = (self._even or len(st.recent_share) >= 4
-                         and median(st.recent_share) < self.s.dead_start_share)
-            dead = (len(own) >= 4 and lv_o > 0 and x < lim and median(own) < lim and low_share
-                    and self._reads_dead(st, own, lv, sp, start=True))
+            dead = st.ever_healthy and (
+                len(st.run) >= self.s.dead_run and not partial_like
+                and (self._share_collapsed(c) or self._reads_dead(st, st.run_x, lv, sp)))
+            # by its level alone: before it ever fired, or at any time on an even-firing engine
+            # (a cylinder dead from the first cycle may have been judged fired in them)
+            if not dead and (self._even or not st.ever_healthy):
+                dead = self._level_dead(st, x, lv, sp, lv_o)
         if dead and st.dead_since is None:
             st.dead_since = t
             st.first_dead = t if st.first_dead is None else st.first_dead
@@ -426,6 +423,18 @@ class MisfireDetector:
             st.spell_mid = st.spell_mid_x = float("nan")
             self._others_relearn(c)
         return dead
+
+    def _level_dead(self, st: CylinderState, x: float, lv: list[float], sp: list[float],
+                    lv_o: float) -> bool:
+        """The cylinder's recent level reads dead against the others' (see :meth:`_dead`)."""
+        own = list(st.recent)[-15:] + [x]
+        # on an uneven engine the share must agree: the metric's level differs between the
+        # cylinders there (a twin-270's second cylinder reads far lower)
+        low_share = (self._even or len(st.recent_share) >= 4
+                     and median(st.recent_share) < self.s.dead_start_share)
+        lim = self.s.dead_ratio * lv_o
+        return (len(own) >= 4 and lv_o > 0 and x < lim and median(own) < lim and low_share
+                and self._reads_dead(st, own, lv, sp, start=True))
 
     def _share_collapsed(self, c: int) -> bool:
         """The run of misfires of cylinder c took its share of the engine's work down by
