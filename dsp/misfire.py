@@ -474,6 +474,8 @@ class MisfireDetector:
             return False
         if self._even:  # the spell ends halfway back to where it fired (or the others fire)
             fired = median(st.hx) if not start and st.hx else lowest
+            if own[-1] >= 0.5 * (level + fired):
+                return False  # this event reads above where the spell would end: it fired
             st.spell_mid_x = 0.5 * (level + fired)
         return True
 
