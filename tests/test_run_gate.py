@@ -167,7 +167,10 @@ def test_interrupted_replay_is_analysed_again_next_time(tmp_path, demo_ride, sig
             # slowly a loaded machine gets to the first stored events (at 4x the 60 s ride could
             # end within the second after them, and a finished run rightly exits 0)
             *_replay(db, log, "--pace", "1"), *[a for c in caps for a in ("--accel", str(c))]]
-    proc = subprocess.Popen(argv, cwd=tmp_path, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    # a shell's background job inherits SIGINT ignored (and then so would the replay): the child
+    # gets the default back, as a command in a terminal has it
+    proc = subprocess.Popen(argv, cwd=tmp_path, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL))
     try:
         _wait_for_events(db, proc)
         time.sleep(1.0)
