@@ -179,7 +179,7 @@ class EventAnalyzer:
         out["inertia_kgm2"] = est = self.inertia.result()
         if est is None:
             out["inertia_note"] = self.inertia.why_none()
-        if est is not None:
+        else:
             out["notes"].append(
                 f"effective rotating inertia from the crank speed: {est:.4f} kg m^2 (rig file "
                 f"{self.engine.inertia_kgm2:.4f}; a rough estimate from {self.inertia.cycles} "

@@ -134,6 +134,6 @@ class InertiaEstimator:
 
     def result(self) -> float | None:
         """``J0`` estimate, kg·m², or None before ``min_cycles`` cycles at speed."""
-        if not self.usable or self.cycles < self.min_cycles or not self._suu > 0:
+        if self.why_none() is not None:
             return None
         return -self._suv / self._suu

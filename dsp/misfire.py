@@ -395,8 +395,6 @@ class MisfireDetector:
         st.run = st.run + [contrib] if cand else []
         st.run_x = st.run_x + [x] if cand else []
         lv = [o.level for i, o in enumerate(self._cyl) if i != c and len(o.recent) >= 4]
-        sp = [robust_spread(o.recent) for i, o in enumerate(self._cyl)
-              if i != c and len(o.recent) >= 4]
         lv_o = median(lv) if lv else float("nan")
         lim = self.s.dead_ratio * lv_o
         if st.dead_since is not None:
@@ -409,11 +407,11 @@ class MisfireDetector:
         else:
             dead = st.ever_healthy and (
                 len(st.run) >= self.s.dead_run and not partial_like
-                and (self._share_collapsed(c) or self._reads_dead(st, st.run_x, lv, sp)))
+                and (self._share_collapsed(c) or self._reads_dead(c, st.run_x, lv)))
             # by its level alone: before it ever fired, or at any time on an even-firing engine
             # (a cylinder dead from the first cycle may have been judged fired in them)
             if not dead and (self._even or not st.ever_healthy):
-                dead = self._level_dead(st, x, lv, sp, lv_o)
+                dead = self._level_dead(c, x, lv, lim)
         if dead and st.dead_since is None:
             st.dead_since = t
             st.first_dead = t if st.first_dead is None else st.first_dead
@@ -424,17 +422,19 @@ class MisfireDetector:
             self._others_relearn(c)
         return dead
 
-    def _level_dead(self, st: CylinderState, x: float, lv: list[float], sp: list[float],
-                    lv_o: float) -> bool:
-        """The cylinder's recent level reads dead against the others' (see :meth:`_dead`)."""
+    def _level_dead(self, c: int, x: float, lv: list[float], lim: float) -> bool:
+        """The cylinder's recent level reads dead against the others' (see :meth:`_dead`);
+        ``lim`` is ``dead_ratio`` of the others' median level."""
+        if not (lim > 0 and x < lim):  # the cheap test first: this runs on every event
+            return False
+        st = self._cyl[c]
         own = list(st.recent)[-15:] + [x]
         # on an uneven engine the share must agree: the metric's level differs between the
         # cylinders there (a twin-270's second cylinder reads far lower)
         low_share = (self._even or len(st.recent_share) >= 4
                      and median(st.recent_share) < self.s.dead_start_share)
-        lim = self.s.dead_ratio * lv_o
-        return (len(own) >= 4 and lv_o > 0 and x < lim and median(own) < lim and low_share
-                and self._reads_dead(st, own, lv, sp, start=True))
+        return (len(own) >= 4 and median(own) < lim and low_share
+                and self._reads_dead(c, own, lv, start=True))
 
     def _share_collapsed(self, c: int) -> bool:
         """The run of misfires of cylinder c took its share of the engine's work down by
@@ -453,14 +453,18 @@ class MisfireDetector:
             return True
         return False
 
-    def _reads_dead(self, st: CylinderState, own: list[float], lv: list[float],
-                    sp: list[float], *, start: bool = False) -> bool:
-        """``own`` (the cylinder's recent metric) reads dead against the other cylinders' levels
-        ``lv`` and spreads ``sp``: below every one of them by ``z_threshold`` of their spread,
-        steadily (without their combustion scatter). Mid-ride only on an even-firing engine,
-        where fired cylinders read alike. Sets the level that ends the spell, halfway up."""
-        if not (start or self._even) or not lv or not sp or len(own) < 4:
+    def _reads_dead(self, c: int, own: list[float], lv: list[float], *,
+                    start: bool = False) -> bool:
+        """``own`` (cylinder c's recent metric) reads dead against the other cylinders' levels
+        ``lv``: below every one of them by ``z_threshold`` of their spread, steadily (without
+        their combustion scatter). Mid-ride only on an even-firing engine, where fired
+        cylinders read alike. Sets the level that ends the spell, halfway up."""
+        if not (start or self._even) or not lv or len(own) < 4:
             return False
+        st = self._cyl[c]
+        # the others' spreads only now: a sort per cylinder, and most events end above
+        sp = [robust_spread(o.recent) for i, o in enumerate(self._cyl)
+              if i != c and len(o.recent) >= 4]
         level, lowest, spread = median(own), min(lv), median(sp)
         gap = median(lv) - level
         if not (level < lowest and gap > self._z * spread

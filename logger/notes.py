@@ -98,16 +98,14 @@ def fold_small_losses(notes: Iterable[str]) -> list[str]:
 
     Twenty one-frame losses would otherwise fill the note cap and push out what matters.
     """
-    notes = list(notes)
+    matched = [(n, _SERIAL_SMALL.match(n) or _COUNTER_GAP.match(n)) for n in notes]
     groups: dict[tuple[str, str], list[re.Match]] = {}
-    for n in notes:
-        m = _SERIAL_SMALL.match(n) or _COUNTER_GAP.match(n)
+    for _, m in matched:
         if m:
             groups.setdefault((m["who"], m["what"]), []).append(m)
     out: list[str] = []
     done: set[tuple[str, str]] = set()
-    for n in notes:
-        m = _SERIAL_SMALL.match(n) or _COUNTER_GAP.match(n)
+    for n, m in matched:
         key = (m["who"], m["what"]) if m else None
         if key is None or len(groups[key]) < FOLD_FROM:
             out.append(n)
