@@ -74,3 +74,23 @@ def test_paced_replay_stores_the_same_rows_as_a_whole_output(rig, tmp_path):
         np.testing.assert_array_equal(ea[col], eb[col], err_msg=col)
     assert wa == wb and ia == ib
     assert set(ca) == set(cb) and all(np.array_equal(ca[k][1], cb[k][1]) for k in ca)
+
+
+def test_analysis_holds_blas_to_one_thread_and_gives_the_callers_setting_back(rig):
+    # A library caller (a fleet worker) need not set *_NUM_THREADS: pool threads only spin on
+    # the small blocks the analysis streams. threadpoolctl reads the pools' real sizes.
+    from threadpoolctl import threadpool_info, threadpool_limits
+
+    from crankbeat.logger.run.drive import analyse_files
+
+    seen: list[int] = []
+
+    def on_step(out, chunk):
+        seen.extend(p["num_threads"] for p in threadpool_info())
+
+    with threadpool_limits(limits=2):
+        before = [p["num_threads"] for p in threadpool_info()]
+        analyse_files(rig, BLF, {}, on_step=on_step)
+        after = [p["num_threads"] for p in threadpool_info()]
+    assert seen and set(seen) == {1}
+    assert after == before
