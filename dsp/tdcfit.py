@@ -46,6 +46,7 @@ fourth and sixth powers, the second is shared with the free slope).
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -184,7 +185,8 @@ def _best(es, rss):
 def tdc_from_motoring(angles: CrankAngles, no_firing, wheel: ToothWheel, engine: Engine, *,
                       window_deg: float = 40.0, search_deg: float = 20.0,
                       step_deg: float = 0.05, blocks: int = 20,
-                      min_cycles: int = 20) -> TdcEstimate | None:
+                      min_cycles: int = 20,
+                      cylinders: Sequence[int] | None = None) -> TdcEstimate | None:
     """Estimate cylinder 1's TDC from the compression dips of a stretch without firing.
 
     Parameters
@@ -207,6 +209,9 @@ def tdc_from_motoring(angles: CrankAngles, no_firing, wheel: ToothWheel, engine:
         Blocks of consecutive cycles for the jackknife standard error.
     min_cycles : int, keyword-only
         Fewer cycles with windows than this: no estimate (None).
+    cylinders : sequence of int, keyword-only
+        Fit only these cylinders' windows (0-based, in cylinder order); default all. One
+        cylinder at a time tells whether every dip sits where the layout puts it.
 
     Returns
     -------
@@ -224,7 +229,9 @@ def tdc_from_motoring(angles: CrankAngles, no_firing, wheel: ToothWheel, engine:
     theta, q, rpm = swing
     W, cycle = float(window_deg), engine.cycle_deg
     uu, qq, wid, rr = [], [], [], []
-    for k, phi in enumerate(np.asarray(firing_angles(engine), dtype=float)):
+    fire = np.asarray(firing_angles(engine), dtype=float)
+    for k in range(len(fire)) if cylinders is None else cylinders:
+        phi = fire[k]
         shifted = theta - phi + cycle / 2
         u = np.mod(shifted, cycle) - cycle / 2
         cyc = np.floor(shifted / cycle).astype(np.int64)

@@ -80,6 +80,15 @@ def short_scenario(seed: int, *, layout: str | None = None, rig: str = "larch") 
                     can=CanSpec(unknown_ids=(0x3F0,), unknown_rate_hz=5.0))
 
 
+def bringup_scenario(ride: Scenario) -> Scenario:
+    """The short log a bring-up asks for, on the bike of ``ride``: a blip in neutral, then a
+    closed-throttle roll-off in neutral (the ECU cuts fuel: the rig check's TDC stretch)."""
+    segs = (Segment(1.0, gear=0, rpm=(4000, 4000), throttle=(20, 20), label="blip in neutral"),
+            Segment(3.0, gear=0, rpm=(4500, 2200), throttle=(0, 0), label="roll-off in neutral"))
+    return ride.with_changes(segments=segs, faults=(), seed=ride.seed + 1000,
+                             name=f"bring-up roll-off, {ride.name}")
+
+
 def _layout_rig(folder: Path, layout: str) -> Path:
     """Larch's rig file with another layout: the rig describes the engine that is simulated."""
     text = (ROOT / "logger" / "presets" / "larch.toml").read_text(encoding="utf-8")
@@ -119,6 +128,12 @@ def build(out: Path) -> None:
         ev = ride.events
         print(f"  {name:<14} {sc.duration:5.1f} s  {len(ev):6d} events  "
               f"{int((~ev['fired'] & ~ev['fuel_cut']).sum()):4d} misfires")
+        if name != "demo":  # the demo holds an overrun of its own (in gear)
+            roll = simulate(rig, bringup_scenario(sc))
+            roll.accel.clear()
+            write_ride(roll, out / name / "bringup", can_format=fmt, stem="rolloff")
+            print(f"  {name + '/bringup':<14} {roll.events['fuel_cut'].sum():6d} events "
+                  "without firing")
 
 
 def hashes(folder: Path) -> dict[str, str]:

@@ -77,6 +77,40 @@ def test_fixture_gives_back_the_rigs_own_wheel_cam_and_tdc(name):
     assert res.suggestions == {}
 
 
+def _bringup_log(name: str) -> Path:
+    """The fixture's bring-up recording: a blip and a closed-throttle roll-off in neutral."""
+    folder = FIXTURES / name / "bringup"
+    return next(p for p in sorted(folder.iterdir()) if p.suffix in (".log", ".asc", ".blf"))
+
+
+BRINGUP = [n for n in ALL if n != "demo"]  # the demo's own log holds an overrun (in gear)
+
+
+@pytest.mark.parametrize("name", BRINGUP)
+def test_fixture_bringup_log_gives_back_wheel_cam_and_tdc(name):
+    """The rig check on the short log a bring-up asks for, recorded on each fixture's bike."""
+    spec, _ = _fixture(name)
+    rig = load_rig(spec)
+    res = check_rig(rig, _bringup_log(name))
+    assert (res.wheel.teeth, res.wheel.missing) == (rig.wheel.teeth, rig.wheel.missing)
+    if rig.wheel.cam != "none" and phase_distinguishable(rig.engine) and name != "mismatch-360":
+        assert res.cam.level_in_tdc_revolution == rig.wheel.cam_active_level
+    assert res.tdc is not None, res.tdc_note
+    assert res.tdc_stretch == "in neutral"
+    value = rig.wheel.tdc_offset_deg + res.tdc.correction_deg
+    # measured (seed + 1000 of each fixture): blf +0.87, twin-180 +0.25, twin-270 +0.44,
+    # vtwin-90 +0.62, alder -0.86, mismatch-360 (cylinder 1 alone) -0.68, twin-360 -1.11 deg:
+    # the partner-exchange lean (PARTNER_TOL), flagged in the note, not corrected
+    assert value == pytest.approx(rig.wheel.tdc_offset_deg, abs=PARTNER_TOL.get(name, 1.0))
+    assert 0 < res.tdc.se_deg < 0.5
+    if name == "mismatch-360":  # the bike is a 360 deg twin, its rig file says 270
+        assert res.misplaced_dips == (2,)
+        assert "not where the layout (twin-270) puts them" in res.tdc_note
+    else:
+        assert res.misplaced_dips == ()
+    assert res.suggestions == {}
+
+
 def _overrun_ride(rig_spec: str, out: Path, *, gear: int = 0, seed: int = 7) -> Path:
     """1 s at 4000 rpm, then 4 s with the throttle closed (the simulator cuts fuel), CAN log path.
 

@@ -51,7 +51,8 @@ def test_demo_fixture_has_what_the_readme_promises():
     assert not (miss & ev["rough"]).any()
     assert ((ev["burn_fraction"] > 0) & (ev["burn_fraction"] < 1)).sum() > 30
     assert ev["rpm"].max() > 7500
-    assert sum(p.stat().st_size for p in FIX.rglob("*") if p.is_file()) <= 6_000_000
+    # fixtures/README.md keeps the total under 8 MB (7.46 MB with the bring-up roll-offs)
+    assert sum(p.stat().st_size for p in FIX.rglob("*") if p.is_file()) <= 8_000_000
 
 
 def test_synth_command_writes_a_ride(tmp_path, capsys):

@@ -38,6 +38,10 @@ OVERRUN_IDLE_FACTOR = 1.5
 FUEL_CUT_SETTLE_S = 0.3
 #: a TDC estimate this far (and two standard errors) from the file's value becomes a suggestion
 SUGGEST_TDC_DEG = 1.0
+#: a cylinder whose own dips sit this far from cylinder 1's is not where the layout puts it:
+#: healthy cylinders of simulated roll-offs differ by up to 1.3 deg (heat loss, partner
+#: pumping); a wrong layout moves a TDC by tens of degrees, so the fit lands anywhere
+DIP_DISAGREE_DEG = 3.0
 
 
 @dataclass(frozen=True)
@@ -64,6 +68,7 @@ class RigCheck:
     sensors: dict[str, tuple[int, float]] = field(default_factory=dict)  # samples, rate Hz
     teeth_per_frame: int = 1  # a cam change shows at the end of a frame: up to this - 1 late
     tdc_stretch: str = ""  # "in neutral", "in gear" or "gear not logged": what the TDC came from
+    misplaced_dips: tuple[int, ...] = ()  # cylinders (1-based) whose dips the layout misplaces
     suggestions: dict[str, object] = field(default_factory=dict)
 
 
@@ -188,10 +193,12 @@ def _estimate_tdc(out: RigCheck, rig: Rig, wheel: ToothWheel, angles, mask, neut
     est = None
     out.tdc_stretch = "gear not logged"
     if neutral is not None and (mask & neutral).any():
-        est = tdc_from_motoring(angles, mask & neutral, wheel, rig.engine,
+        used = mask & neutral
+        est = tdc_from_motoring(angles, used, wheel, rig.engine,
                                 window_deg=window_deg, search_deg=search_deg)
         out.tdc_stretch = "in neutral"
     if est is None:
+        used = mask
         est = tdc_from_motoring(angles, mask, wheel, rig.engine, window_deg=window_deg,
                                 search_deg=search_deg)
         out.tdc_stretch = "in gear" if neutral is not None else out.tdc_stretch
@@ -205,6 +212,11 @@ def _estimate_tdc(out: RigCheck, rig: Rig, wheel: ToothWheel, angles, mask, neut
         return
     out.tdc = est
     cautions = []
+    fit = {"window_deg": window_deg, "search_deg": search_deg}
+    out.misplaced_dips, first = _misplaced_dips(rig, wheel, angles, used, fit)
+    if out.misplaced_dips:  # pooling with a misplaced cylinder would pull cylinder 1's value
+        out.tdc = est = first
+        cautions.append(_misplaced_note(rig, out.misplaced_dips))
     if out.tdc_stretch == "in gear":
         cautions.append("taken in gear: the driveline tilts the dip (about -1 deg); a roll-off "
                         "in neutral is better")
@@ -215,8 +227,38 @@ def _estimate_tdc(out: RigCheck, rig: Rig, wheel: ToothWheel, angles, mask, neut
     value = float(np.mod(rig.wheel.tdc_offset_deg + est.correction_deg, 360.0))
     # within 1 deg the method's own leanings (dsp/tdcfit.py) are as large as the difference
     limit = SUGGEST_TDC_DEG + (1.0 if cautions else 0.0)
-    if abs(est.correction_deg) > max(2 * est.se_deg, limit):
+    if abs(est.correction_deg) > max(2 * est.se_deg, limit) and not out.misplaced_dips:
         out.suggestions["wheel.tdc_offset_deg"] = round(value, 1)
+
+
+def _misplaced_dips(rig: Rig, wheel: ToothWheel, angles, mask, fit: dict
+                    ) -> tuple[tuple[int, ...], TdcEstimate | None]:
+    """Cylinders whose own compression dips do not sit with cylinder 1's (1-based numbers),
+    and cylinder 1's own estimate.
+
+    Each cylinder is fitted alone; one whose dips are missing from its windows (no symmetry
+    point, or one at the search edge) or lie more than :data:`DIP_DISAGREE_DEG` from cylinder
+    1's is where the rig's layout does not put it.
+    """
+    n = rig.engine.n_cylinders
+    if n < 2:
+        return (), None
+    own = [tdc_from_motoring(angles, mask, wheel, rig.engine, cylinders=[k], **fit)
+           for k in range(n)]
+    first = own[0]
+    if first is None or first.at_search_edge:
+        return (), None  # cylinder 1 is the reference; the pooled fit said what it could
+    return tuple(k + 1 for k, e in enumerate(own[1:], start=1)
+                 if e is None or e.at_search_edge
+                 or abs(e.correction_deg - first.correction_deg) > DIP_DISAGREE_DEG), first
+
+
+def _misplaced_note(rig: Rig, cylinders: tuple[int, ...]) -> str:
+    which = ", ".join(map(str, cylinders))
+    return (f"the compression dips of cylinder{'s' if len(cylinders) > 1 else ''} {which} are "
+            f"not where the layout ({rig.engine.name}) puts them: check the layout "
+            "(crankbeat checks it on a ride too) before the TDC; the TDC shown is cylinder "
+            "1's own, and none is suggested")
 
 
 def _check_cam(out: RigCheck, rig: Rig, wheel: ToothWheel, tb) -> None:

@@ -103,7 +103,8 @@ def _as_dict(res, n_unknown: int) -> dict:
                "se_deg": res.tdc.se_deg, "cycles": res.tdc.cycles,
                "rpm_range": list(res.tdc.rpm_range), "stretch": res.tdc_stretch,
                "caution": res.tdc_note,
-               "partner_exchange": res.tdc.partner_exchange}
+               "partner_exchange": res.tdc.partner_exchange,
+               "misplaced_dips": list(res.misplaced_dips)}
     return {
         "rig": res.rig.source, "duration_s": res.duration_s,
         "ids": [rate(r) for r in res.ids], "unknown_ids": [rate(r) for r in
