@@ -94,3 +94,25 @@ def test_analysis_holds_blas_to_one_thread_and_gives_the_callers_setting_back(ri
         after = [p["num_threads"] for p in threadpool_info()]
     assert seen and set(seen) == {1}
     assert after == before
+
+
+def test_analyser_version_follows_the_analysing_code():
+    # every source file of the stages, the decoders and the run layer is in the fingerprint, so
+    # a change of any of them is a new version (a batch then re-analyses rather than skips)
+    import re
+
+    from crankbeat.logger.run import version
+
+    names = {n for n, _ in version.analysing_files()}
+    for folder, pkg in (("dsp", "crankbeat.dsp"), ("logger/run", "crankbeat.logger.run"),
+                        ("logger/can", "crankbeat.logger.can"),
+                        ("logger/serial", "crankbeat.logger.serial")):
+        for path in (ROOT / folder).rglob("*.py"):
+            assert f"{pkg}/{path.relative_to(ROOT / folder).as_posix()}" in names, path
+    files = version.analysing_files()
+    base = version.fingerprint(files)
+    name, data = files[3]
+    assert version.fingerprint(files[:3] + [(name, data + b"\n")] + files[4:]) != base
+    assert version.fingerprint(files + [("crankbeat.dsp/new.py", b"")]) != base
+    assert re.fullmatch(r".+\+r\d+\.[0-9a-f]{8}", analyser_version())
+    assert analyser_version().endswith(base)
