@@ -126,3 +126,54 @@ def test_bad_trend_options(history):
     with pytest.raises(UsageError, match="--last"):
         st.trend("misfire_rate", last=0)
     assert parse_rpm_band(" 5000 - 6000 ") == (5000.0, 6000.0)
+
+
+def _gear_channel(st, run_id, ev):
+    """Gear 3, then gear 4 from a 10 Hz sample near the run's middle on; returns that sample's
+    time (an event before it reads gear 3, one at or after it gear 4: the sample at or before
+    the event holds)."""
+    import numpy as np
+
+    t = np.arange(int(ev["t"][-1] / 0.1) + 2) * 0.1
+    k = len(t) // 2
+    st.add_channels(run_id, {"gear": (t, np.where(np.arange(len(t)) < k, 3.0, 4.0))})
+    st.commit()
+    return float(t[k])
+
+
+def test_channel_filter_counts_the_events_in_that_gear(history):
+    st, ids, evs = history
+    ev = evs["c"]
+    split_t = _gear_channel(st, ids["c"], ev)
+    for gear, part in (("3", ev[ev["t"] < split_t]), ("4", ev[ev["t"] >= split_t])):
+        (pt,) = [p for p in st.trend("misfire_rate", cylinder=2, channel=f"gear={gear}")
+                 if p.run_id == ids["c"]]
+        mis, counted = counts(part, 2)
+        assert pt.n == counted and mis > 0
+        assert pt.value == pytest.approx(100.0 * mis / counted)
+    # runs without a gear channel have no events in any gear: no value, not a zero
+    others = [p for p in st.trend("misfire_rate", cylinder=2, channel="gear=3")
+              if p.run_id != ids["c"]]
+    assert all(p.n == 0 and p.value is None for p in others)
+
+
+def test_trend_command_takes_a_channel_filter_and_an_analyser(history, capsys):
+    import json
+
+    from crankbeat.logger.cli.main import main
+
+    st, ids, evs = history
+    ev = evs["c"]
+    split_t = _gear_channel(st, ids["c"], ev)
+    st.db.execute("UPDATE runs SET analyser = '0.0.9+r0' WHERE id = ?", (ids["a"],))
+    st.commit()
+    path = str(st.path)
+    assert main(["trend", "misfire_rate", "--store", path, "--cylinder", "2",
+                 "--channel", "gear=3-4", "--json"]) == 0  # 3 <= gear < 4
+    got = {p["run_id"]: p for p in json.loads(capsys.readouterr().out)}
+    assert got[ids["c"]]["n"] == counts(ev[ev["t"] < split_t], 2)[1]
+    assert main(["trend", "misfire_rate", "--store", path, "--analyser", "0.0.9+r0",
+                 "--json"]) == 0
+    assert {p["run_id"] for p in json.loads(capsys.readouterr().out)} == {ids["a"]}
+    assert main(["trend", "misfire_rate", "--store", path, "--channel", "gear"]) == 2
+    assert "gear" in capsys.readouterr().err

@@ -29,9 +29,9 @@ def run(args: argparse.Namespace) -> int:
         print("no runs" + (f" of rig '{args.rig}'" if args.rig else ""))
         return 0
     print(table(
-        ["id", "rig", "started", "label", "km", "status", "events", "misfires"],
+        ["id", "rig", "started", "label", "km", "status", "events", "misfires", "analyser"],
         [[r["id"], r["rig"], r["started_at"], r["label"] or "-", fmt(r["odometer_km"], ".0f"),
-          r["status"], r["n_events"], r["n_misfires"]] for r in runs],
+          r["status"], r["n_events"], r["n_misfires"], r["analyser"] or "-"] for r in runs],
         indent="",
     ))
     return 0

@@ -22,6 +22,12 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="only runs tagged so (see 'crankbeat tag'; may be repeated)")
     parser.add_argument("--cylinder", type=int, metavar="N", help="only cylinder N (from 1)")
     parser.add_argument("--rpm", metavar="LO-HI", help="only this rpm band, e.g. 5000-6000")
+    parser.add_argument("--channel", metavar="NAME=V|NAME=LO-HI",
+                        help="only events where a status channel has this value or lies in "
+                             "[LO, HI), e.g. gear=3 or coolant=80-95 (event metrics)")
+    parser.add_argument("--analyser", metavar="VERSION",
+                        help="runs of this analyser version (see 'crankbeat runs'); default: "
+                             "each ride's newest analysis")
     parser.add_argument("--by", choices=("date", "odometer"), default="date",
                         help="order runs by start date (default) or odometer reading")
     parser.add_argument("--last", type=int, metavar="N", help="only the last N runs")
@@ -36,7 +42,8 @@ def run(args: argparse.Namespace) -> int:
     with open_store(args) as store:
         points = store.trend(args.metric, rig=args.rig, cylinder=args.cylinder,
                              rpm_band=args.rpm, by=args.by, last=args.last,
-                             tags=dict(parse_tag(t) for t in args.tag))
+                             tags=dict(parse_tag(t) for t in args.tag),
+                             channel=args.channel, analyser=args.analyser)
         from crankbeat.logger.report.trend_data import trend_marks
         from crankbeat.logger.store.trend import parse_rpm_band
 
@@ -55,6 +62,8 @@ def run(args: argparse.Namespace) -> int:
         return 0
     unit = METRICS[args.metric][0]
     tags = "".join(f", tag {t}" for t in args.tag)
+    tags += f", events with {args.channel}" if args.channel else ""
+    tags += f", analyser {args.analyser}" if args.analyser else ""
     print(f"rig {points[0].rig}{tags}")
     x_head = "km" if args.by == "odometer" else "started"
     print(table(
