@@ -43,6 +43,63 @@ def one_by_one(rig):
     return out
 
 
+@pytest.fixture(scope="module")
+def replayed(rig, tmp_path_factory):
+    """Each ride through the replay path the CLI takes (analyse_replay), into a store of its
+    own: everything a run stores, per CAN file name."""
+    from crankbeat.logger.pipeline import analyse_replay
+
+    if not (FIX / "demo" / "demo.log").is_file():
+        pytest.skip("fixtures are missing (make fixtures)")
+    out = {}
+    for ride in rides_from_paths([str(p) for p in LARCH_RIDES], rig):
+        db = tmp_path_factory.mktemp("one") / "one.db"
+        with Store.open(db) as store:
+            analyse_replay(rig, ride.can, ride.accel, store)
+        out.update(_stored_runs(db))
+    return out
+
+
+def _stored_runs(db: Path) -> dict[str, dict]:
+    """Per CAN file name: every row the run stored (ids, dates and the analyser left out)."""
+    with Store.open(db) as store:
+        got = {}
+        for r in store.runs():
+            rid = r["id"]
+            summary = dict(r["summary"] or {})
+            got[Path(store.run(rid)["sources"][0]["path"]).name] = {
+                "events": store.events(rid), "windows": store.windows(rid),
+                "intervals": store.intervals(rid), "vibration": store.vibration(rid),
+                "order_map": store.order_map(rid), "channels": store.channels(rid),
+                "summary": summary, "started_at": r["started_at"]}
+        return got
+
+
+def _assert_same_runs(got: dict[str, dict], want: dict[str, dict]) -> None:
+    assert set(got) == set(want)
+    for name, run in got.items():
+        ref = want[name]
+        for col in ref["events"].dtype.names:
+            np.testing.assert_array_equal(run["events"][col], ref["events"][col],
+                                          err_msg=f"{name} {col}")
+        for key in ("windows", "intervals", "vibration", "order_map", "summary", "started_at"):
+            assert run[key] == ref[key], f"{name}: {key} differ"
+        assert set(run["channels"]) == set(ref["channels"]) != set(), name
+        for ch, (t, v) in run["channels"].items():
+            np.testing.assert_array_equal(t, ref["channels"][ch][0])
+            np.testing.assert_array_equal(v, ref["channels"][ch][1])
+
+
+def test_batch_in_any_order_stores_what_replaying_one_by_one_stores(rig, replayed, tmp_path):
+    # every stored row, not only the events; the rides handed out in reverse order
+    rides = rides_from_paths([str(p) for p in LARCH_RIDES], rig)[::-1]
+    db = tmp_path / "rev.db"
+    with Store.open(db) as store, LocalPool(2) as engine:
+        report = run_batch(store, rides, engine)
+    assert len(report.stored) == 3 and not report.failed
+    _assert_same_runs(_stored_runs(db), replayed)
+
+
 def _stored_events(db: Path) -> dict[str, np.ndarray]:
     with Store.open(db) as store:
         return {Path(store.run(r["id"])["sources"][0]["path"]).name: store.events(r["id"])
@@ -172,3 +229,26 @@ def test_bench_fleet_child_times_a_batch(tmp_path):
     assert run.ok, run.error
     assert run.result["rides"] == run.result["stored"] == 1 and run.result["failed"] == 0
     assert run.result["seconds"] > 0 and run.result["worker_cpu_s"] > 0
+
+
+def _dies_on_blf(index, ride, priors):
+    """A worker's task that ends its process on the BLF ride, as an out-of-memory kill would."""
+    import os
+
+    from crankbeat.logger.fleet.task import analyse_ride
+
+    if Path(ride.can).suffix == ".blf":
+        os._exit(3)
+    return analyse_ride(index, ride, priors)
+
+
+def test_a_worker_that_dies_fails_its_ride_only(rig, one_by_one, tmp_path):
+    rides = rides_from_paths([str(p) for p in LARCH_RIDES], rig)
+    db = tmp_path / "dies.db"
+    with Store.open(db) as store, LocalPool(2, task=_dies_on_blf) as engine:
+        report = run_batch(store, rides, engine)
+    blf = next(r.name for r in rides if r.can.suffix == ".blf")
+    assert set(report.failed) == {blf} and "worker process" in report.failed[blf]
+    assert len(report.stored) == 2
+    stored = _stored_events(db)
+    _assert_same(stored, {k: v for k, v in one_by_one.items() if k in stored})

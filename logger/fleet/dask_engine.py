@@ -36,14 +36,33 @@ class DaskEngine(BatchEngine):
         self.description = f"Dask cluster {client.scheduler.address} ({n} workers)"
 
     def submit_all(self, rides: list[tuple[int, Ride, Priors]]) -> Iterator[RideResult]:
+        """Rides go to the cluster a window at a time (twice its workers, at least 4), so that
+        a batch of thousands keeps neither its tasks nor its results all at once. A ride whose
+        task fails on the cluster (its worker lost more often than Dask retries) is reported
+        as failed; the batch goes on."""
         from distributed import as_completed
 
-        # pure=False: a ride is analysed each time it is asked for, never served from a cache
-        futures = [self.client.submit(analyse_ride, i, ride, priors, pure=False)
-                   for i, ride, priors in rides]
-        for fut in as_completed(futures):
-            yield fut.result()
+        window = max(4, 2 * len(self.client.scheduler_info().get("workers", {})))
+        todo = list(reversed(rides))
+        index: dict = {}
+
+        def submit():
+            i, ride, priors = todo.pop()
+            # pure=False: a ride is analysed each time it is asked for, never from a cache
+            fut = self.client.submit(analyse_ride, i, ride, priors, pure=False)
+            index[fut.key] = i
+            return fut
+
+        pending = as_completed([submit() for _ in range(min(window, len(todo)))])
+        for fut in pending:
+            try:
+                yield fut.result()
+            except Exception as exc:  # noqa: BLE001 - a lost ride must not end the batch
+                yield RideResult(index[fut.key], None,
+                                 f"lost on the cluster: {type(exc).__name__}: {exc}", 0.0)
             fut.release()
+            if todo:
+                pending.add(submit())
 
     def close(self) -> None:
         if self._own:
