@@ -1,8 +1,9 @@
 """The one exception hierarchy of crankbeat.
 
-It lives at the bottom layer (``dsp``) so that both packages can raise and catch the same
-classes without ``dsp`` depending on ``logger``. Every error carries a message that is already
-one readable line: the CLI prints ``error: <message>`` and exits with ``exit_code``.
+It lives beside both packages (``crankbeat.errors``, in neither ``dsp`` nor ``logger``), so that
+both raise and catch the same classes without ``dsp`` depending on ``logger``. Every error
+carries a message that is already one readable line: the CLI prints ``error: <message>`` and
+exits with ``exit_code``.
 
 Errors that have a natural built-in twin inherit it too (a bad argument is also a
 ``ValueError``, a source timeout also a ``TimeoutError``), so callers may catch either.
@@ -12,10 +13,11 @@ Exit codes of the ``crankbeat`` command (each class's ``exit_code``):
 
 == ==========================================================================================
 0  done
-1  any other crankbeat error (:class:`CrankbeatError`)
+1  any other crankbeat error (:class:`CrankbeatError`, e.g. :class:`ExportError`)
 2  usage: a command line or argument that cannot be carried out (:class:`UsageError`,
    :class:`InputError`)
-3  rig file or preset wrong: file, key and expected range named (:class:`RigError`)
+3  rig file or preset wrong: file, key and expected range named (:class:`RigError`,
+   :class:`UnknownLayoutError`)
 4  a CAN log, capture file, bus or port cannot be opened or is not in its format
    (:class:`SourceError`, :class:`FormatError`, :class:`SourceTimeoutError`)
 5  the store cannot be opened, written or queried (:class:`StoreError`)
@@ -53,6 +55,10 @@ class RigError(CrankbeatError, ValueError):
     exit_code = 3
 
 
+class UnknownLayoutError(RigError, LookupError):
+    """A crank layout name that is neither a preset layout nor a readable layout file."""
+
+
 class SourceError(CrankbeatError):
     """A CAN or serial source (live or recorded) cannot be opened or read."""
 
@@ -79,6 +85,10 @@ class RunNotFoundError(StoreError, LookupError):
 
 class DuplicateRunError(StoreError):
     """The same source files were analysed before (matched by hash)."""
+
+
+class ExportError(CrankbeatError):
+    """An export file could not be written (names the file and why)."""
 
 
 class DataError(CrankbeatError, ValueError):

@@ -37,3 +37,22 @@ def test_errors_live_outside_dsp() -> None:
 
     assert Path(errors.__file__).parent == ROOT / "crankbeat"
     assert not (ROOT / "dsp" / "errors.py").exists()
+
+
+def test_every_exception_class_is_defined_in_the_errors_module() -> None:
+    # one hierarchy in one place: a class deriving from an error, exception or warning type
+    # anywhere else in dsp/ or logger/ is a second hierarchy growing
+    import ast
+    import re
+
+    stray = []
+    for folder in ("dsp", "logger"):
+        for path in sorted((ROOT / folder).rglob("*.py")):
+            for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+                if not isinstance(node, ast.ClassDef):
+                    continue
+                bases = [b.id if isinstance(b, ast.Name) else getattr(b, "attr", "")
+                         for b in node.bases]
+                if any(re.search(r"(Error|Exception|Warning)$", b) for b in bases):
+                    stray.append(f"{path.relative_to(ROOT)}: {node.name}")
+    assert stray == []

@@ -10,12 +10,8 @@ from __future__ import annotations
 import os
 from typing import IO, Any
 
-from crankbeat.errors import CrankbeatError
+from crankbeat.errors import ExportError
 from crankbeat.logger.export.table import ExportTable
-
-
-class ExportError(CrankbeatError):
-    """A file could not be written (exit code 1)."""
 
 
 class TableWriter:

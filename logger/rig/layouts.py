@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 
 from crankbeat.dsp.engine import Engine
-from crankbeat.errors import InputError, RigError
+from crankbeat.errors import InputError, RigError, UnknownLayoutError
 from crankbeat.logger.rig.schema import Problems, Section, parse_toml
 
 __all__ = ["list_layouts", "load_layout"]
@@ -31,10 +31,6 @@ GEOMETRY = (
     ("inertia_kgm2", "inertia_kgm2", 1.0),
 )
 _INLINE_KEYS = ("stroke_cycle", "firing_order", "cylinder")
-
-
-class UnknownLayout(LookupError):
-    """Internal: a layout name that is neither a preset nor a file."""
 
 
 def _layout_dir() -> Any:
@@ -55,10 +51,10 @@ def _layout_text(name: str, base_dir: Path | None) -> tuple[str, str]:
         try:
             return path.read_text(encoding="utf-8"), str(path)
         except (OSError, UnicodeDecodeError) as exc:
-            raise UnknownLayout(f"cannot read layout file {str(path)!r} ({exc})") from None
+            raise UnknownLayoutError(f"cannot read layout file {str(path)!r} ({exc})") from None
     entry = _layout_dir().joinpath(f"{name}.toml")
     if name not in list_layouts():
-        raise UnknownLayout(f"unknown layout {name!r}")
+        raise UnknownLayoutError(f"unknown layout {name!r}")
     return entry.read_text(encoding="utf-8"), f"presets/layouts/{name}.toml"
 
 
@@ -214,7 +210,7 @@ def load_layout(name: str) -> Engine:
     """
     try:
         crank, geometry, lname = _layout_parts(name, None)
-    except UnknownLayout as exc:
+    except UnknownLayoutError as exc:
         raise RigError(f"{exc}, expected one of {', '.join(list_layouts())}") from None
     label = name if name.endswith(".toml") else f"presets/layouts/{name}.toml"
     problems = Problems(label)
@@ -242,7 +238,7 @@ def read_rig_engine(sec: Section, *, rig_name: str, base_dir: Path | None) -> En
                 )
         try:
             crank, defaults, _ = _layout_parts(layout, base_dir)
-        except UnknownLayout as exc:
+        except UnknownLayoutError as exc:
             sec.problem("layout", str(exc), "one of " + ", ".join(list_layouts()))
     else:
         name = sec.get("name", "str", default=rig_name)
