@@ -55,6 +55,7 @@ __all__ = [
     "CrankTracker",
     "reconstruct_crank",
     "phase_from_pattern",
+    "phase_distinguishable",
 ]
 
 PhaseMode = Literal["cam", "pattern", "auto"]

@@ -310,6 +310,21 @@ class VibrationAnalyzer:
         return max((b.rough.window_frames * b.rough.frame_s + b.rough.hold_s
                     + 2 * b.rough.frame_s for b in self.boards.values()), default=0.0)
 
+    def weighted_energy(self) -> dict[str, tuple[float, int, float, str]]:
+        """Per sensor, what was weighted so far: ``(energy, samples, fs, weighting)``.
+
+        ``energy`` is the sum over samples of the vector-sum weighted acceleration squared
+        ((m/s²)², the axes' k factors applied); the r.m.s. over a stretch is the square root of
+        the energy's growth over the samples' growth. ``fs`` in Hz; ``weighting`` of the first
+        axis ("Wh", "Wk", "Wd" or "none").
+        """
+        out = {}
+        for name, b in self.boards.items():
+            k = np.asarray(b.spec.vector_k(), dtype=float)
+            out[name] = (float(np.sum(k**2 * b.tot_w)), int(b.tot_n), float(b.spec.fs),
+                         b.kinds[0])
+        return out
+
     def rough_open_since(self) -> float | None:
         """Start (CAN time, s) of the earliest rough-road span still open, or None."""
         starts = [b.rough.open_since for b in self.boards.values()

@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from crankbeat.dsp._crank_phase import phase_distinguishable
+from crankbeat.dsp.crank import phase_distinguishable
 from crankbeat.logger.bringup import check_rig
 from crankbeat.logger.cli.main import main
 from crankbeat.logger.rig import load_rig

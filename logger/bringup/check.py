@@ -14,8 +14,7 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
-from crankbeat.dsp._crank_phase import phase_distinguishable
-from crankbeat.dsp.crank import ToothWheel, reconstruct_crank
+from crankbeat.dsp.crank import ToothWheel, phase_distinguishable, reconstruct_crank
 from crankbeat.dsp.tdcfit import TdcEstimate, tdc_from_motoring
 from crankbeat.dsp.wheelprobe import (
     CamSeen,

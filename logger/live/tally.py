@@ -117,18 +117,15 @@ class LiveTally:
         :class:`logger.pipeline.RunAnalysis` (called after each step)."""
         self.set_wheel_learnt(bool(analysis.tooth_correction_applied))
         vib = getattr(analysis, "vibration", None)
-        for name, board in (getattr(vib, "boards", None) or {}).items():
-            k = np.asarray(board.spec.vector_k(), dtype=float)
-            total = float(np.sum(k**2 * board.tot_w))  # weighted vector-sum energy so far
+        for name, (total, n_total, fs, kind) in (vib.weighted_energy() if vib else {}).items():
             last = self._vib_last.get(name)
             if last is None:
-                self._vib_last[name] = (total, board.tot_n)
+                self._vib_last[name] = (total, n_total)
                 continue
-            n = board.tot_n - last[1]
-            if n >= every_samples_s * board.spec.fs:  # a fresh value every couple of seconds
-                kind = board.kinds[0]
+            n = n_total - last[1]
+            if n >= every_samples_s * fs:  # a fresh value every couple of seconds
                 self.set_vibration(name, float(np.sqrt((total - last[0]) / n)), kind)
-                self._vib_last[name] = (total, board.tot_n)
+                self._vib_last[name] = (total, n_total)
 
     def state(self, elapsed_s: float, *, recording: str | None = None) -> LiveState:
         n = self.engine.n_cylinders
