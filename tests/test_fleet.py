@@ -252,3 +252,25 @@ def test_a_worker_that_dies_fails_its_ride_only(rig, one_by_one, tmp_path):
     assert len(report.stored) == 2
     stored = _stored_events(db)
     _assert_same(stored, {k: v for k, v in one_by_one.items() if k in stored})
+
+
+def test_batch_command_on_a_dask_scheduler_and_the_default_pool(dask_client, tmp_path, capsys):
+    # --scheduler connects to a running cluster by address (here the LocalCluster's); without
+    # it and without --workers the local pool takes every core this process may use
+    import os
+
+    from crankbeat.logger.fleet.engine import make_engine
+
+    db = tmp_path / "s.db"
+    address = dask_client.scheduler.address
+    assert main(["batch", "--rig", "larch", "--store", str(db), "--scheduler", address,
+                 str(FIX / "blf" / "blf.blf")]) == 0
+    out = capsys.readouterr().out
+    assert "1 stored, 0 skipped" in out
+    with Store.open(db) as store:
+        assert len(store.runs()) == 1 and store.events(store.runs()[0]["id"]).size > 0
+    with make_engine() as engine:
+        assert engine.workers == len(os.sched_getaffinity(0))
+    assert main(["batch", "--rig", "larch", "--store", str(db), "--scheduler",
+                 "tcp://127.0.0.1:9", str(FIX / "blf" / "blf.blf")]) == 4
+    assert "no Dask scheduler at 'tcp://127.0.0.1:9'" in capsys.readouterr().err

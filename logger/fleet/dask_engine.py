@@ -8,6 +8,7 @@ object store mounted alike). Results come back to this process, which alone writ
 from __future__ import annotations
 
 import importlib.util
+import socket
 from collections.abc import Iterator
 
 from crankbeat.errors import SourceError, UsageError
@@ -27,6 +28,7 @@ class DaskEngine(BatchEngine):
 
         self._own = client is None
         if client is None:
+            _probe(address)
             try:
                 client = Client(address, timeout="10s")
             except (OSError, TimeoutError) as exc:
@@ -67,3 +69,19 @@ class DaskEngine(BatchEngine):
     def close(self) -> None:
         if self._own:
             self.client.close()
+
+
+def _probe(address: str | None, timeout_s: float = 5.0) -> None:
+    """Refuse an address where nothing listens before Dask is asked (a Client that fails to
+    connect leaves its event-loop thread running in this process)."""
+    from urllib.parse import urlsplit
+
+    if not address:
+        raise UsageError("--scheduler needs an address, tcp://HOST:PORT")
+    parts = urlsplit(address if "://" in address else f"tcp://{address}")
+    if parts.scheme != "tcp" or not parts.hostname or not parts.port:
+        return  # other transports (tls://, inproc://): Dask says what it thinks of them
+    try:
+        socket.create_connection((parts.hostname, parts.port), timeout=timeout_s).close()
+    except OSError as exc:
+        raise SourceError(f"no Dask scheduler at '{address}': {exc.strerror or exc}") from None
