@@ -110,10 +110,13 @@ def main(argv: list[str] | None = None) -> int:
     from crankbeat.dsp.analysis import EventAnalyzer
     from crankbeat.dsp.vibration import VibrationAnalyzer
     from crankbeat.errors import CrankbeatError
+    from crankbeat.logger.can.decode import FrameDecoder
+    from crankbeat.logger.can.sources import BusSource
     from crankbeat.logger.pipeline import analyse_live
     from crankbeat.logger.rig import load_rig
     from crankbeat.logger.rig.model import CanBus
     from crankbeat.logger.run.analysis import RunAnalysis
+    from crankbeat.logger.serial.decoder import SerialDecoder
     from crankbeat.logger.store import Store
 
     timer = CallTimer()
@@ -121,6 +124,9 @@ def main(argv: list[str] | None = None) -> int:
     timer.wrap(RunAnalysis, "push", "analysis, whole step (RunAnalysis.push)")
     timer.wrap(EventAnalyzer, "push", "  crank, work and verdicts (EventAnalyzer.push)")
     timer.wrap(VibrationAnalyzer, "push", "  vibration (VibrationAnalyzer.push)")
+    timer.wrap(BusSource, "recv_batch", "bus reads (BusSource.recv_batch)")
+    timer.wrap(FrameDecoder, "push", "CAN decoding (FrameDecoder.push)")
+    timer.wrap(SerialDecoder, "push", "serial decoding (SerialDecoder.push)")
     rig = load_rig(args.rig)
     with can.LogReader(str(args.can)) as reader:
         msgs = list(reader)
