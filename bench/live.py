@@ -182,9 +182,20 @@ class LiveFigures:
         return 100.0 * (r["cpu_s"] - r["feeder_cpu_s"]) / r["stream_wall_s"]
 
 
-def cpu_detail_rows(figs: LiveFigures, lab: str) -> list[Row]:
-    """Informative rows: the CPU of each thread, and of the analysis and the store writes."""
+def detail_rows(figs: LiveFigures, lab: str, rpm: float) -> list[Row]:
+    """Informative rows: the analysis's hold-back by design (ms and crank revolutions at
+    ``rpm``), the CPU of each thread, and inside the main thread of the analysis and the rest."""
     rows = []
+    r = figs.child.result
+    if "held_p50_ms" in r:
+        rev_ms = 60e3 / rpm
+        rows.append(Row(
+            f"live {lab}: TDC to the end of the chunk that released it (CAN time)",
+            f"p50 {r['held_p50_ms']:.0f} ms = {r['held_p50_ms'] / rev_ms:.1f} rev, p99 "
+            f"{r['held_p99_ms']:.0f} ms = {r['held_p99_ms'] / rev_ms:.1f} rev: the analysis's "
+            "hold-back and the wait for its chunk to close (the rest: serial margin, "
+            "processing, commit)",
+            value=r["held_p99_ms"]))
     threads = sorted(figs.thread_pct().items(), key=lambda kv: -kv[1])
     if threads:
         text = "; ".join(f"{name} {pct:.1f} %" for name, pct in threads)

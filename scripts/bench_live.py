@@ -20,7 +20,10 @@ analysis itself costs beside reading and decoding.
 
 The store's ``add_events`` is wrapped (the real method still does the work) to note when each
 event was handed to the store: with the bench's view of when it became visible (committed),
-that splits the latency into analysis and commit.
+that splits the latency into analysis and commit. ``RunAnalysis.push`` is wrapped likewise to
+note the end (CAN time) of the chunk that released each event: end minus the event's TDC is
+the analysis's hold-back by design (the crank data its verdict waits for) plus the wait for
+that chunk to close, apart from the serial margin, the processing and the commit.
 """
 
 from __future__ import annotations
@@ -119,6 +122,16 @@ def main(argv: list[str] | None = None) -> int:
     from crankbeat.logger.serial.decoder import SerialDecoder
     from crankbeat.logger.store import Store
 
+    held: list[tuple[float, object]] = []  # (chunk end, event times) per analysis step
+    push = RunAnalysis.push
+
+    def noting_push(self, chunk):
+        out = push(self, chunk)
+        if len(out.events):
+            held.append((chunk.end_time, out.events["t"].copy()))
+        return out
+
+    RunAnalysis.push = noting_push  # the analysis's own hold-back, in CAN time (see below)
     timer = CallTimer()
     # class methods: the unbound function is wrapped, so `self` comes through in *args
     timer.wrap(RunAnalysis, "push", "analysis, whole step (RunAnalysis.push)")
@@ -209,6 +222,20 @@ def main(argv: list[str] | None = None) -> int:
         if lat.size:
             figures.update(handed_p50_ms=float(np.percentile(lat, 50) * 1e3),
                            handed_p99_ms=float(np.percentile(lat, 99) * 1e3))
+    if held and "last_send_wall" in figures:
+        import numpy as np
+
+        # CAN time from an event's TDC to the end of the chunk that released it: what the
+        # analysis holds back by design and the chunk's closing, without the waits and the
+        # processing
+        end = np.concatenate([np.full(len(t), e) for e, t in held])
+        t_ev = np.concatenate([t for _, t in held])
+        keep = np.isfinite(t_ev) & np.isfinite(end) & (t_ev < figures["last_send_wall"]
+                                                       - args.settle)
+        if keep.any():
+            hb = end[keep] - t_ev[keep]
+            figures.update(held_p50_ms=float(np.percentile(hb, 50) * 1e3),
+                           held_p99_ms=float(np.percentile(hb, 99) * 1e3))
     print(json.dumps(figures))
     return 0
 

@@ -158,6 +158,8 @@ def test_live_run_streams_a_short_ride(rides, tmp_path):
     # the kernel's per-thread ticks and the feeder's own thread_time() agree (10 ms ticks)
     r = figs.child.result
     assert feeder == pytest.approx(100 * r["feeder_cpu_s"] / r["stream_wall_s"], abs=5.0)
+    # the analysis's own hold-back is part of the latency (its CAN time, the bus's time.time())
+    assert 0 < r["held_p50_ms"] <= r["handed_p50_ms"]
     stages = figs.stage_pct()
     assert stages["analysis, whole step (RunAnalysis.push)"] > 0
     assert stages["store writes and commits"] > 0
