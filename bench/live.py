@@ -23,6 +23,7 @@ from pathlib import Path
 import numpy as np
 
 from bench.procs import ChildRun, finish, reap, script, spawn
+from bench.table import Row
 
 
 class SerialServer:
@@ -156,6 +157,22 @@ class LiveFigures:
     def percentile_ms(self, q: float) -> float:
         return float(np.percentile(self.latency_s, q) * 1e3) if self.latency_s.size else np.nan
 
+    def thread_pct(self) -> dict[str, float]:
+        """CPU of each thread of the analysing process over the stream, % of a core."""
+        r = self.child.result
+        wall = r.get("stream_wall_s")
+        if not wall:
+            return {}
+        return {name: 100.0 * s / wall for name, s in r.get("thread_cpu_s", {}).items()}
+
+    def stage_pct(self) -> dict[str, float]:
+        """CPU of the timed stages inside the main thread (analysis, store), % of a core."""
+        r = self.child.result
+        wall = r.get("stream_wall_s")
+        if not wall:
+            return {}
+        return {name: 100.0 * s / wall for name, s in r.get("stage_cpu_s", {}).items()}
+
     @property
     def cpu_pct(self) -> float:
         """CPU of the analysing process (feeder thread excluded) over the stream, % of a core."""
@@ -163,6 +180,33 @@ class LiveFigures:
         if not {"cpu_s", "feeder_cpu_s", "stream_wall_s"} <= set(r):
             return np.nan
         return 100.0 * (r["cpu_s"] - r["feeder_cpu_s"]) / r["stream_wall_s"]
+
+
+def detail_rows(figs: LiveFigures, lab: str, rpm: float) -> list[Row]:
+    """Informative rows: the analysis's hold-back by design (ms and crank revolutions at
+    ``rpm``), the CPU of each thread, and inside the main thread of the analysis and the rest."""
+    rows = []
+    r = figs.child.result
+    if "held_p50_ms" in r:
+        rev_ms = 60e3 / rpm
+        rows.append(Row(
+            f"live {lab}: TDC to the end of the chunk that released it (CAN time)",
+            f"p50 {r['held_p50_ms']:.0f} ms = {r['held_p50_ms'] / rev_ms:.1f} rev, p99 "
+            f"{r['held_p99_ms']:.0f} ms = {r['held_p99_ms'] / rev_ms:.1f} rev: the analysis's "
+            "hold-back and the wait for its chunk to close (the rest: serial margin, "
+            "processing, commit)",
+            value=r["held_p99_ms"]))
+    threads = sorted(figs.thread_pct().items(), key=lambda kv: -kv[1])
+    if threads:
+        text = "; ".join(f"{name} {pct:.1f} %" for name, pct in threads)
+        rows.append(Row(f"live {lab}: CPU per thread (% of a core)", text,
+                        value=sum(p for _, p in threads)))
+    stages = figs.stage_pct()
+    if stages:
+        text = "; ".join(f"{name.strip()} {pct:.1f} %" for name, pct in stages.items())
+        rows.append(Row(f"live {lab}: CPU inside the main thread (% of a core)", text,
+                        value=max(stages.values())))
+    return rows
 
 
 def run_live(can_log: Path, captures: dict[str, Path], store: Path, *, base: float,

@@ -340,7 +340,7 @@ def live_rows(b: Bench) -> list[Row]:
 
 
 def _live_rows(b: Bench, rpm: float) -> list[Row]:
-    from bench.live import run_live
+    from bench.live import detail_rows, run_live
     from bench.rides import START_TIME
     from crankbeat.logger.rig import load_rig
 
@@ -379,6 +379,7 @@ def _live_rows(b: Bench, rpm: float) -> list[Row]:
             f"{cpu:.1f} % of a core ({r['cpu_s'] - r['feeder_cpu_s']:.1f} s CPU in "
             f"{r['stream_wall_s']:.1f} s; CAN feeder thread's {r['feeder_cpu_s']:.1f} s left out)",
             value=cpu, op="<=", limit=CPU_MAX_PCT, unit=" %"),
+        *detail_rows(figs, lab, rpm),
     ]
 
 

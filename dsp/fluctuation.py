@@ -172,10 +172,10 @@ class FluctuationStage:
         h = w.trend_cycles
         # angle reach of one event's computation, relative to its TDC
         self._reach_lo = w.start_deg - h * self._C - w.smooth_deg
-        self._reach_hi = w.start_deg + w.length_deg + h * self._C + w.smooth_deg
+        self._step_len = min(STEP_STROKE_DEG, self._C / self._n)
+        self._reach_hi = self._reach_ahead(angles)
         # samples per box / window gather (fixed sizes keep sums identical whatever the chunking)
         self._box_m = int(np.ceil(2 * w.smooth_deg / self.pitch)) + 3
-        self._step_len = min(STEP_STROKE_DEG, self._C / self._n)
         span_deg = max(w.length_deg + 2 * w.smooth_deg, 2 * self._step_len)
         self._win_m = int(np.ceil(span_deg / self.pitch)) + 4
         # J(θ) tabulated over the cycle every 0.05°: linear interpolation is exact to ~1e-8
@@ -194,6 +194,28 @@ class FluctuationStage:
         self._good = np.empty(0, dtype=bool)
         self._max_angle = -np.inf
         self._next: int | None = None  # next global event index to emit
+
+    def _reach_ahead(self, seq_deg: np.ndarray) -> float:
+        """Crank angle after an event's TDC that its computation reads, deg: the event waits
+        for it (live latency), so it is what :meth:`_compute` reads and no more.
+
+        The furthest reads: the energy at the window start ``h`` cycles on (the trend), the
+        window end of the last window summed (``h`` cycles on less the shortest firing
+        interval), the window and the energy step of the event itself and its torque centre;
+        each box reads ``smooth_deg`` beyond its point. Beyond that, one tooth interval must
+        have arrived (a box or a window needs a sample past its end to know it is complete):
+        a gap is at most :meth:`_gap_teeth` pitches, so one more pitch than that.
+        """
+        w, h, C = self.window, self.window.trend_cycles, self._C
+        iv = np.diff(np.concatenate((seq_deg, [seq_deg[0] + C])))
+        far = max(
+            h * C + w.start_deg + w.smooth_deg,
+            h * C - float(np.min(iv)) + w.start_deg + w.length_deg + w.smooth_deg,
+            w.start_deg + w.length_deg + w.smooth_deg,
+            STEP_OFFSET_DEG + self._step_len,
+            RISE_SPAN[1],
+        )
+        return far + (self._gap_teeth() + 1) * self.pitch
 
     # -- event geometry -------------------------------------------------------------------------
     def _event_theta(self, index: np.ndarray) -> np.ndarray:

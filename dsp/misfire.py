@@ -56,8 +56,9 @@ Decision (per event ``k`` of cylinder ``c``, in event order)
   never misfires;
 * the first ``warmup_cycles`` cycles of each cylinder are ``UNUSABLE`` (its statistics fill up).
 
-Each event is decided once the next ``lookahead_cycles`` cycles have arrived; the state is updated
-event by event, so streaming equals whole-array whatever the chunking.
+Each event is decided once the next ``lookahead_cycles`` cycles and the ``n - 1`` events after
+them have arrived (the last look-ahead event's cross score reads the other cylinders around it);
+the state is updated event by event, so streaming equals whole-array whatever the chunking.
 
 ``FUEL_CUT`` when the rpm is at least ``fuel_cut_min_rpm`` and either the throttle is closed (or
 unknown) and no cylinder around fires, or the throttle is (or was within ``fuel_cut_hold_s``)
@@ -110,7 +111,8 @@ class MisfireDetector:
     -----
     ``push(raw, throttle)`` takes raw events in order (``throttle`` in %, one per event, NaN when
     unknown) and returns the events that are final, as :data:`dsp.events.EVENT_DTYPE`: each raw
-    event comes out exactly once, ``lookahead_cycles`` cycles later. ``finish()`` flushes the
+    event comes out exactly once, ``lookahead_cycles`` cycles and ``n - 1`` events later.
+    ``finish()`` flushes the
     rest. :meth:`take_detail` returns the :data:`dsp.events.EVENT_DETAIL_DTYPE` rows of the
     events returned since its last call; :meth:`report` the run-level findings.
     """
@@ -125,7 +127,10 @@ class MisfireDetector:
         self._expected_before = np.roll(iv, 1)  # expected interval *before* each position
         # every firing the same angle apart: the cylinders' fired levels read alike
         self._even = bool(np.ptp(iv) < 1.0)
-        self._ahead = self.s.lookahead_cycles * self.n  # events of look-ahead
+        # events of look-ahead: the cylinder's next lookahead_cycles events, and the other
+        # cylinders' events around the last of them (its cross score reads their median); an
+        # event decided before those arrived would depend on where the stream was cut
+        self._ahead = self.s.lookahead_cycles * self.n + self.n - 1
         self._back = max(2 * self.n, self._ahead)  # events of history kept in the buffer
         self._z = float(self.s.threshold if self.s.threshold is not None else self.s.z_threshold)
         self._cyl = [CylinderState(self.s.history_cycles, self.s.spread_events,

@@ -149,6 +149,20 @@ def test_live_run_streams_a_short_ride(rides, tmp_path):
     assert 0 < figs.events <= 2.0 * 2 * RPM / 120 + 2
     assert figs.latency_s.size > 0 and np.all(np.isfinite(figs.latency_s))
     assert np.isfinite(figs.cpu_pct)
+    # per thread: the feeder (left out of the figure), the serial reader, the main thread
+    threads = figs.thread_pct()
+    assert any("feeder" in name for name in threads)
+    assert any(name.startswith("PortReader(") for name in threads)
+    assert any(name.startswith("main") for name in threads)
+    feeder = sum(p for name, p in threads.items() if "feeder" in name)
+    # the kernel's per-thread ticks and the feeder's own thread_time() agree (10 ms ticks)
+    r = figs.child.result
+    assert feeder == pytest.approx(100 * r["feeder_cpu_s"] / r["stream_wall_s"], abs=5.0)
+    # the analysis's own hold-back is part of the latency (its CAN time, the bus's time.time())
+    assert 0 < r["held_p50_ms"] <= r["handed_p50_ms"]
+    stages = figs.stage_pct()
+    assert stages["analysis, whole step (RunAnalysis.push)"] > 0
+    assert stages["store writes and commits"] > 0
 
 
 def test_rows_judge_targets_and_missing_parts(monkeypatch):
