@@ -62,6 +62,7 @@ class CylinderState:
         self.recent: deque[float] = deque(maxlen=2 * history)  # every counted work, flagged or not
         self.flags: deque[bool] = deque(maxlen=pattern_events)  # candidate misfire or not
         self.misfire_dev: dict[int, deque[float]] = {}  # rpm cell → deviations of misfires, J
+        self.misfire_rpm: dict[int, deque[float]] = {}  # rpm cell → their speeds, rpm
         self.motored: dict[int, deque[float]] = {}  # rpm cell → work on fuel cut, J
         self.level = float("nan")  # median of ``recent``
         self.ever_healthy = False  # an event judged fired after the warm-up
@@ -73,6 +74,8 @@ class CylinderState:
         self.run_x: list[float] = []  # metric of the current run of misfires
         self.dead_since: float | None = None  # start of the current dead spell, s
         self.first_dead: float | None = None  # start of the first dead spell, s
+        self.partial_streak = 0  # partial burns in a row
+        self.weak = False  # in a weak spell: a run of partial burns, not yet fired again
         self.unusable_reason: str | None = None
         self.stale = False  # the baselines predate a fuel cut: relearn them after it
         self.rewarm = 0  # events still to learn before deciding again (after a fuel cut)
@@ -138,8 +141,9 @@ class CylinderState:
             self.recent_share.append(share)
 
     # -- depth scale ----------------------------------------------------------------------------
-    def add_misfire(self, cell: int, dev: float, keep: int) -> None:
+    def add_misfire(self, cell: int, dev: float, keep: int, rpm: float = float("nan")) -> None:
         self.misfire_dev.setdefault(cell, deque(maxlen=keep)).append(dev)
+        self.misfire_rpm.setdefault(cell, deque(maxlen=keep)).append(rpm)
 
     def add_motored(self, cell: int, x: float, keep: int) -> None:
         self.motored.setdefault(cell, deque(maxlen=keep)).append(x)
@@ -163,6 +167,23 @@ class CylinderState:
                 s = sorted(mis)
                 return median(s[len(s) // 2 :])
         return float("nan")
+
+    def own_misfire_scale(self, cell: int, rpm: float, *, min_count: int, max_spread: float,
+                          rpm_share: float) -> float:
+        """Median work the cylinder's own misfires took away at about this speed, J: those of
+        the rpm cell within ``rpm_share`` of ``rpm``, when at least ``min_count`` of them agree
+        within ``max_spread`` (robust spread over median); else NaN. (During a sweep a
+        misfire's trace changes with speed and with the lag of the reference: a cluster from
+        another speed is no scale.)
+        """
+        devs, speeds = self.misfire_dev.get(cell), self.misfire_rpm.get(cell)
+        if devs is None or len(devs) < min_count or not rpm == rpm:
+            return float("nan")
+        near = [d for d, r in zip(devs, speeds) if abs(r - rpm) <= rpm_share * rpm]
+        if len(near) < min_count:
+            return float("nan")
+        m = median(near)
+        return m if m > 0 and robust_spread(near) <= max_spread * m else float("nan")
 
     # -- self-check -----------------------------------------------------------------------------
     def pattern_implausible(self, *, min_events: int) -> str | None:

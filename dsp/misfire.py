@@ -38,14 +38,15 @@ Decision (per event ``k`` of cylinder ``c``, in event order)
   speed the event before it left;
 * depth = missing work ÷ the work of a complete misfire, where an offset-free scale exists (the
   cylinder's motored level on fuel cut, else the upper half of its own misfires in the rpm cell);
-  a flagged event shallower than ``partial_depth`` on the motored scale of its rpm cell is
-  ``PARTIAL`` (the run's own misfires scatter too widely at low signal to noise to tell a partial
-  burn, and a misfire called partial is a missed misfire); without a scale, depth is NaN ("not
+  a flagged event shallower than ``partial_depth`` on the motored scale of its rpm cell, or on
+  the median of its own misfires there when they agree within ``own_scale_spread``, is
+  ``PARTIAL`` (misfires that scatter, as at high speed and light load, give no verdict of depth:
+  a misfire called partial is a missed misfire); without a scale, depth is NaN ("not
   calibrated") and the event stays ``MISFIRE``. The step is not linear in the share of the
-  charge that burns (simulated Larch at 3600 rpm, 20 % throttle: 75 % burnt keeps 59 % of a
-  fired event's step, 45 % burnt keeps 10 %; the window work keeps 78 % and 51 %), so only
-  shallow partial burns are told; a deeper one counts as a misfire, and a stretch of them as a
-  dead spell;
+  charge that burns, and a fuel cut at closed throttle measures a misfire at load poorly
+  (simulated Larch at 3500 rpm, 20 % throttle: misfires take away 1.5-1.9 motored scales, a
+  45 % burn 0.7-1.1, about half of the misfires' median). A run of ``dead_run`` partial burns is
+  a weak spell: like a dead spell's, its start and end make the other cylinders relearn;
 * after a fuel cut each cylinder relearns its baselines for ``warmup_cycles`` cycles: the engine
   then fires at another speed and load, where every per-cylinder pattern has another level;
 * the threshold rises with the scatter of the recent fired events of all cylinders (a rough
@@ -312,7 +313,10 @@ class MisfireDetector:
             # where a depth scale exists, an event clearly short of a whole misfire is a
             # partial burn: a run of them is a weak cylinder, never a dead spell
             scale_here = st.depth_scale(cell, b, min_count=s.depth_min_count)
-            partial_like = bool(scale_here == scale_here and -d / scale_here < s.partial_depth)
+            own = st.own_misfire_scale(cell, rpm[k], min_count=s.depth_min_count,
+                                       max_spread=s.own_scale_spread, rpm_share=s.own_rpm_share)
+            partial_like = bool(scale_here == scale_here and -d / scale_here < s.partial_depth
+                                or own == own and -d / own < s.partial_depth)
             dead = self._dead(c, x, share, cand, times[o], partial_like=partial_like)
             metric[o] = z if ready else np.nan
             if fc_sure[o] or (fc_maybe[o] and (cand or dead)):
@@ -334,11 +338,13 @@ class MisfireDetector:
                 verdict[o], cause[o], conf[o] = MISFIRE, CAUSE_DEAD, 1.0
                 self._last_flag = gi
                 if ready and z > z_thr:
-                    st.add_misfire(cell, -d, s.depth_history)
-            elif cand and len(st.run) > s.dead_run and st.ever_healthy:
+                    st.add_misfire(cell, -d, s.depth_history, rpm[k])
+            elif cand and len(st.run) > s.dead_run and st.ever_healthy and not partial_like:
                 # a long run of low scores whose share of the engine's work did not collapse is
                 # no dead spell but a drift of this cylinder's level (a driveline mode moving with
-                # speed): the baseline follows it instead of locking the cylinder into misfires
+                # speed): the baseline follows it instead of locking the cylinder into misfires;
+                # not so a run clearly short of a whole misfire on a trusted scale (a weak
+                # cylinder burning part of its charge stays partial, never learnt as its level)
                 verdict[o] = FIRED
                 st.accept(x, y, d, dx)
             elif cand:
@@ -352,13 +358,17 @@ class MisfireDetector:
                 scale = -d / depth[o] if depth[o] == depth[o] and depth[o] > 0 else 0.0
                 calibrated_here = len(st.motored.get(cell, ())) >= s.depth_min_count
                 partial = (calibrated_here and depth[o] < s.partial_depth
-                           and (1.0 - depth[o]) * scale > s.partial_gap * sd)
+                           and (1.0 - depth[o]) * scale > s.partial_gap * sd
+                           or own == own and -d < s.partial_depth * own
+                           and own + d > s.own_partial_gap * sd)
                 verdict[o] = PARTIAL if partial else MISFIRE
                 conf[o] = min(1.0, (z - z_thr) / z_thr + 0.5)
                 if not partial:
-                    st.add_misfire(cell, -d, s.depth_history)
+                    st.add_misfire(cell, -d, s.depth_history, rpm[k])
+                self._weak_spell(c, partial)
             elif ready:
                 verdict[o] = FIRED
+                self._weak_spell(c, False)
                 if gi - self._last_flag > self.n:
                     # the events just after a misfire rebound (the next cylinder starts slower):
                     # that is the misfire's own trace, no rough road
@@ -493,6 +503,15 @@ class MisfireDetector:
         drops = [median(o.shares) - median(o.recent_share) for i, o in enumerate(self._cyl)
                  if i != c and len(o.shares) >= 8 and o.recent_share]
         return median(drops) if drops else 0.0
+
+    def _weak_spell(self, c: int, partial: bool) -> None:
+        """A run of ``dead_run`` partial burns starts a weak spell of cylinder c, its next fired
+        event ends it; both make the others relearn, as a dead spell's start and end do."""
+        st = self._cyl[c]
+        st.partial_streak = st.partial_streak + 1 if partial else 0
+        if st.weak != (st.partial_streak >= self.s.dead_run or (st.weak and partial)):
+            st.weak = not st.weak
+            self._others_relearn(c)
 
     def _others_relearn(self, c: int) -> None:
         """A dead spell starts or ends on cylinder c: the others relearn their baselines. Each

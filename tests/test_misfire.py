@@ -251,10 +251,16 @@ def test_streaming_decision_equals_whole_array():
         np.testing.assert_array_equal(streamed[name], whole[name], err_msg=name)
 
 
-def _half_burns(n=3000, *, cut=0):
+def _half_burns(n=3000, *, cut=0, misfire_scatter=0.0):
     """Raw twin events with misfires every 29th event and half burns half-way between them;
-    the first ``cut`` events are an overrun fuel cut (throttle closed, the motored level)."""
+    the first ``cut`` events are an overrun fuel cut (throttle closed, the motored level).
+    ``misfire_scatter``: the misfires' work spreads uniformly over +-that share of the fired
+    level (a misfire's trace scatters at high speed and light load)."""
     raw = _raw(n=n, misfire_every=29)
+    if misfire_scatter:
+        rng = np.random.default_rng(5)
+        mis = raw["work"] == 0.0
+        raw["work"][mis] = 100.0 * misfire_scatter * rng.uniform(-1, 1, int(mis.sum()))
     half = np.zeros(raw.size, bool)
     half[14::29] = True  # half-way between the misfires: burns half of the charge
     raw["work"][half] = 50.0
@@ -278,13 +284,23 @@ def test_partial_burns_are_told_on_the_motored_depth_scale_of_a_fuel_cut():
     assert all(report["depth_calibrated"].values())
 
 
-def test_without_a_motored_level_half_burns_stay_misfires():
-    # the run's own misfires give a depth (about 0.5 here) but no verdict: at low signal to
-    # noise they scatter too widely to tell a partial burn, and a misfire must never be missed
+def test_without_a_motored_level_half_burns_are_told_where_the_misfires_agree():
+    # no fuel cut: the scale is the run's own misfires, here all at 0 J (they agree): a burn of
+    # half the charge takes away half of what they take (arithmetic)
     raw, half, ev, detail, _ = _half_burns(cut=0)
     late = np.arange(raw.size) > 600
-    assert (ev["verdict"][half & late] == MISFIRE).all()
+    assert (ev["verdict"][half & late] == PARTIAL).all()
+    assert (ev["verdict"][~half & late & (raw["work"] == 0.0)] == MISFIRE).all()
     assert np.median(detail["depth"][half & late]) == pytest.approx(0.5, abs=0.05)
+
+
+def test_without_a_motored_level_half_burns_stay_misfires_where_the_misfires_scatter():
+    # misfires scattered +-40 % of the fired level (robust spread ~0.35 of their median: beyond
+    # own_scale_spread): no verdict of depth, a misfire must never be missed
+    raw, half, ev, detail, _ = _half_burns(cut=0, misfire_scatter=0.4)
+    late = np.arange(raw.size) > 600
+    assert (ev["verdict"][half & late] == MISFIRE).all()
+    assert not (ev["verdict"] == PARTIAL).any()
 
 
 def test_without_a_depth_scale_misfires_are_found_and_depth_is_not_calibrated():
@@ -341,3 +357,18 @@ def test_settings_are_checked():
         MisfireSettings(dead_ratio=1.5)
     with pytest.raises(InputError, match="RAW_EVENT_DTYPE"):
         MisfireDetector(_twin()).push(np.zeros(3))
+
+
+def test_own_misfire_scale_comes_from_agreeing_misfires_at_about_the_same_speed():
+    from crankbeat.dsp.cylinder_stats import CylinderState
+
+    st = CylinderState(16, 48, 32)
+    for dev, rpm in ((160.0, 4000.0), (150.0, 4050.0), (170.0, 3980.0), (158.0, 4020.0)):
+        st.add_misfire(4, dev, 16, rpm)
+    kw = {"min_count": 4, "max_spread": 0.15, "rpm_share": 0.05}
+    assert st.own_misfire_scale(4, 4010.0, **kw) == pytest.approx(159.0)  # median (arithmetic)
+    assert np.isnan(st.own_misfire_scale(4, 4600.0, **kw))  # 15 % faster: another speed
+    scattered = CylinderState(16, 48, 32)
+    for dev in (60.0, 100.0, 160.0, 220.0, 260.0):  # MAD 60 -> robust spread 89 = 0.56 x 160
+        scattered.add_misfire(4, dev, 16, 4000.0)
+    assert np.isnan(scattered.own_misfire_scale(4, 4000.0, **kw))
