@@ -76,6 +76,7 @@ class CylinderState:
         self.first_dead: float | None = None  # start of the first dead spell, s
         self.partial_streak = 0  # partial burns in a row
         self.weak = False  # in a weak spell: a run of partial burns, not yet fired again
+        self.first_weak: float | None = None  # start of the first weak spell, s
         self.unusable_reason: str | None = None
         self.stale = False  # the baselines predate a fuel cut: relearn them after it
         self.rewarm = 0  # events still to learn before deciding again (after a fuel cut)

@@ -196,6 +196,9 @@ class MisfireDetector:
         # burning) scores like no combustion on the energy step, so the note does not claim more
         notes += [f"cylinder {c}: dead spell from t = {t:.2f} s (no combustion, or too little to "
                   "tell from none): every event of it counted as misfire" for c, t in dead.items()]
+        notes += [f"cylinder {c + 1}: a run of partial burns from t = {st.first_weak:.2f} s (part "
+                  "of the charge burning: counted apart from misfires, as partial)"
+                  for c, st in enumerate(self._cyl) if st.first_weak is not None]
         if not all(calibrated.values()):
             which = ", ".join(str(c) for c, ok in calibrated.items() if not ok)
             notes.append(f"misfire depth not calibrated on cylinder(s) {which} (no fuel cut and "
@@ -365,10 +368,10 @@ class MisfireDetector:
                 conf[o] = min(1.0, (z - z_thr) / z_thr + 0.5)
                 if not partial:
                     st.add_misfire(cell, -d, s.depth_history, rpm[k])
-                self._weak_spell(c, partial)
+                self._weak_spell(c, partial, times[o])
             elif ready:
                 verdict[o] = FIRED
-                self._weak_spell(c, False)
+                self._weak_spell(c, False, times[o])
                 if gi - self._last_flag > self.n:
                     # the events just after a misfire rebound (the next cylinder starts slower):
                     # that is the misfire's own trace, no rough road
@@ -504,7 +507,7 @@ class MisfireDetector:
                  if i != c and len(o.shares) >= 8 and o.recent_share]
         return median(drops) if drops else 0.0
 
-    def _weak_spell(self, c: int, partial: bool) -> None:
+    def _weak_spell(self, c: int, partial: bool, t: float) -> None:
         """A run of ``dead_run`` partial burns starts a weak spell of cylinder c, its next fired
         event ends it; both make the others relearn, as a dead spell's start and end do."""
         st = self._cyl[c]
@@ -512,6 +515,8 @@ class MisfireDetector:
         if st.weak != (st.partial_streak >= self.s.dead_run or (st.weak and partial)):
             st.weak = not st.weak
             self._others_relearn(c)
+            if st.weak and st.first_weak is None:
+                st.first_weak = t
 
     def _others_relearn(self, c: int) -> None:
         """A dead spell starts or ends on cylinder c: the others relearn their baselines. Each

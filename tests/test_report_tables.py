@@ -135,7 +135,7 @@ def test_demo_page_and_index(demo_report):
     for heading in ("Misfire events", "Vibration", "Settings", "Notes"):
         assert f">{heading}" in outside
     assert "the engineers own note" in outside and "tdc_offset_deg" in outside
-    assert "dead spell" in outside and "m/s²" in outside
+    assert "a run of partial burns" in outside and "m/s²" in outside
     assert not re.search(r"(src|href)=['\"](?!data:|#|index\.html|run\d+\.html)", text)
     index = (rep.html.parent / "index.html").read_text(encoding="utf-8")
     assert "href='run1.html'" in index and head["misfires"].value in index

@@ -53,7 +53,7 @@ def _show_table(out: str) -> dict[int, float]:
     rows = {}
     for line in out.splitlines():
         parts = line.split()
-        if len(parts) == 10 and parts[0].isdigit() and parts[0] in ("1", "2"):
+        if len(parts) == 11 and parts[0].isdigit() and parts[0] in ("1", "2"):
             rows[int(parts[0])] = float(parts[-1])
     return rows
 

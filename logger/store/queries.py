@@ -230,6 +230,7 @@ class RunQueries:
             f" SUM(verdict = {c['fired']}) AS fired, SUM(verdict = {c['misfire']}) AS misfires,"
             f" SUM(verdict = {c['masked']}) AS masked, SUM(verdict = {c['unusable']}) AS unusable,"
             f" SUM(verdict = {c['fuel_cut']}) AS fuel_cut,"
+            f" SUM(verdict = {c['partial']}) AS partial,"
             f" AVG(CASE WHEN verdict = {c['fired']} THEN contribution END) AS contribution,"
             f" AVG(CASE WHEN verdict IN ({c['fired']}, {c['misfire']})"
             "  THEN interval_deg - expected_interval_deg END) AS interval_error_deg"
