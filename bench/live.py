@@ -159,19 +159,18 @@ class LiveFigures:
 
     def thread_pct(self) -> dict[str, float]:
         """CPU of each thread of the analysing process over the stream, % of a core."""
-        r = self.child.result
-        wall = r.get("stream_wall_s")
-        if not wall:
-            return {}
-        return {name: 100.0 * s / wall for name, s in r.get("thread_cpu_s", {}).items()}
+        return self._pct_of_stream("thread_cpu_s")
 
     def stage_pct(self) -> dict[str, float]:
         """CPU of the timed stages inside the main thread (analysis, store), % of a core."""
+        return self._pct_of_stream("stage_cpu_s")
+
+    def _pct_of_stream(self, key: str) -> dict[str, float]:
         r = self.child.result
         wall = r.get("stream_wall_s")
         if not wall:
             return {}
-        return {name: 100.0 * s / wall for name, s in r.get("stage_cpu_s", {}).items()}
+        return {name: 100.0 * s / wall for name, s in r.get(key, {}).items()}
 
     @property
     def cpu_pct(self) -> float:
