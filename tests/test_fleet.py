@@ -274,3 +274,19 @@ def test_batch_command_on_a_dask_scheduler_and_the_default_pool(dask_client, tmp
     assert main(["batch", "--rig", "larch", "--store", str(db), "--scheduler",
                  "tcp://127.0.0.1:9", str(FIX / "blf" / "blf.blf")]) == 4
     assert "no Dask scheduler at 'tcp://127.0.0.1:9'" in capsys.readouterr().err
+
+
+def test_stored_rides_whose_files_are_gone_are_left_out_and_named(rig, one_by_one, tmp_path):
+    import shutil
+
+    moved = tmp_path / "moved.blf"
+    shutil.copy(FIX / "blf" / "blf.blf", moved)
+    with Store.open(tmp_path / "g.db") as store:
+        kept = store_output(store, rig, one_by_one["demo.log"], label="demo")
+        from crankbeat.logger.pipeline import analyse_replay
+
+        gone_id = analyse_replay(rig, moved, {}, store).run_id
+        moved.unlink()  # the recording was moved away after its analysis
+        rides, gone = rides_from_store(store)
+    assert [r.name for r in rides] == [f"run {kept}"]
+    assert gone == [f"run {gone_id}: input file(s) gone: {moved}"]
