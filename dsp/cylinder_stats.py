@@ -63,6 +63,7 @@ class CylinderState:
         self.flags: deque[bool] = deque(maxlen=pattern_events)  # candidate misfire or not
         self.misfire_dev: dict[int, deque[float]] = {}  # rpm cell → deviations of misfires, J
         self.misfire_rpm: dict[int, deque[float]] = {}  # rpm cell → their speeds, rpm
+        self.misfire_z: dict[int, deque[float]] = {}  # rpm cell → their scores, robust sigma
         self.motored: dict[int, deque[float]] = {}  # rpm cell → work on fuel cut, J
         self.level = float("nan")  # median of ``recent``
         self.ever_healthy = False  # an event judged fired after the warm-up
@@ -142,9 +143,11 @@ class CylinderState:
             self.recent_share.append(share)
 
     # -- depth scale ----------------------------------------------------------------------------
-    def add_misfire(self, cell: int, dev: float, keep: int, rpm: float = float("nan")) -> None:
+    def add_misfire(self, cell: int, dev: float, keep: int, rpm: float = float("nan"),
+                    z: float = float("nan")) -> None:
         self.misfire_dev.setdefault(cell, deque(maxlen=keep)).append(dev)
         self.misfire_rpm.setdefault(cell, deque(maxlen=keep)).append(rpm)
+        self.misfire_z.setdefault(cell, deque(maxlen=keep)).append(z)
 
     def add_motored(self, cell: int, x: float, keep: int) -> None:
         self.motored.setdefault(cell, deque(maxlen=keep)).append(x)
@@ -170,17 +173,20 @@ class CylinderState:
         return float("nan")
 
     def own_misfire_scale(self, cell: int, rpm: float, *, min_count: int, max_spread: float,
-                          rpm_share: float) -> float:
-        """Median work the cylinder's own misfires took away at about this speed, J: those of
-        the rpm cell within ``rpm_share`` of ``rpm``, when at least ``min_count`` of them agree
-        within ``max_spread`` (robust spread over median); else NaN. (During a sweep a
+                          rpm_share: float, min_z: float) -> float:
+        """Median work the cylinder's clear misfires took away at about this speed, J, or NaN.
+
+        Taken: the misfires of the rpm cell within ``rpm_share`` of ``rpm`` (during a sweep a
         misfire's trace changes with speed and with the lag of the reference: a cluster from
-        another speed is no scale.)
+        another speed is no scale) that scored at least ``min_z`` (a flag close to the threshold
+        is no measure of a whole misfire). At least ``min_count`` of them must agree within
+        ``max_spread`` (robust spread over median).
         """
-        devs, speeds = self.misfire_dev.get(cell), self.misfire_rpm.get(cell)
+        devs = self.misfire_dev.get(cell)
         if devs is None or len(devs) < min_count or not rpm == rpm:
             return float("nan")
-        near = [d for d, r in zip(devs, speeds) if abs(r - rpm) <= rpm_share * rpm]
+        near = [d for d, r, z in zip(devs, self.misfire_rpm[cell], self.misfire_z[cell])
+                if abs(r - rpm) <= rpm_share * rpm and z >= min_z]
         if len(near) < min_count:
             return float("nan")
         m = median(near)

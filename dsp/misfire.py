@@ -317,7 +317,8 @@ class MisfireDetector:
             # partial burn: a run of them is a weak cylinder, never a dead spell
             scale_here = st.depth_scale(cell, b, min_count=s.depth_min_count)
             own = st.own_misfire_scale(cell, rpm[k], min_count=s.depth_min_count,
-                                       max_spread=s.own_scale_spread, rpm_share=s.own_rpm_share)
+                                       max_spread=s.own_scale_spread, rpm_share=s.own_rpm_share,
+                                       min_z=2.0 * z_thr)
             partial_like = bool(scale_here == scale_here and -d / scale_here < s.partial_depth
                                 or own == own and -d / own < s.partial_depth)
             dead = self._dead(c, x, share, cand, times[o], partial_like=partial_like)
@@ -339,9 +340,11 @@ class MisfireDetector:
             depth[o] = -d / scale if scale == scale else np.nan
             if dead:
                 verdict[o], cause[o], conf[o] = MISFIRE, CAUSE_DEAD, 1.0
+                # the note names spells whose events were counted (one inside a fuel cut was not)
+                st.first_dead = times[o] if st.first_dead is None else st.first_dead
                 self._last_flag = gi
                 if ready and z > z_thr:
-                    st.add_misfire(cell, -d, s.depth_history, rpm[k])
+                    st.add_misfire(cell, -d, s.depth_history, rpm[k], z)
             elif cand and len(st.run) > s.dead_run and st.ever_healthy and not partial_like:
                 # a long run of low scores whose share of the engine's work did not collapse is
                 # no dead spell but a drift of this cylinder's level (a driveline mode moving with
@@ -367,7 +370,7 @@ class MisfireDetector:
                 verdict[o] = PARTIAL if partial else MISFIRE
                 conf[o] = min(1.0, (z - z_thr) / z_thr + 0.5)
                 if not partial:
-                    st.add_misfire(cell, -d, s.depth_history, rpm[k])
+                    st.add_misfire(cell, -d, s.depth_history, rpm[k], z)
                 self._weak_spell(c, partial, times[o])
             elif ready:
                 verdict[o] = FIRED
@@ -432,7 +435,6 @@ class MisfireDetector:
                 dead = self._level_dead(c, x, lv, lim)
         if dead and st.dead_since is None:
             st.dead_since = t
-            st.first_dead = t if st.first_dead is None else st.first_dead
             self._others_relearn(c)
         elif not dead and st.dead_since is not None:
             st.dead_since = None

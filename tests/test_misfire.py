@@ -364,11 +364,14 @@ def test_own_misfire_scale_comes_from_agreeing_misfires_at_about_the_same_speed(
 
     st = CylinderState(16, 48, 32)
     for dev, rpm in ((160.0, 4000.0), (150.0, 4050.0), (170.0, 3980.0), (158.0, 4020.0)):
-        st.add_misfire(4, dev, 16, rpm)
-    kw = {"min_count": 4, "max_spread": 0.15, "rpm_share": 0.05}
+        st.add_misfire(4, dev, 16, rpm, 20.0)
+    kw = {"min_count": 4, "max_spread": 0.15, "rpm_share": 0.05, "min_z": 10.0}
     assert st.own_misfire_scale(4, 4010.0, **kw) == pytest.approx(159.0)  # median (arithmetic)
     assert np.isnan(st.own_misfire_scale(4, 4600.0, **kw))  # 15 % faster: another speed
+    for dev in (60.0, 70.0):  # two flags close to the threshold (z 6) are no measure of depth
+        st.add_misfire(4, dev, 16, 4000.0, 6.0)
+    assert st.own_misfire_scale(4, 4010.0, **kw) == pytest.approx(159.0)
     scattered = CylinderState(16, 48, 32)
     for dev in (60.0, 100.0, 160.0, 220.0, 260.0):  # MAD 60 -> robust spread 89 = 0.56 x 160
-        scattered.add_misfire(4, dev, 16, 4000.0)
+        scattered.add_misfire(4, dev, 16, 4000.0, 20.0)
     assert np.isnan(scattered.own_misfire_scale(4, 4000.0, **kw))
