@@ -7,7 +7,7 @@ from pathlib import Path
 import numpy as np
 from matplotlib.colors import LogNorm
 
-from crankbeat.dsp.events import FIRED, MISFIRE
+from crankbeat.dsp.events import FIRED, MISFIRE, PARTIAL
 from crankbeat.logger.figures import (
     interval_pairs,
     main_orders,
@@ -54,13 +54,17 @@ def plot_metric(ev: np.ndarray, path: Path, *, names: dict[int, str] | None = No
         fired = e[e["verdict"] == FIRED]
         if len(fired) > _MAX_DOTS:
             fired = fired[:: int(np.ceil(len(fired) / _MAX_DOTS))]
-        other = e[(e["verdict"] != FIRED) & (e["verdict"] != MISFIRE)]
+        other = e[~np.isin(e["verdict"], (FIRED, MISFIRE, PARTIAL))]
         mis = e[e["verdict"] == MISFIRE]
+        part = e[e["verdict"] == PARTIAL]
         ax.plot(fired["t"], fired["metric"], ".", ms=2, color=cyl_colour(c), label="fired",
                 rasterized=True)
         if len(other):
             ax.plot(other["t"], other["metric"], ".", ms=3, color=MUTED_COLOUR,
                     label=f"not judged ({len(other)})", rasterized=True)
+        if len(part):  # hollow: judged weak, not a whole misfire
+            ax.plot(part["t"], part["metric"], "^", ms=4, mfc="none", mew=1.0,
+                    color=MISFIRE_COLOUR, label=f"partial burn ({len(part)})")
         ax.plot(mis["t"], mis["metric"], "x", ms=5, mew=1.2, color=MISFIRE_COLOUR,
                 label=f"misfire ({len(mis)})")
         ax.plot(e["t"], e["threshold"], "-", lw=1.0, color=THRESHOLD_COLOUR, label="threshold")
@@ -79,7 +83,8 @@ def plot_metric(ev: np.ndarray, path: Path, *, names: dict[int, str] | None = No
 def _robust_ylim(ax, e: np.ndarray) -> None:
     """Y range from the judged events and the threshold, so that a few wild values of events
     that were not judged (sync loss, overrun) do not flatten the panel; says what is cut off."""
-    judged = e["metric"][np.isin(e["verdict"], (FIRED, MISFIRE)) & np.isfinite(e["metric"])]
+    judged = e["metric"][np.isin(e["verdict"], (FIRED, MISFIRE, PARTIAL))
+                         & np.isfinite(e["metric"])]
     thr = e["threshold"][np.isfinite(e["threshold"])]
     if not judged.size:
         return
