@@ -316,11 +316,14 @@ class MisfireDetector:
             # where a depth scale exists, an event clearly short of a whole misfire is a
             # partial burn: a run of them is a weak cylinder, never a dead spell
             scale_here = st.depth_scale(cell, b, min_count=s.depth_min_count)
-            own = st.own_misfire_scale(cell, rpm[k], min_count=s.depth_min_count,
-                                       max_spread=s.own_scale_spread, rpm_share=s.own_rpm_share,
-                                       min_z=2.0 * z_thr)
+            # the own-misfire scale matters to flagged events only (a run of them, a partial
+            # verdict): not looked up on every event
+            own = (st.own_misfire_scale(cell, rpm[k], min_count=s.depth_min_count,
+                                        max_spread=s.own_scale_spread, rpm_share=s.own_rpm_share,
+                                        min_z=2.0 * z_thr) if cand else float("nan"))
+            own_partial = own == own and -d < s.partial_depth * own
             partial_like = bool(scale_here == scale_here and -d / scale_here < s.partial_depth
-                                or own == own and -d / own < s.partial_depth)
+                                or own_partial)
             dead = self._dead(c, x, share, cand, times[o], partial_like=partial_like)
             metric[o] = z if ready else np.nan
             if fc_sure[o] or (fc_maybe[o] and (cand or dead)):
@@ -336,8 +339,7 @@ class MisfireDetector:
                 st.unusable_reason = why
                 verdict[o], cause[o] = UNUSABLE, CAUSE_IMPLAUSIBLE
                 continue
-            scale = st.depth_scale(cell, b, min_count=s.depth_min_count)
-            depth[o] = -d / scale if scale == scale else np.nan
+            depth[o] = -d / scale_here if scale_here == scale_here else np.nan
             if dead:
                 verdict[o], cause[o], conf[o] = MISFIRE, CAUSE_DEAD, 1.0
                 # the note names spells whose events were counted (one inside a fuel cut was not)
@@ -357,16 +359,15 @@ class MisfireDetector:
                 self._ring_from, self._ring_cyl, self._ring_z = gi, c, z
                 self._last_flag = gi
                 # a partial burn only where it is clearly short of a whole misfire, by depth and
-                # by partial_gap robust sigma, and only on the offset-free scale of this
-                # cylinder's own motored level (a fuel cut in this rpm cell): the run's own
-                # misfires scatter from 0.4 to 1.4 of their median at high speed and light load,
-                # and a misfire called partial is a missed misfire
+                # by a gap in robust sigma, on an offset-free scale: this cylinder's motored
+                # level (a fuel cut in this rpm cell) or its own clear misfires where they agree
+                # (misfires that scatter, from 0.4 to 1.4 of their median at high speed and
+                # light load, give none): a misfire called partial is a missed misfire
                 scale = -d / depth[o] if depth[o] == depth[o] and depth[o] > 0 else 0.0
                 calibrated_here = len(st.motored.get(cell, ())) >= s.depth_min_count
                 partial = (calibrated_here and depth[o] < s.partial_depth
                            and (1.0 - depth[o]) * scale > s.partial_gap * sd
-                           or own == own and -d < s.partial_depth * own
-                           and own + d > s.own_partial_gap * sd)
+                           or own_partial and own + d > s.own_partial_gap * sd)
                 verdict[o] = PARTIAL if partial else MISFIRE
                 conf[o] = min(1.0, (z - z_thr) / z_thr + 0.5)
                 if not partial:
@@ -514,17 +515,18 @@ class MisfireDetector:
         event ends it; both make the others relearn, as a dead spell's start and end do."""
         st = self._cyl[c]
         st.partial_streak = st.partial_streak + 1 if partial else 0
-        if st.weak != (st.partial_streak >= self.s.dead_run or (st.weak and partial)):
-            st.weak = not st.weak
+        weak = partial and (st.weak or st.partial_streak >= self.s.dead_run)
+        if weak != st.weak:
+            st.weak = weak
             self._others_relearn(c)
             if st.weak and st.first_weak is None:
                 st.first_weak = t
 
     def _others_relearn(self, c: int) -> None:
-        """A dead spell starts or ends on cylinder c: the others relearn their baselines. Each
-        event's metric compares the crank's speed after its TDC with the speed before, which
-        the event before it set: when one cylinder stops or resumes firing, its neighbours'
-        levels move too (the next cylinder starts from a slower crank)."""
+        """A dead or weak spell starts or ends on cylinder c: the others relearn their baselines.
+        Each event's metric compares the crank's speed after its TDC with the speed before,
+        which the event before it set: when one cylinder stops, weakens or resumes firing, its
+        neighbours' levels move too (the next cylinder starts from a slower crank)."""
         for i, o in enumerate(self._cyl):
             if i != c:
                 o.stale = True

@@ -48,7 +48,7 @@ def render_run(store: Store, run_id: int, *, riding_hours: float | None = None) 
         ["cyl", "events", "fired", "misfires", "rate %", "partial", "masked", "unusable",
          "fuel cut", "contrib", "interval err deg"],
         [[cylinder_name(c["cylinder"], pairs), c["events"], c["fired"], c["misfires"],
-          fmt(c["rate_pct"], ".2f"), c.get("partial", 0),
+          fmt(c["rate_pct"], ".2f"), c["partial"],
           c["masked"], c["unusable"], c["fuel_cut"], fmt(c["contribution"], ".3f"),
           fmt(c["interval_error_deg"], "+.2f")] for c in d["cylinders"]],
     ) if d["cylinders"] else "  (no events)")

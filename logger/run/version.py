@@ -21,7 +21,8 @@ from importlib import resources
 import crankbeat
 
 #: Revision of the detector and the run layer's policies (see the module docstring).
-#: 2: dead cylinders of even-firing engines, dead spells by level, folded notes.
+#: 2: dead cylinders of even-firing engines, dead spells by level, partial burns told on the
+#: cylinder's own clear misfires, weak spells, folded notes.
 DETECTOR_REVISION = 2
 
 #: Where the numbers of a run come from: decoding, time bases, the stages and the run layer.
