@@ -19,9 +19,9 @@ import numpy as np
 from crankbeat.dsp.crank import CrankAngles, CrankTracker, ToothWheel
 from crankbeat.dsp.engine import Engine
 from crankbeat.dsp.events import (
+    COUNTED_VERDICTS,
     FIRED,
     MISFIRE,
-    PARTIAL,
     VERDICT_NAMES,
     empty_detail,
     empty_events,
@@ -260,8 +260,7 @@ PATTERNS = ("isolated", "consecutive", "alternating", "random")
 
 def _counted(events: np.ndarray) -> np.ndarray:
     """Events that count for rates: fired, partial or misfire (not masked, fuel cut, unusable)."""
-    v = events["verdict"]
-    return (v == FIRED) | (v == MISFIRE) | (v == PARTIAL)
+    return np.isin(events["verdict"], COUNTED_VERDICTS)
 
 
 def misfire_counts(events: np.ndarray, n_cyl: int) -> dict[str, np.ndarray]:
@@ -301,7 +300,7 @@ WINDOW_DTYPE = np.dtype(
         ("start_cycle", "i8"),
         ("t_start", "f8"),
         ("t_end", "f8"),
-        ("counted", "i8"),  # fired + misfire events in the window
+        ("counted", "i8"),  # events of COUNTED_VERDICTS (fired, partial, misfire) in the window
         ("misfires", "i8"),
         ("rate_pct", "f8"),  # total misfire rate of the window, %
         ("complete", "?"),  # the window spans its full number of revolutions

@@ -16,6 +16,12 @@ UNUSABLE = 3  # crank angle not trustworthy (sync lost, lost frames, saturated p
 FUEL_CUT = 4  # overrun with the throttle closed: no combustion expected, not a misfire
 PARTIAL = 5  # combustion, but clearly less than the cylinder's own (a partial burn)
 
+#: Verdicts that count in a misfire rate's denominator: the events judged for combustion (a
+#: partial burn is a firing event that is no misfire). Masked, fuel-cut and unusable events are
+#: not judged and count nowhere. Every rate of crankbeat (run summary, windows, trend, live
+#: screen) takes this one definition.
+COUNTED_VERDICTS = (FIRED, PARTIAL, MISFIRE)
+
 VERDICT_NAMES = {
     FIRED: "fired",
     MISFIRE: "misfire",

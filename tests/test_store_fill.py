@@ -10,7 +10,7 @@ import numpy as np
 
 from crankbeat.dsp.crank import ToothWheel
 from crankbeat.dsp.engine import Engine
-from crankbeat.dsp.events import FIRED, FUEL_CUT, MASKED, MISFIRE, UNUSABLE, empty_events
+from crankbeat.dsp.events import FIRED, FUEL_CUT, MASKED, MISFIRE, PARTIAL, UNUSABLE, empty_events
 from crankbeat.logger.rig.model import CanBus, Rig
 
 # docs/rig.md: 270° crank twin -> intervals 270 (1->2) and 450 (2->1); common practice.
@@ -81,11 +81,12 @@ def fill_run(store, ev, *, label=None, odometer_km=None, started_at=None, source
 
 
 def counts(ev: np.ndarray, cyl: int) -> tuple[int, int]:
-    """(misfires, counted) of one cylinder, the slow obvious way."""
+    """(misfires, counted) of one cylinder, the slow obvious way (fired, partial burns and
+    misfires are counted; common practice, see tests/test_rate_definition.py)."""
     mis = counted = 0
     for row in ev[ev["cylinder"] == cyl]:
         if row["verdict"] == MISFIRE:
             mis += 1
-        if row["verdict"] in (FIRED, MISFIRE):
+        if row["verdict"] in (FIRED, PARTIAL, MISFIRE):
             counted += 1
     return mis, counted

@@ -40,15 +40,15 @@ def render_run(store: Store, run_id: int, *, riding_hours: float | None = None) 
 
     out.append("")
     pairs = cylinder_pairs(store, run_id)
-    out.append("per cylinder (rate = misfires / (fired + misfires))")
+    out.append("per cylinder (rate = misfires / (fired + partial + misfires))")
     if pairs:
         out.append("  720° phase unknown (no cam, even firing): '2/3' = cylinder 2, or 3 if the "
                    "phase is the other way round")
     out.append(table(
-        ["cyl", "events", "fired", "misfires", "rate %", "partial", "masked", "unusable",
+        ["cyl", "events", "fired", "partial", "misfires", "rate %", "masked", "unusable",
          "fuel cut", "contrib", "interval err deg"],
-        [[cylinder_name(c["cylinder"], pairs), c["events"], c["fired"], c["misfires"],
-          fmt(c["rate_pct"], ".2f"), c["partial"],
+        [[cylinder_name(c["cylinder"], pairs), c["events"], c["fired"], c["partial"],
+          c["misfires"], fmt(c["rate_pct"], ".2f"),
           c["masked"], c["unusable"], c["fuel_cut"], fmt(c["contribution"], ".3f"),
           fmt(c["interval_error_deg"], "+.2f")] for c in d["cylinders"]],
     ) if d["cylinders"] else "  (no events)")

@@ -47,6 +47,7 @@ class CylinderState:
     misfires: int = 0
     rate200_pct: float | None = None  # misfire rate of the latest 200-revolution window, %
     contribution: float | None = None
+    partial: int = 0  # partial burns: counted events, no misfires
 
 
 @dataclass
@@ -214,15 +215,15 @@ class LiveDisplay:
     def _cylinders(self, s: LiveState) -> Table:
         tab = Table(title="misfires per cylinder", title_justify="left", box=box.SIMPLE_HEAD,
                     pad_edge=False, padding=(0, 1), show_edge=False)
-        for col in ("cyl", "events", "misf", "200r %", "contr"):
+        for col in ("cyl", "events", "misf", "part", "200r %", "contr"):
             tab.add_column(col, justify="right", no_wrap=True)
         for c in s.cylinders:
             rate = "-" if c.rate200_pct is None else f"{c.rate200_pct:.1f}"
             over = c.rate200_pct is not None and c.rate200_pct > self.alert_pct
             style = _ALERT if over else (_OK if c.rate200_pct is not None else _DIM)
             contrib = "-" if c.contribution is None else f"{c.contribution:.2f}"
-            tab.add_row(str(c.cylinder), str(c.events), str(c.misfires), Text(rate, style=style),
-                        contrib)
+            tab.add_row(str(c.cylinder), str(c.events), str(c.misfires), str(c.partial),
+                        Text(rate, style=style), contrib)
         return tab
 
     def _intervals(self, s: LiveState) -> Table:

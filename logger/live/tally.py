@@ -12,7 +12,7 @@ from collections import deque
 import numpy as np
 
 from crankbeat.dsp.engine import Engine
-from crankbeat.dsp.events import FIRED, MISFIRE, UNUSABLE
+from crankbeat.dsp.events import COUNTED_VERDICTS, FIRED, MISFIRE, PARTIAL, UNUSABLE
 from crankbeat.errors import InputError
 from crankbeat.logger.chunks import StreamHealth
 from crankbeat.logger.live.display import CylinderState, IntervalState, LiveState
@@ -46,6 +46,7 @@ class LiveTally:
         n = engine.n_cylinders
         self.events = np.zeros(n, dtype=np.int64)
         self.misfires = np.zeros(n, dtype=np.int64)
+        self.partial = np.zeros(n, dtype=np.int64)
         self._recent: deque[tuple[int, int, int]] = deque()  # (cycle, cylinder, verdict)
         self._intervals = {c: deque(maxlen=interval_events) for c in range(1, n + 1)}
         self._expected: dict[int, float] = {}
@@ -66,9 +67,10 @@ class LiveTally:
         if not len(events):
             return
         for c, v in zip(events["cylinder"].tolist(), events["verdict"].tolist(), strict=True):
-            if v in (FIRED, MISFIRE):
+            if v in COUNTED_VERDICTS:
                 self.events[c - 1] += 1
                 self.misfires[c - 1] += v == MISFIRE
+                self.partial[c - 1] += v == PARTIAL
         fired = events[events["verdict"] == FIRED]
         for row in fired[["cylinder", "interval_deg", "expected_interval_deg",
                           "contribution"]].tolist():
@@ -132,7 +134,7 @@ class LiveTally:
         cnt = np.zeros(n)
         mis = np.zeros(n)
         for _, c, v in self._recent:
-            if v in (FIRED, MISFIRE):
+            if v in COUNTED_VERDICTS:
                 cnt[c - 1] += 1
                 mis[c - 1] += v == MISFIRE
         cylinders = []
@@ -140,7 +142,7 @@ class LiveTally:
             rate = 100.0 * mis[c - 1] / cnt[c - 1] if cnt[c - 1] else None
             contrib = float(np.mean(self._contrib[c])) if self._contrib[c] else None
             cylinders.append(CylinderState(c, int(self.events[c - 1]), int(self.misfires[c - 1]),
-                                           rate, contrib))
+                                           rate, contrib, int(self.partial[c - 1])))
         order = list(self.engine.firing_order)
         intervals = []
         for k, c in enumerate(order):

@@ -157,12 +157,14 @@ def run_page(store: Store, run_id: int, ev, figures: list[tuple[str, Path]],
                 info.get("analyser")]], left=5, specs={3: ".0f"}),
         _cards(head),
         "<h2>Per cylinder</h2>",
-        table(["cylinder", "events", "fired", "misfires", "rate %", "partial", "masked",
+        table(["cylinder", "events", "fired", "partial", "misfires", "rate %", "masked",
                "unusable", "fuel cut", "contribution", "interval error deg"],
-              [[cylinder_name(c["cylinder"], pairs), c["events"], c["fired"], c["misfires"],
-                c["rate_pct"], c["partial"], c["masked"], c["unusable"], c["fuel_cut"],
+              [[cylinder_name(c["cylinder"], pairs), c["events"], c["fired"], c["partial"],
+                c["misfires"], c["rate_pct"], c["masked"], c["unusable"], c["fuel_cut"],
                 c["contribution"], c["interval_error_deg"]] for c in store.cylinder_stats(run_id)],
-              specs={4: ".2f", 9: ".3f", 10: ".2f"}),
+              specs={5: ".2f", 9: ".3f", 10: ".2f"}),
+        "<p class='muted'>rate = misfires / (fired + partial + misfires): masked, unusable and "
+        "fuel-cut events are not judged and count nowhere.</p>",
     ]
     if pairs:
         parts.append("<p class='muted'>720° phase unknown (no cam, even firing): '2/3' is "

@@ -13,7 +13,7 @@ from collections.abc import Callable
 
 import numpy as np
 
-from crankbeat.dsp.events import FIRED, MASKED, MISFIRE
+from crankbeat.dsp.events import COUNTED_VERDICTS, MASKED
 from crankbeat.dsp.vibration import VibrationAnalyzer, merge_spans
 
 #: How long events wait for the rough-road verdict before they are summarised without it, s
@@ -25,14 +25,15 @@ OPEN_SPAN_LIMIT_S = 300.0
 
 
 def mask_events(events: np.ndarray, spans: list[tuple[float, float]]) -> np.ndarray:
-    """Mark fired/misfire events inside a rough-road span MASKED (in place); return the mask."""
+    """Mark judged events (fired, partial, misfire) inside a rough-road span MASKED (in place);
+    return the mask."""
     hit = np.zeros(len(events), bool)
     if not spans or not len(events):
         return hit
     t = events["t"]
     for a, b in spans:
         hit |= (t >= a) & (t <= b)
-    hit &= np.isin(events["verdict"], (FIRED, MISFIRE))
+    hit &= np.isin(events["verdict"], COUNTED_VERDICTS)
     events["verdict"][hit] = MASKED
     return hit
 

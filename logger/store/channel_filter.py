@@ -14,7 +14,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from crankbeat.dsp.events import FIRED, MISFIRE
+from crankbeat.dsp.events import COUNTED_VERDICTS, FIRED, MISFIRE
 from crankbeat.errors import UsageError
 
 if TYPE_CHECKING:
@@ -84,7 +84,7 @@ def channel_event_metric(store: Store, metric: str, run_id: int, cylinder: int |
         e = ev[ev["cylinder"] == cyl]
         fired = e["verdict"] == FIRED
         if metric == "misfire_rate":
-            n = int(np.sum(np.isin(e["verdict"], (FIRED, MISFIRE))))
+            n = int(np.sum(np.isin(e["verdict"], COUNTED_VERDICTS)))
             value = 100.0 * np.sum(e["verdict"] == MISFIRE) / n if n else None
         else:
             x = (e["interval_deg"] - e["expected_interval_deg"] if metric == "interval_error"

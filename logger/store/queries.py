@@ -220,9 +220,10 @@ class RunQueries:
             f" WHERE {where} ORDER BY sensor, axis, rpm_lo, ord", params))
 
     def cylinder_stats(self, run_id: int) -> list[dict]:
-        """Per cylinder: counts per verdict, misfire rate (% of fired + misfire) and mean
-        contribution of fired events, from the events; the interval error (deg) of the interval
-        ending at the cylinder from the run's interval check (from the events where it has none)."""
+        """Per cylinder: counts per verdict, misfire rate (% of the counted events: fired,
+        partial, misfire) and mean contribution of fired events, from the events; the interval
+        error (deg) of the interval ending at the cylinder from the run's interval check (from
+        the events where it has none)."""
         self._check_run(run_id)
         c = VERDICT_CODES
         sql = (
@@ -243,7 +244,7 @@ class RunQueries:
                    if r["observed_deg"] is not None and r["expected_deg"] is not None}
         out = []
         for row in self.db.query(sql, [run_id]):
-            counted = row["fired"] + row["misfires"]
+            counted = row["fired"] + row["partial"] + row["misfires"]
             row["rate_pct"] = 100.0 * row["misfires"] / counted if counted else None
             if row["cylinder"] in checked:
                 row["interval_error_deg"] = checked[row["cylinder"]]

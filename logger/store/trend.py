@@ -4,8 +4,8 @@ Metrics (computed from the stored rows, so that runs of different crankbeat vers
 the same terms; the summary gives only where a tooth-error correction started):
 
 ``misfire_rate``
-    % misfires of the counted events (fired + misfire; masked, unusable and fuel-cut events are
-    not counted), per cylinder. Filters: ``cylinder``, ``rpm_band`` (event rpm).
+    % misfires of the counted events (fired, partial burn, misfire; masked, unusable and
+    fuel-cut events are not counted), per cylinder. Filters: ``cylinder``, ``rpm_band`` (event rpm).
 ``interval_error``
     Observed minus expected firing interval, degrees, per cylinder (the interval that ends at
     that cylinder's firing): the run's interval check, as ``show`` prints it; with ``rpm_band``,
@@ -27,7 +27,7 @@ import tomllib
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Literal
 
-from crankbeat.dsp.events import FIRED, MISFIRE
+from crankbeat.dsp.events import COUNTED_VERDICTS, FIRED, MISFIRE
 from crankbeat.errors import UsageError
 from crankbeat.logger.store.channel_filter import channel_event_metric, parse_channel_filter
 from crankbeat.logger.store.versions import pick_analyses
@@ -218,7 +218,8 @@ def _event_metric(store: Store, metric: str, run_id: int, cylinder: int | None,
     where, params = event_filter(store, run_id, cylinder=cylinder, band=band,
                                  intervals=metric == "interval_error")
     if metric == "misfire_rate":
-        expr = (f"SUM(verdict = {MISFIRE}), SUM(verdict IN ({FIRED}, {MISFIRE}))")
+        expr = (f"SUM(verdict = {MISFIRE}),"
+                f" SUM(verdict IN ({', '.join(str(v) for v in COUNTED_VERDICTS)}))")
     elif metric == "interval_error":
         expr = (f"AVG(CASE WHEN verdict = {FIRED} THEN interval_deg - expected_interval_deg END),"
                 f" SUM(verdict = {FIRED} AND interval_deg IS NOT NULL"
