@@ -23,19 +23,8 @@ Decision (per event ``k`` of cylinder ``c``, in event order)
   bump through the driveline) is not one cylinder's misfire;
 * ``MISFIRE`` when ``z > z_threshold`` and the cross score is above ``cross_threshold`` (for a
   single cylinder the self score alone decides);
-* a cylinder is dead (every event ``MISFIRE``, its baseline frozen, never adapted to it) from
-  the first cycles of a ride when it reads below every other cylinder, below ``dead_ratio`` of
-  their median level, without their scatter, and either (uneven firing: the cylinders' levels
-  differ by geometry there) with a share of the engine's work below ``dead_start_share``, or
-  (even firing) with a gap below the others' median of at least ``DEAD_GAP_OVER_RANGE`` times
-  the range of their levels; mid-ride when a run of ``dead_run`` misfires comes with its share
-  of the work falling by ``dead_share_drop`` more than the other cylinders' shares fall (shares
-  trusted only where fired ones read like shares), or, on an even-firing engine, reads steadily
-  below every other cylinder (the four's window work hardly falls for a dead cylinder, so its
-  share cannot tell). A spell ends halfway back to where the cylinder fired (one from the start
-  of an uneven engine: once it reads above ``dead_ratio`` of the others). A spell's start
-  and end make the other cylinders relearn their baselines: each step starts from the crank
-  speed the event before it left;
+* a cylinder is dead (every event ``MISFIRE``, its baseline frozen, never adapted to it) in a
+  dead spell, from the first cycles of a ride or mid-ride (:mod:`dsp.spells` says when);
 * depth = missing work ÷ the work of a complete misfire, where an offset-free scale exists (the
   cylinder's motored level on fuel cut, else the upper half of its own misfires in the rpm cell);
   a flagged event shallower than ``partial_depth`` on the motored scale of its rpm cell, or on
@@ -69,6 +58,7 @@ seen closed and the event has no combustion: the ECU's overrun cut, gear changes
 from __future__ import annotations
 
 from collections import deque
+from typing import NamedTuple
 
 import numpy as np
 
@@ -91,13 +81,48 @@ from crankbeat.dsp.fluctuation import RAW_EVENT_DTYPE
 from crankbeat.dsp.layout import firing_sequence
 from crankbeat.dsp.misfire_prep import fuel_cut_flags, other_cylinders_level, typical_work
 from crankbeat.dsp.misfire_settings import MisfireSettings
+from crankbeat.dsp.spells import SpellWatch
 from crankbeat.errors import InputError
 
-#: On an even-firing engine a cylinder reads dead from the start only when its gap below the
-#: others' median is this many times the range of the others' levels: fired cylinders read alike
-#: there, so a gap no larger than their own differences is a pattern (a cross-plane crank read as
-#: a flat one spreads its healthy cylinders' levels over more than the gap), not a dead cylinder.
-DEAD_GAP_OVER_RANGE = 1.5
+
+class _Pass(NamedTuple):
+    """One pass of the decision over a run of events: the buffer's columns as Python lists."""
+
+    cyl0: list  # 0-based cylinder of every buffered event
+    rpm: list
+    gidx: list  # global event index
+    w: list  # the decision's feature, NaN where unusable
+    y: list  # feature minus the other cylinders' level
+    others: list  # the other cylinders' level, from the first event decided
+    fc_sure: list
+    fc_maybe: list
+    times: list  # s, from the first event decided
+    shares: list  # share of the engine's work, from the first event decided
+    size: int
+
+
+class _Score(NamedTuple):
+    """An event's scores (robust sigma) and the numbers behind them (J)."""
+
+    ready: bool  # the cylinder's statistics are filled
+    b: float  # own baseline
+    d: float  # deviation from it
+    y: float
+    dx: float  # deviation from the cross baseline
+    z: float
+    sd: float  # own robust spread, floored
+    cand: bool  # flagged (before the dead-spell and fuel-cut rules)
+
+
+class _Verdicts:
+    """Output columns of one pass."""
+
+    def __init__(self, n: int) -> None:
+        self.metric = np.full(n, np.nan)
+        self.conf = np.zeros(n)
+        self.verdict = np.full(n, UNUSABLE, dtype=np.int8)
+        self.cause = np.zeros(n, dtype=np.uint8)
+        self.depth = np.full(n, np.nan)
 
 
 class MisfireDetector:
@@ -146,6 +171,7 @@ class MisfireDetector:
         self._ring_from, self._ring_cyl, self._ring_z = -(10**18), -1, 0.0  # last misfire
         self._recent_z: deque[float] = deque(maxlen=max(8 * self.n, 16))  # z of recent fired events
         self._last_flag = -(10**18)  # global index of the last flagged event
+        self._spells = SpellWatch(self._cyl, self.s, even=self._even, z_threshold=self._z)
 
     # -- streaming ------------------------------------------------------------------------------
     def push(self, raw: np.ndarray, throttle: np.ndarray | None = None) -> np.ndarray:
@@ -250,286 +276,161 @@ class MisfireDetector:
 
     def _sequential(self, i0, i1, w_all, y_all, others, fc_sure, fc_maybe, out, detail) -> None:
         """Decide events i0..i1 one by one (each updates the cylinder state the next ones use)."""
-        s, n, z_thr = self.s, self.n, self._z
         # plain Python lists: the loop reads single values, far cheaper than numpy scalars
-        cyl0 = (self._raw["cylinder"].astype(np.int64) - 1).tolist()
-        rpm = self._raw["rpm"].tolist()
-        gidx = self._raw["index"].tolist()
-        size = w_all.size
-        w_all, y_all, others = w_all.tolist(), y_all.tolist(), others.tolist()
-        fc_sure, fc_maybe = fc_sure.tolist(), fc_maybe.tolist()
-        times, shares = out["t"].tolist(), out["contribution"].tolist()
-        metric = np.full(i1 - i0, np.nan)
-        conf = np.zeros(i1 - i0)
-        verdict = np.full(i1 - i0, UNUSABLE, dtype=np.int8)
-        cause = np.zeros(i1 - i0, dtype=np.uint8)
-        depth = np.full(i1 - i0, np.nan)
+        run = _Pass(cyl0=(self._raw["cylinder"].astype(np.int64) - 1).tolist(),
+                    rpm=self._raw["rpm"].tolist(), gidx=self._raw["index"].tolist(),
+                    w=w_all.tolist(), y=y_all.tolist(), others=others.tolist(),
+                    fc_sure=fc_sure.tolist(), fc_maybe=fc_maybe.tolist(), times=out["t"].tolist(),
+                    shares=out["contribution"].tolist(), size=w_all.size)
+        res = _Verdicts(i1 - i0)
         for k in range(i0, i1):
             o = k - i0
-            x = w_all[k]
-            c = cyl0[k]
-            st = self._cyl[c]
-            if x != x:
-                cause[o] = CAUSE_CRANK
+            if run.w[k] != run.w[k]:
+                res.cause[o] = CAUSE_CRANK
                 continue
-            y = y_all[k]
-            ahead = [k + n * a for a in range(1, s.lookahead_cycles + 1) if k + n * a < size]
-            ax = [w_all[j] for j in ahead if w_all[j] == w_all[j]]
-            ay = [y_all[j] for j in ahead if y_all[j] == y_all[j]]
-            sd, sx = st.spreads()
-            if st.stale and not fc_sure[o]:
-                st.restart_baseline(s.warmup_cycles)
-            ready = len(st.dev) >= s.warmup_cycles and st.rewarm == 0
-            hx_med = median(st.hx) if st.hx else float("nan")
-            level = max(abs(hx_med) if st.hx else abs(x), abs(others[o])
-                        if others[o] == others[o] else 0.0)
-            floor = s.spread_floor * level + 1e-12
-            sd = max(sd, floor) if sd == sd else floor
-            sx = max(sx, floor) if sx == sx else floor
-            screen = hx_med - z_thr * sd if ready else None
-            b = st.baseline(ax, screen_below=screen)
-            d = x - b
-            z = -d / sd
-            screen_y = median(st.hy) - z_thr * sx if ready and st.hy else None
-            by = st.cross_baseline(ay, screen_below=screen_y) if y == y else float("nan")
-            dx = y - by
-            zx = -dx / sx
-            # a rough road or a ringing driveline scatters every event around: then the
-            # threshold rises with the recent scatter (about their median: a baseline lagging a
-            # throttle change shifts every score the same way, and is no disturbance)
-            calm = (robust_spread(self._recent_z) / s.local_scatter
-                    if len(self._recent_z) >= 4 else 0.0)
-            # within two cycles of an event lost to bad crank data the loss balance of the
-            # window work is patched (dsp.fluctuation): the score is less sure there
-            near_gap = any(w_all[j] != w_all[j]
-                           for j in range(max(k - 2 * n, 0), min(k + 2 * n + 1, size)))
-            margin = s.gap_margin if near_gap else 1.0
-            cand = (ready and z > z_thr * max(margin, calm)
-                    and (n == 1 or not zx == zx or zx > s.cross_threshold))
-            gi = gidx[k]
-            if cand and c != self._ring_cyl and gi - self._ring_from <= 2 * n:
-                # the driveline rings for a few events after a misfire: another cylinder's
-                # event then must stand out by a share of that misfire's own score too
-                cand = z > s.ring_share * self._ring_z
-            share = shares[o]
-            cell = int(rpm[k] // 1000.0) if rpm[k] == rpm[k] else -1
-            # where a depth scale exists, an event clearly short of a whole misfire is a
-            # partial burn: a run of them is a weak cylinder, never a dead spell
-            scale_here = st.depth_scale(cell, b, min_count=s.depth_min_count)
-            # the own-misfire scale matters to flagged events only (a run of them, a partial
-            # verdict): not looked up on every event
-            own = (st.own_misfire_scale(cell, rpm[k], min_count=s.depth_min_count,
-                                        max_spread=s.own_scale_spread, rpm_share=s.own_rpm_share,
-                                        min_z=2.0 * z_thr) if cand else float("nan"))
-            own_partial = own == own and -d < s.partial_depth * own
-            partial_like = bool(scale_here == scale_here and -d / scale_here < s.partial_depth
-                                or own_partial)
-            dead = self._dead(c, x, share, cand, times[o], partial_like=partial_like)
-            metric[o] = z if ready else np.nan
-            if fc_sure[o] or (fc_maybe[o] and (cand or dead)):
-                verdict[o] = FUEL_CUT
-                st.stale = True
-                st.add_motored(cell, x, s.depth_history)
-                conf[o] = 1.0
-                continue
-            st.add_recent(x, share)
-            st.flags.append(bool(cand or dead))
-            why = None if dead else st.pattern_implausible(min_events=s.pattern_events)
-            if why is not None:
-                st.unusable_reason = why
-                verdict[o], cause[o] = UNUSABLE, CAUSE_IMPLAUSIBLE
-                continue
-            depth[o] = -d / scale_here if scale_here == scale_here else np.nan
-            if dead:
-                verdict[o], cause[o], conf[o] = MISFIRE, CAUSE_DEAD, 1.0
-                # the note names spells whose events were counted (one inside a fuel cut was not)
-                st.first_dead = times[o] if st.first_dead is None else st.first_dead
-                self._last_flag = gi
-                if ready and z > z_thr:
-                    st.add_misfire(cell, -d, s.depth_history, rpm[k], z)
-            elif cand and len(st.run) > s.dead_run and st.ever_healthy and not partial_like:
-                # a long run of low scores whose share of the engine's work did not collapse is
-                # no dead spell but a drift of this cylinder's level (a driveline mode moving with
-                # speed): the baseline follows it instead of locking the cylinder into misfires;
-                # not so a run clearly short of a whole misfire on a trusted scale (a weak
-                # cylinder burning part of its charge stays partial, never learnt as its level)
-                verdict[o] = FIRED
-                st.accept(x, y, d, dx)
-            elif cand:
-                self._ring_from, self._ring_cyl, self._ring_z = gi, c, z
-                self._last_flag = gi
-                # a partial burn only where it is clearly short of a whole misfire, by depth and
-                # by a gap in robust sigma, on an offset-free scale: this cylinder's motored
-                # level (a fuel cut in this rpm cell) or its own clear misfires where they agree
-                # (misfires that scatter, from 0.4 to 1.4 of their median at high speed and
-                # light load, give none): a misfire called partial is a missed misfire
-                scale = -d / depth[o] if depth[o] == depth[o] and depth[o] > 0 else 0.0
-                calibrated_here = len(st.motored.get(cell, ())) >= s.depth_min_count
-                partial = (calibrated_here and depth[o] < s.partial_depth
-                           and (1.0 - depth[o]) * scale > s.partial_gap * sd
-                           or own_partial and own + d > s.own_partial_gap * sd)
-                verdict[o] = PARTIAL if partial else MISFIRE
-                conf[o] = min(1.0, (z - z_thr) / z_thr + 0.5)
-                if not partial:
-                    st.add_misfire(cell, -d, s.depth_history, rpm[k], z)
-                self._weak_spell(c, partial, times[o])
-            elif ready:
-                verdict[o] = FIRED
-                self._weak_spell(c, False, times[o])
-                if gi - self._last_flag > self.n:
-                    # the events just after a misfire rebound (the next cylinder starts slower):
-                    # that is the misfire's own trace, no rough road
-                    self._recent_z.append(z)
-                conf[o] = min(1.0, (z_thr - z) / z_thr)
-                st.accept(x, y, d, dx)
-                st.ever_healthy = True
-                if share == share:
-                    st.shares.append(share)
-            else:
-                cause[o] = CAUSE_WARMUP
-                st.accept(x, y, d, dx)
-                st.rewarm = max(st.rewarm - 1, 0)
-        out["metric"] = metric
-        out["threshold"] = z_thr
-        out["verdict"] = verdict
-        out["confidence"] = np.clip(conf, 0.0, 1.0)
-        detail["depth"] = depth
-        detail["cause"] = cause
+            self._judge(k, o, self._score(k, o, run), run, res)
+        out["metric"] = res.metric
+        out["threshold"] = self._z
+        out["verdict"] = res.verdict
+        out["confidence"] = np.clip(res.conf, 0.0, 1.0)
+        detail["depth"] = res.depth
+        detail["cause"] = res.cause
 
-    def _dead(self, c: int, x: float, contrib: float, cand: bool, t: float, *,
-              partial_like: bool = False) -> bool:
-        """Cylinder c is in a dead spell: no combustion for a while, from the start or mid-ride.
-
-        Mid-ride, a run of ``dead_run`` misfires in a row (the last one not ``partial_like``:
-        short of a whole misfire on a calibrated depth scale) starts a spell when the cylinder's
-        share of the engine's work (``contribution``) collapsed by ``dead_share_drop``, or, on an
-        even-firing engine, when the run reads steadily below every other cylinder's level. A
-        cylinder that never fired has no level before: it is told by a metric far below the
-        others' (under ``dead_ratio`` of their level and below every one of them) without their
-        combustion scatter, and on an uneven-firing engine a share of the engine's work below
-        ``dead_start_share`` (there the cylinders' levels differ by geometry alone).
-        A spell lasts while the cylinder reads below halfway between where it started and where
-        fired cylinders read (the share where the share started it, else the metric).
-        """
+    def _score(self, k: int, o: int, run: _Pass) -> _Score:
+        """Event k's scores against its cylinder's own baseline and against the others'."""
+        s, n, z_thr = self.s, self.n, self._z
+        x, y, c = run.w[k], run.y[k], run.cyl0[k]
         st = self._cyl[c]
-        if self.n < 2:
-            return False
-        st.run = st.run + [contrib] if cand else []
-        st.run_x = st.run_x + [x] if cand else []
-        lv = [o.level for i, o in enumerate(self._cyl) if i != c and len(o.recent) >= 4]
-        lv_o = median(lv) if lv else float("nan")
-        lim = self.s.dead_ratio * lv_o
-        if st.dead_since is not None:
-            if st.spell_mid == st.spell_mid:
-                dead = contrib == contrib and contrib < st.spell_mid
-            elif st.spell_mid_x == st.spell_mid_x:
-                dead = x < st.spell_mid_x
-            else:  # dead from the start (uneven engine): while it stays far below the others
-                dead = lv_o > 0 and x < lim
+        ahead = [k + n * a for a in range(1, s.lookahead_cycles + 1) if k + n * a < run.size]
+        ax = [run.w[j] for j in ahead if run.w[j] == run.w[j]]
+        ay = [run.y[j] for j in ahead if run.y[j] == run.y[j]]
+        sd, sx = st.spreads()
+        if st.stale and not run.fc_sure[o]:
+            st.restart_baseline(s.warmup_cycles)
+        ready = len(st.dev) >= s.warmup_cycles and st.rewarm == 0
+        hx_med = median(st.hx) if st.hx else float("nan")
+        oth = run.others[o]
+        level = max(abs(hx_med) if st.hx else abs(x), abs(oth) if oth == oth else 0.0)
+        floor = s.spread_floor * level + 1e-12
+        sd = max(sd, floor) if sd == sd else floor
+        sx = max(sx, floor) if sx == sx else floor
+        b = st.baseline(ax, screen_below=hx_med - z_thr * sd if ready else None)
+        d = x - b
+        z = -d / sd
+        screen_y = median(st.hy) - z_thr * sx if ready and st.hy else None
+        by = st.cross_baseline(ay, screen_below=screen_y) if y == y else float("nan")
+        dx = y - by
+        zx = -dx / sx
+        # a rough road or a ringing driveline scatters every event around: then the
+        # threshold rises with the recent scatter (about their median: a baseline lagging a
+        # throttle change shifts every score the same way, and is no disturbance)
+        calm = (robust_spread(self._recent_z) / s.local_scatter
+                if len(self._recent_z) >= 4 else 0.0)
+        # within two cycles of an event lost to bad crank data the loss balance of the
+        # window work is patched (dsp.fluctuation): the score is less sure there
+        near_gap = any(run.w[j] != run.w[j]
+                       for j in range(max(k - 2 * n, 0), min(k + 2 * n + 1, run.size)))
+        margin = s.gap_margin if near_gap else 1.0
+        cand = (ready and z > z_thr * max(margin, calm)
+                and (n == 1 or not zx == zx or zx > s.cross_threshold))
+        if cand and c != self._ring_cyl and run.gidx[k] - self._ring_from <= 2 * n:
+            # the driveline rings for a few events after a misfire: another cylinder's
+            # event then must stand out by a share of that misfire's own score too
+            cand = z > s.ring_share * self._ring_z
+        return _Score(ready, b, d, y, dx, z, sd, cand)
+
+    def _judge(self, k: int, o: int, sc: _Score, run: _Pass, res: _Verdicts) -> None:
+        """Event k's verdict from its scores; updates its cylinder's state and the spells."""
+        s, z_thr = self.s, self._z
+        c, x, rpm, t, share = run.cyl0[k], run.w[k], run.rpm[k], run.times[o], run.shares[o]
+        st = self._cyl[c]
+        cell = int(rpm // 1000.0) if rpm == rpm else -1
+        # where a depth scale exists, an event clearly short of a whole misfire is a
+        # partial burn: a run of them is a weak cylinder, never a dead spell
+        scale_here = st.depth_scale(cell, sc.b, min_count=s.depth_min_count)
+        # the own-misfire scale matters to flagged events only (a run of them, a partial
+        # verdict): not looked up on every event
+        own = (st.own_misfire_scale(cell, rpm, min_count=s.depth_min_count,
+                                    max_spread=s.own_scale_spread, rpm_share=s.own_rpm_share,
+                                    min_z=2.0 * z_thr) if sc.cand else float("nan"))
+        own_partial = own == own and -sc.d < s.partial_depth * own
+        partial_like = bool(scale_here == scale_here and -sc.d / scale_here < s.partial_depth
+                            or own_partial)
+        dead = self._spells.dead(c, x, share, sc.cand, t, partial_like=partial_like)
+        res.metric[o] = sc.z if sc.ready else np.nan
+        if run.fc_sure[o] or (run.fc_maybe[o] and (sc.cand or dead)):
+            res.verdict[o], res.conf[o] = FUEL_CUT, 1.0
+            st.stale = True
+            st.add_motored(cell, x, s.depth_history)
+            return
+        st.add_recent(x, share)
+        st.flags.append(bool(sc.cand or dead))
+        why = None if dead else st.pattern_implausible(min_events=s.pattern_events)
+        if why is not None:
+            st.unusable_reason = why
+            res.verdict[o], res.cause[o] = UNUSABLE, CAUSE_IMPLAUSIBLE
+            return
+        res.depth[o] = -sc.d / scale_here if scale_here == scale_here else np.nan
+        gi = run.gidx[k]
+        if dead:
+            res.verdict[o], res.cause[o], res.conf[o] = MISFIRE, CAUSE_DEAD, 1.0
+            # the note names spells whose events were counted (one inside a fuel cut was not)
+            st.first_dead = t if st.first_dead is None else st.first_dead
+            self._last_flag = gi
+            if sc.ready and sc.z > z_thr:
+                st.add_misfire(cell, -sc.d, s.depth_history, rpm, sc.z)
+        elif sc.cand and len(st.run) > s.dead_run and st.ever_healthy and not partial_like:
+            # a long run of low scores whose share of the engine's work did not collapse is
+            # no dead spell but a drift of this cylinder's level (a driveline mode moving with
+            # speed): the baseline follows it instead of locking the cylinder into misfires;
+            # not so a run clearly short of a whole misfire on a trusted scale (a weak
+            # cylinder burning part of its charge stays partial, never learnt as its level)
+            res.verdict[o] = FIRED
+            st.accept(x, sc.y, sc.d, sc.dx)
+        elif sc.cand:
+            self._flagged(c, o, cell, sc, own if own_partial else float("nan"), rpm, t, gi, res)
+        elif sc.ready:
+            res.verdict[o] = FIRED
+            self._spells.weak(c, False, t)
+            if gi - self._last_flag > self.n:
+                # the events just after a misfire rebound (the next cylinder starts slower):
+                # that is the misfire's own trace, no rough road
+                self._recent_z.append(sc.z)
+            res.conf[o] = min(1.0, (z_thr - sc.z) / z_thr)
+            st.accept(x, sc.y, sc.d, sc.dx)
+            st.ever_healthy = True
+            if share == share:
+                st.shares.append(share)
         else:
-            dead = st.ever_healthy and (
-                len(st.run) >= self.s.dead_run and not partial_like
-                and (self._share_collapsed(c) or self._reads_dead(c, st.run_x, lv)))
-            # by its level alone: before it ever fired, or at any time on an even-firing engine
-            # (a cylinder dead from the first cycle may have been judged fired in them)
-            if not dead and (self._even or not st.ever_healthy):
-                dead = self._level_dead(c, x, lv, lim)
-        if dead and st.dead_since is None:
-            st.dead_since = t
-            self._others_relearn(c)
-        elif not dead and st.dead_since is not None:
-            st.dead_since = None
-            st.spell_mid = st.spell_mid_x = float("nan")
-            self._others_relearn(c)
-        return dead
+            res.cause[o] = CAUSE_WARMUP
+            st.accept(x, sc.y, sc.d, sc.dx)
+            st.rewarm = max(st.rewarm - 1, 0)
 
-    def _level_dead(self, c: int, x: float, lv: list[float], lim: float) -> bool:
-        """The cylinder's recent level reads dead against the others' (see :meth:`_dead`);
-        ``lim`` is ``dead_ratio`` of the others' median level."""
-        if not (lim > 0 and x < lim):  # the cheap test first: this runs on every event
-            return False
-        st = self._cyl[c]
-        own = list(st.recent)[-15:] + [x]
-        # on an uneven engine the share must agree: the metric's level differs between the
-        # cylinders there (a twin-270's second cylinder reads far lower)
-        low_share = (self._even or len(st.recent_share) >= 4
-                     and median(st.recent_share) < self.s.dead_start_share)
-        return (len(own) >= 4 and median(own) < lim and low_share
-                and self._reads_dead(c, own, lv, start=True))
+    def _flagged(self, c: int, o: int, cell: int, sc: _Score, own: float, rpm: float, t: float,
+                 gi: int, res: _Verdicts) -> None:
+        """A flagged event: misfire, or partial burn where an offset-free depth scale says so.
 
-    def _share_collapsed(self, c: int) -> bool:
-        """The run of misfires of cylinder c took its share of the engine's work down by
-        ``dead_share_drop`` more than the other cylinders' shares fell (sets the spell's mid)."""
-        st = self._cyl[c]
-        shares = [v for v in st.run if v == v]
-        # against the others' shares over the same time: when a dead cylinder fires again, the
-        # engine's typical work rises and every other share drops with it. A share is trusted
-        # only where the fired ones read like shares (about 1): a work estimate near zero on
-        # average (the loss balance off by the unknown inertia) makes every ratio to it noise
-        fired_share = median(st.shares) if len(st.shares) >= 8 else float("nan")
-        if 0.25 < fired_share < 4.0 and shares and (
-                fired_share - median(shares) - self._others_share_drop(c)
-                > self.s.dead_share_drop):
-            st.spell_mid = 0.5 * (fired_share + median(shares))
-            return True
-        return False
-
-    def _reads_dead(self, c: int, own: list[float], lv: list[float], *,
-                    start: bool = False) -> bool:
-        """``own`` (cylinder c's recent metric) reads dead against the other cylinders' levels
-        ``lv``: below every one of them by ``z_threshold`` of their spread, steadily (without
-        their combustion scatter). Mid-ride only on an even-firing engine, where fired
-        cylinders read alike. Sets the level that ends the spell, halfway up."""
-        if not (start or self._even) or not lv or len(own) < 4:
-            return False
-        st = self._cyl[c]
-        # the others' spreads only now: a sort per cylinder, and most events end above
-        sp = [robust_spread(o.recent) for i, o in enumerate(self._cyl)
-              if i != c and len(o.recent) >= 4]
-        level, lowest, spread = median(own), min(lv), median(sp)
-        gap = median(lv) - level
-        if not (level < lowest and gap > self._z * spread
-                and robust_spread(own) < self.s.dead_scatter * spread):
-            return False
-        if start and self._even and (len(lv) < self.n - 1
-                                     or gap < DEAD_GAP_OVER_RANGE * (max(lv) - lowest)):
-            # every other cylinder must have a level, and they must read alike: levels that
-            # differ by a pattern (another crank than the rig file's, a wheel never learnt, a
-            # flat four's pairs at speed) as large as this cylinder's gap tell no dead cylinder
-            return False
-        if self._even:  # the spell ends halfway back to where it fired (or the others fire)
-            fired = median(st.hx) if not start and st.hx else lowest
-            if own[-1] >= 0.5 * (level + fired):
-                return False  # this event reads above where the spell would end: it fired
-            st.spell_mid_x = 0.5 * (level + fired)
-        return True
-
-    def _others_share_drop(self, c: int) -> float:
-        """Median fall of the other cylinders' shares: recent ones against their fired history."""
-        drops = [median(o.shares) - median(o.recent_share) for i, o in enumerate(self._cyl)
-                 if i != c and len(o.shares) >= 8 and o.recent_share]
-        return median(drops) if drops else 0.0
-
-    def _weak_spell(self, c: int, partial: bool, t: float) -> None:
-        """A run of ``dead_run`` partial burns starts a weak spell of cylinder c, its next fired
-        event ends it; both make the others relearn, as a dead spell's start and end do."""
-        st = self._cyl[c]
-        st.partial_streak = st.partial_streak + 1 if partial else 0
-        weak = partial and (st.weak or st.partial_streak >= self.s.dead_run)
-        if weak != st.weak:
-            st.weak = weak
-            self._others_relearn(c)
-            if st.weak and st.first_weak is None:
-                st.first_weak = t
-
-    def _others_relearn(self, c: int) -> None:
-        """A dead or weak spell starts or ends on cylinder c: the others relearn their baselines.
-        Each event's metric compares the crank's speed after its TDC with the speed before,
-        which the event before it set: when one cylinder stops, weakens or resumes firing, its
-        neighbours' levels move too (the next cylinder starts from a slower crank)."""
-        for i, o in enumerate(self._cyl):
-            if i != c:
-                o.stale = True
+        ``own`` is the median of the cylinder's own clear misfires where the event is shallower
+        than ``partial_depth`` of it (NaN otherwise)."""
+        s, z_thr, st = self.s, self._z, self._cyl[c]
+        self._ring_from, self._ring_cyl, self._ring_z = gi, c, sc.z
+        self._last_flag = gi
+        # a partial burn only where it is clearly short of a whole misfire, by depth and
+        # by a gap in robust sigma, on an offset-free scale: this cylinder's motored
+        # level (a fuel cut in this rpm cell) or its own clear misfires where they agree
+        # (misfires that scatter, from 0.4 to 1.4 of their median at high speed and
+        # light load, give none): a misfire called partial is a missed misfire
+        depth = res.depth[o]
+        scale = -sc.d / depth if depth == depth and depth > 0 else 0.0
+        calibrated_here = len(st.motored.get(cell, ())) >= s.depth_min_count
+        partial = (calibrated_here and depth < s.partial_depth
+                   and (1.0 - depth) * scale > s.partial_gap * sc.sd
+                   or own == own and own + sc.d > s.own_partial_gap * sc.sd)
+        res.verdict[o] = PARTIAL if partial else MISFIRE
+        res.conf[o] = min(1.0, (sc.z - z_thr) / z_thr + 0.5)
+        if not partial:
+            st.add_misfire(cell, -sc.d, s.depth_history, rpm, sc.z)
+        self._spells.weak(c, partial, t)
 
     def _intervals(self, out: np.ndarray, ev: np.ndarray) -> None:
         pos_in_seq = np.mod(ev["index"], self.n)
