@@ -36,10 +36,12 @@ def rig_with_wheel(preset, teeth=60, missing=2, tdc=96.0):
         base.wheel, teeth=teeth, missing=missing, tdc_offset_deg=tdc))
 
 
-def crank_of(rig, segments=PULL, *, seed=1, error_rms=0.0, true_layout=None, faults=()):
+def crank_of(rig, segments=PULL, *, seed=1, error_rms=0.0, true_layout=None, faults=(),
+             physics=None):
     scn = sim.Scenario(segments=segments, seed=seed, faults=faults,
                        wheel=sim.WheelSpec(error_rms_deg=error_rms),
-                       engine=sim.EngineSpec(true_layout=true_layout))
+                       engine=sim.EngineSpec(true_layout=true_layout),
+                       physics=physics or sim.Physics())
     ride = sim.simulate(rig, scn)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the four has no cam: phase warnings
@@ -114,7 +116,7 @@ def test_layout_on_a_wheel_never_learnt(seed):
     assert right.fits_rig and right.families[0][0] == "twin-270 / vtwin-90: same firing"
     _, crank = crank_of(rig, seed=seed, error_rms=0.15, true_layout="twin-360")
     wrong = layout_verdict(profile_of(rig, crank), cands, rig.engine.name)
-    assert not wrong.fits_rig and "rig file" in wrong.note()
+    assert wrong.fits_rig is False and "rig file" in wrong.note()
     assert wrong.families[0][0] == "boxer-twin / twin-360: same firing"
 
 
@@ -123,7 +125,25 @@ def test_four_wrong_layout_is_named():
     cands = layout_candidates(rig.engine)
     _, crank = crank_of(rig, error_rms=0.15, true_layout="four-cross")
     v = layout_verdict(profile_of(rig, crank), cands, rig.engine.name)
-    assert not v.fits_rig and v.families[0][0] == "four-cross"
+    assert v.fits_rig is False and v.families[0][0] == "four-cross"
+
+
+def test_a_torsional_mode_near_a_firing_order_does_not_contradict_a_right_rig_file():
+    # A clutch and primary drive geared to the crank through a spring (mode at 265 Hz, order 2.6
+    # at 6200 rpm), an inertia 0.76 of the rig file's: a physics the rig file does not describe.
+    # The speed profile of the right (270 deg) engine then fits a 60 deg V-twin better by more
+    # than the margin (0.69 against 0.62 when measured), but not clearly: the layout must be left
+    # unjudged, not called wrong (a wrong call withholds every misfire alert of the ride).
+    rig = rig_with_wheel("larch")
+    phys = sim.Physics(inertia_scale=0.76, geared_inertia_kgm2=0.1287, geared_ratio=2.13,
+                       geared_hz=265.5, driveline_hz=11.9, combustion_cov=0.054)
+    steady = (Seg(duration=12.0, gear=4, rpm=(6200, 6200), throttle=(33, 33)),)
+    _, crank = crank_of(rig, steady, error_rms=0.02, physics=phys)
+    v = layout_verdict(profile_of(rig, crank), layout_candidates(rig.engine), rig.engine.name)
+    print(v.families, v.margin)
+    assert v.margin > 0.05  # the case: a margin-only rule would call the rig file wrong here
+    assert v.fits_rig is None
+    assert "not judged" in v.note() and "alerts stand" in v.note()
 
 
 def test_bad_input():

@@ -52,8 +52,8 @@ def _rates(results, band):
 
 def _layout_word(r: dict) -> str:
     m = r.get("layout_matches_rig")
-    if m is None:
-        return "n/a"
+    if m is None:  # "open": another layout fits a little better, not clearly (not judged)
+        return "open" if r.get("layout_best") else "n/a"
     if r["kind"] == "layout":
         return "warned" if m is False else "wrong"
     return "ok" if m else "wrong"
@@ -61,7 +61,7 @@ def _layout_word(r: dict) -> str:
 
 def _layout_cell(results: list[dict]) -> str:
     words = [_layout_word(r) for r in results]
-    return " ".join(f"{w} {words.count(w)}" for w in ("ok", "warned", "wrong", "n/a")
+    return " ".join(f"{w} {words.count(w)}" for w in ("ok", "warned", "open", "wrong", "n/a")
                     if words.count(w))
 
 
@@ -146,7 +146,7 @@ def _overall(by_cell: dict, errors: int) -> list[Row]:
                     "every retard flagged", bool(rt) and n_flag == len(rt)))
     right = [r for (k, _), rs in by_cell.items() if k != "layout" for r in rs]
     ok_lay = sum(_layout_word(r) == "ok" for r in right)
-    rows.append(Row("ALL layout on right rig", str(len(right)), "", "", "", f"ok {ok_lay}", "",
+    rows.append(Row("ALL layout on right rig", str(len(right)), "", "", "", _layout_cell(right), "",
                     "layout ok on every ride", bool(right) and ok_lay == len(right)))
     every = [r for rs in by_cell.values() for r in rs]
     untimed = sum(r.get("untimed", 0) for r in every)

@@ -14,7 +14,7 @@ import numpy as np
 from crankbeat.dsp.analysis import misfire_patterns
 from crankbeat.dsp.events import MISFIRE
 from crankbeat.logger.figures import ride_start, wheel_corrected
-from crankbeat.logger.report.text import ride_time
+from crankbeat.logger.report.text import layout_words, ride_time
 from crankbeat.logger.store import Store
 from crankbeat.logger.store.channel_filter import channel_at
 
@@ -77,8 +77,8 @@ def headline(store: Store, run_id: int) -> list[Headline]:
                                 f"{_num(r['rms'], '.2f')} m/s² ({r['weighting']})"))
     lay = summary.get("layout_check") or {}
     if "matches_rig" in lay:
-        out.append(Headline("layout check", "matches the rig file" if lay["matches_rig"]
-                            else "DIFFERS from the rig file", not lay["matches_rig"]))
+        out.append(Headline("layout check", layout_words(lay["matches_rig"]),
+                            lay["matches_rig"] is not True))
     if not wheel_corrected(summary):
         out.append(Headline("firing intervals", "not judged (wheel uncorrected)", True))
     return out

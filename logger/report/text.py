@@ -152,6 +152,13 @@ def _has_accelerometer(health: object) -> bool:
     return bool(isinstance(good, dict) and any(good.values()))
 
 
+def layout_words(matches_rig: bool | None) -> str:
+    """The layout check's verdict in words (None: another layout fits better, not clearly)."""
+    if matches_rig is None:
+        return "not judged (no layout fits clearly)"
+    return "matches the rig file" if matches_rig else "DIFFERS from the rig file"
+
+
 def _layout_line(lay: dict) -> str:
     """The layout check in words: layouts that fire alike are named as one family."""
     scores = lay.get("scores") or {}
@@ -161,7 +168,7 @@ def _layout_line(lay: dict) -> str:
                 f"rig file says {lay.get('rig_layout')}")
     family = lay.get("same_firing") or [best]
     name = family[0] if len(family) == 1 else " / ".join(family) + ": same firing"
-    verdict = "matches the rig file" if lay.get("matches_rig") else "DIFFERS from the rig file"
+    verdict = layout_words(lay.get("matches_rig"))
     others = sorted(((k, v) for k, v in scores.items() if k not in family),
                     key=lambda kv: -(kv[1] or 0))[:2]
     text = (f"layout check: best fit {name} ({verdict}: {lay.get('rig_layout')}); "

@@ -144,9 +144,9 @@ def conclude(analysis) -> RunTail:
                                     notes + list(health.notes))
     limit = analysis.rig.limits.misfire_alert_pct
     worst = summary["misfire"]["worst_rev200_pct"]
-    # no alert from a rig file whose layout the engine does not fit
+    # no alert from a rig file whose layout the engine clearly does not fit (None: not judged)
     summary["misfire"]["alert"] = bool(worst is not None and worst > limit
-                                       and summary["layout_check"]["matches_rig"])
+                                       and summary["layout_check"]["matches_rig"] is not False)
     summary["misfire"]["alert_limit_pct"] = limit
     return RunTail(interval_rows, vibration, order_maps, teeth, summary, rough,
                    summary["notes"])
