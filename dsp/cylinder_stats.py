@@ -73,7 +73,9 @@ class CylinderState:
         self.spell_mid = float("nan")  # share below which a dead spell goes on
         self.spell_mid_x = float("nan")  # metric below which a dead spell goes on
         self.run_x: list[float] = []  # metric of the current run of misfires
+        self.run_z: list[float] = []  # their scores, robust sigma
         self.dead_since: float | None = None  # start of the current dead spell, s
+        self.spell_by_run = False  # the current spell began as a run of misfires
         self.first_dead: float | None = None  # start of the first dead spell, s
         self.partial_streak = 0  # partial burns in a row
         self.weak = False  # in a weak spell: a run of partial burns, not yet fired again

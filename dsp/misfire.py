@@ -356,7 +356,7 @@ class MisfireDetector:
         own_partial = own == own and -sc.d < s.partial_depth * own
         partial_like = bool(scale_here == scale_here and -sc.d / scale_here < s.partial_depth
                             or own_partial)
-        dead = self._spells.dead(c, x, share, sc.cand, t, partial_like=partial_like)
+        dead = self._spells.dead(c, x, share, sc.cand, t, partial_like=partial_like, z=sc.z)
         res.metric[o] = sc.z if sc.ready else np.nan
         if run.fc_sure[o] or (run.fc_maybe[o] and (sc.cand or dead)):
             res.verdict[o], res.conf[o] = FUEL_CUT, 1.0

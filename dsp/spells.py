@@ -59,30 +59,41 @@ class SpellWatch:
         self._z = z_threshold
 
     def dead(self, c: int, x: float, contrib: float, cand: bool, t: float, *,
-              partial_like: bool = False) -> bool:
+              partial_like: bool = False, z: float = float("nan")) -> bool:
         """Cylinder c is in a dead spell: no combustion for a while, from the start or mid-ride.
 
         Mid-ride, a run of ``dead_run`` misfires in a row (the last one not ``partial_like``:
         short of a whole misfire on a calibrated depth scale) starts a spell when the cylinder's
-        share of the engine's work (``contribution``) collapsed by ``dead_share_drop``, or, on an
-        even-firing engine, when the run reads steadily below every other cylinder's level. A
+        share of the engine's work (``contribution``) collapsed by ``dead_share_drop``, or when
+        the run's scores ``z`` read a clear loss against the cylinder's own fired level (median
+        at least twice the threshold, see :meth:`_own_loss`), or, on an even-firing engine, when
+        the run reads steadily below every other cylinder's level. A
         cylinder that never fired has no level before: it is told by a metric far below the
         others' (under ``dead_ratio`` of their level and below every one of them) without their
         combustion scatter, and on an uneven-firing engine a share of the engine's work below
         ``dead_start_share`` (there the cylinders' levels differ by geometry alone).
         A spell lasts while the cylinder reads below halfway between where it started and where
-        fired cylinders read (the share where the share started it, else the metric).
+        fired cylinders read (the share where the share started it, else the metric); one that
+        began as a run of misfires ends as soon as an event's own score ``z`` is below the
+        threshold.
         """
         st = self._cyl[c]
         if self.n < 2:
             return False
         st.run = st.run + [contrib] if cand else []
         st.run_x = st.run_x + [x] if cand else []
+        st.run_z = st.run_z + [z] if cand else []
         lv = [o.level for i, o in enumerate(self._cyl) if i != c and len(o.recent) >= 4]
         lv_o = median(lv) if lv else float("nan")
         lim = self.s.dead_ratio * lv_o
         if st.dead_since is not None:
-            if st.spell_mid == st.spell_mid:
+            if st.spell_by_run and z == z and z < self._z:
+                # a spell that began as a run of misfires ends on the first event that reads
+                # fired on its own score: the cylinder's fired baseline is frozen through the
+                # spell, so that score is trustworthy where the share of the work is not
+                # (behind a ringing driveline a fired event's share stayed under the mark)
+                dead = False
+            elif st.spell_mid == st.spell_mid:
                 dead = contrib == contrib and contrib < st.spell_mid
             elif st.spell_mid_x == st.spell_mid_x:
                 dead = x < st.spell_mid_x
@@ -91,7 +102,9 @@ class SpellWatch:
         else:
             dead = st.ever_healthy and (
                 len(st.run) >= self.s.dead_run and not partial_like
-                and (self._share_collapsed(c) or self._reads_dead(c, st.run_x, lv)))
+                and (self._share_collapsed(c) or self._own_loss(c)
+                     or self._reads_dead(c, st.run_x, lv)))
+            st.spell_by_run = dead
             # by its level alone: before it ever fired, or at any time on an even-firing engine
             # (a cylinder dead from the first cycle may have been judged fired in them)
             if not dead and (self._even or not st.ever_healthy):
@@ -102,6 +115,7 @@ class SpellWatch:
         elif not dead and st.dead_since is not None:
             st.dead_since = None
             st.spell_mid = st.spell_mid_x = float("nan")
+            st.spell_by_run = False
             self._others_relearn(c)
         return dead
 
@@ -118,6 +132,20 @@ class SpellWatch:
                      and median(st.recent_share) < self.s.dead_start_share)
         return (len(own) >= 4 and median(own) < lim and low_share
                 and self._reads_dead(c, own, lv, start=True))
+
+    def _own_loss(self, c: int) -> bool:
+        """The run of misfires of cylinder c reads a clear loss against its own fired level: its
+        median score is at least twice the threshold (a clear misfire, as the own-misfire depth
+        scale counts them). A level that drifts (a driveline mode moving with speed) crosses
+        the threshold gradually; a cylinder that stops firing drops at once by a whole misfire.
+        The share of the engine's work cannot always tell: behind a clutch and gearbox that ring
+        the window-work estimate of a dead cylinder may even rise. Sets the level that ends the
+        spell, halfway back to where the cylinder fired."""
+        st = self._cyl[c]
+        if not st.hx or median(st.run_z) < 2.0 * self._z:
+            return False
+        st.spell_mid_x = 0.5 * (median(st.run_x) + median(st.hx))
+        return True
 
     def _share_collapsed(self, c: int) -> bool:
         """The run of misfires of cylinder c took its share of the engine's work down by
