@@ -89,3 +89,26 @@ def test_live_window_rate_counts_partial_burns_like_the_stored_windows():
     wins, per_cyl = window_rates(last, revolutions=200, engine=rig.engine)
     assert len(wins) == 1
     np.testing.assert_array_equal(per_cyl[0], [c.rate200_pct for c in state.cylinders])
+
+
+def test_live_counts_follow_a_rough_road_mask_like_the_store(tmp_path):
+    # the live path publishes verdicts before a rough-road span closes; the span then masks the
+    # judged events inside it (fired, partial, misfire) in the store, and the live counts must
+    # drop them the same way
+    rig = larch_like_rig()
+    ev = _events_with_partial_burns()
+    span = (float(ev["t"][1500]), float(ev["t"][1700]))
+    tally = LiveTally(rig.engine)
+    with Store.open(tmp_path / "p.db") as st:
+        run = fill_run(st, ev)
+        st.mask_events(run, [span])
+        st.commit()
+        stats = {c["cylinder"]: c for c in st.cylinder_stats(run)}
+    for chunk in np.array_split(ev, 29):
+        tally.push_events(chunk)
+    tally.mask([span])
+    for c in tally.state(0.0).cylinders:
+        s = stats[c.cylinder]
+        assert (c.events, c.misfires, c.partial) == (
+            s["fired"] + s["partial"] + s["misfires"], s["misfires"], s["partial"])
+    assert sum(s["masked"] for s in stats.values()) > 150  # the span holds judged events

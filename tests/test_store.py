@@ -296,11 +296,12 @@ def test_dsp_results_are_stored_as_they_come(tmp_path):
 
 def test_mask_events_changes_only_judged_events_inside_spans(tmp_path):
     ev = make_events(100, misfire_every={2: 10})
+    ev["verdict"][[45, 47, 70]] = 5  # partial burns: judged events too
     with Store.open(tmp_path / "p.db") as st:
         run = fill_run(st, ev)
         t0, t1 = float(ev["t"][40]), float(ev["t"][60])
         inside = (ev["t"] >= t0) & (ev["t"] <= t1)
-        judged = inside & np.isin(ev["verdict"], (0, 1))
+        judged = inside & np.isin(ev["verdict"], (0, 1, 5))
         changed = st.mask_events(run, [(t0, t1)])
         st.commit()
         back = st.events(run)

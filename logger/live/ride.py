@@ -81,6 +81,8 @@ def ride(
 
     def on_step(out: StepOutput, chunk: Chunk) -> None:
         tally.push_events(out.events)
+        if out.masked_spans:
+            tally.mask(out.masked_spans)
         if len(chunk.status):
             vals = chunk.status.values
             tally.set_status(

@@ -12,11 +12,14 @@ from collections import deque
 import numpy as np
 
 from crankbeat.dsp.engine import Engine
-from crankbeat.dsp.events import COUNTED_VERDICTS, FIRED, MISFIRE, PARTIAL, UNUSABLE
+from crankbeat.dsp.events import COUNTED_VERDICTS, FIRED, MASKED, MISFIRE, PARTIAL, UNUSABLE
 from crankbeat.errors import InputError
 from crankbeat.logger.chunks import StreamHealth
 from crankbeat.logger.live.display import CylinderState, IntervalState, LiveState
 from crankbeat.logger.report.text import ride_time
+
+#: How far back (s) a rough-road span closing now may mask events already counted.
+MASK_REACH_S = 60.0
 
 
 class LiveTally:
@@ -47,7 +50,7 @@ class LiveTally:
         self.events = np.zeros(n, dtype=np.int64)
         self.misfires = np.zeros(n, dtype=np.int64)
         self.partial = np.zeros(n, dtype=np.int64)
-        self._recent: deque[tuple[int, int, int]] = deque()  # (cycle, cylinder, verdict)
+        self._recent: deque[list] = deque()  # [cycle, cylinder, verdict, t]
         self._intervals = {c: deque(maxlen=interval_events) for c in range(1, n + 1)}
         self._expected: dict[int, float] = {}
         self._contrib = {c: deque(maxlen=interval_events) for c in range(1, n + 1)}
@@ -83,15 +86,31 @@ class LiveTally:
                 self._contrib[c].append(con)
         if self.t_start is None and np.isfinite(events["t"]).any():
             self.t_start = float(np.nanmin(events["t"]))
-        self._recent.extend(zip(events["cycle"].tolist(), events["cylinder"].tolist(),
-                                events["verdict"].tolist(), strict=True))
-        newest = self._recent[-1][0]
-        while self._recent and self._recent[0][0] <= newest - self.cycles_per_window:
+        self._recent.extend(list(row) for row in zip(
+            events["cycle"].tolist(), events["cylinder"].tolist(), events["verdict"].tolist(),
+            events["t"].tolist(), strict=True))
+        newest, t_newest = self._recent[-1][0], self._recent[-1][3]
+        # kept for the window, and for a rough-road span that closes late (see mask)
+        while self._recent and (self._recent[0][0] <= newest - self.cycles_per_window
+                                and not self._recent[0][3] > t_newest - MASK_REACH_S):
             self._recent.popleft()
         self._last_verdict = int(events["verdict"][-1])
         rpm = events["rpm"][np.isfinite(events["rpm"])]
         if rpm.size:
             self.rpm = float(rpm[-1])
+
+    def mask(self, spans) -> None:
+        """Rough-road spans ``(t0, t1)`` closed after their events were pushed: the judged events
+        inside become masked and leave every count, as they do in the store. Events of the last
+        :data:`MASK_REACH_S` seconds are kept for this (a rough stretch closes at its end)."""
+        for t0, t1 in spans:
+            for row in self._recent:
+                _, c, v, t = row
+                if t0 <= t <= t1 and v in COUNTED_VERDICTS:
+                    self.events[c - 1] -= 1
+                    self.misfires[c - 1] -= v == MISFIRE
+                    self.partial[c - 1] -= v == PARTIAL
+                    row[2] = MASKED
 
     def set_status(self, *, rpm: float | None = None, throttle: float | None = None) -> None:
         if rpm is not None:
@@ -133,8 +152,9 @@ class LiveTally:
         n = self.engine.n_cylinders
         cnt = np.zeros(n)
         mis = np.zeros(n)
-        for _, c, v in self._recent:
-            if v in COUNTED_VERDICTS:
+        first_cycle = self._recent[-1][0] - self.cycles_per_window if self._recent else 0
+        for cycle, c, v, _ in self._recent:
+            if cycle > first_cycle and v in COUNTED_VERDICTS:
                 cnt[c - 1] += 1
                 mis[c - 1] += v == MISFIRE
         cylinders = []

@@ -19,7 +19,7 @@ from typing import Any
 import numpy as np
 import sqlite_utils
 
-from crankbeat.dsp.events import EVENT_DTYPE, FIRED, MASKED, MISFIRE
+from crankbeat.dsp.events import COUNTED_VERDICTS, EVENT_DTYPE, MASKED
 from crankbeat.errors import StoreError
 from crankbeat.logger.store.connection import connect, damaged_message, prepare_file, writable
 from crankbeat.logger.store.lifecycle import RunLifecycle
@@ -239,7 +239,8 @@ class Store(RunQueries, RunLifecycle):
         return len(events)
 
     def mask_events(self, run_id: int, spans: Iterable[tuple[float, float]]) -> int:
-        """Mark the fired and misfire events of a run inside each ``(t0, t1)`` span "masked".
+        """Mark the judged events (fired, partial, misfire) of a run inside each ``(t0, t1)`` span
+        "masked".
 
         Rough-road spans are known only after the events in them were written; unusable and
         fuel-cut events keep their verdict. Returns the number of events changed.
@@ -248,8 +249,8 @@ class Store(RunQueries, RunLifecycle):
         for t0, t1 in spans:
             cur = self.db.conn.execute(
                 "UPDATE events SET verdict = ? WHERE run = ? AND t >= ? AND t <= ?"
-                " AND verdict IN (?, ?)",
-                (MASKED, run_id, float(t0), float(t1), FIRED, MISFIRE),
+                f" AND verdict IN ({', '.join('?' * len(COUNTED_VERDICTS))})",
+                (MASKED, run_id, float(t0), float(t1), *COUNTED_VERDICTS),
             )
             changed += cur.rowcount
         return changed
