@@ -103,7 +103,7 @@ class RunSummary:
         self.cycles_per_block = BLOCK_REVOLUTIONS / (self.engine.cycle_deg / 360.0)
         n = self.engine.n_cylinders
         self._counts = {k: np.zeros(n, np.int64) for k in
-                        ("fired", "misfire", "masked", "unusable", "fuel_cut")}
+                        ("fired", "partial", "misfire", "masked", "unusable", "fuel_cut")}
 
     # -- input ---------------------------------------------------------------------------
     def push(self, events: np.ndarray) -> None:
@@ -230,7 +230,8 @@ class RunSummary:
     def as_dict(self) -> dict:
         """The run's summary as plain JSON-able values."""
         n = self.engine.n_cylinders
-        counted = self._counts["fired"] + self._counts["misfire"]
+        # the one rate definition (dsp.events.COUNTED_VERDICTS): partial burns count as events
+        counted = self._counts["fired"] + self._counts["partial"] + self._counts["misfire"]
         per_cyl = []
         for c in range(n):
             rate = 100.0 * self._counts["misfire"][c] / counted[c] if counted[c] else None

@@ -15,6 +15,7 @@ from test_store_fill import fill_run, larch_like_rig, make_events
 from crankbeat.dsp.analysis import misfire_counts, window_rates
 from crankbeat.dsp.events import FIRED, MISFIRE, PARTIAL
 from crankbeat.logger.live import LiveTally
+from crankbeat.logger.run_summary import RunSummary
 from crankbeat.logger.store import Store
 
 
@@ -51,6 +52,11 @@ def test_every_stored_view_takes_partial_burns_as_counted_events(tmp_path):
     assert abs(with_partial - no_partial) > 0.5
 
     counts = misfire_counts(ev, 2)
+    summary = RunSummary(rig.engine, "twin-270", {})
+    for chunk in np.array_split(ev, 13):
+        summary.push(chunk)
+    summary.finish()
+    run_sum = summary.as_dict()["misfire"]
     with Store.open(tmp_path / "p.db") as st:
         run = fill_run(st, ev)
         # gear 3 sampled every 0.1 s over the whole run (a status frame's rate, common practice)
@@ -63,10 +69,13 @@ def test_every_stored_view_takes_partial_burns_as_counted_events(tmp_path):
     for c in (1, 2):
         rate, counted = expected[c]
         assert counts["rate_pct"][c - 1] == rate
+        assert run_sum["per_cylinder"][c - 1]["rate_pct"] == rate
         assert stats[c]["rate_pct"] == rate
         assert stats[c]["partial"] == np.sum((ev["cylinder"] == c) & (ev["verdict"] == PARTIAL))
         assert (trend[f"cyl {c}"].value, trend[f"cyl {c}"].n) == (rate, counted)
         assert (by_gear[f"cyl {c}"].value, by_gear[f"cyl {c}"].n) == (rate, counted)
+    n_mis = int(np.sum(ev["verdict"] == MISFIRE))
+    assert run_sum["total_rate_pct"] == 100.0 * n_mis / sum(n for _, n in expected.values())
     assert window_rates(ev, revolutions=2000, engine=rig.engine)[0]["counted"].sum() == sum(
         counted for _, counted in expected.values())
 

@@ -6,7 +6,7 @@ from pathlib import Path
 
 import numpy as np
 
-from crankbeat.dsp.events import FIRED, FUEL_CUT, MISFIRE, UNUSABLE, VERDICT_NAMES
+from crankbeat.dsp.events import COUNTED_VERDICTS, FIRED, FUEL_CUT, MISFIRE, UNUSABLE, VERDICT_NAMES
 from crankbeat.logger.figures import (
     channel_view,
     event_crank,
@@ -86,7 +86,7 @@ def _draw_metric(ax, ev: np.ndarray) -> None:
     order = np.argsort(ev["t"])
     ax.plot(ev["t"][order], ev["threshold"][order], lw=0.9, color=THRESHOLD_COLOUR,
             label="threshold")
-    judged = ev["metric"][np.isin(ev["verdict"], (FIRED, MISFIRE))]
+    judged = ev["metric"][np.isin(ev["verdict"], COUNTED_VERDICTS)]
     judged = judged[np.isfinite(judged)]
     if judged.size:
         ax.set_ylim(float(np.percentile(judged, 0.2)) - 1.0,
