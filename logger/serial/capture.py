@@ -45,6 +45,9 @@ RESYNC_NEAR_BYTES = 65536
 LONG_READ_BYTES = 4096
 #: Bytes searched at a time for the next record after a damaged one.
 RESYNC_WINDOW = 1 << 16
+#: Bytes before the next record kept mapped in memory, and the least handed back at a time.
+RELEASE_MARGIN_BYTES = 1 << 20
+RELEASE_STEP_BYTES = 4 << 20
 
 Record = tuple[float, bytes]
 
@@ -155,6 +158,7 @@ class CaptureReader:
         self.done = False
         self._last_time: float | None = None
         self._peeked: Record | None = None  # read ahead by read_until, not yet delivered
+        self._released = 0  # bytes at the start of the map handed back to the kernel
 
     def _note(self, text: str) -> None:
         if len(self.notes) < 20:
@@ -168,6 +172,7 @@ class CaptureReader:
             if rec is None:
                 break
             out.append(rec)
+        self._release()
         return out
 
     def read_until(self, host_time: float) -> list[Record]:
@@ -177,12 +182,23 @@ class CaptureReader:
         out: list[Record] = []
         while True:
             rec = self._take()
-            if rec is None:
-                return out
-            if rec[0] > host_time:
+            if rec is None or rec[0] > host_time:
                 self._peeked = rec
+                self._release()
                 return out
             out.append(rec)
+
+    def _release(self) -> None:
+        """Hand the pages of the records read back to the kernel: a mapped page once touched
+        counts in the process's resident memory until unmapped, so an hour's capture read
+        through the map would add its whole size to the peak (the replay's memory would grow
+        with the ride). A later re-read of a released page (damage sends the reading back by
+        a few records at most) faults it in again from the page cache."""
+        behind = self.offset - RELEASE_MARGIN_BYTES
+        upto = behind - behind % mmap.PAGESIZE
+        if upto - self._released >= RELEASE_STEP_BYTES and hasattr(self._map, "madvise"):
+            self._map.madvise(mmap.MADV_DONTNEED, self._released, upto - self._released)
+            self._released = upto
 
     def _take(self) -> Record | None:
         if self._peeked is not None:
