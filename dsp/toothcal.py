@@ -212,10 +212,7 @@ class ToothErrorLearner:
         XtX[:L, :L] = m * (np.eye(L) - 1.0 / L)
         Xty[:L] = y.sum(axis=0)
         if H:
-            # cos and sin of h·θ/2 for h = 1..H as powers of one complex exponential
-            e1 = np.exp(0.5j * np.deg2rad(theta))
-            eh = np.cumprod(np.broadcast_to(e1[..., None], e1.shape + (H,)), axis=2)
-            Hm = np.concatenate((eh.real, eh.imag), axis=2) * scale[:, None, None]
+            Hm = _harmonic_columns(theta, H, scale)
             Hm -= Hm.mean(axis=1, keepdims=True)
             Hf = Hm.reshape(-1, 2 * H)
             XtX[:L, L:] = Hm.sum(axis=0)
@@ -258,6 +255,26 @@ class ToothErrorLearner:
         conf = snr * separable * min(1.0, self.n_revs / self.min_revs)
         return ToothErrors(err, self.n_revs, rms, float(conf), se,
                            (float(self.rpm_lo), float(self.rpm_hi)))
+
+
+def _harmonic_columns(theta: np.ndarray, H: int, scale: np.ndarray) -> np.ndarray:
+    """cos(h·θ/2) and sin(h·θ/2) for h = 1..H, times each row's ``scale``: (m, L, 2H).
+
+    Powers of one complex exponential, multiplied out in real arithmetic straight into the
+    result's columns; the same products as numpy's complex ``cumprod`` (bit for bit), without
+    its complex temporaries and the copy that joined real and imaginary parts.
+    """
+    e1 = np.exp(0.5j * np.deg2rad(theta))
+    out = np.empty(theta.shape + (2 * H,))
+    sc = scale[:, None]
+    er, ei = e1.real, e1.imag
+    pr, pi = er, ei
+    for h in range(H):
+        if h:
+            pr, pi = pr * er - pi * ei, pr * ei + pi * er
+        np.multiply(pr, sc, out=out[..., h])
+        np.multiply(pi, sc, out=out[..., H + h])
+    return out
 
 
 def learn_tooth_errors(angles: CrankAngles, no_combustion, wheel: ToothWheel, engine: Engine,

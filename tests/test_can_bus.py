@@ -75,3 +75,23 @@ def test_the_leak_guard_sees_open_buses_ports_and_databases(tmp_path):
         port.close()
         db.close()
     assert leaks() == []
+
+
+def test_microsecond_times_are_what_python_cans_candump_writer_and_reader_keep(tmp_path):
+    from crankbeat.logger.can.sources.bus import candump_microseconds
+
+    rng = np.random.default_rng(3)
+    base = 1_767_225_600.0
+    # in time order: the writer stamps a time going backwards with the one before it
+    ts = np.sort(np.concatenate((
+        base + rng.uniform(0.0, 86_400.0, 3000),
+        base + np.round(rng.uniform(0.0, 86_400.0, 1000) * 2e6) / 2e6,  # exact half-µs ties
+        [2.0**19, 1.5, 12.000_000_5, 1e10],  # outside the vectorised range: via strings
+    )))
+    path = tmp_path / "times.log"
+    with can.CanutilsLogWriter(path) as w:  # reference: python-can's own candump writer/reader
+        for t in ts:
+            w.on_message_received(can.Message(timestamp=float(t), arbitration_id=1,
+                                              is_extended_id=False, channel="vcan0"))
+    kept = [m.timestamp for m in can.LogReader(path)]
+    assert candump_microseconds(ts).tolist() == kept

@@ -194,7 +194,7 @@ class FrameDecoder:
             self._note("dlc", f"{batch.where(i)}: id {_id_text(msg)} ({msg.name}) has "
                        f"{int(batch.dlc[i])} data bytes, expected {msg.length} (frame skipped)")
             idx = idx[~bad]
-        idx = self._drop_duplicates(st, batch, idx)
+        idx, counts = self._drop_duplicates(st, batch, idx)
         if len(idx) == 0:
             return idx, None
         ts = batch.ts[idx]
@@ -209,17 +209,19 @@ class FrameDecoder:
         self._cur_data[msg.name] = batch.data[idx]  # gathered once, used by every signal
         if st.counter is None:
             return idx, None
-        lost = self._lost(st, batch, idx)
+        lost = self._lost(st, batch, idx, counts)
         h.can_lost_frames += int(lost.sum())
         return idx, lost
 
-    def _drop_duplicates(self, st: _MsgState, batch: FrameBatch, idx: np.ndarray) -> np.ndarray:
+    def _drop_duplicates(self, st: _MsgState, batch: FrameBatch, idx: np.ndarray
+                         ) -> tuple[np.ndarray, np.ndarray | None]:
         """Frames of ``st.msg`` that repeat the one before: the same rolling counter value, or
         (without a counter) the same bytes within :data:`DUPLICATE_S`. A bus never repeats a
         frame by itself; a repeat comes from the logging path, and would count its tooth
-        periods twice."""
+        periods twice. Returns the frames kept and their counter values (None: no counter)."""
+        c = None
         if not len(idx):
-            return idx
+            return idx, c
         data = batch.data[idx, : st.msg.length]
         ts = batch.ts[idx]
         if st.counter is not None:
@@ -240,12 +242,14 @@ class FrameDecoder:
             self._note("duplicate", f"{batch.where(i)}: {st.msg.name} ({_id_text(st.msg)}) "
                        "repeats the frame before it (duplicate skipped)")
             idx = idx[~dup]
-        return idx
+            c = c[~dup] if c is not None else None
+        return idx, c
 
-    def _lost(self, st: _MsgState, batch: FrameBatch, idx: np.ndarray) -> np.ndarray:
+    def _lost(self, st: _MsgState, batch: FrameBatch, idx: np.ndarray, c: np.ndarray
+              ) -> np.ndarray:
+        """Frames lost before each of ``idx``, from the counter values ``c`` of those frames."""
         sig = st.counter
-        assert sig is not None
-        c = decode_raw(self._cur_data[st.msg.name], sig).astype(np.int64)
+        assert sig is not None and c is not None
         modulo = int(sig.modulo) if sig.modulo else 1 << sig.length
         prev = np.empty_like(c)
         prev[0] = c[0] - 1 if st.last_counter is None else st.last_counter

@@ -45,6 +45,9 @@ RESYNC_NEAR_BYTES = 65536
 LONG_READ_BYTES = 4096
 #: Bytes searched at a time for the next record after a damaged one.
 RESYNC_WINDOW = 1 << 16
+#: Bytes before the next record kept mapped in memory, and the least handed back at a time.
+RELEASE_MARGIN_BYTES = 1 << 20
+RELEASE_STEP_BYTES = 4 << 20
 
 Record = tuple[float, bytes]
 
@@ -155,6 +158,7 @@ class CaptureReader:
         self.done = False
         self._last_time: float | None = None
         self._peeked: Record | None = None  # read ahead by read_until, not yet delivered
+        self._released = 0  # bytes at the start of the map handed back to the kernel
 
     def _note(self, text: str) -> None:
         if len(self.notes) < 20:
@@ -168,6 +172,7 @@ class CaptureReader:
             if rec is None:
                 break
             out.append(rec)
+        self._release()
         return out
 
     def read_until(self, host_time: float) -> list[Record]:
@@ -176,13 +181,27 @@ class CaptureReader:
         delivered with its neighbours (arrival order is the order that matters)."""
         out: list[Record] = []
         while True:
-            rec = self._take()
-            if rec is None:
+            if self._peeked is None and not self.done and self._plain_until(host_time, out):
+                self._release()
                 return out
-            if rec[0] > host_time:
+            rec = self._take()
+            if rec is None or rec[0] > host_time:
                 self._peeked = rec
+                self._release()
                 return out
             out.append(rec)
+
+    def _release(self) -> None:
+        """Hand the pages of the records read back to the kernel: a mapped page once touched
+        counts in the process's resident memory until unmapped, so an hour's capture read
+        through the map would add its whole size to the peak (the replay's memory would grow
+        with the ride). A later re-read of a released page (damage sends the reading back by
+        a few records at most) faults it in again from the page cache."""
+        behind = self.offset - RELEASE_MARGIN_BYTES
+        upto = behind - behind % mmap.PAGESIZE
+        if upto - self._released >= RELEASE_STEP_BYTES and hasattr(self._map, "madvise"):
+            self._map.madvise(mmap.MADV_DONTNEED, self._released, upto - self._released)
+            self._released = upto
 
     def _take(self) -> Record | None:
         if self._peeked is not None:
@@ -323,6 +342,38 @@ class CaptureReader:
         self.offset = end
         self.index += 1
         return t, self._map[start + _HEADER.size : end]
+
+    def _plain_until(self, host_time: float, out: list[Record]) -> bool:
+        """Append the plainly whole records (as :meth:`_next_plain` takes them) with host time
+        at most ``host_time`` to ``out``, in one tight loop (a replay reads tens of thousands of
+        records a minute). True when it stopped at a later record (now peeked); False at the
+        first record that is not plain, left to the checked path."""
+        m, size, unpack = self._map, self.size, _HEADER.unpack_from
+        start, last, index = self.offset, self._last_time, self.index
+        h = _HEADER.size
+        found = False
+        while last is not None and last >= MIN_CLOCK and start + h <= size:
+            t, n = unpack(m, start)
+            end = start + h + n
+            if not (last <= t <= last + NEAR_AHEAD_S and t < MAX_TIME and n <= LONG_READ_BYTES
+                    and end <= size):
+                break
+            if end != size:
+                if size - end < h:
+                    break
+                t2, n2 = unpack(m, end)
+                if not (n2 <= MAX_RECORD_BYTES and -NEAR_BACK_S <= t2 - t <= NEAR_AHEAD_S
+                        and 0.0 <= t2 < MAX_TIME):
+                    break
+            rec = (t, m[start + h : end])
+            last, start, index = t, end, index + 1
+            if t > host_time:
+                self._peeked = rec
+                found = True
+                break
+            out.append(rec)
+        self.offset, self._last_time, self.index = start, last, index
+        return found
 
     def _next_checked(self) -> Record | None:
         start = self.offset
