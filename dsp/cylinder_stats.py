@@ -76,6 +76,7 @@ class CylinderState:
         self.run_z: list[float] = []  # their scores, robust sigma
         self.dead_since: float | None = None  # start of the current dead spell, s
         self.spell_by_run = False  # the current spell began as a run of misfires
+        self.spell_z = float("inf")  # that run's median score, robust sigma
         self.first_dead: float | None = None  # start of the first dead spell, s
         self.partial_streak = 0  # partial burns in a row
         self.weak = False  # in a weak spell: a run of partial burns, not yet fired again

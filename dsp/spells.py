@@ -74,8 +74,8 @@ class SpellWatch:
         ``dead_start_share`` (there the cylinders' levels differ by geometry alone).
         A spell lasts while the cylinder reads below halfway between where it started and where
         fired cylinders read (the share where the share started it, else the metric); one that
-        began as a run of misfires ends as soon as an event's own score ``z`` is below the
-        threshold.
+        began as a run of misfires ends as soon as an event's own score ``z`` is below half the
+        run's median score.
         """
         st = self._cyl[c]
         if self.n < 2:
@@ -87,11 +87,14 @@ class SpellWatch:
         lv_o = median(lv) if lv else float("nan")
         lim = self.s.dead_ratio * lv_o
         if st.dead_since is not None:
-            if st.spell_by_run and z == z and z < self._z:
+            if st.spell_by_run and z == z and z < 0.5 * st.spell_z:
                 # a spell that began as a run of misfires ends on the first event that reads
-                # fired on its own score: the cylinder's fired baseline is frozen through the
-                # spell, so that score is trustworthy where the share of the work is not
-                # (behind a ringing driveline a fired event's share stayed under the mark)
+                # halfway back to fired on its own score (the run's median score halved): the
+                # cylinder's fired baseline is frozen through the spell, so that score is
+                # trustworthy where the share of the work is not (behind a ringing driveline a
+                # fired event's share stayed under the mark); halfway, because a dead cylinder
+                # with a scattered fired level reads only 5-6 sigma down, and one dead event
+                # under the threshold must not end its spell
                 dead = False
             elif st.spell_mid == st.spell_mid:
                 dead = contrib == contrib and contrib < st.spell_mid
@@ -105,6 +108,8 @@ class SpellWatch:
                 and (self._share_collapsed(c) or self._own_loss(c)
                      or self._reads_dead(c, st.run_x, lv)))
             st.spell_by_run = dead
+            zs = [v for v in st.run_z if v == v]
+            st.spell_z = median(zs) if dead and zs else float("inf")
             # by its level alone: before it ever fired, or at any time on an even-firing engine
             # (a cylinder dead from the first cycle may have been judged fired in them)
             if not dead and (self._even or not st.ever_healthy):
