@@ -67,7 +67,7 @@ def test_v1_file_migrates_and_keeps_its_data(tmp_path):
     _v1_file(path)
     with Store.open(path) as st:
         assert st.schema_version == SCHEMA_VERSION
-        assert "order_map" in st.db.table_names()
+        assert "order_maps" in st.db.table_names()
         assert "source_key" in st.db["runs"].columns_dict
         # The replay-once key was derived from the v1 sources table.
         assert st.find_run_by_sources(["bbbb", "aaaa"]) == 1

@@ -26,9 +26,11 @@ from crankbeat.logger.store.lifecycle import RunLifecycle
 from crankbeat.logger.store.queries import RunQueries
 from crankbeat.logger.store.records import (
     INTERVAL_COLUMNS,
+    ORDER_MAP_COLUMNS,
     VIBRATION_COLUMNS,
     WINDOW_COLUMNS,
     jsonable,
+    order_map_row,
     records,
     rig_text,
     sha256_file,
@@ -331,29 +333,20 @@ class Store(RunQueries, RunLifecycle):
         """Append an rpm-vs-order map: ``amplitude[b, k]`` at band b, order ``orders[k]``.
 
         Amplitudes in the analyser's unit (m/s²); all-NaN bands (never visited) are skipped.
+        One row per map (:func:`~.records.order_map_row`); returns the number of cells kept.
         """
-        amp = np.asarray(amplitude, dtype=float)
-        lo, hi, orders = (np.asarray(a, dtype=float) for a in (rpm_lo, rpm_hi, orders))
-        if amp.shape != (len(lo), len(orders)) or len(hi) != len(lo):
-            raise StoreError(
-                f"add_order_map: amplitude shape {amp.shape} does not match "
-                f"{len(lo)} bands x {len(orders)} orders"
-            )
-        visited = np.flatnonzero(~np.all(np.isnan(amp), axis=1))
-        # NaN (no block of this order in a visited band) is stored as NULL; rows are built
-        # column-wise (a map is ~10^4 rows per sensor and axis: a per-cell loop dominated)
+        row = order_map_row(sensor, axis, rpm_lo, rpm_hi, orders, amplitude)
+        return self.add_order_map_rows(run_id, [row] if row[2] else [])
+
+    def add_order_map_rows(self, run_id: int, rows: Sequence[tuple]) -> int:
+        """Append order maps already shaped by :func:`~.records.order_map_row` (a fleet worker
+        shapes them, so the one writer only inserts); returns the number of cells."""
         self._check_run(run_id)
-        n_ord = len(orders)
-        vals = [None if v != v else v
-                for v in np.where(np.isfinite(amp[visited]), amp[visited], np.nan).ravel().tolist()]
         self.db.conn.executemany(
-            "INSERT INTO order_map (run, sensor, axis, rpm_lo, rpm_hi, ord, amplitude)"
-            " VALUES (?, ?, ?, ?, ?, ?, ?)",
-            zip([run_id] * len(vals), [sensor] * len(vals), [axis] * len(vals),
-                np.repeat(lo[visited], n_ord).tolist(), np.repeat(hi[visited], n_ord).tolist(),
-                np.tile(orders, len(visited)).tolist(), vals),
-        )
-        return len(vals)
+            f"INSERT INTO order_maps (run, {', '.join(ORDER_MAP_COLUMNS)})"
+            f" VALUES ({', '.join('?' * (len(ORDER_MAP_COLUMNS) + 1))})",
+            [(run_id, *r) for r in rows])
+        return sum(r[2] * r[3] for r in rows)
 
     def _insert(self, table: str, cols: Sequence[str], run_id: int, recs: list[tuple]) -> int:
         self._check_run(run_id)
