@@ -19,13 +19,13 @@ from crankbeat.errors import RunNotFoundError
 from crankbeat.logger.store.arrays import unpack
 from crankbeat.logger.store.records import (
     INTERVAL_COLUMNS,
-    ORDER_MAP_COLUMNS,
     VERDICT_CODES,
     VIBRATION_COLUMNS,
     WINDOW_COLUMNS,
     rig_text,
     verdict_code,
 )
+from crankbeat.logger.store.rows import ORDER_MAP_COLUMNS
 from crankbeat.logger.store.schema import EVENT_COLUMNS, source_key
 
 

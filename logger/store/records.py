@@ -19,7 +19,6 @@ import numpy as np
 
 from crankbeat.dsp.events import VERDICT_NAMES
 from crankbeat.errors import StoreError, UsageError
-from crankbeat.logger.store.arrays import pack
 
 VERDICT_CODES = {name: code for code, name in VERDICT_NAMES.items()}
 
@@ -29,8 +28,6 @@ INTERVAL_COLUMNS = (
     "from_cyl", "to_cyl", "expected_deg", "observed_deg", "stderr_deg", "n", "flagged",
 )
 VIBRATION_COLUMNS = ("sensor", "rpm_lo", "rpm_hi", "axis", "weighting", "rms", "n")
-ORDER_MAP_COLUMNS = ("sensor", "axis", "n_bands", "n_orders", "rpm_lo", "rpm_hi", "orders",
-                     "amplitude")
 # Input names that are SQL keywords are stored under a short column name; the others are the
 # field names of the dsp results (dsp.analysis.WINDOW_DTYPE, dsp.intervals.IntervalResult).
 _ALIASES = {
@@ -139,26 +136,6 @@ def _from_columns(cols: dict, columns: Sequence[str], what: str, n: int) -> list
         raise StoreError(f"{what}: unknown field(s) {sorted(unknown)}, expected {list(columns)}")
     series = [cols.get(c, [None] * n) for c in columns]
     return [tuple(jsonable(v) for v in row) for row in zip(*series, strict=True)]
-
-
-def order_map_row(sensor: str, axis: str, rpm_lo: Sequence[float], rpm_hi: Sequence[float],
-                  orders: Sequence[float], amplitude: Any) -> tuple:
-    """One order map as an ``order_maps`` row (in :data:`ORDER_MAP_COLUMNS` order, no run).
-
-    ``amplitude[b, k]`` is band b (``rpm_lo[b]``..``rpm_hi[b]``) at ``orders[k]``. Bands never
-    visited (all NaN) are left out; a value that is not finite is kept as NaN (no value).
-    """
-    amp = np.asarray(amplitude, dtype=float)
-    lo, hi, orders = (np.asarray(a, dtype=float).ravel() for a in (rpm_lo, rpm_hi, orders))
-    if amp.shape != (len(lo), len(orders)) or len(hi) != len(lo):
-        raise StoreError(
-            f"add_order_map: amplitude shape {amp.shape} does not match "
-            f"{len(lo)} bands x {len(orders)} orders"
-        )
-    visited = ~np.all(np.isnan(amp), axis=1)
-    kept = np.where(np.isfinite(amp[visited]), amp[visited], np.nan)
-    return (str(sensor), str(axis), int(visited.sum()), len(orders), pack(lo[visited]),
-            pack(hi[visited]), pack(orders), pack(kept))
 
 
 def verdict_code(verdict: str | int) -> int:
