@@ -141,25 +141,45 @@ def order_grid(store: Store, run_id: int, sensor: str, axis: str, *, max_order: 
     ``rpm_edges`` (n_b + 1,) spaced evenly by the store's band width from the lowest to the
     highest visited band, ``amplitude`` (n_b, n_o) m/s², NaN in bands never visited. Every band
     is equally wide, the low-rpm ones included. None without data."""
-    rows = [r for r in store.order_map(run_id, sensor=sensor)
-            if r["axis"] == axis and r["rpm_lo"] is not None and r["rpm_hi"] is not None
-            and r["order"] is not None and r["order"] <= max_order and r["amplitude"]]
-    if not rows:
+    cells = _grid_cells([m for m in store.order_maps(run_id, sensor=sensor)
+                         if m["axis"] == axis], max_order)
+    if cells is None:
         return None
-    width = min(r["rpm_hi"] - r["rpm_lo"] for r in rows)
-    lo = min(r["rpm_lo"] for r in rows)
-    hi = max(r["rpm_hi"] for r in rows)
+    rpm_lo, rpm_hi, order, amp = cells
+    width = float(np.min(rpm_hi - rpm_lo))
+    lo, hi = float(np.min(rpm_lo)), float(np.max(rpm_hi))
     n_bands = int(round((hi - lo) / width))
-    orders = np.array(sorted({r["order"] for r in rows}))
+    orders = np.unique(order)
     grid = np.full((n_bands, orders.size), np.nan)
-    column = {o: i for i, o in enumerate(orders.tolist())}
-    for r in rows:
+    column = np.searchsorted(orders, order)
+    first = np.rint((rpm_lo - lo) / width).astype(int)
+    last = np.rint((rpm_hi - lo) / width).astype(int)
+    for a, b, k, v in zip(first.tolist(), last.tolist(), column.tolist(), amp.tolist()):
         # a stored band wider than the finest one fills each fine row it covers
-        first = int(round((r["rpm_lo"] - lo) / width))
-        last = int(round((r["rpm_hi"] - lo) / width))
-        grid[first:last, column[r["order"]]] = r["amplitude"]
+        grid[a:b, k] = v
     return {"orders": orders, "rpm_edges": lo + width * np.arange(n_bands + 1),
             "amplitude": grid}
+
+
+def _grid_cells(maps: list[dict], max_order: float) -> tuple[np.ndarray, ...] | None:
+    """The cells of ``maps`` (Store.order_maps) that go on a grid: bands and order known,
+    order <= ``max_order``, amplitude a number other than 0; as flat arrays ``(rpm_lo, rpm_hi,
+    order, amplitude)`` by rpm_lo, then order (a later band overwrites an earlier one where a
+    coarse band covers fine rows). None without any."""
+    parts = []
+    for m in maps:
+        n_b, n_o = m["amplitude"].shape
+        cell = (np.repeat(m["rpm_lo"], n_o), np.repeat(m["rpm_hi"], n_o),
+                np.tile(m["orders"], n_b), m["amplitude"].ravel())
+        with np.errstate(invalid="ignore"):
+            keep = (np.isfinite(cell[0]) & np.isfinite(cell[1]) & (cell[2] <= max_order)
+                    & np.isfinite(cell[3]) & (cell[3] != 0))
+        parts.append([c[keep] for c in cell])
+    if not parts or not sum(len(p[0]) for p in parts):
+        return None
+    rpm_lo, rpm_hi, order, amp = (np.concatenate(c) for c in zip(*parts))
+    by = np.lexsort((order, rpm_lo))
+    return rpm_lo[by], rpm_hi[by], order[by], amp[by]
 
 
 def predicted_order_marks(engine, *, max_order: float) -> list[dict]:

@@ -130,6 +130,35 @@ def test_run_output_survives_pickling(one_by_one):
     assert back.summary == out.summary and set(back.channels) == set(out.channels)
 
 
+def test_stored_order_maps_read_back_equal_the_analysis_output(rig, one_by_one, tmp_path):
+    out = one_by_one["demo.log"]
+    assert out.tail.order_maps  # the demo ride has an accelerometer
+    with Store.open(tmp_path / "o.db") as store:
+        run = store_output(store, rig, out, save_teeth=False)
+        back = {(m["sensor"], m["axis"]): m for m in store.order_maps(run)}
+        cells = store.order_map(run)
+    assert set(back) == {(m["sensor"], m["axis"]) for m in out.tail.order_maps}
+    n_cells = 0
+    for m in out.tail.order_maps:
+        got = back[(m["sensor"], m["axis"])]
+        visited = ~np.all(np.isnan(m["amplitude"]), axis=1)  # bands never visited: not stored
+        assert 0 < visited.sum() < len(visited)
+        # bit for bit, NaN where the analysis has no value
+        np.testing.assert_array_equal(got["amplitude"], m["amplitude"][visited])
+        np.testing.assert_array_equal(got["rpm_lo"], np.asarray(m["rpm_lo"])[visited])
+        np.testing.assert_array_equal(got["rpm_hi"], np.asarray(m["rpm_hi"])[visited])
+        np.testing.assert_array_equal(got["orders"], m["orders"])
+        n_cells += m["amplitude"][visited].size
+    # the cell view holds the same numbers, one row per visited band and order
+    assert len(cells) == n_cells
+    first = out.tail.order_maps[0]
+    b = int(np.flatnonzero(~np.all(np.isnan(first["amplitude"]), axis=1))[0])
+    row = [c for c in cells if (c["sensor"], c["axis"]) == (first["sensor"], first["axis"])
+           and c["rpm_lo"] == first["rpm_lo"][b]]
+    want = [None if np.isnan(v) else v for v in first["amplitude"][b].tolist()]
+    assert [c["amplitude"] for c in row] == want
+
+
 def test_local_pool_batch_equals_one_by_one_and_goes_on_after_a_bad_ride(
         rig, one_by_one, tmp_path):
     bad = tmp_path / "bad.log"

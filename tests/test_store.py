@@ -14,7 +14,7 @@ from crankbeat.dsp.events import EVENT_DTYPE, MISFIRE
 from crankbeat.errors import RunNotFoundError, StoreError, UsageError
 from crankbeat.logger.store import SCHEMA_VERSION, Store, sha256_file
 
-TABLES = {"rigs", "runs", "sources", "events", "windows", "intervals", "vibration", "order_map",
+TABLES = {"rigs", "runs", "sources", "events", "windows", "intervals", "vibration", "order_maps",
           "tooth_errors", "schema_version"}
 
 
@@ -34,7 +34,7 @@ def test_new_store_has_every_table_wal_and_version(tmp_path):
         conn.close()
     assert TABLES <= names
     assert mode == "wal"
-    assert {"events", "runs", "windows", "vibration", "order_map", "sources"} <= indexed
+    assert {"events", "runs", "windows", "vibration", "order_maps", "sources"} <= indexed
 
 
 def test_events_round_trip_every_field_and_nan(tmp_path):

@@ -67,7 +67,7 @@ def test_v1_file_migrates_and_keeps_its_data(tmp_path):
     _v1_file(path)
     with Store.open(path) as st:
         assert st.schema_version == SCHEMA_VERSION
-        assert "order_map" in st.db.table_names()
+        assert "order_maps" in st.db.table_names()
         assert "source_key" in st.db["runs"].columns_dict
         # The replay-once key was derived from the v1 sources table.
         assert st.find_run_by_sources(["bbbb", "aaaa"]) == 1
@@ -123,3 +123,69 @@ def test_v1_ddl_is_what_the_first_migration_builds(tmp_path):
     finally:
         fresh.close()
         ref.close()
+
+
+# The per-cell order map of schema versions 2 to 5, written as that version's add_order_map did:
+# one row per visited band and order, NaN and inf as NULL, never-visited bands left out.
+OLD_CELL_SQL = ("INSERT INTO order_map (run, sensor, axis, rpm_lo, rpm_hi, ord, amplitude)"
+                " VALUES (?, ?, ?, ?, ?, ?, ?)")
+OLD_READ_SQL = ("SELECT sensor, axis, rpm_lo, rpm_hi, ord AS [order], amplitude FROM order_map"
+                " WHERE run = ? ORDER BY sensor, axis, rpm_lo, ord")
+
+
+def _old_cells(run, sensor, axis, lo, hi, orders, amp):
+    amp = np.asarray(amp, dtype=float)
+    for b in range(len(lo)):
+        if np.all(np.isnan(amp[b])):
+            continue
+        for k, order in enumerate(orders):
+            v = float(amp[b, k])
+            yield (run, sensor, axis, float(lo[b]), float(hi[b]), float(order),
+                   v if np.isfinite(v) else None)
+
+
+def test_v5_per_cell_order_maps_migrate_and_read_back_the_same(tmp_path):
+    import sqlite_utils
+
+    from crankbeat.logger.figures import order_grid
+    from crankbeat.logger.store.schema import migrate
+
+    path = tmp_path / "v5.db"
+    db = sqlite_utils.Database(path)
+    migrate(db, target=5)
+    db.execute("INSERT INTO rigs (id, name, file_hash, toml) VALUES (1, 'larch', 'f00d', '')")
+    for run in (1, 2):
+        db.execute("INSERT INTO runs (id, rig_id, status) VALUES (?, 1, 'complete')", (run,))
+    orders = np.arange(0.0, 3.01, 0.5)
+    lo, hi = np.array([1000.0, 1500.0, 2000.0]), np.array([1500.0, 2000.0, 2500.0])
+    rng = np.random.default_rng(3)
+    amp = rng.random((3, orders.size))
+    amp[1] = np.nan  # a band never visited
+    amp[2, 1], amp[2, 2], amp[0, 3] = np.nan, np.inf, 0.0  # no value, not finite, zero
+    cells = list(_old_cells(1, "bar_left", "sum", lo, hi, orders, amp))
+    cells += _old_cells(1, "bar_left", "x", lo, hi, orders, amp / 2)
+    # a second map of the same sensor and axis with other orders (two writes of one run)
+    cells += _old_cells(1, "bar_left", "x", [3000.0], [3500.0], [1.0, 2.0], [[0.7, 0.8]])
+    cells += _old_cells(2, "seat", "z", lo[:1], hi[:1], orders[:2], [[0.1, 0.2]])
+    db.conn.executemany(OLD_CELL_SQL, cells)
+    db.conn.commit()
+    want = {run: [dict(zip(("sensor", "axis", "rpm_lo", "rpm_hi", "order", "amplitude"), r))
+                  for r in db.execute(OLD_READ_SQL, (run,)).fetchall()] for run in (1, 2)}
+    db.close()
+    assert len(want[1]) == 2 * 2 * orders.size + 2 and len(want[2]) == 2
+
+    with Store.open(path) as st:
+        assert st.schema_version == SCHEMA_VERSION
+        assert "order_map" not in st.db.table_names()
+        for run in (1, 2):
+            assert st.order_map(run) == want[run]
+        assert st.db.execute("SELECT COUNT(*) FROM order_maps").fetchone()[0] == 4
+        (m,) = [m for m in st.order_maps(1) if m["axis"] == "sum"]
+        np.testing.assert_array_equal(m["rpm_lo"], [1000.0, 2000.0])
+        np.testing.assert_array_equal(m["orders"], orders)
+        kept = np.where(np.isfinite(amp[[0, 2]]), amp[[0, 2]], np.nan)
+        np.testing.assert_array_equal(m["amplitude"], kept)
+        grid = order_grid(st, 1, "bar_left", "sum", max_order=8.0)
+    # the grid reads the migrated map: the unvisited band stays empty, zero and no-value too
+    assert grid["amplitude"][0, 1] == amp[0, 1] and np.isnan(grid["amplitude"][1]).all()
+    assert np.isnan(grid["amplitude"][0, 3]) and np.isnan(grid["amplitude"][2, 2])

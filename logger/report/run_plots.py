@@ -245,7 +245,7 @@ def plot_order_map(store: Store, run_id: int, path: Path, *, max_order: float = 
     """Per sensor: the rpm-vs-order map (colour = amplitude, log scale, equal rpm bands) with
     the orders the layout predicts marked, and beside it the cuts of the main predicted orders
     against rpm. The vector-sum map is drawn when the store has one, else each axis."""
-    keys = sorted({(r["sensor"], r["axis"]) for r in store.order_map(run_id)})
+    keys = sorted({(m["sensor"], m["axis"]) for m in store.order_maps(run_id)})
     keys = [k for k in keys if k[1] == "sum"] or keys
     grids = [(k, order_grid(store, run_id, *k, max_order=max_order)) for k in keys]
     grids = [(k, g) for k, g in grids if g is not None]

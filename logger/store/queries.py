@@ -16,6 +16,7 @@ import sqlite_utils
 
 from crankbeat.dsp.events import EVENT_DTYPE
 from crankbeat.errors import RunNotFoundError
+from crankbeat.logger.store.arrays import unpack
 from crankbeat.logger.store.records import (
     INTERVAL_COLUMNS,
     VERDICT_CODES,
@@ -24,6 +25,7 @@ from crankbeat.logger.store.records import (
     rig_text,
     verdict_code,
 )
+from crankbeat.logger.store.rows import ORDER_MAP_COLUMNS
 from crankbeat.logger.store.schema import EVENT_COLUMNS, source_key
 
 
@@ -212,12 +214,34 @@ class RunQueries:
             f"SELECT {', '.join(VIBRATION_COLUMNS)} FROM vibration WHERE run = ?"
             " ORDER BY sensor, weighting, axis, rpm_lo", [run_id]))
 
-    def order_map(self, run_id: int, *, sensor: str | None = None) -> list[dict]:
+    def order_maps(self, run_id: int, *, sensor: str | None = None) -> list[dict]:
+        """The run's order maps as arrays, one dict per stored map (by sensor, axis): ``sensor``,
+        ``axis``, ``rpm_lo``, ``rpm_hi`` (n_b,) rpm of the visited bands, ``orders`` (n_o,),
+        ``amplitude`` (n_b, n_o) m/s², NaN where a cell has no value."""
         where, params = ("run = ?", [run_id]) if sensor is None else ("run = ? AND sensor = ?",
                                                                       [run_id, sensor])
-        return list(self.db.query(
-            "SELECT sensor, axis, rpm_lo, rpm_hi, ord AS [order], amplitude FROM order_map"
-            f" WHERE {where} ORDER BY sensor, axis, rpm_lo, ord", params))
+        rows = self.db.execute(
+            f"SELECT {', '.join(ORDER_MAP_COLUMNS)} FROM order_maps WHERE {where}"
+            " ORDER BY sensor, axis, rowid", params).fetchall()
+        return [{"sensor": s, "axis": a, "rpm_lo": unpack(lo, n_b), "rpm_hi": unpack(hi, n_b),
+                 "orders": unpack(orders, n_o), "amplitude": unpack(amp, (n_b, n_o))}
+                for s, a, n_b, n_o, lo, hi, orders, amp in rows]
+
+    def order_map(self, run_id: int, *, sensor: str | None = None) -> list[dict]:
+        """The run's order maps cell by cell: ``sensor``, ``axis``, ``rpm_lo``, ``rpm_hi``,
+        ``order``, ``amplitude`` (None: no value), by sensor, axis, rpm_lo and order (the
+        rows of the per-cell table of schema versions 2 to 5)."""
+        cells = []
+        for m in self.order_maps(run_id, sensor=sensor):
+            n_b, n_o = m["amplitude"].shape
+            cells += zip([m["sensor"]] * (n_b * n_o), [m["axis"]] * (n_b * n_o),
+                         *(_nullable(np.repeat(m[k], n_o)) for k in ("rpm_lo", "rpm_hi")),
+                         _nullable(np.tile(m["orders"], n_b)), _nullable(m["amplitude"].ravel()))
+        # SQL's order (NULL first); the sort is stable, so ties keep the order written
+        cells.sort(key=lambda c: (c[0], c[1], c[2] is not None, c[2] or 0.0,
+                                  c[4] is not None, c[4] or 0.0))
+        keys = ("sensor", "axis", "rpm_lo", "rpm_hi", "order", "amplitude")
+        return [dict(zip(keys, c)) for c in cells]
 
     def cylinder_stats(self, run_id: int) -> list[dict]:
         """Per cylinder: counts per verdict, misfire rate (% of the counted events: fired,
@@ -256,3 +280,8 @@ class RunQueries:
         from crankbeat.logger.store.trend import trend
 
         return trend(self, metric, **options)  # type: ignore[arg-type]
+
+
+def _nullable(values: np.ndarray) -> list:
+    """Floats with NaN as None (how SQL gave back a missing value)."""
+    return [None if v != v else v for v in values.tolist()]

@@ -187,7 +187,76 @@ def _v5(db: sqlite_utils.Database) -> None:
     db["run_tags"].create_index(["key", "value"])
 
 
-MIGRATIONS: list[Callable[[sqlite_utils.Database], None]] = [_v1, _v2, _v3, _v4, _v5]
+def _v6(db: sqlite_utils.Database) -> None:
+    """Order maps one row per map (sensor, axis) instead of one per cell: the rpm bands, the
+    orders and the amplitudes as little-endian float64 arrays (:mod:`.arrays`), NaN where a
+    cell has no value. A minute of ride wrote ~31 000 cell rows, the largest part of a run's
+    writing; it is now 4 rows. The cells of older runs move over unchanged."""
+    from crankbeat.logger.store.arrays import pack
+
+    db["order_maps"].create(
+        {
+            "run": int,
+            "sensor": str,
+            "axis": str,
+            "n_bands": int,
+            "n_orders": int,
+            "rpm_lo": bytes,  # (n_bands,) rpm
+            "rpm_hi": bytes,  # (n_bands,) rpm
+            "orders": bytes,  # (n_orders,) engine orders (per crank revolution)
+            "amplitude": bytes,  # (n_bands, n_orders) row by row, analyser unit (m/s²)
+        },
+        foreign_keys=[("run", "runs", "id")],
+    )
+    db["order_maps"].create_index(["run", "sensor"])
+    for run, sensor, axis, rows in _old_order_maps(db):
+        for lo, hi, orders, amp in _cell_groups(rows):
+            db.execute(
+                "INSERT INTO order_maps (run, sensor, axis, n_bands, n_orders, rpm_lo, rpm_hi,"
+                " orders, amplitude) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                (run, sensor, axis, len(lo), len(orders), pack(lo), pack(hi), pack(orders),
+                 pack(amp)))
+    db["order_map"].drop()
+
+
+def _old_order_maps(db: sqlite_utils.Database):
+    """The cells of the per-cell ``order_map`` table, per (run, sensor, axis), in the order
+    they were written."""
+    cur = db.execute("SELECT run, sensor, axis, rpm_lo, rpm_hi, ord, amplitude FROM order_map"
+                     " ORDER BY run, sensor, axis, rowid")
+    key, rows = None, []
+    for run, sensor, axis, *cell in cur:
+        if (run, sensor, axis) != key:
+            if rows:
+                yield (*key, rows)
+            key, rows = (run, sensor, axis), []
+        rows.append(cell)
+    if rows:
+        yield (*key, rows)
+
+
+def _cell_groups(rows: list) -> list[tuple[list, list, list, list]]:
+    """Cells ``(rpm_lo, rpm_hi, ord, amplitude)`` as maps ``(rpm_lo, rpm_hi, orders, amp)``:
+    bands with the same orders (in the order written) go together, so that every cell comes
+    back and no cell is made up. NULL becomes NaN."""
+    def value(v):
+        return float("nan") if v is None else float(v)
+
+    bands: dict[tuple, list] = {}
+    for lo, hi, order, amp in rows:
+        bands.setdefault((lo, hi), []).append((value(order), value(amp)))
+    groups: dict[tuple, tuple[list, list, list, list]] = {}
+    for (lo, hi), cells in bands.items():
+        orders = [o for o, _ in cells]
+        # repr tells NaN orders apart from each other no worse than SQL did, and keys a dict
+        group = groups.setdefault(tuple(map(repr, orders)), ([], [], orders, []))
+        group[0].append(value(lo))
+        group[1].append(value(hi))
+        group[3].append([a for _, a in cells])
+    return list(groups.values())
+
+
+MIGRATIONS: list[Callable[[sqlite_utils.Database], None]] = [_v1, _v2, _v3, _v4, _v5, _v6]
 
 #: The version a file has after every migration ran.
 SCHEMA_VERSION = len(MIGRATIONS)

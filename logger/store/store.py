@@ -1,7 +1,7 @@
 """The :class:`Store`: one SQLite file per test programme (see the package docstring).
 
 This module opens the file and writes runs; reading is :class:`~.queries.RunQueries`, whole-run
-housekeeping :class:`~.lifecycle.RunLifecycle`, and the row helpers live in :mod:`.records`.
+housekeeping :class:`~.lifecycle.RunLifecycle`; rows are shaped by :mod:`.rows` and :mod:`.records`.
 """
 
 from __future__ import annotations
@@ -19,7 +19,7 @@ from typing import Any
 import numpy as np
 import sqlite_utils
 
-from crankbeat.dsp.events import COUNTED_VERDICTS, EVENT_DTYPE, MASKED
+from crankbeat.dsp.events import COUNTED_VERDICTS, MASKED
 from crankbeat.errors import StoreError
 from crankbeat.logger.store.connection import connect, damaged_message, prepare_file, writable
 from crankbeat.logger.store.lifecycle import RunLifecycle
@@ -29,13 +29,27 @@ from crankbeat.logger.store.records import (
     VIBRATION_COLUMNS,
     WINDOW_COLUMNS,
     jsonable,
-    records,
     rig_text,
     sha256_file,
     utc_iso,
     verdict_code,
 )
-from crankbeat.logger.store.schema import EVENT_COLUMNS, current_version, source_key
+from crankbeat.logger.store.rows import (
+    CHANNEL_ROW,
+    EVENT_ROW,
+    ORDER_MAP_COLUMNS,
+    RunRows,
+    channel_rows,
+    event_rows,
+    interval_rows,
+    order_map_row,
+    vibration_rows,
+    window_rows,
+)
+from crankbeat.logger.store.schema import current_version, source_key
+
+#: Events turned into rows and inserted per call when a whole run is stored (bounded lists).
+EVENT_BLOCK = 20_000
 
 __all__ = ["Store", "jsonable", "sha256_file", "utc_iso", "verdict_code"]
 
@@ -190,53 +204,22 @@ class Store(RunQueries, RunLifecycle):
 
     def add_channels(self, run_id: int, channels: Mapping[str, tuple]) -> int:
         """Append status-channel rows: ``{name: (t, value)}`` (arrays, s and the channel's unit)."""
-        rows = []
-        for name, (t, v) in channels.items():
-            t, v = np.asarray(t, float), np.asarray(v, float)
-            rows += [(run_id, str(name), float(a), None if not math.isfinite(b) else float(b))
-                     for a, b in zip(t.tolist(), v.tolist())]
-        self.db.conn.executemany(
-            "INSERT INTO channels (run, name, t, value) VALUES (?, ?, ?, ?)", rows)
-        return len(rows)
+        return self._insert("channels", CHANNEL_ROW, run_id, channel_rows(channels))
 
     def add_events(self, run_id: int, events: np.ndarray) -> int:
         """Append firing events (an array of :data:`dsp.events.EVENT_DTYPE`); return the count.
 
         One ``executemany`` in the open transaction; call :meth:`commit` to make it durable.
         """
-        events = np.asarray(events)
-        if events.dtype != EVENT_DTYPE:
-            missing = set(EVENT_DTYPE.names or ()) - set(events.dtype.names or ())
-            if missing:
-                raise StoreError(
-                    f"add_events: array lacks field(s) {sorted(missing)} of dsp.events.EVENT_DTYPE"
-                )
-            # By name: numpy's structured astype would match the fields by position.
-            same = np.empty(len(events), dtype=EVENT_DTYPE)
-            for name in EVENT_DTYPE.names or ():
-                same[name] = events[name]
-            events = same
         if run_id not in self._seq:
             self._check_run(run_id)
             row = self.db.execute("SELECT MAX(seq) FROM events WHERE run = ?", (run_id,)).fetchone()
             self._seq[run_id] = -1 if row[0] is None else int(row[0])
             self._seq[run_id] += 1
         start = self._seq[run_id]
-        # run and seq go into the array, so one tolist() makes the rows (no per-row Python)
-        cols = [("run", np.int64), ("seq", np.int64)]
-        cols += [(c, EVENT_DTYPE.fields[c][0]) for c in EVENT_COLUMNS]
-        table = np.empty(len(events), dtype=cols)
-        table["run"] = run_id
-        table["seq"] = np.arange(start, start + len(events))
-        for c in EVENT_COLUMNS:
-            table[c] = events[c]
-        placeholders = ", ".join("?" * (len(EVENT_COLUMNS) + 2))
-        self.db.conn.executemany(
-            f"INSERT INTO events (run, seq, {', '.join(EVENT_COLUMNS)}) VALUES ({placeholders})",
-            table.tolist(),
-        )
-        self._seq[run_id] = start + len(events)
-        return len(events)
+        n = self._insert("events", EVENT_ROW, run_id, event_rows(events, start), check=False)
+        self._seq[run_id] = start + n
+        return n
 
     def mask_events(self, run_id: int, spans: Iterable[tuple[float, float]]) -> int:
         """Mark the judged events (fired, partial, misfire) of a run inside each ``(t0, t1)`` span
@@ -264,18 +247,7 @@ class Store(RunQueries, RunLifecycle):
         A :data:`dsp.analysis.WINDOW_DTYPE` array works as is (whole-engine rows, numbered in
         order); see also :meth:`add_window_rates`.
         """
-        recs = records(rows, WINDOW_COLUMNS, "add_windows")
-        if kind is not None:
-            recs = [(kind, *r[1:]) for r in recs]
-        # Rows without a cylinder (the whole-engine windows of dsp.analysis) are cylinder 0.
-        recs = [(*r[:3], 0 if r[3] is None else r[3], *r[4:]) for r in recs]
-        if recs and all(r[1] is None and r[2] is None for r in recs):
-            recs = [(r[0], i, *r[2:]) for i, r in enumerate(recs)]
-        bad = {r[0] for r in recs} - {"rev200", "rev1000", "rpm-band"}
-        if bad:
-            raise StoreError(f"add_windows: unknown kind(s) {sorted(map(str, bad))}, "
-                             "expected rev200, rev1000 or rpm-band")
-        return self._insert("windows", WINDOW_COLUMNS, run_id, recs)
+        return self._insert("windows", WINDOW_COLUMNS, run_id, window_rows(rows, kind))
 
     def add_window_rates(self, run_id: int, kind: str, windows: np.ndarray,
                          per_cylinder_pct: np.ndarray | None = None) -> int:
@@ -305,18 +277,13 @@ class Store(RunQueries, RunLifecycle):
         A list of :class:`dsp.intervals.IntervalResult` works as is (``from_cylinder``,
         ``to_cylinder`` and ``uncertainty_deg`` are taken for the short names; ``spread_deg`` is
         not stored)."""
-        return self._insert(
-            "intervals", INTERVAL_COLUMNS, run_id, records(rows, INTERVAL_COLUMNS, "add_intervals")
-        )
+        return self._insert("intervals", INTERVAL_COLUMNS, run_id, interval_rows(rows))
 
     def add_vibration(self, run_id: int, rows: Any) -> int:
         """Append vibration levels: ``sensor``, ``rpm_lo``, ``rpm_hi`` (rpm), ``axis`` ("x", "y",
         "z" or "sum" for the vector sum), ``weighting`` ("Wh", "Wk", "Wd" or "none"), ``rms``
         (m/s²), ``n`` (samples)."""
-        return self._insert(
-            "vibration", VIBRATION_COLUMNS, run_id,
-            records(rows, VIBRATION_COLUMNS, "add_vibration"),
-        )
+        return self._insert("vibration", VIBRATION_COLUMNS, run_id, vibration_rows(rows))
 
     def add_order_map(
         self,
@@ -332,37 +299,42 @@ class Store(RunQueries, RunLifecycle):
         """Append an rpm-vs-order map: ``amplitude[b, k]`` at band b, order ``orders[k]``.
 
         Amplitudes in the analyser's unit (m/s²); all-NaN bands (never visited) are skipped.
+        One row per map (:func:`~.rows.order_map_row`); returns the number of cells kept.
         """
-        amp = np.asarray(amplitude, dtype=float)
-        lo, hi, orders = (np.asarray(a, dtype=float) for a in (rpm_lo, rpm_hi, orders))
-        if amp.shape != (len(lo), len(orders)) or len(hi) != len(lo):
-            raise StoreError(
-                f"add_order_map: amplitude shape {amp.shape} does not match "
-                f"{len(lo)} bands x {len(orders)} orders"
-            )
-        visited = np.flatnonzero(~np.all(np.isnan(amp), axis=1))
-        # NaN (no block of this order in a visited band) is stored as NULL; rows are built
-        # column-wise (a map is ~10^4 rows per sensor and axis: a per-cell loop dominated)
-        self._check_run(run_id)
-        n_ord = len(orders)
-        vals = [None if v != v else v
-                for v in np.where(np.isfinite(amp[visited]), amp[visited], np.nan).ravel().tolist()]
-        self.db.conn.executemany(
-            "INSERT INTO order_map (run, sensor, axis, rpm_lo, rpm_hi, ord, amplitude)"
-            " VALUES (?, ?, ?, ?, ?, ?, ?)",
-            zip([run_id] * len(vals), [sensor] * len(vals), [axis] * len(vals),
-                np.repeat(lo[visited], n_ord).tolist(), np.repeat(hi[visited], n_ord).tolist(),
-                np.tile(orders, len(visited)).tolist(), vals),
-        )
-        return len(vals)
+        row = order_map_row(sensor, axis, rpm_lo, rpm_hi, orders, amplitude)
+        self._insert("order_maps", ORDER_MAP_COLUMNS, run_id, [row] if row[2] else [])
+        return row[2] * row[3]
 
-    def _insert(self, table: str, cols: Sequence[str], run_id: int, recs: list[tuple]) -> int:
+    def add_rows(self, run_id: int, rows: RunRows) -> int:
+        """Append a run's rows shaped beforehand (:class:`~.rows.RunRows`, e.g. by a fleet
+        worker): inserts only, in the open transaction. The run must hold no events yet.
+        Returns the number of rows."""
         self._check_run(run_id)
-        marks = ", ".join("?" * (len(cols) + 1))
+        n = 0
+        for a in range(0, len(rows.events), EVENT_BLOCK):
+            n += self._insert("events", EVENT_ROW, run_id,
+                              rows.events[a:a + EVENT_BLOCK].tolist(), check=False)
+        for table, cols, recs in (
+                ("windows", WINDOW_COLUMNS, rows.windows),
+                ("channels", CHANNEL_ROW, rows.channels),
+                ("intervals", INTERVAL_COLUMNS, rows.intervals),
+                ("vibration", VIBRATION_COLUMNS, rows.vibration),
+                ("order_maps", ORDER_MAP_COLUMNS, rows.order_maps)):
+            n += self._insert(table, cols, run_id, recs, check=False)
+        self._seq[run_id] = len(rows.events)
+        return n
+
+    def _insert(self, table: str, cols: Sequence[str], run_id: int, recs: list[tuple], *,
+                check: bool = True) -> int:
+        if check:
+            self._check_run(run_id)
+        if not recs:
+            return 0
+        # the run id goes into the statement (an int, never text), so each row is bound as
+        # shaped: no per-row tuple is built here
         self.db.conn.executemany(
-            f"INSERT INTO {table} (run, {', '.join(cols)}) VALUES ({marks})",
-            [(run_id, *r) for r in recs],
-        )
+            f"INSERT INTO {table} (run, {', '.join(cols)})"
+            f" VALUES ({int(run_id)}, {', '.join('?' * len(cols))})", recs)
         return len(recs)
 
     def update_run(
