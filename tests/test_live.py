@@ -123,6 +123,15 @@ def test_tally_counts_and_the_rolling_200_rev_window():
     t2 = LiveTally(rig.engine)
     t2.push_events(ev[ev["cycle"] < 1000])
     assert t2.state(0.0).cylinders[1].rate200_pct == 10.0
+    # No rate before a whole window (the stored windows' "complete", 98 % of 100 cycles): a
+    # rehearsal of the demo raised "33.3 % over 200 revs" from 1 misfire in its first 3 events
+    early = ev[(ev["cycle"] >= 9) & (ev["cycle"] < 9 + 97)]  # 97 cycles, one misfire on cyl 2
+    t4 = LiveTally(rig.engine)
+    t4.push_events(early)
+    assert [c.rate200_pct for c in t4.state(0.0).cylinders] == [None, None]
+    assert "MISFIRE ALERT" not in _text(_display(alert_pct=2.0), t4.state(0.0))
+    t4.push_events(ev[(ev["cycle"] >= 106) & (ev["cycle"] < 107)])  # 98 cycles: whole
+    assert t4.state(0.0).cylinders[1].rate200_pct is not None
     # bounded: 100 cycles x 2 cylinders, or the events of the last MASK_REACH_S seconds (a
     # rough-road span may close late and mask them), whichever holds more
     slow = ev[ev["cycle"] < 1000].copy()

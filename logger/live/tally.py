@@ -153,13 +153,17 @@ class LiveTally:
         cnt = np.zeros(n)
         mis = np.zeros(n)
         first_cycle = self._recent[-1][0] - self.cycles_per_window if self._recent else 0
+        # a rate only over a whole window, as the stored windows' "complete": at the start of
+        # a ride one misfire in three events must not read 33 % and raise the alert
+        complete = bool(self._recent) and (self._recent[-1][0] - self._recent[0][0] + 1
+                                           >= 0.98 * self.cycles_per_window)
         for cycle, c, v, _ in self._recent:
             if cycle > first_cycle and v in COUNTED_VERDICTS:
                 cnt[c - 1] += 1
                 mis[c - 1] += v == MISFIRE
         cylinders = []
         for c in range(1, n + 1):
-            rate = 100.0 * mis[c - 1] / cnt[c - 1] if cnt[c - 1] else None
+            rate = 100.0 * mis[c - 1] / cnt[c - 1] if cnt[c - 1] and complete else None
             contrib = float(np.mean(self._contrib[c])) if self._contrib[c] else None
             cylinders.append(CylinderState(c, int(self.events[c - 1]), int(self.misfires[c - 1]),
                                            rate, contrib, int(self.partial[c - 1])))
