@@ -128,7 +128,6 @@ class EventAnalyzer:
         See :meth:`dsp.crank.CrankTracker.schedule_tooth_correction`.
         """
         self.tracker.schedule_tooth_correction(correction_deg, from_time)
-        self.detector.relearn_from(from_time)
 
     def finish(self) -> AnalyzerStep:
         """Flush everything held back (the last events lack look-ahead)."""

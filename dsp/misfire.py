@@ -172,7 +172,6 @@ class MisfireDetector:
         self._recent_z: deque[float] = deque(maxlen=max(8 * self.n, 16))  # z of recent fired events
         self._last_flag = -(10**18)  # global index of the last flagged event
         self._spells = SpellWatch(self._cyl, self.s, even=self._even, z_threshold=self._z)
-        self._relearn_at = np.inf  # CAN time from which every cylinder relearns (s)
 
     # -- streaming ------------------------------------------------------------------------------
     def push(self, raw: np.ndarray, throttle: np.ndarray | None = None) -> np.ndarray:
@@ -196,13 +195,6 @@ class MisfireDetector:
 
     def finish(self) -> np.ndarray:
         return self._decide(final=True)
-
-    def relearn_from(self, t: float) -> None:
-        """Every cylinder relearns its baselines from the first event at or after CAN time ``t``
-        (s): a tooth-error correction that starts there moves each cylinder's level at once
-        (the teeth at its window ends are re-placed), as the engine's state after a fuel cut
-        does."""
-        self._relearn_at = min(self._relearn_at, float(t))
 
     def take_detail(self) -> np.ndarray:
         """Detail rows of the events returned since the last call, in the same order."""
@@ -293,10 +285,6 @@ class MisfireDetector:
         res = _Verdicts(i1 - i0)
         for k in range(i0, i1):
             o = k - i0
-            if run.times[o] >= self._relearn_at:
-                for st in self._cyl:
-                    st.stale = True
-                self._relearn_at = np.inf
             if run.w[k] != run.w[k]:
                 res.cause[o] = CAUSE_CRANK
                 continue
