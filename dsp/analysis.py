@@ -23,6 +23,7 @@ from crankbeat.dsp.events import (
     FIRED,
     MISFIRE,
     VERDICT_NAMES,
+    counted_total,
     empty_detail,
     empty_events,
 )
@@ -286,7 +287,7 @@ def misfire_counts(events: np.ndarray, n_cyl: int) -> dict[str, np.ndarray]:
     out: dict[str, np.ndarray] = {}
     for code, name in VERDICT_NAMES.items():
         out[name] = np.bincount(cyl[events["verdict"] == code], minlength=n_cyl)
-    denom = out["fired"] + out["misfire"] + out["partial"]
+    denom = counted_total(out)
     with np.errstate(invalid="ignore", divide="ignore"):
         out["rate_pct"] = np.where(denom > 0, 100.0 * out["misfire"] / denom, np.nan)
     tot = int(denom.sum())

@@ -22,6 +22,11 @@ PARTIAL = 5  # combustion, but clearly less than the cylinder's own (a partial b
 #: screen) takes this one definition.
 COUNTED_VERDICTS = (FIRED, PARTIAL, MISFIRE)
 
+def counted_total(counts_by_name):
+    """Sum of the per-verdict counts (keyed by :data:`VERDICT_NAMES`) of the counted verdicts."""
+    return sum(counts_by_name[VERDICT_NAMES[v]] for v in COUNTED_VERDICTS)
+
+
 VERDICT_NAMES = {
     FIRED: "fired",
     MISFIRE: "misfire",

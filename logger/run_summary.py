@@ -28,7 +28,7 @@ from crankbeat.dsp.analysis import (
     window_rates,
 )
 from crankbeat.dsp.engine import Engine
-from crankbeat.dsp.events import MISFIRE
+from crankbeat.dsp.events import MISFIRE, counted_total
 from crankbeat.dsp.intervals import IntervalResult, identify_layout, interval_check
 from crankbeat.dsp.layout import firing_sequence, layout_signature
 from crankbeat.errors import InputError, LayoutMismatchWarning
@@ -230,8 +230,7 @@ class RunSummary:
     def as_dict(self) -> dict:
         """The run's summary as plain JSON-able values."""
         n = self.engine.n_cylinders
-        # the one rate definition (dsp.events.COUNTED_VERDICTS): partial burns count as events
-        counted = self._counts["fired"] + self._counts["partial"] + self._counts["misfire"]
+        counted = counted_total(self._counts)  # the one rate definition (COUNTED_VERDICTS)
         per_cyl = []
         for c in range(n):
             rate = 100.0 * self._counts["misfire"][c] / counted[c] if counted[c] else None

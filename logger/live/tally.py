@@ -70,10 +70,7 @@ class LiveTally:
         if not len(events):
             return
         for c, v in zip(events["cylinder"].tolist(), events["verdict"].tolist(), strict=True):
-            if v in COUNTED_VERDICTS:
-                self.events[c - 1] += 1
-                self.misfires[c - 1] += v == MISFIRE
-                self.partial[c - 1] += v == PARTIAL
+            self._count(c, v, +1)
         fired = events[events["verdict"] == FIRED]
         for row in fired[["cylinder", "interval_deg", "expected_interval_deg",
                           "contribution"]].tolist():
@@ -107,10 +104,15 @@ class LiveTally:
             for row in self._recent:
                 _, c, v, t = row
                 if t0 <= t <= t1 and v in COUNTED_VERDICTS:
-                    self.events[c - 1] -= 1
-                    self.misfires[c - 1] -= v == MISFIRE
-                    self.partial[c - 1] -= v == PARTIAL
+                    self._count(c, v, -1)
                     row[2] = MASKED
+
+    def _count(self, c: int, verdict: int, sign: int) -> None:
+        """Add (+1) or take back (-1) one event of cylinder ``c`` in the running counts."""
+        if verdict in COUNTED_VERDICTS:
+            self.events[c - 1] += sign
+            self.misfires[c - 1] += sign * (verdict == MISFIRE)
+            self.partial[c - 1] += sign * (verdict == PARTIAL)
 
     def set_status(self, *, rpm: float | None = None, throttle: float | None = None) -> None:
         if rpm is not None:
@@ -157,8 +159,12 @@ class LiveTally:
         # a ride one misfire in three events must not read 33 % and raise the alert
         complete = bool(self._recent) and (self._recent[-1][0] - self._recent[0][0] + 1
                                            >= 0.98 * self.cycles_per_window)
-        for cycle, c, v, _ in self._recent:
-            if cycle > first_cycle and v in COUNTED_VERDICTS:
+        # newest first, stopping at the window's start: the deque also keeps up to MASK_REACH_S
+        # of older events for late masks, and this runs a few times a second
+        for cycle, c, v, _ in reversed(self._recent):
+            if cycle <= first_cycle:
+                break
+            if v in COUNTED_VERDICTS:
                 cnt[c - 1] += 1
                 mis[c - 1] += v == MISFIRE
         cylinders = []
